@@ -78,3 +78,41 @@ def main() -> None:
             e.show()
             sys.exit(1 if e.exit_code == 2 else e.exit_code)
         raise
+
+
+# ------------------------------------------------------------------ gaps (missing-data overview)
+@app.command("gaps")
+def gaps_command(
+    network: NetworkArg,
+    data: DataArg,
+    missing: MissingOpt = None,
+    count_column: CountOpt = None,
+    ignore_columns: IgnoreOpt = None,
+    as_json: Annotated[bool, typer.Option(
+        "--json", help="Print the overview as JSON (format adfit-gaps/1) instead of text.")] = False,
+    top: Annotated[int, typer.Option(
+        "--top", help="How many of the most frequent missingness patterns to list.")] = 10,
+    level: Annotated[float, typer.Option(
+        "--level", help="Significance level of the MCAR tests, after Holm's adjustment.")] = 0.05,
+) -> None:
+    """Overview of the missing cells: per column, patterns, complete rows, and an MCAR test.
+
+    For each column with gaps, G² likelihood-ratio tests check whether its missingness depends on the other observed columns (pairwise, and jointly given which of them are missing; Holm-adjusted). Latent nodes are listed apart: they are never observed by design.
+
+    Caution: a rejection shows that the gaps are not MCAR; not rejecting does not prove MCAR. Whether the gaps depend on the missing values themselves (MAR versus MNAR) cannot be tested from the data, and the fit assumes MAR.
+
+    Example: adfit gaps gearbox.toml inspections.csv --top 5 --missing n/a
+    """
+
+    import json
+
+    from .data import load_data
+    from .gaps import overview
+    from .network import load_network
+
+    with user_errors():
+        net = load_network(network)
+        coded = load_data(net, data, missing=missing, count_column=count_column,
+                          ignore_columns=split_list(ignore_columns))
+        report = overview(net, coded, top=top, level=level)
+        typer.echo(json.dumps(report.to_dict(), indent=2) if as_json else report.format_text())
