@@ -64,7 +64,24 @@ class Network:
     _index: Mapping[str, int] = field(default=None, compare=False, hash=False, repr=False)  # type: ignore[assignment]
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "_index", {n.name: i for i, n in enumerate(self.nodes)})
+        index: dict[str, int] = {}
+        for i, n in enumerate(self.nodes):
+            if n.name in index:
+                raise NetworkError(f"node {n.name!r} appears twice in the network; node names must be distinct")
+            if len(n.states) < 2 or len(set(n.states)) != len(n.states):
+                raise NetworkError(f"node {n.name!r}: states must be at least 2 distinct labels, got {list(n.states)}")
+            for p in n.parents:
+                if p not in index:
+                    where = "is not a node of the network" if p not in {m.name for m in self.nodes} else \
+                        "comes after it; nodes must be in topological order (use parse_network to sort them)"
+                    raise NetworkError(f"node {n.name!r}: parent {p!r} {where}")
+            index[n.name] = i
+        object.__setattr__(self, "_index", index)
+        for n in self.nodes:
+            if n.fixed is not None:
+                size = math.prod(self.node(p).card for p in n.parents) * n.card
+                if len(n.fixed) != size:
+                    raise NetworkError(f"node {n.name!r}: fixed table has {len(n.fixed)} entries, expected {size}")
 
     # ----------------------------------------------------------------- lookups
     @property
@@ -185,6 +202,11 @@ def table_to_array(network: Network, name: str, table: Any, *, what: str = "tabl
     where = f"{source}: " if source else ""
     shape = network.cpt_shape(name)
     q, r = int(math.prod(shape[:-1])), shape[-1]
+    bad_entry = _first_non_number(table)
+    if bad_entry is not None:
+        raise NetworkError(
+            f"{where}node {name!r}: {what} has the entry {bad_entry!r}, which is not a number; "
+            f"write probabilities as numbers such as 0.25")
     try:
         a = np.asarray(table, dtype=np.float64)
     except (TypeError, ValueError):
@@ -218,6 +240,21 @@ def table_to_array(network: Network, name: str, table: Any, *, what: str = "tabl
     return a.reshape(shape)
 
 
+def _first_non_number(table: Any) -> Any:
+    """The first entry of a (nested) list that is not a real number (bool and str count as not), or None."""
+    if isinstance(table, np.ndarray):
+        return None if table.dtype.kind in "iuf" else next(iter(table.ravel()), None)
+    if isinstance(table, (list, tuple)):
+        for x in table:
+            b = _first_non_number(x)
+            if b is not None:
+                return b
+        return None
+    if isinstance(table, (bool, np.bool_)) or not isinstance(table, (int, float, np.integer, np.floating)):
+        return table
+    return None
+
+
 # --------------------------------------------------------------------- parsing
 def load_network(path: str | Path) -> Network:
     """Read a network TOML file (schema in the module docstring and docs/user-guide.md)."""
@@ -229,7 +266,7 @@ def load_network(path: str | Path) -> Network:
     except OSError as e:
         raise NetworkError(f"{p}: cannot read network file ({e.strerror})") from None
     try:
-        doc = tomllib.loads(raw.decode("utf-8"))
+        doc = tomllib.loads(raw.decode("utf-8-sig"))  # a leading byte-order mark is allowed
     except UnicodeDecodeError:
         raise NetworkError(f"{p}: network file is not UTF-8 text") from None
     except tomllib.TOMLDecodeError as e:
@@ -244,6 +281,8 @@ def parse_network(doc: Mapping[str, Any], *, source: str = "<network>") -> Netwo
     extra = set(doc) - {"nodes", "network"}
     if extra:
         raise NetworkError(f"{source}: unknown top-level key(s) {sorted(extra)}; only [nodes.NAME] tables are allowed")
+    if "network" in doc and not isinstance(doc["network"], Mapping):
+        raise NetworkError(f"{source}: 'network' must be a table ([network]) of descriptive keys")
     nodes_doc = doc["nodes"]
     if not isinstance(nodes_doc, Mapping) or not nodes_doc:
         raise NetworkError(f"{source}: [nodes] must contain at least one [nodes.NAME] table")
@@ -261,11 +300,15 @@ def parse_network(doc: Mapping[str, Any], *, source: str = "<network>") -> Netwo
         states = spec.get("states")
         if not isinstance(states, list) or len(states) < 2:
             raise NetworkError(f"{source}: nodes.{name}.states must be a list of at least 2 labels")
-        states_t = tuple(str(s) for s in states)
         if any(not isinstance(s, (str, int)) or isinstance(s, bool) for s in states):
-            raise NetworkError(f"{source}: nodes.{name}.states must be strings (or integers)")
+            raise NetworkError(f"{source}: nodes.{name}.states must be strings (or integers), got {states!r}")
+        states_t = tuple(str(s) for s in states)
         if any(s.strip() == "" for s in states_t):
-            raise NetworkError(f"{source}: nodes.{name}.states has an empty label")
+            raise NetworkError(f"{source}: nodes.{name}.states has an empty label; every state needs a name")
+        odd = [s for s in states_t if s != s.strip() or not s.isprintable()]
+        if odd:
+            raise NetworkError(f"{source}: nodes.{name}.states label {odd[0]!r} has surrounding spaces or control "
+                               f"characters; write it without them (data cells are matched after trimming spaces)")
         dup = sorted({s for s in states_t if states_t.count(s) > 1})
         if dup:
             raise NetworkError(f"{source}: nodes.{name}.states has duplicate label(s) {dup}; each state must be distinct")
