@@ -1,0 +1,614 @@
+"""EM reference: expectation-maximisation in plain numpy, with its own exact inference.
+
+This module shares nothing with the JAX core (:mod:`adfit.likelihood`): it has its own
+elimination order, its own junction tree and its own message passing, so that agreement between
+EM and the gradient fit is a real check.
+
+E-step. Distinct data rows are grouped by their pattern of hidden cells (missing cells and the
+latent nodes). For each pattern one junction tree is built over the hidden nodes, from a greedy
+min-fill elimination order: eliminating ``x`` makes the cluster ``{x} ∪ neighbours(x)``, whose
+parent is the cluster of the first-eliminated node of its separator. Every CPT, indexed by the
+row's observed values, becomes a factor over its hidden family members, batched over the rows of
+the pattern, and is attached to the cluster of its first-eliminated member. An upward pass
+(messages rescaled per row, the log scales summed) gives each row's log-likelihood; a downward
+pass (Shafer–Shenoy: no division) gives every cluster's posterior, from which the posterior of
+each family over its hidden members is read off. Expected counts are
+``N̂(x, u) = Σ_rows weight · P(X = x, U = u | row)``, shaped like the CPT.
+
+M-step. Per free CPT row, ``θ(x|u) = (N̂(x,u) + c(x,u)) / (N̂(u) + c(u))`` with ``c`` the prior's
+pseudo-counts (``c = 0``: maximum likelihood; ``c ≥ 0``: the posterior mode of a Dirichlet with
+``α = c + 1``, matching the objective ``log L + Σ c log θ`` of the gradient fit). Fixed CPTs never
+change. A row whose denominator is 0 keeps its current value; rows with ``N̂(u) = 0`` are
+reported as not informed by the data.
+
+Stopping. EM stops when the relative change of the objective is at most ``tol`` **and** the
+stationarity residual ``max |N̂ + c − θ (N̂_u + c_u)|`` (by Fisher's identity this is the
+gradient of the objective with respect to the free logits, in units of records) is at most
+``gtol`` times the number of records. The observed rate of convergence is the ratio of
+successive parameter changes ``‖θ_{k+1} − θ_k‖ / ‖θ_k − θ_{k−1}‖`` near the end; for EM it tends
+to the largest eigenvalue of the EM map's Jacobian, the largest fraction of missing information
+(Dempster, Laird & Rubin 1977, §3).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any, Callable, Iterable, Mapping, Sequence
+
+import numpy as np
+
+from .data import HIDDEN, CodedData, decode, load_data
+from .errors import ImpossibleDataError, OptionError, PriorError
+from .network import SUM_TOL, Network
+
+__all__ = ["EMResult", "EStep", "expected_counts", "em_fit", "log_likelihood", "random_start",
+           "stationarity_residual", "RATE_MIN_STEP"]
+
+#: the rate is read from the last pair of parameter changes whose later one is at least this big
+#: (smaller changes are dominated by rounding)
+RATE_MIN_STEP = 1e-10
+
+_ROW = -1  # label of the batch (row) axis in a potential
+
+
+# =============================================================================== plan
+@dataclass(frozen=True)
+class _FamilyIndex:
+    """How the CPT of one node meets the rows of one pattern."""
+
+    node: int
+    obs_axes: tuple[int, ...]      # axes of the CPT (family positions) observed in this pattern
+    hid_axes: tuple[int, ...]      # the hidden axes, in family order
+    hid_vars: tuple[int, ...]      # node indices of the hidden axes
+    obs_flat: np.ndarray           # (n,) flat index over the observed axes, per row
+    obs_size: int                  # product of the observed axes' cards
+    hid_shape: tuple[int, ...]
+
+
+@dataclass(frozen=True)
+class _PatternPlan:
+    rows: np.ndarray                      # indices of the distinct rows of this pattern
+    weights: np.ndarray                   # their counts
+    clusters: tuple[tuple[int, ...], ...]  # cluster scopes (node indices), one per eliminated node
+    seps: tuple[tuple[int, ...], ...]     # separator of each cluster towards its parent
+    parent: tuple[int, ...]               # parent cluster (-1: a root)
+    children: tuple[tuple[int, ...], ...]
+    assigned: tuple[tuple[int, ...], ...]  # nodes whose factor sits in each cluster
+    hidden_fams: tuple[_FamilyIndex, ...]  # families with at least one hidden member
+    const_fams: tuple[_FamilyIndex, ...]   # families fully observed in this pattern
+
+
+def _min_fill_order(hidden: Sequence[int], scopes: Iterable[Sequence[int]], cards: Sequence[int]) -> list[int]:
+    """Greedy elimination order: fewest fill-in edges, then smallest cluster, then node index."""
+    adj: dict[int, set[int]] = {v: set() for v in hidden}
+    for s in scopes:
+        for a in s:
+            for b in s:
+                if a != b:
+                    adj[a].add(b)
+    order: list[int] = []
+    left = set(hidden)
+    while left:
+        best = None
+        for v in sorted(left):
+            nb = adj[v]
+            fill = sum(1 for a in nb for b in nb if a < b and b not in adj[a])
+            weight = math.prod(cards[u] for u in nb) * cards[v]
+            key = (fill, weight, v)
+            if best is None or key < best[0]:
+                best = (key, v)
+        v = best[1]
+        nb = adj[v]
+        for a in nb:
+            adj[a] |= nb - {a}
+            adj[a].discard(v)
+        order.append(v)
+        left.remove(v)
+        del adj[v]
+    return order
+
+
+def _family_index(network: Network, v: int, hidden_set: set[int], codes: np.ndarray) -> _FamilyIndex:
+    fam = network.parent_indices[v] + (v,)
+    cards = network.cards
+    obs_axes = tuple(a for a, u in enumerate(fam) if u not in hidden_set)
+    hid_axes = tuple(a for a, u in enumerate(fam) if u in hidden_set)
+    obs_cards = [cards[fam[a]] for a in obs_axes]
+    flat = np.zeros(codes.shape[0], dtype=np.int64)
+    for a, c in zip(obs_axes, obs_cards):
+        flat = flat * c + codes[:, fam[a]]
+    return _FamilyIndex(v, obs_axes, hid_axes, tuple(fam[a] for a in hid_axes), flat,
+                        int(math.prod(obs_cards)), tuple(cards[fam[a]] for a in hid_axes))
+
+
+def _pattern_plan(network: Network, rows: np.ndarray, codes: np.ndarray, weights: np.ndarray,
+                  hidden: tuple[int, ...]) -> _PatternPlan:
+    hidden_set = set(hidden)
+    fams = [_family_index(network, v, hidden_set, codes) for v in range(len(network))]
+    hidden_fams = tuple(f for f in fams if f.hid_vars)
+    const_fams = tuple(f for f in fams if not f.hid_vars)
+    order = _min_fill_order(hidden, [f.hid_vars for f in hidden_fams], network.cards)
+    pos = {v: i for i, v in enumerate(order)}
+    # clusters from the elimination
+    adj: dict[int, set[int]] = {v: set() for v in hidden}
+    for f in hidden_fams:
+        for a in f.hid_vars:
+            adj[a] |= set(f.hid_vars) - {a}
+    clusters, seps = [], []
+    for v in order:
+        nb = adj.pop(v)
+        for a in nb:
+            adj[a] |= nb - {a}
+            adj[a].discard(v)
+        sep = tuple(sorted(nb, key=pos.__getitem__))
+        clusters.append((v,) + sep)
+        seps.append(sep)
+    parent = tuple(min(pos[u] for u in s) if s else -1 for s in seps)
+    children = tuple(tuple(j for j, p in enumerate(parent) if p == i) for i in range(len(order)))
+    assigned: list[list[int]] = [[] for _ in order]
+    for k, f in enumerate(hidden_fams):
+        assigned[min(pos[u] for u in f.hid_vars)].append(k)
+    return _PatternPlan(rows, weights, tuple(clusters), tuple(seps), parent, children,
+                        tuple(tuple(a) for a in assigned), hidden_fams, const_fams)
+
+
+# =============================================================================== numerics
+#: most potentials multiplied in one einsum call; longer products go in rescaled chunks
+_CHUNK = 8
+
+
+def _contract(pots: Sequence[tuple[np.ndarray, tuple[int, ...], bool]], out: tuple[int, ...],
+              n: int, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray]:
+    """Sum-product of potentials onto ``out``: ``(batched result (n, *cards(out)), log scale (n,))``.
+
+    A potential is ``(array, vars, batched)``: batched arrays carry the row axis first. The true
+    result is ``result * exp(log_scale)`` per row; the scale is nonzero only when the product is
+    long enough to be taken in chunks (each chunk rescaled per row, so nothing underflows).
+    """
+    logs = np.zeros(n)
+    if len(pots) > _CHUNK:
+        scope: tuple[int, ...] = tuple(sorted({v for _, vs, _ in pots for v in vs} | set(out)))
+        acc = None
+        for k in range(0, len(pots), _CHUNK - 1):
+            part = list(pots[k:k + _CHUNK - 1]) + ([acc] if acc is not None else [])
+            arr, ls0 = _contract(part, scope, n, cards)
+            arr, ls = _rescale(arr)
+            logs += ls0 + ls
+            acc = (arr, scope, True)
+        pots = [acc]
+    labels: dict[int, int] = {}
+
+    def lab(v: int) -> int:
+        return labels.setdefault(v, len(labels))
+
+    row = lab(_ROW)
+    ops: list[Any] = []
+    present: set[int] = set()
+    any_batched = False
+    for arr, vs, batched in pots:
+        ops += [arr, ([row] if batched else []) + [lab(v) for v in vs]]
+        present.update(vs)
+        any_batched |= batched
+    for v in out:  # a variable no potential mentions (cannot happen for a sound plan; kept safe)
+        if v not in present:
+            ops += [np.ones(cards[v]), [lab(v)]]
+    if not ops:
+        return np.ones((n,) + tuple(cards[v] for v in out)), logs
+    if any_batched:
+        return np.einsum(*ops, [row] + [lab(v) for v in out]), logs
+    res = np.einsum(*ops, [lab(v) for v in out])
+    return np.broadcast_to(res, (n,) + res.shape), logs
+
+
+def _rescale(msg: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Divide each row's message by its largest entry; return it and the log of that entry."""
+    n = msg.shape[0]
+    s = msg.reshape(n, -1).max(axis=1) if msg.ndim > 1 else msg.copy()
+    ok = s > 0
+    with np.errstate(divide="ignore"):
+        logs = np.where(ok, np.log(np.where(ok, s, 1.0)), -np.inf)
+    safe = np.where(ok, s, 1.0).reshape((n,) + (1,) * (msg.ndim - 1))
+    return msg / safe, logs
+
+
+class EStep:
+    """Exact expected counts for one network and one data set, by junction-tree passes.
+
+    Build once (the plan: patterns, elimination orders, junction trees, index arrays) and call
+    :meth:`__call__` for each parameter value.
+    """
+
+    def __init__(self, network: Network, data: CodedData):
+        self.network = network
+        self.data = data
+        codes = np.asarray(data.codes)
+        if codes.ndim != 2 or codes.shape[1] != len(network):
+            raise OptionError(f"{data.source}: coded data has shape {codes.shape}, expected (rows, {len(network)})")
+        hidden = codes == HIDDEN
+        keys, inverse = np.unique(hidden, axis=0, return_inverse=True)
+        inverse = inverse.reshape(-1)
+        self.patterns: list[_PatternPlan] = []
+        for k in range(keys.shape[0]):
+            rows = np.flatnonzero(inverse == k)
+            hid = tuple(int(j) for j in np.flatnonzero(keys[k]))
+            self.patterns.append(_pattern_plan(network, rows, codes[rows], np.asarray(data.counts)[rows], hid))
+        # counts of families that are fully observed do not depend on the parameters
+        self._complete = {name: np.zeros(network.cpt_shape(name)) for name in network.names}
+        for pp in self.patterns:
+            for f in pp.const_fams:
+                name = network.names[f.node]
+                tab = self._complete[name].reshape(-1)
+                tab += np.bincount(f.obs_flat, weights=pp.weights, minlength=tab.size)
+
+    # ------------------------------------------------------------------ one pass
+    def __call__(self, probs: Mapping[str, np.ndarray]) -> tuple[dict[str, np.ndarray], np.ndarray]:
+        """Expected counts (every node, CPT-shaped) and the log-likelihood of each distinct row.
+
+        Rows with probability 0 get ``-inf`` and contribute no counts.
+        """
+        net = self.network
+        cards = net.cards
+        tables = [np.asarray(probs[name], dtype=np.float64) for name in net.names]
+        counts = {name: c.copy() for name, c in self._complete.items()}
+        row_ll = np.zeros(self.data.n_distinct)
+        for pp in self.patterns:
+            ll = self._pattern(pp, tables, counts, cards)
+            row_ll[pp.rows] = ll
+            bad = np.isneginf(ll)
+            if bad.any():  # impossible rows: take back their (precomputed) complete-family counts
+                for f in pp.const_fams:
+                    tab = counts[net.names[f.node]].reshape(-1)
+                    tab -= np.bincount(f.obs_flat[bad], weights=pp.weights[bad], minlength=tab.size)
+        return counts, row_ll
+
+    def _factor(self, f: _FamilyIndex, table: np.ndarray) -> tuple[np.ndarray, tuple[int, ...], bool]:
+        moved = np.moveaxis(table, f.obs_axes, range(len(f.obs_axes))).reshape((f.obs_size,) + f.hid_shape)
+        if not f.obs_axes:
+            return moved[0], f.hid_vars, False
+        return moved[f.obs_flat], f.hid_vars, True
+
+    def _pattern(self, pp: _PatternPlan, tables: list[np.ndarray], counts: dict[str, np.ndarray],
+                 cards: Sequence[int]) -> np.ndarray:
+        n = pp.rows.size
+        ll = np.zeros(n)
+        with np.errstate(divide="ignore"):
+            for f in pp.const_fams:
+                ll += np.log(tables[f.node].reshape(-1)[f.obs_flat])
+        m = len(pp.clusters)
+        if m == 0:
+            return ll
+        fac = [self._factor(f, tables[f.node]) for f in pp.hidden_fams]
+        # upward (collect) pass: variable elimination in the plan's order
+        up: list[Any] = [None] * m
+        for i in range(m):
+            pots = [fac[k] for k in pp.assigned[i]] + [up[c] for c in pp.children[i]]
+            msg, logs0 = _contract(pots, pp.seps[i], n, cards)
+            msg, logs = _rescale(msg)
+            ll += logs0 + logs
+            up[i] = (msg, pp.seps[i], True)
+        # downward (distribute) pass and the cluster posteriors
+        down: list[Any] = [None] * m
+        w = np.where(np.isfinite(ll), pp.weights, 0.0)
+        names = self.network.names
+        for i in reversed(range(m)):
+            base = [fac[k] for k in pp.assigned[i]]
+            if pp.parent[i] >= 0:
+                base.append(down[i])
+            for c in pp.children[i]:
+                pots = base + [up[d] for d in pp.children[i] if d != c]
+                msg, _ = _rescale(_contract(pots, pp.seps[c], n, cards)[0])
+                down[c] = (msg, pp.seps[c], True)
+            if not pp.assigned[i]:
+                continue
+            belief = _contract(base + [up[d] for d in pp.children[i]], pp.clusters[i], n, cards)[0]
+            z = belief.reshape(n, -1).sum(axis=1)
+            scale = np.where(z > 0, w / np.where(z > 0, z, 1.0), 0.0)
+            belief = belief * scale.reshape((n,) + (1,) * (belief.ndim - 1))
+            for k in pp.assigned[i]:
+                f = pp.hidden_fams[k]
+                marg = _contract([(belief, pp.clusters[i], True)], f.hid_vars, n, cards)[0]
+                self._scatter(counts[names[f.node]], f, marg)
+        return ll
+
+    @staticmethod
+    def _scatter(target: np.ndarray, f: _FamilyIndex, marg: np.ndarray) -> None:
+        """Add the row-weighted family posteriors ``marg`` (n, *hid_shape) into a CPT-shaped array."""
+        if not f.obs_axes:
+            acc = marg.sum(axis=0)
+            target += np.transpose(acc.reshape(f.hid_shape), np.argsort(np.asarray(f.hid_axes)))
+            return
+        h = int(math.prod(f.hid_shape))
+        acc = np.zeros((f.obs_size, h))
+        np.add.at(acc, f.obs_flat, marg.reshape(marg.shape[0], h))
+        obs_shape = tuple(target.shape[a] for a in f.obs_axes)
+        moved = acc.reshape(obs_shape + f.hid_shape)
+        perm = np.argsort(np.asarray(f.obs_axes + f.hid_axes))
+        target += np.transpose(moved, perm)
+
+
+# =============================================================================== public helpers
+def _check_probs(network: Network, probs: Mapping[str, Any], what: str = "probs") -> dict[str, np.ndarray]:
+    out: dict[str, np.ndarray] = {}
+    for name in network.names:
+        fixed = network.fixed_table(name)
+        if name not in probs:
+            if fixed is not None:
+                out[name] = fixed
+                continue
+            raise OptionError(f"{what}: no table for free node {name!r}; give a CPT for every free node")
+        a = np.asarray(probs[name], dtype=np.float64)
+        shape = network.cpt_shape(name)
+        if a.shape != shape:
+            raise OptionError(f"{what}: node {name!r} has a table of shape {a.shape}, expected {shape} "
+                              f"(parent cards..., card)")
+        if not np.all(np.isfinite(a)) or np.any(a < 0):
+            raise OptionError(f"{what}: node {name!r} has a negative or non-finite entry; probabilities must be in [0, 1]")
+        off = np.abs(a.sum(axis=-1) - 1.0) > SUM_TOL
+        if np.any(off):
+            i = int(np.flatnonzero(off.reshape(-1))[0])
+            raise OptionError(f"{what}: node {name!r} row {i + 1} does not sum to 1; each row must be a distribution")
+        out[name] = fixed if fixed is not None else a / a.sum(axis=-1, keepdims=True)
+    extra = sorted(set(probs) - set(network.names))
+    if extra:
+        raise OptionError(f"{what}: table(s) for unknown node(s) {extra}; the network has: {', '.join(network.names)}")
+    return out
+
+
+def expected_counts(network: Network, probs: Mapping[str, np.ndarray], data: Any, *,
+                    count_column: str | None = None) -> tuple[dict[str, np.ndarray], float]:
+    """Expected counts ``N̂(x, u)`` of every node (CPT-shaped) and the log-likelihood at ``probs``.
+
+    ``probs`` must hold a table for every free node (fixed nodes default to their fixed table).
+    ``data`` is anything :func:`adfit.data.load_data` accepts. Rows of probability 0 make the
+    log-likelihood ``-inf`` and contribute no counts.
+    """
+    coded = load_data(network, data, count_column=count_column)
+    th = _check_probs(network, probs)
+    counts, row_ll = EStep(network, coded)(th)
+    return counts, _weighted_sum(row_ll, coded.counts)
+
+
+def log_likelihood(network: Network, probs: Mapping[str, np.ndarray], data: Any, *,
+                   count_column: str | None = None) -> float:
+    """Marginal log-likelihood at ``probs`` (by this module's own inference)."""
+    return expected_counts(network, probs, data, count_column=count_column)[1]
+
+
+def _weighted_sum(row_ll: np.ndarray, w: np.ndarray) -> float:
+    if np.any(np.isneginf(row_ll) & (w > 0)):
+        return -math.inf
+    return float(np.sum(np.where(w > 0, row_ll, 0.0) * w))
+
+
+def stationarity_residual(network: Network, counts: Mapping[str, np.ndarray], probs: Mapping[str, np.ndarray],
+                          pseudo_counts: Mapping[str, np.ndarray] | None = None, *, norm: str = "max") -> float:
+    """``N̂ + c − θ (N̂_u + c_u)`` over the free nodes (the logit gradient, Fisher's identity).
+
+    ``norm="max"``: the largest absolute entry; ``norm="l2"``: the Euclidean norm.
+    """
+    acc = 0.0
+    for name in network.free_names:
+        n_xu = counts[name] + (pseudo_counts[name] if pseudo_counts is not None and name in pseudo_counts else 0.0)
+        g = n_xu - np.asarray(probs[name]) * n_xu.sum(axis=-1, keepdims=True)
+        if g.size:
+            acc = max(acc, float(np.max(np.abs(g)))) if norm == "max" else acc + float(np.sum(g * g))
+    return acc if norm == "max" else math.sqrt(acc)
+
+
+def random_start(network: Network, seed: int = 0) -> dict[str, np.ndarray]:
+    """A seeded random start: each free row is half uniform, half a Dirichlet(1) draw."""
+    rng = np.random.default_rng(seed)
+    out: dict[str, np.ndarray] = {}
+    for name in network.names:
+        fixed = network.fixed_table(name)
+        if fixed is not None:
+            out[name] = fixed
+            continue
+        shape = network.cpt_shape(name)
+        d = rng.dirichlet(np.ones(shape[-1]), size=int(math.prod(shape[:-1]))).reshape(shape)
+        out[name] = 0.5 * d + 0.5 / shape[-1]
+    return out
+
+
+def _check_pseudo(network: Network, pseudo_counts: Mapping[str, Any] | None) -> dict[str, np.ndarray] | None:
+    if pseudo_counts is None:
+        return None
+    out: dict[str, np.ndarray] = {}
+    for name, c in pseudo_counts.items():
+        if name not in network:
+            raise PriorError(f"pseudo-counts given for unknown node {name!r}; the network has: {', '.join(network.names)}")
+        a = np.asarray(c, dtype=np.float64)
+        if network.node(name).fixed is not None:
+            if np.any(a != 0):
+                raise PriorError(f"pseudo-counts given for node {name!r}, whose CPT is fixed; remove them")
+            continue
+        shape = network.cpt_shape(name)
+        if a.shape != shape:
+            raise PriorError(f"pseudo-counts of node {name!r} have shape {a.shape}, expected {shape}")
+        if not np.all(np.isfinite(a)) or np.any(a < 0):
+            raise PriorError(f"pseudo-counts of node {name!r} must be finite and >= 0 (Dirichlet alpha = c + 1 >= 1)")
+        out[name] = a
+    return out
+
+
+def _log_prior(network: Network, probs: Mapping[str, np.ndarray], prior: Mapping[str, np.ndarray] | None) -> float:
+    if not prior:
+        return 0.0
+    total = 0.0
+    for name, c in prior.items():
+        th = probs[name]
+        pos = c > 0
+        if np.any(pos & (th <= 0)):
+            return -math.inf
+        total += float(np.sum(c[pos] * np.log(th[pos])))
+    return total
+
+
+def _impossible_message(network: Network, data: CodedData, bad: np.ndarray) -> str:
+    shown = []
+    for d in bad[:3]:
+        labels = decode(network, data.codes[d:d + 1]).iloc[0].to_dict()
+        cells = ", ".join(f"{k}={v}" for k, v in labels.items() if v is not None) or "all cells missing"
+        where = f"distinct row {int(d) + 1}"
+        if data.inverse is not None:
+            hits = np.flatnonzero(np.asarray(data.inverse) == d)
+            if hits.size:
+                where = f"row {int(hits[0]) + 1}"
+        shown.append(f"{where} ({cells})")
+    return (f"{data.source}: {bad.size} distinct record(s) have probability 0 under the fixed CPTs and the "
+            f"starting values (log-likelihood -inf), e.g. {'; '.join(shown)}; check the fixed tables, the "
+            f"starting values or the records")
+
+
+# =============================================================================== EM
+@dataclass(frozen=True)
+class EMResult:
+    """Outcome of :func:`em_fit`.
+
+    Attributes:
+        probs: CPTs of every node (fixed ones included) at the last E-step.
+        log_likelihood: marginal log-likelihood at ``probs``.
+        log_prior: ``Σ c log θ`` at ``probs`` (0 without pseudo-counts).
+        trace: the objective (log-likelihood + log-prior) at every iterate, the start first.
+        iterations: number of M-steps taken.
+        converged: the stopping rule held (relative objective change <= tol and stationarity
+            residual <= gtol · records) before ``max_iter``.
+        rate: observed rate of convergence, the ratio of successive parameter changes (2-norm
+            over the free entries) at the last pair of changes not dominated by rounding; NaN
+            when EM stopped too early to tell.
+        uninformed: per free node, table-row indices (0-based, network row order) whose
+            parent configuration has expected count 0: not informed by the data (kept at their
+            start value, or at the prior's mode under MAP).
+        stationarity: ``max |N̂ + c − θ (N̂_u + c_u)|`` at ``probs`` (records).
+        gradient_norm: Euclidean norm of the same residual (the logit gradient of the objective).
+        steps: 2-norm (over the free entries) of each parameter change ``θ_{k+1} − θ_k``.
+        expected_counts: ``N̂`` of every node at ``probs``.
+        objective: ``"mle"`` or ``"map"``.
+        n_records: total weight of the data.
+    """
+
+    probs: dict[str, np.ndarray]
+    log_likelihood: float
+    log_prior: float
+    trace: list[float]
+    iterations: int
+    converged: bool
+    rate: float
+    uninformed: dict[str, list[int]]
+    stationarity: float
+    gradient_norm: float
+    steps: list[float] = field(repr=False)
+    expected_counts: dict[str, np.ndarray] = field(repr=False)
+    objective: str = "mle"
+    n_records: float = 0.0
+
+    @property
+    def objective_value(self) -> float:
+        return self.log_likelihood + self.log_prior
+
+
+def _mstep(network: Network, counts: Mapping[str, np.ndarray], probs: Mapping[str, np.ndarray],
+           prior: Mapping[str, np.ndarray] | None) -> dict[str, np.ndarray]:
+    new = dict(probs)
+    for name in network.free_names:
+        num = counts[name] + (prior[name] if prior and name in prior else 0.0)
+        den = num.sum(axis=-1, keepdims=True)
+        ok = den > 0
+        new[name] = np.where(ok, num / np.where(ok, den, 1.0), probs[name])
+    return new
+
+
+def _uninformed(network: Network, counts: Mapping[str, np.ndarray]) -> dict[str, list[int]]:
+    out: dict[str, list[int]] = {}
+    for name in network.free_names:
+        nu = counts[name].reshape(-1, network.node(name).card).sum(axis=1)
+        rows = [int(i) for i in np.flatnonzero(nu <= 0)]
+        if rows:
+            out[name] = rows
+    return out
+
+
+def _rate(steps: Sequence[float]) -> float:
+    for k in range(len(steps) - 1, 0, -1):
+        if steps[k] >= RATE_MIN_STEP and steps[k - 1] > 0:
+            return steps[k] / steps[k - 1]
+    return math.nan
+
+
+def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None = None,
+           pseudo_counts: Mapping[str, np.ndarray] | None = None, tol: float = 1e-10, gtol: float = 1e-9,
+           max_iter: int = 5000, seed: int = 0, count_column: str | None = None,
+           callback: Callable[[int, dict[str, np.ndarray]], None] | None = None) -> EMResult:
+    """Fit the free CPTs by EM (maximum likelihood, or MAP with ``pseudo_counts``).
+
+    Args:
+        network: the network; fixed CPTs stay fixed.
+        data: anything :func:`adfit.data.load_data` accepts (a CodedData, DataFrame or path).
+        init: starting CPTs for every free node (fixed nodes are taken from the network);
+            None: :func:`random_start` with ``seed``.
+        pseudo_counts: per free node, Dirichlet pseudo-counts ``c >= 0`` shaped like the CPT;
+            the objective becomes ``log L + Σ c log θ`` (MAP).
+        tol: stop when ``|Δ objective| <= tol · max(1, |objective|)`` ...
+        gtol: ... and the stationarity residual is ``<= gtol · max(1, records)``.
+        max_iter: most M-steps.
+        seed: seed of the random start.
+        count_column: count column when ``data`` is a DataFrame or a file.
+        callback: called as ``callback(k, probs)`` after the k-th M-step (k = 1, 2, ...).
+
+    Raises:
+        ImpossibleDataError: some rows have probability 0 at the start (naming them).
+        OptionError, PriorError: malformed starting values, pseudo-counts or options.
+    """
+    if not (tol >= 0 and gtol >= 0):
+        raise OptionError(f"EM tolerances must be >= 0 (tol={tol}, gtol={gtol})")
+    if max_iter < 0:
+        raise OptionError(f"EM max_iter must be >= 0, got {max_iter}")
+    coded = load_data(network, data, count_column=count_column)
+    prior = _check_pseudo(network, pseudo_counts)
+    probs = _check_probs(network, init, "EM starting values") if init is not None else random_start(network, seed)
+    estep = EStep(network, coded)
+    w = np.asarray(coded.counts, dtype=np.float64)
+    n_rec = float(w.sum())
+    trace: list[float] = []
+    steps: list[float] = []
+    converged = False
+    it = 0
+    while True:
+        counts, row_ll = estep(probs)
+        if it == 0:
+            bad = np.flatnonzero(np.isneginf(row_ll) & (w > 0))
+            if bad.size:
+                raise ImpossibleDataError(_impossible_message(network, coded, bad))
+        ll = _weighted_sum(row_ll, w)
+        lp = _log_prior(network, probs, prior)
+        obj = ll + lp
+        trace.append(obj)
+        resid = stationarity_residual(network, counts, probs, prior)
+        if it >= 1 and abs(obj - trace[-2]) <= tol * max(1.0, abs(obj)) and resid <= gtol * max(1.0, n_rec):
+            converged = True
+            break
+        if it >= max_iter:
+            break
+        new = _mstep(network, counts, probs, prior)
+        steps.append(math.sqrt(sum(float(np.sum((new[m] - probs[m]) ** 2)) for m in network.free_names)))
+        probs = new
+        it += 1
+        if callback is not None:
+            callback(it, probs)
+    return EMResult(
+        probs={k: np.array(v) for k, v in probs.items()},
+        log_likelihood=ll,
+        log_prior=lp,
+        trace=trace,
+        iterations=it,
+        converged=converged,
+        rate=_rate(steps),
+        uninformed=_uninformed(network, counts),
+        stationarity=resid,
+        gradient_norm=stationarity_residual(network, counts, probs, prior, norm="l2"),
+        steps=steps,
+        expected_counts=counts,
+        objective="map" if prior else "mle",
+        n_records=n_rec,
+    )
