@@ -6,14 +6,31 @@ coded rows and their counts, so every later step works on a :class:`CodedData`.
 Coding: column ``j`` of ``codes`` is node ``j`` of the network (network order); a value is the
 index of the state label in the node's declared ``states``; ``-1`` (:data:`HIDDEN`) marks a cell
 that is missing, and every cell of a latent node.
+
+Reading rules (the same for every engine, see :mod:`adfit.engines`):
+
+* CSV: comma-separated UTF-8 text (a byte-order mark is allowed), a header row with the column
+  names, double quotes around values that hold commas or line breaks. Every record must have
+  exactly one value per column; empty lines are skipped. Cells are matched as text after
+  trimming surrounding spaces (``"01"`` is not ``"1"``).
+* Parquet: typed columns; numbers are matched through their plain text (``2``, ``2.0`` -> ``"2"``,
+  ``0.5`` -> ``"0.5"``), booleans as ``true``/``false`` (or ``True``/``False``).
+* Missing cells: an empty cell (always), a null, a floating NaN, and the markers ``NA``, ``NaN``,
+  ``?`` (:data:`DEFAULT_MISSING`); ``missing=[...]`` (``--missing``) replaces the markers.
+* Positions in messages: for CSV ``line L (data row R)`` where ``L`` is the line of the file on
+  which the record starts (the header is line 1) and ``R`` counts records from 1 after the
+  header; for Parquet and DataFrames ``data row R`` (1-based, header not counted).
 """
 
 from __future__ import annotations
 
+import csv
+import glob as _glob
 import math
+import shlex
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterable, Sequence
+from typing import Any, Callable, Iterable, Iterator, Sequence
 
 import numpy as np
 import pandas as pd
@@ -22,7 +39,12 @@ from .errors import DataError
 from .network import Network
 
 HIDDEN = -1
+UNKNOWN = -2  # transient code of a label that is not a state (never left in a CodedData)
 DEFAULT_MISSING: tuple[str, ...] = ("", "NA", "NaN", "?")
+PARQUET_SUFFIXES = (".parquet", ".pq")
+CSV_SUFFIXES = (".csv",)
+
+Locate = Callable[[int], str]  # 0-based data row -> "file: line 7 (data row 6)"
 
 
 @dataclass(frozen=True, eq=False)
@@ -62,25 +84,40 @@ class CodedData:
         return self.subset(np.all(self.codes[:, obs] != HIDDEN, axis=1))
 
 
+# ------------------------------------------------------------------ reduction
+def packed_multipliers(bases: Sequence[int]) -> np.ndarray | None:
+    """Multipliers of a mixed-radix int64 key over ``bases`` (last column fastest).
+
+    None when the product of the bases is not below 2**63 (the key would overflow int64).
+    """
+    if math.prod(int(b) for b in bases) >= 2 ** 63:
+        return None
+    mult = np.ones(len(bases), dtype=np.int64)
+    for j in range(len(bases) - 2, -1, -1):
+        mult[j] = mult[j + 1] * int(bases[j + 1])
+    return mult
+
+
 def reduce_rows(codes: np.ndarray, weights: np.ndarray | None, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Reduce coded rows to distinct rows.
 
-    Returns ``(distinct_codes, counts, inverse)``; distinct rows come in ascending order of a
-    packed integer key (a deterministic order). Uses one packed int64 key per row when the
-    product of ``(card + 1)`` fits below 2**63, else ``np.unique(axis=0)``.
+    Returns ``(distinct_codes, counts, inverse)``; distinct rows come in ascending order of the
+    packed key ``sum_j (code_j + 1) * prod_{k>j} (card_k + 1)``, which is the lexicographic order
+    of the rows (so the order is the same whichever way the rows were read). Uses the packed
+    int64 key when the product of ``(card + 1)`` is below 2**63, else ``np.unique(axis=0)``
+    (same order).
     """
     codes = np.asarray(codes, dtype=np.int32)
+    if codes.ndim != 2:
+        codes = codes.reshape(-1, len(cards))
     n = codes.shape[0]
     w = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64)
     if n == 0:
         return codes.reshape(0, len(cards)), np.zeros(0), np.zeros(0, dtype=np.int64)
-    bases = [c + 1 for c in cards]
-    if math.prod(bases) < 2 ** 62:
-        mult = np.ones(len(bases), dtype=np.int64)
-        for j in range(len(bases) - 2, -1, -1):
-            mult[j] = mult[j + 1] * bases[j + 1]
+    mult = packed_multipliers([c + 1 for c in cards])
+    if mult is not None:
         key = (codes.astype(np.int64) + 1) @ mult
-        uniq, first, inverse = np.unique(key, return_index=True, return_inverse=True)
+        _, first, inverse = np.unique(key, return_index=True, return_inverse=True)
         distinct = codes[first]
     else:
         distinct, inverse = np.unique(codes, axis=0, return_inverse=True)
@@ -89,157 +126,576 @@ def reduce_rows(codes: np.ndarray, weights: np.ndarray | None, cards: Sequence[i
     return distinct.astype(np.int32), counts, inverse.astype(np.int64)
 
 
-def _missing_set(missing: Iterable[str] | None) -> frozenset[str]:
-    return frozenset(DEFAULT_MISSING if missing is None else (str(m) for m in missing))
+# --------------------------------------------------------------------- coding
+def missing_markers(missing: Iterable[str] | None = None) -> frozenset[str]:
+    """The set of texts that mean "not recorded"; the empty cell is always one of them."""
+    if isinstance(missing, str):
+        missing = [missing]
+    marks = DEFAULT_MISSING if missing is None else tuple(str(m).strip() for m in missing)
+    return frozenset(marks) | {""}
 
 
-def encode_frame(network: Network, df: pd.DataFrame, *, missing: Iterable[str] | None = None,
-                 count_column: str | None = None, ignore_columns: Iterable[str] = (),
-                 source: str = "<DataFrame>", row_offset: int = 0) -> CodedData:
-    """Code a DataFrame against the network and reduce it to distinct rows.
+def _missing_set(missing: Iterable[str] | None) -> frozenset[str]:  # kept for old callers
+    return missing_markers(missing)
 
-    Args:
-        network: the network; columns must be its non-latent nodes.
-        df: one row per record (or per cell of a table, with ``count_column``).
-        missing: labels that mean "not recorded" (default: empty, NA, NaN, ``?``); actual
-            NaN/None values are always missing.
-        count_column: name of a column of non-negative record counts (pre-aggregated data).
-        ignore_columns: extra columns to drop silently.
-        source: name used in error messages.
-        row_offset: number added to row numbers in messages (for chunked reading).
 
-    Raises:
-        DataError: missing column, unexpected column, unknown label (naming column, row and
-            label), invalid counts.
+def _candidates(v: Any) -> tuple[str, ...] | None:
+    """Texts under which a cell value may match a state label; None for a missing value."""
+    if v is None or v is pd.NA or v is pd.NaT:
+        return None
+    if isinstance(v, (bool, np.bool_)):
+        return ("true", "True") if v else ("false", "False")
+    if isinstance(v, (float, np.floating)):
+        f = float(v)
+        if math.isnan(f):
+            return None
+        if f.is_integer() and abs(f) < 2 ** 63:
+            return (str(int(f)), repr(f))
+        return (repr(f),)
+    if isinstance(v, (int, np.integer)):
+        return (str(int(v)),)
+    if isinstance(v, bytes):
+        v = v.decode("utf-8", errors="replace")
+    s = str(v)
+    t = s.strip()
+    return (s, t) if t != s else (s,)
+
+
+def _factorize(values: Any) -> tuple[np.ndarray, list[Any]]:
+    """``(codes, uniques)`` with code -1 for nulls; accepts pandas, numpy and pyarrow columns."""
+    try:
+        import pyarrow as pa
+        import pyarrow.compute as pc
+    except ImportError:  # pragma: no cover - pyarrow is a dependency
+        pa = None
+    if pa is not None and isinstance(values, (pa.Array, pa.ChunkedArray)):
+        arr = values.combine_chunks() if isinstance(values, pa.ChunkedArray) else values
+        if pa.types.is_dictionary(arr.type):
+            arr = arr.dictionary_decode()
+        enc = arr.dictionary_encode()
+        codes = pc.fill_null(enc.indices, -1).to_numpy(zero_copy_only=False).astype(np.int64)
+        return codes, enc.dictionary.to_pylist()
+    codes, uniques = pd.factorize(pd.Series(values) if not isinstance(values, (pd.Series, pd.Index)) else values,
+                                  use_na_sentinel=True)
+    return np.asarray(codes, dtype=np.int64), list(uniques)
+
+
+def _value_at(values: Any, i: int) -> Any:
+    if hasattr(values, "iloc"):
+        return values.iloc[i]
+    v = values[i]
+    return v.as_py() if hasattr(v, "as_py") else v
+
+
+def _show(label: Any) -> str:
+    s = label if isinstance(label, str) else str(label)
+    return repr(s if len(s) <= 60 else s[:57] + "...")
+
+
+class LabelCoder:
+    """Maps the cells of a data column to state codes (see the module docstring for the rules).
+
+    Raises DataError at construction when a state label is also a missing marker.
     """
-    miss = _missing_set(missing)
-    ignore = set(ignore_columns)
-    cols = [str(c) for c in df.columns]
+
+    def __init__(self, network: Network, missing: Iterable[str] | None = None):
+        self.network = network
+        self.missing = missing_markers(missing)
+        self._lookup: dict[str, dict[str, int]] = {}
+        for name in network.observed_names:
+            node = network.node(name)
+            clash = [s for s in node.states if s in self.missing]
+            if clash:
+                raise DataError(
+                    f"node {name!r} has the state {clash[0]!r}, which is also a missing-value marker; "
+                    f"choose the markers with --missing (for example --missing '?') so that it is read as a state")
+            self._lookup[name] = {s: i for i, s in enumerate(node.states)}
+
+    def code(self, name: str, values: Any) -> np.ndarray:
+        """int32 codes of one column: state index, HIDDEN for a gap, UNKNOWN for a foreign label."""
+        fcodes, uniques = _factorize(values)
+        lookup = self._lookup[name]
+        table = np.full(len(uniques) + 1, HIDDEN, dtype=np.int32)  # last slot: the null sentinel
+        for k, v in enumerate(uniques):
+            cands = _candidates(v)
+            if cands is None or any(c in self.missing for c in cands):
+                continue
+            code = UNKNOWN
+            for c in cands:
+                if c in lookup:
+                    code = lookup[c]
+                    break
+            table[k] = code
+        return table[np.where(fcodes < 0, len(uniques), fcodes)]
+
+    def label_error(self, name: str, label: Any, where: str) -> DataError:
+        states = self.network.node(name).states
+        text = label if isinstance(label, str) else (_candidates(label) or ("",))[0]
+        hint = (f", or pass --missing {shlex.quote(text.strip())} if it marks a gap"
+                if text.strip() and text.isprintable() else "")
+        return DataError(f"{where}, column {name!r}: label {_show(text)} is not a state of {name!r} "
+                         f"(states: {', '.join(states)}); fix the value{hint}")
+
+    def check(self, name: str, codes: np.ndarray, values: Any, locate: Locate, row_offset: int = 0) -> None:
+        """Raise the label error of the first UNKNOWN code of a column (rows counted from ``row_offset``)."""
+        bad = np.flatnonzero(codes == UNKNOWN)
+        if bad.size:
+            i = int(bad[0])
+            raise self.label_error(name, _value_at(values, i), locate(row_offset + i))
+
+
+def count_values(values: Any, name: str, locate: Locate, row_offset: int = 0) -> np.ndarray:
+    """The weights of a count column as float64; raises DataError at the first invalid one."""
+    if hasattr(values, "to_pandas"):
+        values = values.to_pandas()
+    s = pd.Series(values).reset_index(drop=True)
+    if s.dtype == bool or s.dtype == object and s.map(lambda v: isinstance(v, (bool, np.bool_))).any():
+        bad = int(np.flatnonzero(s.map(lambda v: isinstance(v, (bool, np.bool_))).to_numpy())[0])
+        raise DataError(f"{locate(row_offset + bad)}, column {name!r}: count {s.iloc[bad]!r} is not a number; "
+                        f"counts must be numbers >= 0")
+    vals = pd.to_numeric(s, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+    bad = np.flatnonzero(~np.isfinite(vals) | (vals < 0))
+    if bad.size:
+        i = int(bad[0])
+        raise DataError(f"{locate(row_offset + i)}, column {name!r}: count {_show(s.iloc[i])} is not a "
+                        f"non-negative number; counts must be numbers >= 0 (no gaps in the count column)")
+    return vals
+
+
+def check_columns(network: Network, columns: Sequence[str], *, count_column: str | None = None,
+                  ignore_columns: Iterable[str] = (), source: str = "<data>") -> list[str]:
+    """Check the column names against the network; return the columns to read.
+
+    The columns to read are the non-latent nodes (network order) and then the count column.
+    """
+    cols = [str(c) for c in columns]
+    ignore = list(dict.fromkeys(str(c) for c in ignore_columns))
+    blank = [i + 1 for i, c in enumerate(cols) if c.strip() == ""]
+    if blank:
+        raise DataError(f"{source}: column {blank[0]} has an empty name in the header; name it or delete the column")
     dup = sorted({c for c in cols if cols.count(c) > 1})
     if dup:
         raise DataError(f"{source}: column(s) {dup} appear more than once; rename or remove the duplicates")
     for c in ignore:
         if c not in cols:
-            raise DataError(f"{source}: --ignore-columns names {c!r}, which is not a column of the data")
+            raise DataError(f"{source}: --ignore-columns names {c!r}, which is not a column of the data "
+                            f"(columns: {', '.join(cols)})")
+        if c in network and not network.node(c).latent:
+            raise DataError(f"{source}: --ignore-columns names {c!r}, which is an observed node of the network; "
+                            f"an observed node needs its column (declare it latent = true to leave it out)")
+        if c == count_column:
+            raise DataError(f"{source}: {c!r} is both the count column and in --ignore-columns; choose one")
+    if count_column is not None:
+        if count_column in network:
+            raise DataError(f"{source}: count column {count_column!r} is also a node of the network; "
+                            f"rename the count column")
+        if count_column not in cols:
+            raise DataError(f"{source}: count column {count_column!r} not found; columns are: {', '.join(cols)}")
     for c in network.latent_names:
         if c in cols and c not in ignore:
             raise DataError(f"{source}: column {c!r} is a latent node, which is never observed; "
                             f"drop the column, list it in --ignore-columns, or declare the node latent = false")
-    if count_column is not None and count_column not in cols:
-        raise DataError(f"{source}: count column {count_column!r} not found; columns are: {', '.join(cols)}")
     expected = set(network.observed_names)
     extra = [c for c in cols if c not in expected and c not in ignore and c != count_column
              and c not in network.latent_names]
+    absent = [c for c in network.observed_names if c not in cols]
+    if absent:
+        lower = {c.lower(): c for c in extra}
+        near = [f"{lower[a.lower()]!r} for {a!r}" for a in absent if a.lower() in lower]
+        hint = f" (names are case-sensitive: {', '.join(near)}?)" if near else ""
+        raise DataError(f"{source}: column(s) {absent} are missing{hint}; every non-latent node needs a column "
+                        f"(declare a node latent = true if it is never observed)")
     if extra:
         raise DataError(f"{source}: column(s) {extra} are not nodes of the network; "
                         f"remove them or pass --ignore-columns {','.join(extra)}")
-    absent = [c for c in network.observed_names if c not in cols]
-    if absent:
-        raise DataError(f"{source}: column(s) {absent} are missing; every non-latent node needs a column "
-                        f"(declare a node latent = true if it is never observed)")
+    return list(network.observed_names) + ([count_column] if count_column is not None else [])
 
-    n = len(df)
+
+def code_columns(network: Network, coder: LabelCoder, get: Callable[[str], Any], n: int, *,
+                 count_column: str | None, locate: Locate, row_offset: int = 0) -> tuple[np.ndarray, np.ndarray | None]:
+    """Code the columns of one table (or chunk) of ``n`` rows; ``get(name)`` returns a column.
+
+    Returns ``(codes, weights)`` with one row per record (weights None without a count column).
+    Raises DataError at the first unknown label (column by column, in network order) or invalid
+    count, naming the row through ``locate(row_offset + i)``.
+    """
     codes = np.full((n, len(network)), HIDDEN, dtype=np.int32)
     for name in network.observed_names:
-        j = network.index(name)
-        codes[:, j] = _code_column(df[name], network.node(name).states, miss, name, source, row_offset)
-
+        col = get(name)
+        c = coder.code(name, col)
+        coder.check(name, c, col, locate, row_offset)
+        codes[:, network.index(name)] = c
     weights = None
     if count_column is not None:
-        weights = _count_values(df[count_column], count_column, source, row_offset)
+        weights = count_values(get(count_column), count_column, locate, row_offset)
+    return codes, weights
+
+
+def coded_from_rows(network: Network, codes: np.ndarray, weights: np.ndarray | None, source: str, *,
+                    keep_inverse: bool = True) -> CodedData:
+    """Reduce per-record codes (and optional weights) to a :class:`CodedData`; zero weights are dropped."""
+    if weights is not None:
         keep = weights > 0
         if not keep.all():
             codes, weights = codes[keep], weights[keep]
+            keep_inverse = False
     distinct, counts, inverse = reduce_rows(codes, weights, network.cards)
-    if count_column is not None:
-        inverse = None  # rows were aggregated: no per-record order to keep
     if distinct.shape[0] == 0:
         raise DataError(f"{source}: no records (the table is empty or all counts are 0)")
-    return CodedData(distinct, counts, inverse, source)
+    return CodedData(distinct, counts, inverse if keep_inverse and weights is None else None, source)
 
 
-def _code_column(col: pd.Series, states: Sequence[str], miss: frozenset[str], name: str,
-                 source: str, row_offset: int) -> np.ndarray:
-    # Factorize first so that labels are looked up once per distinct value, not once per cell.
-    fcodes, uniques = pd.factorize(col, use_na_sentinel=True)
-    lookup = {s: i for i, s in enumerate(states)}
-    table = np.full(len(uniques) + 1, HIDDEN, dtype=np.int32)  # last slot: NA sentinel (-1)
-    for k, v in enumerate(uniques):
-        lab = _label(v)
-        if lab in miss or lab.strip() in miss:
-            continue
-        code = lookup.get(lab, lookup.get(lab.strip()))
-        if code is None:
-            i = int(np.flatnonzero(fcodes == k)[0])
-            raise DataError(
-                f"{source}: row {row_offset + i + 1}, column {name!r}: label {lab!r} is not a state of {name!r} "
-                f"(states: {', '.join(states)}); fix the value or add --missing {lab!r} if it means not recorded")
-        table[k] = code
-    return table[np.where(fcodes < 0, len(uniques), fcodes)]
+def frame_rows(source: str) -> Locate:
+    return lambda i: f"{source}: data row {i + 1}"
 
 
-def _label(v: object) -> str:
-    """Canonical text of a cell: integral floats from numeric columns lose their '.0'."""
-    if isinstance(v, (float, np.floating)) and float(v).is_integer():
-        return str(int(v))
-    if isinstance(v, (bool, np.bool_)):
-        return str(bool(v)).lower()
-    return str(v)
+def encode_frame(network: Network, df: pd.DataFrame, *, missing: Iterable[str] | None = None,
+                 count_column: str | None = None, ignore_columns: Iterable[str] = (),
+                 source: str = "<DataFrame>", row_offset: int = 0, locate: Locate | None = None) -> CodedData:
+    """Code a DataFrame against the network and reduce it to distinct rows.
+
+    Args:
+        network: the network; columns must be its non-latent nodes.
+        df: one row per record (or per cell of a table, with ``count_column``).
+        missing: labels that mean "not recorded" (default: NA, NaN, ``?``; an empty cell, a
+            null and a floating NaN are always missing).
+        count_column: name of a column of non-negative record counts (pre-aggregated data).
+        ignore_columns: extra columns to drop silently.
+        source: name used in error messages.
+        row_offset: number added to row numbers in messages (for chunked reading).
+        locate: maps a 0-based data row to its description in messages (default
+            ``"<source>: data row N"``, 1-based).
+
+    Raises:
+        DataError: missing column, unexpected column, unknown label (naming column, row and
+            label), invalid counts.
+    """
+    cols = [str(c) for c in df.columns]
+    check_columns(network, cols, count_column=count_column, ignore_columns=ignore_columns, source=source)
+    coder = LabelCoder(network, missing)
+    pos = {c: i for i, c in enumerate(cols)}
+    codes, weights = code_columns(network, coder, lambda c: df.iloc[:, pos[c]], len(df), count_column=count_column,
+                                  locate=locate or frame_rows(source), row_offset=row_offset)
+    return coded_from_rows(network, codes, weights, source)
 
 
-def _count_values(col: pd.Series, name: str, source: str, row_offset: int) -> np.ndarray:
-    vals = pd.to_numeric(col, errors="coerce").to_numpy(dtype=np.float64)
-    bad = np.flatnonzero(~np.isfinite(vals) | (vals < 0))
-    if bad.size:
-        i = bad[0]
-        raise DataError(f"{source}: row {row_offset + i + 1}, column {name!r}: count {col.iloc[i]!r} is not a "
-                        f"non-negative number; counts must be numbers >= 0")
-    return vals
+# ----------------------------------------------------------------- files
+def resolve_inputs(path: str | Path | Sequence[str | Path]) -> tuple[list[Path], str]:
+    """The data files behind ``path`` and their format (``"csv"`` or ``"parquet"``).
+
+    ``path`` is a file, a folder (every ``.csv`` / ``.parquet`` / ``.pq`` file below it, names
+    starting with ``.`` or ``_`` skipped), a glob pattern, or a list of files. Files are sorted
+    by name; all must have the same format.
+    """
+    if isinstance(path, (list, tuple)):
+        files = [Path(p) for p in path]
+        label = f"{len(files)} files"
+    else:
+        p = Path(path)
+        label = str(p)
+        if p.is_dir():
+            files = sorted(f for f in p.rglob("*") if f.is_file() and f.suffix.lower() in PARQUET_SUFFIXES + CSV_SUFFIXES
+                           and not any(part.startswith((".", "_")) for part in f.relative_to(p).parts))
+            if not files:
+                raise DataError(f"{p}: the folder holds no .csv or .parquet files")
+        elif not p.exists() and any(ch in str(p) for ch in "*?["):
+            files = sorted(Path(f) for f in _glob.glob(str(p), recursive=True) if Path(f).is_file())
+            if not files:
+                raise DataError(f"{p}: no file matches this pattern")
+        else:
+            files = [p]
+    if not files:
+        raise DataError(f"{label}: no data files given")
+    for f in files:
+        if not f.exists():
+            raise DataError(f"{f}: data file not found")
+        if f.is_dir():
+            raise DataError(f"{f}: is a folder; give a CSV or Parquet file, or the folder alone")
+    fmts = {("parquet" if f.suffix.lower() in PARQUET_SUFFIXES else "csv") for f in files}
+    if len(fmts) > 1:
+        raise DataError(f"{label}: mixes CSV and Parquet files; use one format")
+    return files, fmts.pop()
+
+
+def _csv_open(path: Path):
+    return open(path, newline="", encoding="utf-8-sig")
+
+
+def csv_header(path: str | Path) -> list[str]:
+    """The column names in the header row of a CSV file (as written, spaces kept)."""
+    p = Path(path)
+    try:
+        with _csv_open(p) as fh:
+            for rec in csv.reader(fh):
+                if rec:
+                    return rec
+    except FileNotFoundError:
+        raise DataError(f"{p}: data file not found") from None
+    except UnicodeDecodeError:
+        raise DataError(f"{p}: not UTF-8 text; save the CSV as UTF-8") from None
+    except csv.Error as e:
+        raise DataError(f"{p}: the header row is not valid CSV ({e})") from None
+    except OSError as e:
+        raise DataError(f"{p}: cannot read the data file ({e.strerror})") from None
+    raise DataError(f"{p}: the file is empty; a header row with the node names is needed")
+
+
+def _csv_records(path: Path) -> Iterator[tuple[int, list[str]]]:
+    """``(start_line, fields)`` of every data record after the header (empty lines skipped)."""
+    with open(path, newline="", encoding="utf-8-sig", errors="replace") as fh:
+        reader = csv.reader(fh)
+        start = 1
+        header_seen = False
+        for rec in reader:
+            if rec:
+                if header_seen:
+                    yield start, rec
+                header_seen = True
+            start = reader.line_num + 1
+
+
+def csv_line_of(path: str | Path, row: int) -> int | None:
+    """File line (1-based, header = line 1 when it opens the file) on which data row ``row`` (0-based) starts."""
+    try:
+        for k, (line, _) in enumerate(_csv_records(Path(path))):
+            if k == row:
+                return line
+    except (csv.Error, OSError):
+        return None
+    return None
+
+
+def csv_rows(path: str | Path) -> Locate:
+    p = str(path)
+
+    def locate(i: int) -> str:
+        line = csv_line_of(p, i)
+        return f"{p}: line {line} (data row {i + 1})" if line is not None else f"{p}: data row {i + 1}"
+    return locate
+
+
+def parquet_rows(path: str | Path) -> Locate:
+    return frame_rows(str(path))
+
+
+def _csv_error(path: Path, exc: Exception) -> DataError:
+    """Turn a CSV parser failure into one line naming the first malformed record."""
+    msg = str(exc)
+    if "UTF8" in msg or "UTF-8" in msg or isinstance(exc, UnicodeDecodeError):
+        return DataError(f"{path}: not UTF-8 text; save the CSV as UTF-8")
+    try:
+        n = len(csv_header(path))
+        for line, rec in _csv_records(path):
+            if len(rec) != n:
+                return DataError(f"{path}: line {line} has {len(rec)} field(s), the header has {n}; "
+                                 f"every record needs one value per column (leave a cell empty for a gap)")
+    except (csv.Error, OSError, DataError):
+        pass
+    first = msg.splitlines()[0] if msg else type(exc).__name__
+    return DataError(f"{path}: not a valid CSV table ({first})")
+
+
+def _csv_arrow_options(path: Path, header: Sequence[str], columns: Sequence[str], block_size: int | None = None):
+    import pyarrow as pa
+    import pyarrow.csv as pcsv
+    ro = pcsv.ReadOptions(use_threads=True, **({"block_size": int(block_size)} if block_size else {}))
+    po = pcsv.ParseOptions(delimiter=",", quote_char='"', double_quote=True, escape_char=False,
+                           newlines_in_values=True, ignore_empty_lines=True)
+    co = pcsv.ConvertOptions(column_types={c: pa.string() for c in header}, include_columns=list(columns),
+                             strings_can_be_null=False, quoted_strings_can_be_null=False, null_values=[],
+                             check_utf8=True)
+    return ro, po, co
+
+
+def _raw_names(header: Sequence[str], wanted: Sequence[str]) -> list[str]:
+    stripped = {h.strip(): h for h in header}
+    return [stripped[w] for w in wanted]
+
+
+def read_csv_arrow(path: str | Path, columns: Sequence[str] | None = None):
+    """A CSV file as a pyarrow Table of strings, only ``columns`` (stripped names) if given."""
+    import pyarrow.csv as pcsv
+    p = Path(path)
+    header = csv_header(p)
+    names = [h.strip() for h in header]
+    raw = _raw_names(header, columns if columns is not None else names)
+    try:
+        t = pcsv.read_csv(p, *_csv_arrow_options(p, header, raw))
+    except Exception as e:  # pyarrow raises ArrowInvalid and friends, no common public base
+        raise _csv_error(p, e) from None
+    return t.rename_columns([c.strip() for c in t.column_names])
+
+
+def iter_csv_batches(path: str | Path, columns: Sequence[str], chunk_rows: int) -> Iterator[Any]:
+    """Stream a CSV file as pyarrow RecordBatches of about ``chunk_rows`` rows (stripped names)."""
+    import pyarrow.csv as pcsv
+    p = Path(path)
+    header = csv_header(p)
+    raw = _raw_names(header, columns)
+    row_bytes = max(8, 4 * len(header))
+    try:
+        with open(p, "rb") as fh:  # estimate the bytes per row from the first kilobytes
+            head = fh.read(1 << 16)
+        if head.count(b"\n") > 1:
+            row_bytes = max(1, len(head) // head.count(b"\n"))
+    except OSError:
+        pass
+    block = int(min(max(chunk_rows * row_bytes, 1 << 16), 1 << 28))
+    try:
+        reader = pcsv.open_csv(p, *_csv_arrow_options(p, header, raw, block))
+        for batch in reader:
+            yield batch.rename_columns([c.strip() for c in batch.schema.names])
+    except DataError:
+        raise
+    except Exception as e:
+        raise _csv_error(p, e) from None
+
+
+def parquet_names(path: str | Path) -> list[str]:
+    import pyarrow.parquet as pq
+    p = Path(path)
+    try:
+        return list(pq.read_schema(p).names)
+    except FileNotFoundError:
+        raise DataError(f"{p}: data file not found") from None
+    except Exception as e:
+        raise DataError(f"{p}: not a readable Parquet file ({type(e).__name__}: {_first_line(e)})") from None
+
+
+def _first_line(e: Exception) -> str:
+    s = str(e)
+    return s.splitlines()[0] if s else ""
+
+
+def read_parquet_arrow(path: str | Path, columns: Sequence[str] | None = None):
+    import pyarrow.parquet as pq
+    p = Path(path)
+    names = parquet_names(p)
+    raw = _raw_names(names, columns) if columns is not None else names
+    try:
+        t = pq.read_table(p, columns=raw)
+    except Exception as e:
+        raise DataError(f"{p}: cannot read the Parquet file ({type(e).__name__}: {_first_line(e)})") from None
+    return t.rename_columns([c.strip() for c in t.column_names])
+
+
+def iter_parquet_batches(path: str | Path, columns: Sequence[str], chunk_rows: int,
+                         row_groups: Sequence[int] | None = None) -> Iterator[Any]:
+    """Stream a Parquet file (or some of its row groups) as RecordBatches (stripped names)."""
+    import pyarrow.parquet as pq
+    p = Path(path)
+    raw = _raw_names(parquet_names(p), columns)
+    try:
+        pf = pq.ParquetFile(p)
+        for batch in pf.iter_batches(batch_size=int(chunk_rows), columns=raw, row_groups=row_groups):
+            yield batch.rename_columns([c.strip() for c in batch.schema.names])
+    except DataError:
+        raise
+    except Exception as e:
+        raise DataError(f"{p}: cannot read the Parquet file ({type(e).__name__}: {_first_line(e)})") from None
+
+
+def file_columns(path: Path, fmt: str) -> list[str]:
+    """Column names of a data file, spaces around them trimmed."""
+    names = csv_header(path) if fmt == "csv" else parquet_names(path)
+    return [n.strip() for n in names]
+
+
+def common_columns(files: Sequence[Path], fmt: str) -> list[str]:
+    """The column names shared by every file; DataError naming the first file that differs."""
+    first = file_columns(files[0], fmt)
+    for f in files[1:]:
+        cols = file_columns(f, fmt)
+        if sorted(cols) != sorted(first) or (fmt == "csv" and cols != first):
+            raise DataError(f"{f}: its columns ({', '.join(cols)}) differ from those of {files[0]} "
+                            f"({', '.join(first)}); every file needs the same header")
+    return first
+
+
+def locator(path: Path, fmt: str) -> Locate:
+    return csv_rows(path) if fmt == "csv" else parquet_rows(path)
 
 
 def read_table(path: str | Path) -> pd.DataFrame:
-    """Read a CSV or Parquet file with every cell as text (labels are matched as text)."""
-    p = Path(path)
-    if not p.exists():
-        raise DataError(f"{p}: data file not found")
-    suffix = p.suffix.lower()
-    try:
-        if suffix in (".parquet", ".pq"):
-            df = pd.read_parquet(p)
-        else:
-            df = pd.read_csv(p, dtype=str, keep_default_na=False, na_filter=False, skipinitialspace=True)
-    except ImportError as e:
-        raise DataError(f"{p}: reading Parquet needs pyarrow ({e}); pip install pyarrow") from None
-    except pd.errors.EmptyDataError:
-        raise DataError(f"{p}: the file is empty; a header row with the node names is needed") from None
-    except pd.errors.ParserError as e:
-        raise DataError(f"{p}: not a valid CSV table ({str(e).splitlines()[0]})") from None
-    except UnicodeDecodeError:
-        raise DataError(f"{p}: not UTF-8 text; save the CSV as UTF-8") from None
-    except Exception as e:  # pyarrow errors have no common public base class
-        raise DataError(f"{p}: cannot read the data file ({type(e).__name__}: {str(e).splitlines()[0] if str(e) else ''})") from None
+    """Read a CSV or Parquet file (CSV: every cell as text; Parquet: typed), column names trimmed."""
+    files, fmt = resolve_inputs(path)
+    if len(files) != 1:
+        raise DataError(f"{path}: holds {len(files)} files; read_table takes one file")
+    f = files[0]
+    table = read_csv_arrow(f) if fmt == "csv" else read_parquet_arrow(f)
+    df = table.to_pandas()
     df.columns = [str(c).strip() for c in df.columns]
     return df
+
+
+def _encode_file(network: Network, f: Path, fmt: str, coder: LabelCoder, read: Sequence[str],
+                 count_column: str | None) -> tuple[np.ndarray, np.ndarray | None]:
+    table = read_csv_arrow(f, read) if fmt == "csv" else read_parquet_arrow(f, read)
+    return code_columns(network, coder, table.column, table.num_rows, count_column=count_column,
+                        locate=locator(f, fmt))
+
+
+def load_files(network: Network, path: str | Path | Sequence[str | Path], *, missing: Iterable[str] | None = None,
+               count_column: str | None = None, ignore_columns: Iterable[str] = ()) -> CodedData:
+    """Read whole files into memory (the ``pandas`` engine); keeps the per-record ``inverse``.
+
+    Several files are read in name order and their records concatenated.
+    """
+    files, fmt = resolve_inputs(path)
+    source = str(path) if not isinstance(path, (list, tuple)) else str(files[0].parent)
+    cols = common_columns(files, fmt)
+    read = check_columns(network, cols, count_column=count_column, ignore_columns=ignore_columns,
+                         source=str(files[0]) if len(files) == 1 else source)
+    coder = LabelCoder(network, missing)
+    parts = [_encode_file(network, f, fmt, coder, read, count_column) for f in files]
+    codes = np.concatenate([c for c, _ in parts]) if len(parts) > 1 else parts[0][0]
+    weights = None
+    if count_column is not None:
+        weights = np.concatenate([w for _, w in parts])
+    return coded_from_rows(network, codes, weights, source)
+
+
+def validate_coded(network: Network, data: CodedData) -> CodedData:
+    """Check a ready-made :class:`CodedData` against the network (shape, code ranges, counts)."""
+    codes = np.asarray(data.codes)
+    counts = np.asarray(data.counts)
+    src = data.source
+    if codes.ndim != 2 or codes.shape[1] != len(network):
+        raise DataError(f"{src}: coded data has shape {list(codes.shape)}, expected (rows, {len(network)}) for "
+                        f"the nodes {', '.join(network.names)}")
+    if codes.dtype.kind not in "iu":
+        raise DataError(f"{src}: codes must be integers, got dtype {codes.dtype}")
+    if counts.shape != (codes.shape[0],):
+        raise DataError(f"{src}: counts has shape {list(counts.shape)}, expected ({codes.shape[0]},)")
+    if not np.all(np.isfinite(counts)) or np.any(counts <= 0):
+        raise DataError(f"{src}: counts must be finite and > 0")
+    for j, n in enumerate(network.nodes):
+        col = codes[:, j]
+        if n.latent and np.any(col != HIDDEN):
+            raise DataError(f"{src}: column {j} ({n.name!r}) is a latent node; its codes must all be {HIDDEN}")
+        bad = np.flatnonzero((col < HIDDEN) | (col >= n.card))
+        if bad.size:
+            raise DataError(f"{src}: row {int(bad[0]) + 1}, node {n.name!r}: code {int(col[bad[0]])} is outside "
+                            f"{HIDDEN}..{n.card - 1}")
+    if codes.dtype != np.int32 or counts.dtype != np.float64:
+        return CodedData(codes.astype(np.int32), counts.astype(np.float64), data.inverse, data.source)
+    return data
 
 
 def load_data(network: Network, data: "str | Path | pd.DataFrame | CodedData", *,
               missing: Iterable[str] | None = None, count_column: str | None = None,
               ignore_columns: Iterable[str] = ()) -> CodedData:
-    """Accept a path (CSV/Parquet), a DataFrame or an already coded :class:`CodedData`."""
+    """Accept a path (CSV/Parquet file, folder or glob), a DataFrame or a :class:`CodedData`."""
     if isinstance(data, CodedData):
-        if data.codes.ndim != 2 or data.codes.shape[1] != len(network):
-            raise DataError(f"{data.source}: coded data has {data.codes.shape[1]} columns, the network has {len(network)} nodes")
-        return data
+        return validate_coded(network, data)
     if isinstance(data, pd.DataFrame):
         return encode_frame(network, data, missing=missing, count_column=count_column,
                             ignore_columns=ignore_columns)
-    df = read_table(data)
-    return encode_frame(network, df, missing=missing, count_column=count_column,
-                        ignore_columns=ignore_columns, source=str(data))
+    return load_files(network, data, missing=missing, count_column=count_column, ignore_columns=ignore_columns)
 
 
 def decode(network: Network, codes: np.ndarray) -> pd.DataFrame:
-    """Turn coded rows back into a DataFrame of labels (hidden cells become <NA>)."""
+    """Turn coded rows back into a DataFrame of labels (hidden cells become None)."""
     out = {}
     for name in network.observed_names:
         j = network.index(name)
