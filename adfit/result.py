@@ -1,0 +1,250 @@
+"""Fit results: the frozen :class:`FitResult` and the result file ``adfit-result/1``.
+
+The result JSON holds at least::
+
+    {"format": "adfit-result/1", "method": "lbfgs" | "adam" | "em", "objective": "mle" | "map",
+     "log_likelihood": float,  # marginal, natural log, at the returned CPTs
+     "gradient_norm": float,   # of the objective w.r.t. the free logits, in records
+     "converged": bool, "iterations": int,
+     "nodes": {name: {"states": [...], "parents": [...], "table": [[...], ...], "fixed": bool}},
+     "network": {...}}          # the network itself, so the file can be reloaded alone
+
+Further sections (``"em_check"``, ``"se"``/``"interval"`` inside nodes, ``"restarts"``,
+``"complete_case"`` ...) are added by the modules that compute them, through ``extras``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Mapping
+
+import numpy as np
+import pandas as pd
+
+from .errors import ResultError
+from .io import write_json
+from .network import Network, parse_network
+
+FORMAT = "adfit-result/1"
+
+
+@dataclass(frozen=True, eq=False)
+class FitResult:
+    """The outcome of a fit (gradient or EM).
+
+    Attributes:
+        network: the network that was fitted.
+        method: "lbfgs", "adam" or "em".
+        objective: "mle" or "map".
+        probs: CPT arrays of every node (fixed ones included), shaped ``network.cpt_shape``.
+        log_likelihood: marginal log-likelihood of the observed cells at ``probs``.
+        log_prior: sum of c·log θ over the pseudo-counts (0 for MLE).
+        penalty: the L2 penalty value (subtracted).
+        gradient_norm: Euclidean norm of the objective's gradient w.r.t. the free logits
+            (units: records; equals the stationarity residual N(x,u) + c − θ(N(u) + Σc)).
+        converged: True only when the stopping rule held.
+        stop_reason: which rule stopped the run.
+        iterations: iterations of the winning start.
+        history: per-iteration "objective" and "gradient_norm" of the winning start.
+        n_rows, n_distinct: records (total weight) and distinct rows.
+        extras: further JSON-ready sections (restarts, em_check, uncertainty, ...).
+    """
+
+    network: Network
+    method: str
+    objective: str
+    probs: Mapping[str, np.ndarray]
+    log_likelihood: float
+    log_prior: float = 0.0
+    penalty: float = 0.0
+    gradient_norm: float = float("nan")
+    converged: bool = False
+    stop_reason: str = ""
+    iterations: int = 0
+    history: Mapping[str, tuple[float, ...]] = field(default_factory=dict)
+    n_rows: float = 0.0
+    n_distinct: int = 0
+    seed: int | None = None
+    settings: Mapping[str, Any] = field(default_factory=dict)
+    extras: Mapping[str, Any] = field(default_factory=dict)
+
+    @property
+    def objective_value(self) -> float:
+        """log-likelihood + log-prior − penalty (what the fit maximised)."""
+        return self.log_likelihood + self.log_prior - self.penalty
+
+    def with_extras(self, **sections: Any) -> "FitResult":
+        """A copy with further result sections added (or replaced)."""
+        ex = dict(self.extras)
+        ex.update(sections)
+        return dataclasses.replace(self, extras=ex)
+
+    def cpt(self, name: str) -> pd.DataFrame:
+        """The CPT of ``name`` as a DataFrame: one row per parent configuration, one column per state."""
+        net = self.network
+        node = net.node(name)
+        table = np.asarray(self.probs[name]).reshape(-1, node.card)
+        if node.parents:
+            labels = net.parent_config_labels(name)
+            index = pd.MultiIndex.from_tuples(labels, names=list(node.parents))
+        else:
+            index = pd.Index(["(none)"], name="parents")
+        return pd.DataFrame(table, index=index, columns=pd.Index(list(node.states), name=name))
+
+    def cpts(self) -> dict[str, pd.DataFrame]:
+        return {n: self.cpt(n) for n in self.network.names}
+
+    # ------------------------------------------------------------------ serialisation
+    def to_dict(self) -> dict[str, Any]:
+        net = self.network
+        nodes: dict[str, Any] = {}
+        for n in net.nodes:
+            nodes[n.name] = {
+                "states": list(n.states),
+                "parents": list(n.parents),
+                "latent": n.latent,
+                "fixed": n.fixed is not None,
+                "table": net.array_to_table(n.name, self.probs[n.name]),
+            }
+        node_extras = self.extras.get("nodes", {})
+        for name, sec in node_extras.items():
+            nodes[name].update(sec)
+        out: dict[str, Any] = {
+            "format": FORMAT,
+            "method": self.method,
+            "objective": self.objective,
+            "log_likelihood": _num(self.log_likelihood),
+            "log_prior": _num(self.log_prior),
+            "penalty": _num(self.penalty),
+            "objective_value": _num(self.objective_value),
+            "gradient_norm": _num(self.gradient_norm),
+            "converged": bool(self.converged),
+            "stop_reason": self.stop_reason,
+            "iterations": int(self.iterations),
+            "n_rows": _num(self.n_rows),
+            "n_distinct": int(self.n_distinct),
+            "seed": self.seed,
+            "settings": _jsonable(dict(self.settings)),
+            "history": {k: [_num(v) for v in vals] for k, vals in self.history.items()},
+            "nodes": nodes,
+        }
+        for k, v in self.extras.items():
+            if k != "nodes":
+                out[k] = _jsonable(v)
+        out["network"] = net.to_dict()
+        return out
+
+    def summary(self) -> str:
+        """A few plain lines for the terminal."""
+        lines = [
+            f"method {self.method} ({self.objective.upper()}), {self.n_rows:g} records, {self.n_distinct} distinct rows",
+            f"log-likelihood {self.log_likelihood:.6f}"
+            + (f", log-prior {self.log_prior:.6f}" if self.objective == "map" else "")
+            + (f", penalty {self.penalty:.6f}" if self.penalty else ""),
+            f"gradient norm {self.gradient_norm:.3e} (records), iterations {self.iterations}, "
+            + ("converged" if self.converged else f"NOT converged ({self.stop_reason})"),
+        ]
+        return "\n".join(lines)
+
+
+def _num(x: Any) -> Any:
+    if x is None:
+        return None
+    x = float(x)
+    if math.isnan(x):
+        return None
+    if math.isinf(x):
+        return "inf" if x > 0 else "-inf"
+    return x
+
+
+def _jsonable(obj: Any) -> Any:
+    if isinstance(obj, Mapping):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _jsonable(obj.tolist())
+    if isinstance(obj, (np.floating, float)):
+        return _num(obj)
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (np.bool_,)):
+        return bool(obj)
+    return obj
+
+
+def write_result(path: str | Path, result: FitResult) -> None:
+    """Write the result JSON atomically."""
+    write_json(path, result.to_dict())
+
+
+def _float(v: Any) -> float:
+    if v is None:
+        return float("nan")
+    if isinstance(v, str):
+        return float(v)
+    return float(v)
+
+
+def result_from_dict(doc: Mapping[str, Any], *, network: Network | None = None, source: str = "<result>") -> FitResult:
+    """Rebuild a :class:`FitResult` from its JSON form.
+
+    When ``network`` is given, the result's nodes must match it (names, states, parents);
+    otherwise the network embedded in the file is used.
+    """
+    if not isinstance(doc, Mapping) or doc.get("format") != FORMAT:
+        raise ResultError(f"{source}: not an adfit result file (expected \"format\": \"{FORMAT}\")")
+    nodes = doc.get("nodes")
+    if not isinstance(nodes, Mapping):
+        raise ResultError(f"{source}: no \"nodes\" section")
+    if network is None:
+        if "network" not in doc:
+            raise ResultError(f"{source}: no embedded \"network\"; pass the network file as well")
+        network = parse_network(doc["network"], source=f"{source} (embedded network)")
+    probs: dict[str, np.ndarray] = {}
+    for n in network.nodes:
+        if n.name not in nodes:
+            raise ResultError(f"{source}: node {n.name!r} of the network is not in the result; "
+                              f"was it fitted with a different network?")
+        sec = nodes[n.name]
+        if list(sec.get("states", [])) != list(n.states) or list(sec.get("parents", [])) != list(n.parents):
+            raise ResultError(f"{source}: node {n.name!r} has states/parents {sec.get('states')}/{sec.get('parents')} "
+                              f"in the result but {list(n.states)}/{list(n.parents)} in the network")
+        try:
+            probs[n.name] = network.table_to_array(n.name, sec["table"], what="result table")
+        except Exception as e:
+            raise ResultError(f"{source}: {e}") from None
+    extra_nodes = set(nodes) - set(network.names)
+    if extra_nodes:
+        raise ResultError(f"{source}: result has node(s) {sorted(extra_nodes)} that the network lacks")
+    known = {"format", "method", "objective", "log_likelihood", "log_prior", "penalty", "objective_value",
+             "gradient_norm", "converged", "stop_reason", "iterations", "n_rows", "n_distinct", "seed",
+             "settings", "history", "nodes", "network"}
+    extras = {k: v for k, v in doc.items() if k not in known}
+    return FitResult(
+        network=network, method=str(doc.get("method", "")), objective=str(doc.get("objective", "mle")),
+        probs=probs, log_likelihood=_float(doc.get("log_likelihood")), log_prior=_float(doc.get("log_prior", 0.0)),
+        penalty=_float(doc.get("penalty", 0.0)), gradient_norm=_float(doc.get("gradient_norm")),
+        converged=bool(doc.get("converged", False)), stop_reason=str(doc.get("stop_reason", "")),
+        iterations=int(doc.get("iterations", 0)),
+        history={k: tuple(_float(x) for x in v) for k, v in (doc.get("history") or {}).items()},
+        n_rows=_float(doc.get("n_rows", 0.0)), n_distinct=int(doc.get("n_distinct", 0)), seed=doc.get("seed"),
+        settings=dict(doc.get("settings") or {}), extras=extras,
+    )
+
+
+def load_result(path: str | Path, network: Network | None = None) -> FitResult:
+    """Read a result JSON written by adfit (``--params`` of ``score`` and ``impute``)."""
+    p = Path(path)
+    try:
+        doc = json.loads(p.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise ResultError(f"{p}: result file not found") from None
+    except (json.JSONDecodeError, UnicodeDecodeError) as e:
+        raise ResultError(f"{p}: not a valid JSON result file ({e})") from None
+    return result_from_dict(doc, network=network, source=str(p))
