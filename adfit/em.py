@@ -21,8 +21,10 @@ pseudo-counts (``c = 0``: maximum likelihood; ``c ≥ 0``: the posterior mode of
 change. A row whose denominator is 0 keeps its current value; rows with ``N̂(u) = 0`` are
 reported as not informed by the data.
 
-Stopping. EM stops when the relative change of the objective is at most ``tol`` **and** the
-stationarity residual ``max |N̂ + c − θ (N̂_u + c_u)|`` (by Fisher's identity this is the
+Stopping. EM stops when the relative change of the objective still to come (the last increment
+``d`` projected over the linear convergence, ``d / (1 − q)`` with ``q`` the ratio of the last two
+increments; a plain relative change would stop slow runs far from the limit) is at most ``tol``
+**and** the stationarity residual ``max |N̂ + c − θ (N̂_u + c_u)|`` (by Fisher's identity this is the
 gradient of the objective with respect to the free logits, in units of records) is at most
 ``gtol`` times the number of records. The observed rate of convergence is the ratio of
 successive parameter changes ``‖θ_{k+1} − θ_k‖ / ‖θ_k − θ_{k−1}‖`` near the end; for EM it tends
@@ -42,8 +44,8 @@ from .data import HIDDEN, CodedData, decode, load_data
 from .errors import ImpossibleDataError, OptionError, PriorError
 from .network import SUM_TOL, Network
 
-__all__ = ["EMResult", "EStep", "expected_counts", "em_fit", "log_likelihood", "random_start",
-           "stationarity_residual", "RATE_MIN_STEP"]
+__all__ = ["EMResult", "EStep", "expected_counts", "em_fit", "fit_em", "to_fit_result", "log_likelihood",
+           "random_start", "stationarity_residual", "RATE_MIN_STEP"]
 
 #: the rate is read from the last pair of parameter changes whose later one is at least this big
 #: (smaller changes are dominated by rounding)
@@ -472,8 +474,8 @@ class EMResult:
         log_prior: ``Σ c log θ`` at ``probs`` (0 without pseudo-counts).
         trace: the objective (log-likelihood + log-prior) at every iterate, the start first.
         iterations: number of M-steps taken.
-        converged: the stopping rule held (relative objective change <= tol and stationarity
-            residual <= gtol · records) before ``max_iter``.
+        converged: the stopping rule held (projected relative objective change <= tol and
+            stationarity residual <= gtol · records) before ``max_iter``.
         rate: observed rate of convergence, the ratio of successive parameter changes (2-norm
             over the free entries) at the last pair of changes not dominated by rounding; NaN
             when EM stopped too early to tell.
@@ -529,6 +531,24 @@ def _uninformed(network: Network, counts: Mapping[str, np.ndarray]) -> dict[str,
     return out
 
 
+def _remaining_gain(trace: Sequence[float]) -> float:
+    """Projected rise of the objective still to come, from its last two increments.
+
+    EM converges linearly: the increments shrink by a factor ``q`` (the squared rate), so the
+    gain left is about ``d / (1 − q)`` with ``d`` the last increment. With a single increment, or
+    increments not yet shrinking, nothing is projected (inf) unless the increment is at rounding
+    level.
+    """
+    d1 = trace[-1] - trace[-2]
+    if d1 <= 1e-14 * max(1.0, abs(trace[-1])):
+        return abs(d1)
+    if len(trace) < 3:
+        return math.inf
+    d0 = trace[-2] - trace[-3]
+    q = d1 / d0 if d0 > 0 else math.inf
+    return d1 / (1.0 - q) if q < 1.0 else math.inf
+
+
 def _rate(steps: Sequence[float]) -> float:
     for k in range(len(steps) - 1, 0, -1):
         if steps[k] >= RATE_MIN_STEP and steps[k - 1] > 0:
@@ -538,7 +558,8 @@ def _rate(steps: Sequence[float]) -> float:
 
 def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None = None,
            pseudo_counts: Mapping[str, np.ndarray] | None = None, tol: float = 1e-10, gtol: float = 1e-9,
-           max_iter: int = 5000, seed: int = 0, count_column: str | None = None,
+           max_iter: int = 5000, seed: int = 0, missing: Iterable[str] | None = None,
+           count_column: str | None = None, ignore_columns: Iterable[str] = (),
            callback: Callable[[int, dict[str, np.ndarray]], None] | None = None) -> EMResult:
     """Fit the free CPTs by EM (maximum likelihood, or MAP with ``pseudo_counts``).
 
@@ -549,11 +570,13 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
             None: :func:`random_start` with ``seed``.
         pseudo_counts: per free node, Dirichlet pseudo-counts ``c >= 0`` shaped like the CPT;
             the objective becomes ``log L + Σ c log θ`` (MAP).
-        tol: stop when ``|Δ objective| <= tol · max(1, |objective|)`` ...
+        tol: stop when the projected remaining rise of the objective is at most
+            ``tol · max(1, |objective|)`` (module docstring) ...
         gtol: ... and the stationarity residual is ``<= gtol · max(1, records)``.
         max_iter: most M-steps.
         seed: seed of the random start.
-        count_column: count column when ``data`` is a DataFrame or a file.
+        missing, count_column, ignore_columns: as in :func:`adfit.data.load_data`, when ``data``
+            is a DataFrame or a file.
         callback: called as ``callback(k, probs)`` after the k-th M-step (k = 1, 2, ...).
 
     Raises:
@@ -564,7 +587,7 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
         raise OptionError(f"EM tolerances must be >= 0 (tol={tol}, gtol={gtol})")
     if max_iter < 0:
         raise OptionError(f"EM max_iter must be >= 0, got {max_iter}")
-    coded = load_data(network, data, count_column=count_column)
+    coded = load_data(network, data, missing=missing, count_column=count_column, ignore_columns=ignore_columns)
     prior = _check_pseudo(network, pseudo_counts)
     probs = _check_probs(network, init, "EM starting values") if init is not None else random_start(network, seed)
     estep = EStep(network, coded)
@@ -585,7 +608,7 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
         obj = ll + lp
         trace.append(obj)
         resid = stationarity_residual(network, counts, probs, prior)
-        if it >= 1 and abs(obj - trace[-2]) <= tol * max(1.0, abs(obj)) and resid <= gtol * max(1.0, n_rec):
+        if it >= 1 and _remaining_gain(trace) <= tol * max(1.0, abs(obj)) and resid <= gtol * max(1.0, n_rec):
             converged = True
             break
         if it >= max_iter:
@@ -609,6 +632,68 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
         gradient_norm=stationarity_residual(network, counts, probs, prior, norm="l2"),
         steps=steps,
         expected_counts=counts,
-        objective="map" if prior else "mle",
+        objective="map" if prior and any(np.any(c > 0) for c in prior.values()) else "mle",
         n_records=n_rec,
     )
+
+
+# =============================================================================== result file
+def to_fit_result(network: Network, data: CodedData, res: EMResult, *, seed: int | None = None,
+                  settings: Mapping[str, Any] | None = None, extras: Mapping[str, Any] | None = None):
+    """The EM outcome as an :class:`adfit.result.FitResult` with ``method = "em"``.
+
+    The gradient norm is EM's own (Euclidean norm of ``N̂ + c − θ (N̂_u + c_u)``, records). The
+    section ``"em"`` holds the rate, the stationarity residual, the not-informed rows (with their
+    parent labels) and the trace.
+    """
+    from .result import FitResult
+
+    uninformed = {
+        name: [{"row": i, "parents": dict(zip(network.node(name).parents, network.parent_config_labels(name)[i]))}
+               for i in rows]
+        for name, rows in res.uninformed.items()}
+    section = {
+        "rate": None if math.isnan(res.rate) else res.rate,
+        "rate_meaning": "ratio of successive parameter changes near the end: the largest fraction of "
+                        "missing information (EM converges linearly at this rate)",
+        "stationarity_max": res.stationarity,
+        "uninformed_rows": uninformed,
+        "trace": list(res.trace),
+    }
+    reason = ("projected relative objective change <= tol and stationarity residual <= gtol x records" if res.converged
+              else f"max_iter ({res.iterations}) reached before the stopping rule held")
+    return FitResult(
+        network=network, method="em", objective=res.objective, probs=res.probs,
+        log_likelihood=res.log_likelihood, log_prior=res.log_prior, penalty=0.0,
+        gradient_norm=res.gradient_norm, converged=res.converged, stop_reason=reason,
+        iterations=res.iterations, history={"objective": tuple(res.trace)},
+        n_rows=data.n_rows, n_distinct=data.n_distinct, seed=seed,
+        settings=dict(settings or {}), extras={"em": section, **dict(extras or {})},
+    )
+
+
+def fit_em(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None = None, prior: Any = None,
+           pseudo_counts: Mapping[str, np.ndarray] | None = None, tol: float = 1e-10, gtol: float = 1e-9,
+           max_iter: int = 5000, seed: int = 0, missing: Iterable[str] | None = None,
+           count_column: str | None = None, ignore_columns: Iterable[str] = ()):
+    """EM fit returned as a :class:`adfit.result.FitResult` (``method = "em"``).
+
+    ``prior``: an :class:`adfit.priors.Prior` (anything with ``pseudo_counts(network)``), or give
+    ``pseudo_counts`` directly. Other arguments as in :func:`em_fit`.
+    """
+    import time
+
+    coded = load_data(network, data, missing=missing, count_column=count_column, ignore_columns=ignore_columns)
+    extras: dict[str, Any] = {}
+    if prior is not None:
+        if pseudo_counts is not None:
+            raise OptionError("give either prior or pseudo_counts, not both")
+        pseudo_counts = prior.pseudo_counts(network)
+        if hasattr(prior, "describe"):
+            extras["prior"] = prior.describe()
+    t0 = time.perf_counter()
+    res = em_fit(network, coded, init=init, pseudo_counts=pseudo_counts, tol=tol, gtol=gtol,
+                 max_iter=max_iter, seed=seed)
+    settings = {"tol": tol, "gtol": gtol, "max_iter": max_iter, "start": "given" if init is not None else "random",
+                "elapsed_s": time.perf_counter() - t0}
+    return to_fit_result(network, coded, res, seed=seed, settings=settings, extras=extras)

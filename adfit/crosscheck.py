@@ -1,0 +1,303 @@
+"""EM cross-check of a gradient fit, and its verdict.
+
+Two EM runs (:mod:`adfit.em`, plain numpy, its own inference) are set beside the fit:
+
+* **EM from the fit's answer**: if the fit stopped at a maximum, EM does not move from it (its
+  CPTs stay within ``theta_atol`` and its objective does not rise by more than the tolerance);
+* **EM from its own start** (a seeded random start): an independent search for the optimum.
+
+For each of the three points the log-likelihood, the objective and the gradient norm are
+reported; the gradient norm is taken by the JAX core (:func:`adfit.likelihood.score`) at every
+point, and EM's own Fisher-identity residual is given beside it (the two must match).
+
+Latent nodes are identified only up to a relabelling of their states: before comparing, EM's
+states of each latent node are matched to the fit's by the permutation that best aligns the CPTs
+(least total |Δθ| over every table in which the node appears; an assignment problem per node,
+repeated over the latent nodes until no permutation changes). A latent node that appears in a
+fixed CPT is not relabelled (its labels are pinned by that table).
+
+CPT rows whose parent configuration has expected count 0 (not informed by the data) are left
+out of ``max |Δθ|`` and listed.
+
+Verdicts (``"verdict"``):
+
+* ``"agree"``: the fit and EM from its own start reach the same optimum: objectives within
+  ``ll_rtol · max(1, |objective|)`` and every informed CPT entry within ``theta_atol``;
+* ``"different-optima"``: all runs stationary, objectives differ by more than the tolerance (the
+  likelihood is multimodal); ``"higher"`` says which is higher;
+* ``"different-parameters"``: all runs stationary, the same objective within tolerance, but CPT
+  entries differ by more than ``theta_atol``: a flat ridge (parameters not identified by the
+  data) or equally high optima;
+* ``"not-converged"``: the fit or an EM run did not meet its stopping rule, or EM started from
+  the fit's answer climbed above it (the fit stopped short of a maximum).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from typing import Any, Iterable, Mapping
+
+import numpy as np
+from scipy.optimize import linear_sum_assignment
+
+from .data import CodedData, load_data
+from .em import EMResult, em_fit
+from .errors import OptionError
+from .network import Network
+
+__all__ = ["em_check", "attach_em_check", "format_em_check", "align_latent_states", "VERDICTS",
+           "LL_RTOL", "THETA_ATOL"]
+
+VERDICTS = ("agree", "different-optima", "different-parameters", "not-converged")
+#: default tolerance on the objective: relative to max(1, |objective|)
+LL_RTOL = 1e-6
+#: default tolerance on CPT entries (probabilities)
+THETA_ATOL = 1e-3
+
+
+# ------------------------------------------------------------------------------- relabelling
+def _permute(network: Network, probs: Mapping[str, np.ndarray], perms: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Relabel latent states: state ``a`` of node ``L`` becomes state ``perms[L][a]``."""
+    out: dict[str, np.ndarray] = {}
+    for name in network.names:
+        arr = np.asarray(probs[name])
+        fam = network.node(name).parents + (name,)
+        for axis, u in enumerate(fam):
+            if u in perms:
+                inv = np.argsort(perms[u])  # new index b takes old index inv[b]
+                arr = np.take(arr, inv, axis=axis)
+        out[name] = arr
+    return out
+
+
+def align_latent_states(network: Network, probs: Mapping[str, np.ndarray], reference: Mapping[str, np.ndarray],
+                        *, max_passes: int = 10) -> dict[str, np.ndarray]:
+    """Permutations of the latent nodes' states that best align ``probs`` with ``reference``.
+
+    Returns ``{latent name: perm}`` with ``perm[a]`` the reference state matched to state ``a``
+    of ``probs``; apply with :func:`relabel`. Latent nodes that appear in a fixed CPT keep the
+    identity.
+    """
+    latent = []
+    for name in network.latent_names:
+        tables = [m for m in network.names if m == name or name in network.node(m).parents]
+        if any(network.node(m).fixed is not None for m in tables):
+            continue
+        latent.append((name, tables))
+    perms = {name: np.arange(network.node(name).card) for name, _ in latent}
+    for _ in range(max_passes):
+        changed = False
+        for name, tables in latent:
+            others = {k: v for k, v in perms.items() if k != name}
+            cur = _permute(network, probs, others)
+            k = network.node(name).card
+            cost = np.zeros((k, k))
+            for m in tables:
+                axis = (network.node(m).parents + (m,)).index(name)
+                a_em = np.moveaxis(cur[m], axis, 0).reshape(k, -1)
+                a_ref = np.moveaxis(np.asarray(reference[m]), axis, 0).reshape(k, -1)
+                cost += np.abs(a_em[:, None, :] - a_ref[None, :, :]).sum(axis=2)
+            _, cols = linear_sum_assignment(cost)
+            if not np.array_equal(cols, perms[name]):
+                perms[name] = cols
+                changed = True
+        if not changed:
+            break
+    return perms
+
+
+def relabel(network: Network, probs: Mapping[str, np.ndarray], perms: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Apply the permutations of :func:`align_latent_states` to ``probs``."""
+    return _permute(network, probs, perms)
+
+
+# ------------------------------------------------------------------------------- comparison
+def _delta(network: Network, a: Mapping[str, np.ndarray], b: Mapping[str, np.ndarray],
+           skip: Mapping[str, set[int]]) -> tuple[float, dict[str, Any] | None]:
+    worst, where = 0.0, None
+    for name in network.free_names:
+        node = network.node(name)
+        d = np.abs(np.asarray(a[name]) - np.asarray(b[name])).reshape(-1, node.card)
+        for i in skip.get(name, ()):
+            d[i] = 0.0
+        if d.size and d.max() > worst:
+            i, j = np.unravel_index(int(np.argmax(d)), d.shape)
+            worst = float(d[i, j])
+            labels = network.parent_config_labels(name)[i]
+            where = {"node": name, "row": int(i), "parents": dict(zip(node.parents, labels)),
+                     "state": node.states[j]}
+    return worst, where
+
+
+def _score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray],
+           pseudo: Mapping[str, np.ndarray] | None) -> dict[str, float]:
+    from .likelihood import score  # the JAX core, only to measure (not to compute EM)
+
+    s = score(network, data, {k: np.asarray(v) for k, v in probs.items()}, pseudo_counts=pseudo)
+    return {"log_likelihood": float(s["log_likelihood"]), "gradient_norm": float(s["gradient_norm"])}
+
+
+def _em_side(em: EMResult, jax_score: Mapping[str, float], delta: float, where: Any) -> dict[str, Any]:
+    return {
+        "log_likelihood": em.log_likelihood,
+        "objective_value": em.objective_value,
+        "gradient_norm": jax_score["gradient_norm"],
+        "em_gradient_norm": em.gradient_norm,
+        "jax_log_likelihood": jax_score["log_likelihood"],
+        "iterations": em.iterations,
+        "converged": em.converged,
+        "rate": None if math.isnan(em.rate) else em.rate,
+        "max_abs_delta_theta": delta,
+        "largest_delta_at": where,
+    }
+
+
+def _pseudo_for(result: Any, pseudo_counts: Mapping[str, np.ndarray] | None) -> dict[str, np.ndarray] | None:
+    if pseudo_counts is not None:
+        return {k: np.asarray(v, dtype=np.float64) for k, v in pseudo_counts.items()}
+    if getattr(result, "objective", "mle") != "map":
+        return None
+    spec = (result.extras or {}).get("prior", {})
+    spec = spec.get("spec") if isinstance(spec, Mapping) else None
+    if spec is None:
+        raise OptionError("the EM cross-check of a MAP fit needs the prior: pass pseudo_counts=... "
+                          "(the result does not record its prior)")
+    from .priors import prior_from_dict
+
+    return prior_from_dict(spec, result.network, source="<result prior>").pseudo_counts(result.network)
+
+
+def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] | None = None, seed: int = 0,
+             tol: float = 1e-10, gtol: float = 1e-9, max_iter: int = 5000, ll_rtol: float = LL_RTOL,
+             theta_atol: float = THETA_ATOL, missing: Iterable[str] | None = None,
+             count_column: str | None = None, ignore_columns: Iterable[str] = ()) -> dict[str, Any]:
+    """Cross-check a fit (an :class:`adfit.result.FitResult`) against EM; JSON-ready dict.
+
+    Args:
+        result: the gradient fit (its ``network``, ``probs``, ``objective``, ``converged``).
+        data: the data it was fitted to (anything :func:`adfit.data.load_data` accepts).
+        pseudo_counts: the prior's pseudo-counts of a MAP fit (default: rebuilt from the prior
+            recorded in ``result.extras["prior"]``; none for an MLE fit).
+        seed: seed of EM's own random start.
+        tol, gtol, max_iter: EM's stopping rule (:func:`adfit.em.em_fit`).
+        ll_rtol, theta_atol: the tolerances of the verdict (module docstring).
+
+    Raises:
+        OptionError: the fit used an L2 penalty (EM has no M-step for it), or a MAP fit without
+            a recoverable prior.
+    """
+    net: Network = result.network
+    l2 = float((getattr(result, "settings", None) or {}).get("l2", 0.0) or 0.0)
+    if l2 > 0 or getattr(result, "penalty", 0.0):
+        raise OptionError(f"the EM cross-check covers the likelihood and Dirichlet priors, not the L2 penalty "
+                          f"(l2 = {l2:g}); refit with --l2 0 to cross-check")
+    if not (ll_rtol >= 0 and theta_atol >= 0):
+        raise OptionError(f"cross-check tolerances must be >= 0 (ll_rtol={ll_rtol}, theta_atol={theta_atol})")
+    coded = load_data(net, data, missing=missing, count_column=count_column, ignore_columns=ignore_columns)
+    pseudo = _pseudo_for(result, pseudo_counts)
+    fit_probs = {k: np.asarray(v, dtype=np.float64) for k, v in result.probs.items()}
+
+    em_fit_start = em_fit(net, coded, init=fit_probs, pseudo_counts=pseudo, tol=tol, gtol=gtol, max_iter=max_iter)
+    em_own = em_fit(net, coded, init=None, seed=seed, pseudo_counts=pseudo, tol=tol, gtol=gtol, max_iter=max_iter)
+
+    perms = align_latent_states(net, em_own.probs, fit_probs)
+    own_aligned = relabel(net, em_own.probs, perms)
+    skip: dict[str, set[int]] = {}
+    for em in (em_fit_start, em_own):
+        for name, rows in em.uninformed.items():
+            skip.setdefault(name, set()).update(rows)
+    d_from_fit, w_from_fit = _delta(net, em_fit_start.probs, fit_probs, skip)
+    d_own, w_own = _delta(net, own_aligned, fit_probs, skip)
+
+    s_fit = _score(net, coded, fit_probs, pseudo)
+    s_ff = _score(net, coded, em_fit_start.probs, pseudo)
+    s_own = _score(net, coded, em_own.probs, pseudo)
+    lp_fit = float(getattr(result, "log_prior", 0.0) or 0.0)
+    obj_fit = float(result.log_likelihood) + lp_fit
+    scale = max(1.0, abs(obj_fit))
+    tol_obj = ll_rtol * scale
+
+    fit_converged = bool(getattr(result, "converged", False))
+    higher = None
+    problems = []
+    if not fit_converged:
+        problems.append("the fit did not meet its stopping rule")
+    if not em_fit_start.converged:
+        problems.append(f"EM from the fit's answer did not converge in {em_fit_start.iterations} iterations")
+    if not em_own.converged:
+        problems.append(f"EM from its own start did not converge in {em_own.iterations} iterations")
+    if em_fit_start.objective_value - obj_fit > tol_obj:
+        problems.append(f"EM from the fit's answer climbed {em_fit_start.objective_value - obj_fit:.3g} above it "
+                        f"(the fit stopped short of a maximum)")
+    diff = em_own.objective_value - obj_fit
+    if problems:
+        verdict = "not-converged"
+        detail = "; ".join(problems)
+    elif abs(diff) > tol_obj:
+        verdict = "different-optima"
+        higher = "em" if diff > 0 else "fit"
+        detail = (f"both stationary, objectives differ by {abs(diff):.6g}: the likelihood is multimodal; "
+                  f"the {'EM optimum' if higher == 'em' else 'fit'} is higher (try more restarts)")
+    elif d_own > theta_atol:
+        verdict = "different-parameters"
+        higher = "equal"
+        detail = (f"same objective within {tol_obj:.3g} but CPT entries differ by up to {d_own:.3g}: "
+                  f"parameters not identified by the data (a flat ridge), or equally high optima")
+    else:
+        verdict = "agree"
+        higher = "equal"
+        detail = f"same optimum: objectives within {tol_obj:.3g}, CPT entries within {theta_atol:g}"
+
+    perm_out = {name: {net.node(name).states[a]: net.node(name).states[int(b)] for a, b in enumerate(p)}
+                for name, p in perms.items()}
+    return {
+        "verdict": verdict,
+        "detail": detail,
+        "higher": higher,
+        "objective": "map" if pseudo and any(np.any(c > 0) for c in pseudo.values()) else "mle",
+        "tolerances": {"objective_rtol": ll_rtol, "objective_abs": tol_obj, "theta_atol": theta_atol,
+                       "em_tol": tol, "em_gtol": gtol, "em_max_iter": max_iter},
+        "fit": {"method": getattr(result, "method", ""), "log_likelihood": float(result.log_likelihood),
+                "objective_value": obj_fit, "gradient_norm": s_fit["gradient_norm"],
+                "reported_gradient_norm": float(getattr(result, "gradient_norm", float("nan"))),
+                "converged": fit_converged},
+        "em_from_fit": _em_side(em_fit_start, s_ff, d_from_fit, w_from_fit),
+        "em_own_start": {**_em_side(em_own, s_own, d_own, w_own), "seed": seed},
+        "max_abs_delta_theta": d_own,
+        "objective_difference": diff,
+        "latent_permutation": perm_out,
+        "excluded_rows": {k: sorted(v) for k, v in skip.items()},
+    }
+
+
+def attach_em_check(result: Any, data: Any, **kwargs: Any) -> Any:
+    """Run :func:`em_check` and return ``result`` with the section ``"em_check"`` added."""
+    return result.with_extras(em_check=em_check(result, data, **kwargs))
+
+
+def format_em_check(check: Mapping[str, Any]) -> str:
+    """A few plain lines for the CLI summary."""
+    f, a, b = check["fit"], check["em_from_fit"], check["em_own_start"]
+
+    def g(x: Any) -> str:
+        return "n/a" if x is None else f"{x:.3e}"
+
+    lines = [
+        f"EM check: {check['verdict']} ({check['detail']})",
+        f"  {'':18s} {'objective':>18s} {'gradient norm':>14s} {'max |dtheta|':>13s} {'iterations':>10s}",
+        f"  {'fit (' + str(f['method']) + ')':18s} {f['objective_value']:18.8f} {g(f['gradient_norm']):>14s} "
+        f"{'':>13s} {'':>10s}",
+        f"  {'EM from the fit':18s} {a['objective_value']:18.8f} {g(a['gradient_norm']):>14s} "
+        f"{g(a['max_abs_delta_theta']):>13s} {a['iterations']:>10d}",
+        f"  {'EM own start':18s} {b['objective_value']:18.8f} {g(b['gradient_norm']):>14s} "
+        f"{g(b['max_abs_delta_theta']):>13s} {b['iterations']:>10d}",
+    ]
+    moved = {k: v for k, v in check["latent_permutation"].items() if any(s != t for s, t in v.items())}
+    if moved:
+        lines.append("  latent states relabelled (EM -> fit): "
+                     + "; ".join(f"{k}: " + ", ".join(f"{s}->{t}" for s, t in v.items()) for k, v in moved.items()))
+    if check["excluded_rows"]:
+        lines.append("  rows not informed by the data, left out of |dtheta|: "
+                     + "; ".join(f"{k} rows {', '.join(str(i + 1) for i in v)}" for k, v in check["excluded_rows"].items()))
+    return "\n".join(lines)
