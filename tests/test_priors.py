@@ -13,8 +13,8 @@ External references used below:
 
 from __future__ import annotations
 
-import itertools
 import math
+import warnings
 
 import jax
 import jax.numpy as jnp
@@ -343,3 +343,173 @@ def test_prior_only_rows_for_unseen_parent_configuration():
     np.testing.assert_allclose(complete_data_map(N["oil_temp"], np.ones((2, 2, 3)))[:, 1], 1 / 3)
     with pytest.raises(PriorError, match="expected 4"):
         prior_only_rows(NET, {"oil_temp": np.zeros(3)}, {"oil_temp": np.ones((2, 2, 3))})
+
+
+def test_label_switching_symmetric_prior_vs_asymmetric_expert_table():
+    # Swapping the two states of a latent node (and the matching rows of its children's tables)
+    # leaves the likelihood unchanged (checked with the EM module's own inference); a symmetric
+    # prior leaves the objective unchanged too, an asymmetric expert table does not.
+    from adfit.em import log_likelihood
+    net = network_from_dict({"H": {"states": ["h0", "h1"], "latent": True},
+                             "A": {"states": ["a0", "a1"], "parents": ["H"]},
+                             "B": {"states": ["b0", "b1", "b2"], "parents": ["H"]}})
+    rng = np.random.default_rng(5)
+    df = pd.DataFrame({"A": rng.choice(["a0", "a1", ""], 40), "B": rng.choice(["b0", "b1", "b2"], 40)})
+    probs = {"H": np.array([0.3, 0.7]), "A": np.array([[0.9, 0.1], [0.25, 0.75]]),
+             "B": np.array([[0.5, 0.3, 0.2], [0.1, 0.2, 0.7]])}
+    swapped = {"H": probs["H"][::-1], "A": probs["A"][::-1], "B": probs["B"][::-1]}
+    assert log_likelihood(net, swapped, df) == pytest.approx(log_likelihood(net, probs, df), rel=1e-12)
+    sym = Prior.bdeu(4.0).pseudo_counts(net)
+    assert log_prior(swapped, sym) == pytest.approx(log_prior(probs, sym), rel=1e-12)
+    asym = Prior.flat(0.5).with_node("A", expert_spec([[0.8, 0.2], [0.2, 0.8]], 10)).pseudo_counts(net)
+    assert abs(log_prior(swapped, asym) - log_prior(probs, asym)) > 1.0
+
+
+# ---------------------------------------------------------------- through the real fit
+# Each fit compiles its objective (seconds), so the fits are shared through module fixtures.
+@pytest.fixture(scope="module")
+def complete_fit():
+    """One complete-data fit exercising several kinds of entry at once (decomposable objective)."""
+    from adfit.fit import fit
+    net = network_from_dict({
+        "load": {"states": ["low", "high"]},
+        "wear": {"states": ["ok", "worn"], "parents": ["load"]},
+        "vibration": {"states": ["normal", "high"], "parents": ["wear"]},
+        "oil_temp": {"states": ["cool", "warm", "hot"], "parents": ["wear", "load"]},
+    })
+    rng = np.random.default_rng(11)
+    n = 160
+    df = pd.DataFrame({"load": rng.choice(["low", "high"], n, p=[0.6, 0.4]),
+                       "wear": rng.choice(["ok", "worn"], n, p=[0.6, 0.4]),
+                       "vibration": rng.choice(["normal", "high"], n, p=[0.7, 0.3]),
+                       "oil_temp": rng.choice(["cool", "warm", "hot"], n)})
+    df = df[~((df.wear == "worn") & (df.load == "high"))].reset_index(drop=True)  # one unseen parent config
+    prior = prior_from_dict({
+        "default": {"pseudo_counts": 1.0},
+        "nodes": {"load": {"alpha": [3.0, 1.5]},                                   # c = [2, 0.5]
+                  "wear": {"table": [[0.7, 0.3], [0.4, 0.6]], "strength": 1e6},    # -> expert table
+                  "vibration": {"table": EXPERT, "strength": 0}}}, net)            # -> MLE
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        res = fit(net, df, prior=prior)
+    return net, df, prior, res
+
+
+def test_fit_map_on_complete_data_is_the_closed_form(complete_fit):
+    # Koller & Friedman 2009, ch. 17: θ̂ = (N + c)/(N_u + Σc); counts by pandas.
+    net, df, prior, res = complete_fit
+    N = _family_counts(net, df)
+    c = prior.pseudo_counts(net)
+    assert res.converged
+    for n in net.free_names:
+        np.testing.assert_allclose(res.probs[n], complete_data_map(N[n], c[n]), atol=1e-7, err_msg=n)
+    # strength -> infinity gives the expert table, strength 0 the maximum-likelihood estimate
+    np.testing.assert_allclose(res.probs["wear"], [[0.7, 0.3], [0.4, 0.6]], atol=1e-4)
+    assert np.all(N["vibration"] > 0)  # the MLE is interior
+    np.testing.assert_allclose(res.probs["vibration"], N["vibration"] / N["vibration"].sum(-1, keepdims=True), atol=1e-7)
+
+
+def test_fit_has_no_softmax_jacobian_in_the_prior(complete_fit):
+    # With the log-Jacobian of the softmax added, the mode would be (N + c + 1)/(N_u + Σc + K).
+    net, df, prior, res = complete_fit
+    N = _family_counts(net, df)
+    c = prior.pseudo_counts(net)
+    for n in ("load", "oil_temp"):
+        jac = complete_data_map(N[n], c[n] + 1.0)
+        assert np.max(np.abs(res.probs[n] - jac)) > 2e-3, n
+        assert np.max(np.abs(res.probs[n] - complete_data_map(N[n], c[n]))) < 1e-7
+
+
+def test_fit_reports_objective_split_and_prior_only_rows(complete_fit):
+    net, df, prior, res = complete_fit
+    N = _family_counts(net, df)
+    c = prior.pseudo_counts(net)
+    # log-likelihood of complete data: Σ N log θ (counts by pandas)
+    ll = sum(float(np.sum(np.where(N[n] > 0, N[n] * np.log(np.where(N[n] > 0, res.probs[n], 1.0)), 0.0)))
+             for n in net.names)
+    assert res.log_likelihood == pytest.approx(ll, rel=1e-10)
+    assert res.log_prior == pytest.approx(log_prior(res.probs, c), rel=1e-10)
+    assert res.penalty == 0.0
+    # the unseen configuration (wear=worn, load=high) of oil_temp is prior-only: uniform here
+    weights = {n: N[n].sum(-1).reshape(-1) for n in net.free_names}
+    rows = prior_only_rows(net, weights, c)
+    assert rows == {"oil_temp": [3]}
+    np.testing.assert_allclose(res.probs["oil_temp"][1, 1], [1 / 3] * 3, atol=1e-7)
+
+
+@pytest.fixture(scope="module")
+def l2_fit():
+    from adfit.fit import fit
+    net = network_from_dict({"wear": {"states": ["ok", "worn"]},
+                             "oil_temp": {"states": ["cool", "warm", "hot"], "parents": ["wear"]}})
+    df = pd.DataFrame({"wear": ["ok"] * 30 + ["worn"] * 10,
+                       "oil_temp": ["cool"] * 20 + ["warm"] * 8 + ["hot"] * 2 + ["cool"] * 1 + ["warm"] * 3 + ["hot"] * 6})
+    lam = 2.0
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        res = fit(net, df, l2=lam)
+    return net, df, lam, res
+
+
+def test_l2_estimate_solves_the_penalised_problem_and_shrinks_toward_uniform(l2_fit):
+    net, df, lam, res = l2_fit
+    N = _family_counts(net, df)
+    # two states: N_1 − N θ_1 = λ log(θ_1/θ_2), solved with scipy.optimize.brentq
+    n1, nt = N["wear"][0], N["wear"].sum()
+    t1 = optimize.brentq(lambda t: n1 - nt * t - lam * math.log(t / (1 - t)), 1e-9, 1 - 1e-9, xtol=1e-14)
+    assert res.probs["wear"][0] == pytest.approx(t1, abs=1e-7)
+    # three states, row by row: maximise Σ N log softmax(z) − λ Σ (z − mean z)² with scipy BFGS
+    for u in range(2):
+        w = N["oil_temp"][u]
+
+        def negf(z):
+            z = z - z.max()
+            return -(np.sum(w * (z - np.log(np.exp(z).sum()))) - lam * np.sum((z - z.mean()) ** 2))
+
+        z = optimize.minimize(negf, np.zeros(3), method="BFGS", options={"gtol": 1e-10}).x
+        th = np.exp(z - z.max()) / np.exp(z - z.max()).sum()
+        np.testing.assert_allclose(res.probs["oil_temp"][u], th, atol=1e-6)
+    # its effect: every row is closer to uniform than the MLE
+    for n in net.names:
+        mle = N[n] / N[n].sum(-1, keepdims=True)
+        k = N[n].shape[-1]
+        assert np.all(np.abs(res.probs[n] - 1 / k).max(-1) < np.abs(mle - 1 / k).max(-1)), n
+    logits = {n: np.log(res.probs[n]) for n in net.names}
+    assert res.penalty == pytest.approx(l2_penalty(logits, lam), rel=1e-6)
+    assert res.log_prior == 0.0
+
+
+def test_em_map_equals_gradient_map_with_gaps_and_a_latent_node():
+    # Two independent implementations of the same objective (EM with a MAP M-step, numpy; the
+    # gradient fit, JAX) must reach the same point. The asymmetric expert table on A fixes the
+    # labelling of the latent H; EM is run from three random starts and the best is kept.
+    from adfit.em import em_fit
+    from adfit.fit import fit
+    net = network_from_dict({"H": {"states": ["h0", "h1"], "latent": True},
+                             "A": {"states": ["a0", "a1"], "parents": ["H"]},
+                             "B": {"states": ["b0", "b1"], "parents": ["H"]},
+                             "C": {"states": ["c0", "c1", "c2"], "parents": ["H"]}})
+    rng = np.random.default_rng(1)
+    n = 200
+    h = rng.random(n) < 0.4
+    a = np.where(rng.random(n) < np.where(h, 0.85, 0.2), "a1", "a0")
+    b = np.where(rng.random(n) < np.where(h, 0.7, 0.1), "b1", "b0")
+    pc = np.where(h[:, None], [0.1, 0.3, 0.6], [0.6, 0.3, 0.1])
+    cc = np.array([rng.choice(["c0", "c1", "c2"], p=p) for p in pc])
+    df = pd.DataFrame({"A": a, "B": b, "C": cc})
+    df.loc[rng.random(n) < 0.3, "A"] = ""
+    df.loc[rng.random(n) < 0.2, "C"] = ""
+    prior = prior_from_dict({"default": {"pseudo_counts": 0.5},
+                             "nodes": {"A": {"table": [[0.8, 0.2], [0.2, 0.8]], "strength": 10}}}, net)
+    c = prior.pseudo_counts(net)
+    res = fit(net, df, prior=prior)
+    ems = [em_fit(net, df, pseudo_counts=c, seed=s) for s in range(3)]
+    best = max(ems, key=lambda e: e.objective_value)
+    assert res.converged and best.converged
+    for name in net.names:
+        np.testing.assert_allclose(res.probs[name], best.probs[name], atol=1e-6, err_msg=name)
+    assert res.log_likelihood + res.log_prior == pytest.approx(best.objective_value, abs=1e-6)
+    assert best.log_prior == pytest.approx(log_prior(best.probs, c), rel=1e-10)
+    # and the prior moved the estimate: the MLE differs
+    mle = max((em_fit(net, df, seed=s) for s in range(3)), key=lambda e: e.objective_value)
+    assert max(np.abs(mle.probs[k] - best.probs[k]).max() for k in net.names) > 1e-2
