@@ -389,3 +389,37 @@ def test_estep_reuse_is_pure():
     np.testing.assert_array_equal(l1, l2)
     for m in net.names:
         np.testing.assert_array_equal(c1[m], c2[m])
+
+
+# ============================================================================ command line
+def test_cli_em_writes_result_and_fails_in_one_line(tmp_path):
+    import json
+
+    from typer.testing import CliRunner
+
+    from adfit.cli import app
+
+    net, df = stouffer_toby()
+    csv = tmp_path / "st.csv"
+    df.to_csv(csv, index=False)
+    toml = tmp_path / "st.toml"
+    toml.write_text('[nodes.cls]\nstates = ["k1", "k2"]\nlatent = true\n'
+                    + "".join(f'[nodes.item{j}]\nstates = ["+", "-"]\nparents = ["cls"]\n' for j in range(1, 5)))
+    out = tmp_path / "em.json"
+    runner = CliRunner()
+    r = runner.invoke(app, ["em", str(toml), str(csv), "--count-column", "count", "--out", str(out), "--seed", "1"])
+    assert r.exit_code == 0, r.output
+    doc = json.loads(out.read_text())
+    assert doc["method"] == "em" and doc["format"] == "adfit-result/1" and doc["converged"]
+    ref = em_fit(net, encode_frame(net, df, count_column="count"), seed=1)
+    assert doc["log_likelihood"] == pytest.approx(ref.log_likelihood, rel=1e-14)
+    assert "rate of convergence 0.90" in r.output  # Stouffer-Toby: about 0.905 (this EM)
+    # starting from that result, EM stays
+    r = runner.invoke(app, ["em", str(toml), str(csv), "--count-column", "count", "--out", str(out),
+                            "--init", str(out)])
+    assert r.exit_code == 0 and json.loads(out.read_text())["iterations"] <= 3
+    # a bad input: one line on stderr, exit code 1, no file written
+    bad = tmp_path / "bad.json"
+    r = runner.invoke(app, ["em", str(toml), str(csv), "--out", str(bad)])
+    assert r.exit_code == 1 and not bad.exists()
+    assert r.output.count("\n") == 1 and "count" in r.output
