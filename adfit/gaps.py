@@ -45,18 +45,40 @@ What no test can do: rejecting MCAR shows that the gaps depend on observed value
 consistent with MAR, under which the full-likelihood fit stays valid while dropping incomplete
 rows can bias estimates). Not rejecting is no proof of MCAR (the tests may lack power). Whether
 the gaps depend on the missing values themselves (MNAR) cannot be tested from the data at all.
+
+Complete-case versus full likelihood
+------------------------------------
+:func:`compare_complete_case` fits the network twice: on all rows (the full marginal likelihood,
+valid under MAR) and on the complete rows only (every observed column recorded; what dropping
+incomplete rows gives). Per CPT entry it reports both estimates, their difference
+(complete-case minus full) and the difference in units of the full-likelihood standard error
+when one is available; the log-likelihood of *all* rows under each set of estimates; and how
+many rows were discarded. Under MCAR both estimates are consistent (the complete-case one is
+merely less precise); under MAR the complete-case estimates of some CPTs are biased, typically
+those of a node whose own gaps, or whose parents' gaps, depend on its children. Entries whose
+parent configuration occurs in no complete row are flagged as not supported (their
+complete-case value is only the fit's starting value) and are left out of the maxima.
+
+Information criteria
+--------------------
+:func:`information_criteria` gives ``AIC = -2 log L + 2k`` and ``BIC = -2 log L + k log n``
+with ``k`` the free parameters of the estimated CPTs (``(card - 1)`` per parent configuration;
+fixed CPTs excluded) and ``n`` the effective sample size: the weight of the records with at least
+one observed cell (records with nothing observed add nothing to the likelihood). With latent
+nodes ``k`` is the nominal count; parameters that the data do not identify still count.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
-from typing import Any, Sequence
+from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 from scipy import stats
 
 from .data import HIDDEN, CodedData
-from .errors import OptionError
+from .errors import DataError, OptionError
 from .network import Network
 
 FORMAT = "adfit-gaps/1"
@@ -443,5 +465,284 @@ def _row_keys(a: np.ndarray) -> np.ndarray:
     return inv.reshape(-1)
 
 
+
+
+# ============================================================ complete case versus full likelihood
+CC_FORMAT = "adfit-complete-case/1"
+SUPPORT_MIN = 1e-9  # expected parent-configuration weight (complete rows) below which an entry is "not supported"
+
+CC_CAUTION = ("Both fits rest on the network structure; the full-likelihood fit also assumes the gaps are MAR. "
+              "A large difference means dropping incomplete rows changes the answer, not which answer is right "
+              "when the gaps may be MNAR.")
+
+
+@dataclass(frozen=True)
+class EntryComparison:
+    """One CPT entry estimated from all rows (full) and from the complete rows only."""
+
+    node: str
+    parents: tuple[tuple[str, str], ...]   # (parent, state) pairs of the row
+    state: str
+    full: float
+    complete_case: float
+    difference: float                      # complete_case - full
+    se: float | None                       # full-likelihood standard error, when available
+    z: float | None                        # difference / se
+    supported: bool                        # the parent configuration occurs in complete rows
+
+
+@dataclass(frozen=True)
+class CompleteCaseComparison:
+    """Full-likelihood versus complete-case estimates (see the module docstring)."""
+
+    source: str
+    entries: tuple[EntryComparison, ...]
+    n_rows: float
+    n_complete: float
+    n_discarded: float
+    share_discarded: float
+    loglik_full: float            # all rows, at the full-likelihood estimates
+    loglik_complete_case: float   # all rows, at the complete-case estimates (-inf possible)
+    n_impossible: float           # weight of rows with probability 0 under the complete-case estimates
+    se_source: str | None
+    converged_full: bool
+    converged_complete_case: bool
+    method: str
+
+    @property
+    def supported(self) -> tuple[EntryComparison, ...]:
+        return tuple(e for e in self.entries if e.supported)
+
+    @property
+    def max_abs_difference(self) -> float:
+        return max((abs(e.difference) for e in self.supported), default=0.0)
+
+    @property
+    def max_abs_z(self) -> float | None:
+        zs = [abs(e.z) for e in self.supported if e.z is not None]
+        return max(zs) if zs else None
+
+    @property
+    def loglik_loss(self) -> float:
+        """How much lower the log-likelihood of all rows is at the complete-case estimates (>= 0)."""
+        return self.loglik_full - self.loglik_complete_case
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready (``-inf`` becomes None with ``n_impossible`` > 0); for ``result.extras["complete_case"]``."""
+        return {
+            "format": CC_FORMAT,
+            "source": self.source,
+            "method": self.method,
+            "n_rows": _num(self.n_rows),
+            "n_complete": _num(self.n_complete),
+            "n_discarded": _num(self.n_discarded),
+            "share_discarded": self.share_discarded,
+            "log_likelihood_all_rows": {
+                "full": _finite(self.loglik_full),
+                "complete_case": _finite(self.loglik_complete_case),
+                "records_impossible_under_complete_case": _num(self.n_impossible),
+            },
+            "max_abs_difference": self.max_abs_difference,
+            "max_abs_z": self.max_abs_z,
+            "se_source": self.se_source,
+            "converged": {"full": self.converged_full, "complete_case": self.converged_complete_case},
+            "entries": [{"node": e.node, "parents": dict(e.parents), "state": e.state, "full": e.full,
+                         "complete_case": e.complete_case, "difference": e.difference, "se": e.se, "z": e.z,
+                         "supported": e.supported} for e in self.entries],
+            "caution": CC_CAUTION,
+        }
+
+    def format_text(self, top: int = 15) -> str:
+        """A plain-text summary: the entries that moved most, and the log-likelihoods."""
+        out = [f"Complete-case versus full likelihood ({self.source}, {self.method}):",
+               f"  complete-case fit used {_fmt_n(self.n_complete)} of {_fmt_n(self.n_rows)} records; "
+               f"{_fmt_n(self.n_discarded)} ({_pct(self.share_discarded)}) discarded"]
+        llc = ("-inf" if not math.isfinite(self.loglik_complete_case) else f"{self.loglik_complete_case:.4f}")
+        out.append(f"  log-likelihood of all records: full estimates {self.loglik_full:.4f}, "
+                   f"complete-case estimates {llc}")
+        if self.n_impossible > 0:
+            out.append(f"  {_fmt_n(self.n_impossible)} record(s) have probability 0 under the complete-case estimates "
+                       f"(values never seen in complete rows)")
+        if self.n_discarded == 0:
+            out.append("  no row has a gap: both fits are the same")
+        else:
+            if self.se_source is None:
+                out.append("  (no standard errors available: the difference is not expressed in SE units)")
+            if self.se_source is not None:  # by |diff/SE|; entries without an SE after those with one
+                shown = sorted(self.supported, key=lambda e: (e.z is None, -abs(e.z or 0.0), -abs(e.difference)))
+            else:
+                shown = sorted(self.supported, key=lambda e: -abs(e.difference))
+            shown = shown[:top]
+            if shown:
+                out.append(f"  {'entry':<40} {'full':>8} {'compl.':>8} {'diff':>8} {'SE':>8} {'diff/SE':>8}")
+                for e in shown:
+                    par = ", ".join(f"{p}={v}" for p, v in e.parents)
+                    label = f"P({e.node}={e.state}" + (f" | {par})" if par else ")")
+                    se = "" if e.se is None else f"{e.se:.4f}"
+                    z = "" if e.z is None else f"{e.z:+.2f}"
+                    out.append(f"  {label:<40} {e.full:>8.4f} {e.complete_case:>8.4f} {e.difference:>+8.4f} {se:>8} {z:>8}")
+                if len(self.supported) > len(shown):
+                    out.append(f"  ... {len(self.supported) - len(shown)} more entries (all in the JSON)")
+            unsup = len(self.entries) - len(self.supported)
+            if unsup:
+                out.append(f"  {unsup} entries have parent configurations found in no complete row (not compared)")
+            big = f", {self.max_abs_z:.1f} SE" if self.max_abs_z is not None else ""
+            out.append(f"  largest change from dropping incomplete rows: {self.max_abs_difference:.4f}{big}")
+        out.append("  Caution: " + CC_CAUTION)
+        return "\n".join(out)
+
+
+def _finite(x: float) -> float | None:
+    return float(x) if math.isfinite(x) else None
+
+
+def _default_fit(network: Network, data: CodedData, **kwargs: Any):
+    from .fit import fit
+    return fit(network, data, **kwargs)
+
+
+def _se_from(network: Network, result: Any, se: Mapping[str, Any] | None) -> tuple[dict[str, np.ndarray], str | None]:
+    """Standard errors per free node, from ``se`` or from the result's per-node ``"se"`` tables."""
+    if se is not None:
+        out = {}
+        for name in network.free_names:
+            if name in se:
+                a = np.asarray(se[name], dtype=np.float64)
+                try:
+                    out[name] = a.reshape(network.cpt_shape(name))
+                except ValueError:
+                    raise OptionError(f"standard errors for node {name!r} have {a.size} entries, "
+                                      f"expected shape {network.cpt_shape(name)}") from None
+        return out, "given"
+    nodes = getattr(result, "extras", {}).get("nodes", {}) if result is not None else {}
+    out = {}
+    for name in network.free_names:
+        t = nodes.get(name, {}).get("se") if isinstance(nodes.get(name), Mapping) else None
+        if t is not None:
+            try:
+                out[name] = np.asarray(t, dtype=np.float64).reshape(network.cpt_shape(name))
+            except (TypeError, ValueError):
+                continue
+    return out, ("full-likelihood fit (observed information)" if out else None)
+
+
+def compare_complete_case(network: Network, data: CodedData, *, full: Any = None,
+                          se: Mapping[str, Any] | None = None,
+                          fit_fn: Callable[..., Any] | None = None, **fit_kwargs: Any) -> CompleteCaseComparison:
+    """Fit on all rows and on the complete rows only, and compare entry by entry.
+
+    Args:
+        network: the network.
+        data: the coded data (all rows).
+        full: an existing fit of ``data`` (a :class:`adfit.result.FitResult`); fitted when None.
+        se: standard errors of the full-likelihood estimates per free node (CPT-shaped); when
+            None they are read from ``full.extras["nodes"][name]["se"]`` if present.
+        fit_fn: the fitting function, called as ``fit_fn(network, coded, **fit_kwargs)`` and
+            returning a FitResult; default :func:`adfit.fit.fit`. (``adfit.em.fit_em`` also fits.)
+        fit_kwargs: passed to both fits (seed, prior, tolerances ...).
+
+    Raises:
+        DataError: no complete row (every record has a gap in some observed column).
+    """
+    from .em import EStep
+
+    fit_fn = fit_fn or _default_fit
+    if full is None:
+        full = fit_fn(network, data, **fit_kwargs)
+    cc = data.complete_cases(network)
+    total = float(data.n_rows)
+    if cc.n_distinct == 0 or cc.n_rows <= 0:
+        raise DataError(f"{data.source}: no complete row (every record has a gap in some observed column); "
+                        f"the complete-case comparison needs at least one complete row")
+    n_complete = float(cc.n_rows)
+    if n_complete >= total:
+        ccfit = full
+    else:
+        ccfit = fit_fn(network, cc, **fit_kwargs)
+    full_p = {k: np.asarray(v, dtype=np.float64) for k, v in full.probs.items()}
+    cc_p = {k: np.asarray(v, dtype=np.float64) for k, v in ccfit.probs.items()}
+    if network.latent_names and ccfit is not full:
+        from .crosscheck import align_latent_states, relabel
+        cc_p = relabel(network, cc_p, align_latent_states(network, cc_p, full_p))
+    se_map, se_source = _se_from(network, full, se)
+
+    cc_counts, _ = EStep(network, cc)(cc_p)
+    _, row_ll = EStep(network, data)(cc_p)
+    w = np.asarray(data.counts, dtype=np.float64)
+    bad = np.isneginf(row_ll) & (w > 0)
+    ll_cc = -math.inf if bad.any() else float(np.sum(np.where(w > 0, row_ll, 0.0) * w))
+
+    entries: list[EntryComparison] = []
+    for name in network.free_names:
+        node = network.node(name)
+        f2 = full_p[name].reshape(-1, node.card)
+        c2 = cc_p[name].reshape(-1, node.card)
+        nu = np.asarray(cc_counts[name]).reshape(-1, node.card).sum(axis=1)
+        s2 = se_map[name].reshape(-1, node.card) if name in se_map else None
+        for i, labels in enumerate(network.parent_config_labels(name)):
+            for j, st in enumerate(node.states):
+                d = float(c2[i, j] - f2[i, j])
+                sev = None if s2 is None or not np.isfinite(s2[i, j]) else float(s2[i, j])
+                z = d / sev if sev is not None and sev > 0 else None
+                entries.append(EntryComparison(name, tuple(zip(node.parents, labels)), st, float(f2[i, j]),
+                                               float(c2[i, j]), d, sev, z,
+                                               bool(nu[i] > SUPPORT_MIN * max(1.0, n_complete))))
+    return CompleteCaseComparison(
+        source=data.source, entries=tuple(entries), n_rows=total, n_complete=n_complete,
+        n_discarded=total - n_complete, share_discarded=(total - n_complete) / total if total else 0.0,
+        loglik_full=float(full.log_likelihood), loglik_complete_case=ll_cc, n_impossible=float(w[bad].sum()),
+        se_source=se_source, converged_full=bool(full.converged), converged_complete_case=bool(ccfit.converged),
+        method=str(getattr(full, "method", "")))
+
+
+# ================================================================================ AIC / BIC
+@dataclass(frozen=True)
+class InformationCriteria:
+    """AIC and BIC of a fit, with what they were computed from."""
+
+    log_likelihood: float
+    n_parameters: int
+    n_effective: float
+    aic: float
+    bic: float
+    objective: str
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"log_likelihood": _finite(self.log_likelihood), "n_parameters": self.n_parameters,
+                "n_effective": _num(self.n_effective), "aic": _finite(self.aic), "bic": _finite(self.bic),
+                "objective": self.objective,
+                "definitions": "AIC = -2 log L + 2k; BIC = -2 log L + k ln n; k = free parameters of the estimated "
+                               "CPTs (fixed CPTs excluded); n = records with at least one observed cell"}
+
+    def format_text(self) -> str:
+        txt = (f"AIC {self.aic:.3f}, BIC {self.bic:.3f} (log-likelihood {self.log_likelihood:.4f}; "
+               f"k = {self.n_parameters} free parameters, fixed CPTs excluded; "
+               f"n = {_fmt_n(self.n_effective)} records with at least one observed cell)")
+        if self.objective == "map":
+            txt += "; the fit is MAP, so log L is taken at the posterior mode, not at the maximum"
+        return txt
+
+
+def information_criteria(network: Network, data: CodedData, fit: Any) -> InformationCriteria:
+    """AIC and BIC for a fit (a FitResult, or a log-likelihood value) of ``data``.
+
+    ``n`` is the weight of the records with at least one observed cell; ``k`` is
+    :meth:`Network.n_free_parameters` (fixed CPTs excluded).
+    """
+    if isinstance(fit, (int, float, np.floating)):
+        ll, objective = float(fit), "mle"
+    else:
+        ll, objective = float(fit.log_likelihood), str(getattr(fit, "objective", "mle"))
+    k = int(network.n_free_parameters())
+    obs = [network.index(nm) for nm in network.observed_names]
+    seen = np.any(np.asarray(data.codes)[:, obs] != HIDDEN, axis=1) if obs else np.zeros(data.n_distinct, bool)
+    n = float(np.asarray(data.counts)[seen].sum())
+    if n <= 0:
+        raise DataError(f"{data.source}: no record has an observed cell; AIC/BIC need observed data")
+    return InformationCriteria(ll, k, n, -2.0 * ll + 2.0 * k, -2.0 * ll + k * math.log(n), objective)
+
+
 __all__ = ["ColumnGaps", "Pattern", "IndependenceTest", "ColumnReading", "GapsReport", "overview",
-           "g2_test", "holm", "is_monotone", "MCAR_CAUTION"]
+           "g2_test", "holm", "is_monotone", "MCAR_CAUTION",
+           "EntryComparison", "CompleteCaseComparison", "compare_complete_case", "CC_CAUTION",
+           "InformationCriteria", "information_criteria"]

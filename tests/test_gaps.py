@@ -317,3 +317,203 @@ def test_cli_bad_file(tmp_path):
     (tmp_path / "d.csv").write_text("a,b\nx,y\n")
     res = _invoke([str(tmp_path / "n.toml"), str(tmp_path / "d.csv"), "--top", "0"])
     assert res.exit_code == 1 and len(res.stderr.strip().splitlines()) == 1 and "--top" in res.stderr
+
+
+# ============================================================ complete case versus full likelihood
+from adfit.em import fit_em, log_likelihood as em_loglik  # noqa: E402
+from adfit.errors import DataError  # noqa: E402
+from adfit.gaps import compare_complete_case, information_criteria  # noqa: E402
+
+NET3 = network_from_dict({
+    "Dept": {"states": DEPTS},
+    "Gender": {"states": ["Male", "Female"], "parents": ["Dept"]},
+    "Admit": {"states": ["Admitted", "Rejected"], "parents": ["Dept", "Gender"]},
+})
+
+
+def _closed_form_mle(ucb: pd.DataFrame) -> dict[str, np.ndarray]:
+    """MLE of the three CPTs from the shipped (complete) UCB counts: N(x, u) / N(u), by pandas."""
+    t = ucb.copy()
+    t["d"] = t.Dept.map({d: i for i, d in enumerate(DEPTS)})
+    t["g"] = t.Gender.map({"Male": 0, "Female": 1})
+    t["a"] = t.Admit.map({"Admitted": 0, "Rejected": 1})
+    nd = t.groupby("d").Freq.sum().to_numpy(float)
+    ndg = t.pivot_table(index="d", columns="g", values="Freq", aggfunc="sum").to_numpy(float)
+    ndga = np.zeros((6, 2, 2))
+    for r in t.itertuples():
+        ndga[r.d, r.g, r.a] += r.Freq
+    return {"Dept": nd / nd.sum(), "Gender": ndg / ndg.sum(1, keepdims=True),
+            "Admit": ndga / ndga.sum(2, keepdims=True)}
+
+
+def _mar_mask(codes3: np.ndarray, seed: int) -> np.ndarray:
+    """MAR gaps: Gender unrecorded mostly for rejected applicants, Admit mostly in some departments."""
+    rng = np.random.default_rng(seed)
+    c = codes3.copy()
+    a, g, d = NET3.index("Admit"), NET3.index("Gender"), NET3.index("Dept")
+    c[rng.random(len(c)) < np.where(c[:, a] == 1, 0.6, 0.1), g] = HIDDEN
+    c[rng.random(len(c)) < np.array([0.05, 0.05, 0.3, 0.3, 0.5, 0.5])[c[:, d]], a] = HIDDEN
+    return c
+
+
+@pytest.fixture(scope="module")
+def codes3(ucb_rows) -> np.ndarray:
+    cd = encode_frame(NET3, ucb_rows)
+    return cd.codes[cd.inverse]
+
+
+def _coded3(codes: np.ndarray) -> CodedData:
+    d, c, inv = reduce_rows(codes, None, NET3.cards)
+    return CodedData(d, c, inv, "<masked UCB>")
+
+
+def _lookup(probs, e) -> float:
+    idx = tuple(NET3.node(p).states.index(v) for p, v in e.parents) + (NET3.node(e.node).states.index(e.state),)
+    return float(np.asarray(probs[e.node])[idx])
+
+
+def test_full_likelihood_recovers_unmasked_mle_better_than_complete_case(ucb, codes3):
+    truth = _closed_form_mle(ucb)  # the MLE on the shipped, unmasked table
+    full_err, cc_err = [], []
+    for seed in range(5):
+        masked = _mar_mask(codes3, seed)
+        cmp = compare_complete_case(NET3, _coded3(masked), fit_fn=fit_em)
+        assert cmp.n_discarded == np.sum(np.any(masked == HIDDEN, axis=1))
+        assert cmp.n_complete + cmp.n_discarded == 4526
+        full_err.append(np.mean([abs(e.full - _lookup(truth, e)) for e in cmp.entries]))
+        cc_err.append(np.mean([abs(e.complete_case - _lookup(truth, e)) for e in cmp.entries]))
+    # stated tolerance: mean absolute error over all 46 CPT entries, averaged over 5 seeds
+    assert np.mean(full_err) < 0.03
+    assert np.mean(cc_err) > 0.06
+    assert np.mean(full_err) < 0.4 * np.mean(cc_err)
+
+
+def test_comparison_log_likelihoods_and_se_units(codes3):
+    data = _coded3(_mar_mask(codes3, 9))
+    full = fit_em(NET3, data)
+    se = {"Dept": np.full(6, 0.01), "Gender": np.full((6, 2), 0.02), "Admit": np.full((6, 2, 2), 0.05)}
+    cmp = compare_complete_case(NET3, data, full=full, se=se, fit_fn=fit_em)
+    # the log-likelihood of all rows at the complete-case CPTs, by an independent evaluation
+    cc_probs = {n: np.zeros(NET3.cpt_shape(n)) for n in NET3.names}
+    for e in cmp.entries:
+        idx = tuple(NET3.node(p).states.index(v) for p, v in e.parents) + (NET3.node(e.node).states.index(e.state),)
+        cc_probs[e.node][idx] = e.complete_case
+    assert cmp.loglik_complete_case == pytest.approx(em_loglik(NET3, cc_probs, data), rel=1e-12)
+    assert cmp.loglik_full == pytest.approx(full.log_likelihood, rel=1e-12)
+    assert cmp.loglik_full > cmp.loglik_complete_case  # the full MLE maximises this very function
+    for e in cmp.entries:
+        want = {"Dept": 0.01, "Gender": 0.02, "Admit": 0.05}[e.node]
+        assert e.se == want and e.z == pytest.approx(e.difference / want, rel=1e-12)
+        assert e.difference == pytest.approx(e.complete_case - e.full, abs=1e-15)
+    assert cmp.max_abs_z == pytest.approx(max(abs(e.z) for e in cmp.entries))
+    # standard errors carried by the full fit's result (per-node "se" tables) are used when given none
+    with_se = full.with_extras(nodes={n: {"se": NET3.array_to_table(n, se[n])} for n in NET3.names})
+    cmp2 = compare_complete_case(NET3, data, full=with_se, fit_fn=fit_em)
+    assert cmp2.se_source is not None and [e.z for e in cmp2.entries] == [e.z for e in cmp.entries]
+    d = json.loads(json.dumps(cmp.to_dict(), allow_nan=False))
+    assert d["n_discarded"] == cmp.n_discarded and len(d["entries"]) == 6 + 12 + 24
+    assert "diff/SE" in cmp.format_text() and "discarded" in cmp.format_text()
+
+
+def test_comparison_unsupported_rows_and_edge_cases(codes3):
+    c = codes3.copy()
+    a, d = NET3.index("Admit"), NET3.index("Dept")
+    c[c[:, d] == 5, a] = HIDDEN        # Dept F: Admit never recorded, so no complete row has Dept = F
+    cmp = compare_complete_case(NET3, _coded3(c), fit_fn=fit_em)
+    unsup = {(e.node, e.parents[0][1]) for e in cmp.entries if not e.supported}
+    assert unsup == {("Gender", "F"), ("Admit", "F")}
+    assert cmp.n_impossible > 0 and cmp.loglik_complete_case == -np.inf  # P(Dept = F) = 0 without those rows
+    assert json.loads(json.dumps(cmp.to_dict(), allow_nan=False))["log_likelihood_all_rows"]["complete_case"] is None
+    # no gaps at all: nothing discarded, the same estimates
+    same = compare_complete_case(NET3, _coded3(codes3), fit_fn=fit_em)
+    assert same.n_discarded == 0 and same.max_abs_difference == 0.0
+    # no complete row at all
+    c[:, a] = HIDDEN
+    with pytest.raises(DataError, match="no complete row"):
+        compare_complete_case(NET3, _coded3(c), fit_fn=fit_em)
+
+
+def test_comparison_with_the_gradient_fit_matches_em(codes3):
+    """The default fitter (JAX, L-BFGS) gives the same comparison as the EM reference."""
+    rng = np.random.default_rng(4)
+    c = codes3.copy()  # gaps in Gender only (few patterns: a quick compile), MAR given Admit
+    c[rng.random(len(c)) < np.where(c[:, NET3.index("Admit")] == 1, 0.6, 0.1), NET3.index("Gender")] = HIDDEN
+    data = _coded3(c)
+    got = compare_complete_case(NET3, data, seed=0)
+    ref = compare_complete_case(NET3, data, fit_fn=fit_em)
+    assert got.method == "lbfgs" and got.converged_full and got.converged_complete_case
+    for e, r in zip(got.entries, ref.entries):
+        assert (e.node, e.parents, e.state) == (r.node, r.parents, r.state)
+        assert e.full == pytest.approx(r.full, abs=1e-5) and e.complete_case == pytest.approx(r.complete_case, abs=1e-5)
+    # not a maximum of this function: first-order sensitive to the fits' tolerances
+    assert got.loglik_complete_case == pytest.approx(ref.loglik_complete_case, rel=1e-7)
+    assert got.loglik_full == pytest.approx(ref.loglik_full, rel=1e-10)
+
+
+# ================================================================================ AIC / BIC
+def test_information_criteria_closed_form(ucb, codes3):
+    truth = _closed_form_mle(ucb)
+    full = _coded3(codes3)
+    # complete data: log L at the MLE is sum N log theta_hat (closed form from the shipped counts)
+    ll = sum(float(np.sum(np.where(c > 0, c * np.log(np.where(c > 0, t, 1.0)), 0.0)))
+             for c, t in ((np.bincount(codes3[:, 0], minlength=6), truth["Dept"]),))
+    ll += float(np.sum([np.log(truth["Gender"][d, g]) + np.log(truth["Admit"][d, g, a])
+                        for d, g, a in codes3[:, [NET3.index("Dept"), NET3.index("Gender"), NET3.index("Admit")]]]))
+    ic = information_criteria(NET3, full, ll)
+    assert ic.n_parameters == 5 + 6 + 12 and ic.n_effective == 4526
+    assert ic.aic == pytest.approx(-2 * ll + 2 * 23, rel=1e-13)
+    assert ic.bic == pytest.approx(-2 * ll + 23 * np.log(4526), rel=1e-13)
+    res = fit_em(NET3, full)
+    assert information_criteria(NET3, full, res).log_likelihood == pytest.approx(ll, rel=1e-9)
+    # records with nothing observed do not count towards n; fixed CPTs do not count towards k
+    blank = np.full((10, 3), HIDDEN, dtype=np.int32)
+    partial = codes3[:7].copy()
+    partial[:, NET3.index("Admit")] = HIDDEN   # something observed: these count
+    padded = _coded3(np.vstack([codes3, blank, partial]))
+    assert padded.n_rows == 4543 and information_criteria(NET3, padded, ll).n_effective == 4533
+    fixed = network_from_dict({
+        "Dept": {"states": DEPTS, "fixed": truth["Dept"].tolist()},
+        "Gender": {"states": ["Male", "Female"], "parents": ["Dept"]},
+        "Admit": {"states": ["Admitted", "Rejected"], "parents": ["Dept", "Gender"]},
+    })
+    assert information_criteria(fixed, full, ll).n_parameters == 18
+    assert "fixed CPTs excluded" in ic.format_text()
+
+
+def test_comparison_aligns_latent_states(codes3):
+    """With a latent node, a complete-case fit whose latent states come out swapped is realigned."""
+    import dataclasses
+
+    lat = network_from_dict({
+        "Z": {"states": ["z1", "z2"], "latent": True},
+        "Dept": {"states": DEPTS, "parents": ["Z"]},
+        "Gender": {"states": ["Male", "Female"], "parents": ["Z"]},
+        "Admit": {"states": ["Admitted", "Rejected"], "parents": ["Z"]},
+    })
+    rng = np.random.default_rng(0)
+    c = np.full((len(codes3), 4), HIDDEN, dtype=np.int32)
+    for name in ("Dept", "Gender", "Admit"):
+        c[:, lat.index(name)] = codes3[:, NET3.index(name)]
+    c[rng.random(len(c)) < 0.2, lat.index("Admit")] = HIDDEN
+    d, n, inv = reduce_rows(c, None, lat.cards)
+    data = CodedData(d, n, inv, "<UCB latent>")
+
+    def em(net, x, **kw):
+        return fit_em(net, x, seed=0, tol=1e-12, max_iter=20000)
+
+    def em_swapped(net, x, **kw):  # the complete-case fit comes back with z1 and z2 exchanged
+        r = em(net, x)
+        if x.n_rows == data.n_rows:
+            return r
+        p = {k: np.asarray(v) for k, v in r.probs.items()}
+        p["Z"] = p["Z"][::-1]
+        for name in ("Dept", "Gender", "Admit"):
+            p[name] = p[name][::-1]
+        return dataclasses.replace(r, probs=p)
+
+    plain = compare_complete_case(lat, data, fit_fn=em)
+    swapped = compare_complete_case(lat, data, fit_fn=em_swapped)
+    for a, b in zip(plain.entries, swapped.entries):
+        assert b.complete_case == pytest.approx(a.complete_case, abs=1e-12)
+    assert swapped.max_abs_difference == pytest.approx(plain.max_abs_difference, abs=1e-12)
+    assert plain.max_abs_difference < 0.1  # MCAR gaps: both estimates near one another
