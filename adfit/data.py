@@ -98,32 +98,71 @@ def packed_multipliers(bases: Sequence[int]) -> np.ndarray | None:
     return mult
 
 
+def packed_keys(codes: np.ndarray, mult: np.ndarray) -> np.ndarray:
+    """int64 key ``sum_j (code_j + 1) * mult_j`` of each row, computed column by column."""
+    key = np.zeros(codes.shape[0], dtype=np.int64)
+    for j in range(codes.shape[1]):
+        key += (codes[:, j].astype(np.int64) + 1) * mult[j]
+    return key
+
+
+def unpack_keys(keys: np.ndarray, mult: np.ndarray, bases: Sequence[int]) -> np.ndarray:
+    """Inverse of :func:`packed_keys`: int32 codes ``(len(keys), len(bases))``."""
+    out = np.empty((keys.shape[0], len(bases)), dtype=np.int32)
+    for j, b in enumerate(bases):
+        out[:, j] = (keys // mult[j]) % int(b) - 1
+    return out
+
+
+def key_layout(cards: Sequence[int]) -> tuple[np.ndarray | None, list[int]]:
+    """``(multipliers or None, bases)`` of the packed key of coded rows over nodes of ``cards``."""
+    bases = [int(c) + 1 for c in cards]
+    return packed_multipliers(bases), bases
+
+
+def sum_by_key(keys: np.ndarray, weights: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``(sorted distinct keys, summed weights, inverse)``: hash the keys, sort only the distinct ones."""
+    first, uniq = pd.factorize(np.asarray(keys, dtype=np.int64), sort=False)
+    uniq = np.asarray(uniq, dtype=np.int64)
+    order = np.argsort(uniq, kind="stable")
+    rank = np.empty(order.shape[0], dtype=np.int64)
+    rank[order] = np.arange(order.shape[0])
+    inverse = rank[first]
+    w = None if weights is None else np.asarray(weights, dtype=np.float64)
+    counts = np.bincount(inverse, weights=w, minlength=order.shape[0]).astype(np.float64)
+    return uniq[order], counts, inverse
+
+
+def reduce_keys(keys: np.ndarray, weights: np.ndarray | None, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`reduce_rows` for rows given as packed keys (see :func:`packed_keys`)."""
+    mult, bases = key_layout(cards)
+    if mult is None:
+        raise ValueError("the packed key does not fit in int64 for these cardinalities")
+    uniq, counts, inverse = sum_by_key(keys, weights)
+    return unpack_keys(uniq, mult, bases), counts, inverse
+
+
 def reduce_rows(codes: np.ndarray, weights: np.ndarray | None, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Reduce coded rows to distinct rows.
 
     Returns ``(distinct_codes, counts, inverse)``; distinct rows come in ascending order of the
     packed key ``sum_j (code_j + 1) * prod_{k>j} (card_k + 1)``, which is the lexicographic order
     of the rows (so the order is the same whichever way the rows were read). Uses the packed
-    int64 key when the product of ``(card + 1)`` is below 2**63, else ``np.unique(axis=0)``
-    (same order).
+    int64 key (hashed, then only the distinct keys sorted) when the product of ``(card + 1)`` is
+    below 2**63, else ``np.unique(axis=0)`` (same order).
     """
-    codes = np.asarray(codes, dtype=np.int32)
-    if codes.ndim != 2:
-        codes = codes.reshape(-1, len(cards))
-    n = codes.shape[0]
-    w = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64)
-    if n == 0:
-        return codes.reshape(0, len(cards)), np.zeros(0), np.zeros(0, dtype=np.int64)
-    mult = packed_multipliers([c + 1 for c in cards])
+    codes = np.asarray(codes)
+    w = None if weights is None else np.asarray(weights, dtype=np.float64)
+    codes = codes.reshape(-1, len(cards))
+    if codes.shape[0] == 0:
+        return codes.astype(np.int32), np.zeros(0), np.zeros(0, dtype=np.int64)
+    mult, bases = key_layout(cards)
     if mult is not None:
-        key = (codes.astype(np.int64) + 1) @ mult
-        _, first, inverse = np.unique(key, return_index=True, return_inverse=True)
-        distinct = codes[first]
-    else:
-        distinct, inverse = np.unique(codes, axis=0, return_inverse=True)
+        return reduce_keys(packed_keys(codes, mult), w, cards)
+    distinct, inverse = np.unique(np.ascontiguousarray(codes, dtype=np.int32), axis=0, return_inverse=True)
     inverse = inverse.reshape(-1)
     counts = np.bincount(inverse, weights=w, minlength=distinct.shape[0]).astype(np.float64)
-    return distinct.astype(np.int32), counts, inverse.astype(np.int64)
+    return distinct.astype(np.int32, copy=False), counts, inverse.astype(np.int64, copy=False)
 
 
 # --------------------------------------------------------------------- coding
@@ -173,11 +212,11 @@ def _factorize(values: Any) -> tuple[np.ndarray, list[Any]]:
         if pa.types.is_dictionary(arr.type):
             arr = arr.dictionary_decode()
         enc = arr.dictionary_encode()
-        codes = pc.fill_null(enc.indices, -1).to_numpy(zero_copy_only=False).astype(np.int64)
+        codes = pc.fill_null(enc.indices, -1).to_numpy(zero_copy_only=False)
         return codes, enc.dictionary.to_pylist()
     codes, uniques = pd.factorize(pd.Series(values) if not isinstance(values, (pd.Series, pd.Index)) else values,
                                   use_na_sentinel=True)
-    return np.asarray(codes, dtype=np.int64), list(uniques)
+    return np.asarray(codes), list(uniques)
 
 
 def _value_at(values: Any, i: int) -> Any:
@@ -226,7 +265,7 @@ class LabelCoder:
                     code = lookup[c]
                     break
             table[k] = code
-        return table[np.where(fcodes < 0, len(uniques), fcodes)]
+        return table[fcodes]  # a null (-1) picks the last slot
 
     def label_error(self, name: str, label: Any, where: str) -> DataError:
         states = self.network.node(name).states
@@ -312,34 +351,58 @@ def check_columns(network: Network, columns: Sequence[str], *, count_column: str
 
 
 def code_columns(network: Network, coder: LabelCoder, get: Callable[[str], Any], n: int, *,
-                 count_column: str | None, locate: Locate, row_offset: int = 0) -> tuple[np.ndarray, np.ndarray | None]:
+                 count_column: str | None, locate: Locate, row_offset: int = 0,
+                 packed: bool = False) -> tuple[np.ndarray, np.ndarray | None]:
     """Code the columns of one table (or chunk) of ``n`` rows; ``get(name)`` returns a column.
 
-    Returns ``(codes, weights)`` with one row per record (weights None without a count column).
+    Returns ``(rows, weights)`` with one entry per record (weights None without a count column):
+    ``rows`` is the int32 code matrix ``(n, n_nodes)``, or with ``packed=True`` and a key that
+    fits in int64, the packed int64 keys ``(n,)`` (no code matrix is built: less memory).
     Raises DataError at the first unknown label (column by column, in network order) or invalid
     count, naming the row through ``locate(row_offset + i)``.
     """
-    codes = np.full((n, len(network)), HIDDEN, dtype=np.int32)
+    mult, _ = key_layout(network.cards) if packed else (None, None)
+    if mult is not None:
+        rows = np.zeros(n, dtype=np.int64)  # latent and hidden cells add (-1 + 1) * mult = 0
+    else:
+        rows = np.full((n, len(network)), HIDDEN, dtype=np.int32, order="F")  # filled column by column
     for name in network.observed_names:
         col = get(name)
         c = coder.code(name, col)
         coder.check(name, c, col, locate, row_offset)
-        codes[:, network.index(name)] = c
+        j = network.index(name)
+        if mult is not None:
+            rows += (c.astype(np.int64) + 1) * mult[j]
+        else:
+            rows[:, j] = c
     weights = None
     if count_column is not None:
         weights = count_values(get(count_column), count_column, locate, row_offset)
-    return codes, weights
+    return rows, weights
+
+
+def reduce_any(rows: np.ndarray, weights: np.ndarray | None, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`reduce_rows` for what :func:`code_columns` returns: a 2-D code matrix, or 1-D packed keys."""
+    rows = np.asarray(rows)
+    if rows.ndim == 1:
+        if rows.shape[0] == 0:
+            return np.zeros((0, len(cards)), np.int32), np.zeros(0), np.zeros(0, dtype=np.int64)
+        return reduce_keys(rows, weights, cards)
+    return reduce_rows(rows, weights, cards)
 
 
 def coded_from_rows(network: Network, codes: np.ndarray, weights: np.ndarray | None, source: str, *,
                     keep_inverse: bool = True) -> CodedData:
-    """Reduce per-record codes (and optional weights) to a :class:`CodedData`; zero weights are dropped."""
+    """Reduce per-record codes (2-D) or packed keys (1-D), with optional weights, to a :class:`CodedData`.
+
+    Records of weight 0 are dropped (and then no ``inverse`` is kept).
+    """
     if weights is not None:
         keep = weights > 0
         if not keep.all():
             codes, weights = codes[keep], weights[keep]
             keep_inverse = False
-    distinct, counts, inverse = reduce_rows(codes, weights, network.cards)
+    distinct, counts, inverse = reduce_any(codes, weights, network.cards)
     if distinct.shape[0] == 0:
         raise DataError(f"{source}: no records (the table is empty or all counts are 0)")
     return CodedData(distinct, counts, inverse if keep_inverse and weights is None else None, source)
@@ -375,7 +438,7 @@ def encode_frame(network: Network, df: pd.DataFrame, *, missing: Iterable[str] |
     coder = LabelCoder(network, missing)
     pos = {c: i for i, c in enumerate(cols)}
     codes, weights = code_columns(network, coder, lambda c: df.iloc[:, pos[c]], len(df), count_column=count_column,
-                                  locate=locate or frame_rows(source), row_offset=row_offset)
+                                  locate=locate or frame_rows(source), row_offset=row_offset, packed=True)
     return coded_from_rows(network, codes, weights, source)
 
 
@@ -632,7 +695,7 @@ def _encode_file(network: Network, f: Path, fmt: str, coder: LabelCoder, read: S
                  count_column: str | None) -> tuple[np.ndarray, np.ndarray | None]:
     table = read_csv_arrow(f, read) if fmt == "csv" else read_parquet_arrow(f, read)
     return code_columns(network, coder, table.column, table.num_rows, count_column=count_column,
-                        locate=locator(f, fmt))
+                        locate=locator(f, fmt), packed=True)
 
 
 def load_files(network: Network, path: str | Path | Sequence[str | Path], *, missing: Iterable[str] | None = None,

@@ -37,8 +37,8 @@ import numpy as np
 import pandas as pd
 
 from .data import (UNKNOWN, CodedData, LabelCoder, check_columns, code_columns, common_columns, count_values,
-                   csv_header, encode_frame, iter_csv_batches, iter_parquet_batches, load_files, locator,
-                   reduce_rows, resolve_inputs, _csv_error)
+                   csv_header, encode_frame, iter_csv_batches, iter_parquet_batches, key_layout, load_files,
+                   locator, packed_keys, reduce_rows, resolve_inputs, sum_by_key, unpack_keys, _csv_error)
 from .errors import DataError, OptionError
 from .network import Network
 
@@ -92,44 +92,59 @@ def _batches(plan: ReadPlan, file: str, columns: Sequence[str], row_groups: Sequ
 class Accumulator:
     """Running table of distinct coded rows and summed counts (memory ~ distinct rows).
 
-    Reduced pieces wait in a list until they hold as many rows as the table (at least
-    ``merge_rows``), then are merged in one sort: the work stays proportional to the rows read.
+    Rows are kept as packed int64 keys when the key fits (else as code rows). Reduced pieces wait
+    in a list until they hold as many rows as the table (at least ``merge_rows``), then are merged
+    at once, so the table is not rebuilt for every small piece.
     """
 
     merge_rows = 1 << 16
 
     def __init__(self, cards: Sequence[int]):
         self.cards = tuple(cards)
-        self.codes = np.zeros((0, len(self.cards)), dtype=np.int32)
+        self.mult, self.bases = key_layout(self.cards)
+        self.rows = np.zeros(0, np.int64) if self.mult is not None else np.zeros((0, len(self.cards)), np.int32)
         self.counts = np.zeros(0)
         self._pending: list[tuple[np.ndarray, np.ndarray]] = []
         self._pending_rows = 0
 
-    def add(self, codes: np.ndarray, weights: np.ndarray | None = None) -> None:
-        """Add per-record codes (or already distinct rows with their ``weights``)."""
+    def _reduce(self, rows: np.ndarray, weights: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+        if self.mult is not None:
+            keys, counts, _ = sum_by_key(rows, weights)
+            return keys, counts
+        d, c, _ = reduce_rows(rows, weights, self.cards)
+        return d, c
+
+    def add(self, rows: np.ndarray, weights: np.ndarray | None = None) -> None:
+        """Add records: a code matrix ``(n, n_nodes)`` or packed keys ``(n,)``, optionally weighted."""
+        rows = np.asarray(rows)
+        if rows.ndim == 2 and self.mult is not None:
+            rows = packed_keys(rows, self.mult)
         if weights is not None:
             keep = weights > 0
             if not keep.all():
-                codes, weights = codes[keep], weights[keep]
-        if codes.shape[0] == 0:
+                rows, weights = rows[keep], weights[keep]
+        if rows.shape[0] == 0:
             return
-        d, c, _ = reduce_rows(codes, weights, self.cards)
-        self._pending.append((d, c))
-        self._pending_rows += d.shape[0]
-        if self._pending_rows >= max(self.codes.shape[0], self.merge_rows):
+        piece = self._reduce(rows, weights)
+        self._pending.append(piece)
+        self._pending_rows += piece[0].shape[0]
+        if self._pending_rows >= max(self.rows.shape[0], self.merge_rows):
             self._merge()
 
     def _merge(self) -> None:
         if not self._pending:
             return
-        codes = np.concatenate([self.codes] + [d for d, _ in self._pending])
+        rows = np.concatenate([self.rows] + [r for r, _ in self._pending])
         counts = np.concatenate([self.counts] + [c for _, c in self._pending])
-        self.codes, self.counts, _ = reduce_rows(codes, counts, self.cards)
+        self.rows, self.counts = self._reduce(rows, counts)
         self._pending, self._pending_rows = [], 0
 
     def result(self) -> tuple[np.ndarray, np.ndarray]:
+        """``(distinct code rows, counts)`` in packed-key (lexicographic) order."""
         self._merge()
-        return self.codes, self.counts
+        if self.mult is not None:
+            return unpack_keys(self.rows, self.mult, self.bases), self.counts
+        return self.rows, self.counts
 
 
 def _finish(plan: ReadPlan, codes: np.ndarray, counts: np.ndarray) -> CodedData:
@@ -153,9 +168,9 @@ def reduce_piece(plan: ReadPlan, file: str, row_groups: Sequence[int] | None = N
     locate = locator(Path(file), plan.fmt)
     offset = row_offset
     for batch in _batches(plan, file, plan.read, row_groups):
-        codes, weights = code_columns(plan.network, plan.coder, batch.column, batch.num_rows,
-                                      count_column=plan.count_column, locate=locate, row_offset=offset)
-        acc.add(codes, weights)
+        rows, weights = code_columns(plan.network, plan.coder, batch.column, batch.num_rows,
+                                     count_column=plan.count_column, locate=locate, row_offset=offset, packed=True)
+        acc.add(rows, weights)
         offset += batch.num_rows
     return acc.result()
 

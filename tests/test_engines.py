@@ -287,3 +287,26 @@ def test_dataframe_through_the_pandas_engine():
     df = pd.DataFrame({"load": ["low", "high"], "wear": ["none", ""], "temp": ["1", "10"]})
     cd = load_coded(NET, df)
     assert cd.n_rows == 2 and cd.inverse is not None
+
+
+@pytest.mark.parametrize("engine", FILE_ENGINES)
+def test_typed_parquet_columns_in_every_engine(tmp_path, cluster, engine):
+    net = network_from_dict({
+        "grade": {"states": ["A", "B", "C"]},
+        "size": {"states": [1, 2, 10]},
+        "ratio": {"states": ["0.5", "1"]},
+        "flag": {"states": ["false", "true"]},
+    })
+    df = pd.DataFrame({
+        "grade": pd.Categorical(["A", "C", None, "B", "A", "C"]),
+        "size": pd.array([1, 10, 2, None, 1, 10], dtype="Int64"),
+        "ratio": [0.5, 1.0, np.nan, 0.5, 0.5, 1.0],
+        "flag": pd.array([True, False, None, True, True, False], dtype="boolean"),
+    })
+    df.to_parquet(tmp_path / "typed.parquet", index=False, row_group_size=2)
+    ref = load_coded(net, tmp_path / "typed.parquet")
+    expect = [["A", "1", "0.5", "true"], ["C", "10", "1", "false"], [None, "2", None, None],
+              ["B", None, "0.5", "true"]]
+    assert decode(net, ref.codes[ref.inverse]).to_numpy().tolist()[:4] == expect
+    assert ref.counts.tolist() == [1.0, 2.0, 1.0, 2.0]  # rows by code: grade gap, A (twice), B, C (twice)
+    same(run(net, tmp_path / "typed.parquet", engine, cluster, chunk_rows=2), ref)

@@ -1,0 +1,171 @@
+"""Reduction to distinct coded rows: pandas vs stream vs DuckDB vs Dask, side by side.
+
+Generates a table of N rows x K small-integer columns (seeded; a hidden 4-state regime that each
+column copies with some noise, and some gaps), writes it once as Parquet (one file, row groups of
+1 M rows) and as partitioned CSV (8 files), then times ``adfit.engines.load_coded`` for each
+engine in a fresh subprocess and prints wall time and peak resident memory.
+
+    python benchmarks/bench_reduce.py                 # 10 M rows x 20 columns (a few minutes)
+    python benchmarks/bench_reduce.py --rows 1000000  # quick look
+
+Memory is the peak resident memory of the process during the call (sampled every 5 ms) minus
+the resident memory just before it; for Dask the same figure of the two local worker processes
+(processes=True) is added. Every engine's result is checked against the pandas one.
+Copy the printed table into docs/performance.md ("Reduction").
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+
+def make_data(folder: Path, rows: int, cols: int, card: int, noise: float, gaps: float, seed: int = 0):
+    import pyarrow as pa
+    import pyarrow.csv as pcsv
+    import pyarrow.parquet as pq
+    rng = np.random.default_rng(seed)
+    regime = rng.integers(0, 4, rows)
+    table = {}
+    for j in range(cols):
+        base = (regime + j) % card
+        flip = rng.random(rows) < noise
+        x = np.where(flip, rng.integers(0, card, rows), base).astype(np.int8)
+        mask = rng.random(rows) < gaps
+        table[f"c{j:02d}"] = pa.array(x, mask=mask)
+    t = pa.table(table)
+    pq.write_table(t, folder / "data.parquet", row_group_size=1_000_000)
+    parts = folder / "csv"
+    parts.mkdir()
+    n_parts = 8
+    edges = np.linspace(0, rows, n_parts + 1).astype(int)
+    for i in range(n_parts):
+        pcsv.write_csv(t.slice(edges[i], edges[i + 1] - edges[i]), parts / f"part-{i}.csv",
+                       pcsv.WriteOptions(quoting_style="none"))
+    spec = {name: {"states": [str(k) for k in range(card)]} for name in table}
+    (folder / "net.json").write_text(json.dumps(spec))
+
+
+def _rss_now_mb() -> float:
+    with open("/proc/self/statm") as fh:
+        return int(fh.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2 ** 20
+
+
+class PeakSampler:
+    """Samples this process's resident memory every few milliseconds; ``peak`` is the highest."""
+
+    def __init__(self, every_s: float = 0.005):
+        import threading
+        self.base = _rss_now_mb()
+        self.peak = self.base
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, args=(every_s,), daemon=True)
+        self._thread.start()
+
+    def _run(self, every_s: float) -> None:
+        while not self._stop.is_set():
+            self.peak = max(self.peak, _rss_now_mb())
+            self._stop.wait(every_s)
+
+    def stop(self) -> float:
+        """Peak minus the resident memory at start (MiB)."""
+        self._stop.set()
+        self._thread.join()
+        self.peak = max(self.peak, _rss_now_mb())
+        return self.peak - self.base
+
+
+def _worker_start() -> None:
+    import builtins
+    builtins._adfit_bench_sampler = PeakSampler()
+
+
+def _worker_stop() -> float:
+    import builtins
+    return builtins._adfit_bench_sampler.stop()
+
+
+def child(engine: str, path: str, net_file: str, out: str, memory_limit: str | None) -> None:
+    from adfit.engines import load_coded
+    from adfit.network import network_from_dict
+    net = network_from_dict(json.loads(Path(net_file).read_text()))
+    kw = {}
+    extra_mb = 0.0
+    if engine == "dask":
+        from distributed import Client, LocalCluster
+        cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None)
+        client = Client(cluster)
+        kw["scheduler"] = cluster.scheduler_address
+        client.run(lambda: __import__("adfit.engines"))  # imports (adfit pulls in JAX) not counted
+        client.run(_worker_start)
+    if engine == "duckdb" and memory_limit:
+        kw["memory_limit"] = memory_limit
+    sampler = PeakSampler()
+    t = time.perf_counter()
+    cd = load_coded(net, path, engine=engine, **kw)
+    wall = time.perf_counter() - t
+    mem = sampler.stop()
+    if engine == "dask":
+        extra_mb = sum(client.run(_worker_stop).values())
+        client.close()
+        cluster.close()
+    np.savez(out, codes=cd.codes, counts=cd.counts)
+    print(json.dumps({"wall": wall, "mem_mb": mem + extra_mb, "distinct": cd.n_distinct, "rows": cd.n_rows}))
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--rows", type=int, default=10_000_000)
+    ap.add_argument("--cols", type=int, default=20)
+    ap.add_argument("--card", type=int, default=3)
+    ap.add_argument("--noise", type=float, default=0.02)
+    ap.add_argument("--gaps", type=float, default=0.02)
+    ap.add_argument("--child", nargs=5, help=argparse.SUPPRESS)
+    a = ap.parse_args()
+    if a.child:
+        engine, path, net_file, out, mem = a.child
+        child(engine, path, net_file, out, None if mem == "-" else mem)
+        return
+    with tempfile.TemporaryDirectory(prefix="adfit-bench-") as tmp:
+        d = Path(tmp)
+        t = time.perf_counter()
+        make_data(d, a.rows, a.cols, a.card, a.noise, a.gaps)
+        size = {p.name: p.stat().st_size for p in [d / "data.parquet"]}
+        csv_mb = sum(p.stat().st_size for p in (d / "csv").iterdir()) / 2 ** 20
+        print(f"# {a.rows:,} rows x {a.cols} columns ({a.card} states, noise {a.noise}, gaps {a.gaps}); "
+              f"generated in {time.perf_counter() - t:.1f} s; Parquet {size['data.parquet'] / 2 ** 20:.0f} MiB, "
+              f"CSV (8 files) {csv_mb:.0f} MiB")
+        print(f"# {platform.processor() or platform.machine()}, {os.cpu_count()} CPUs, Python {platform.python_version()}")
+        runs = [("pandas", "parquet", None), ("stream", "parquet", None), ("duckdb", "parquet", None),
+                ("duckdb", "parquet", "300MB"), ("dask", "parquet", None),
+                ("pandas", "csv", None), ("stream", "csv", None), ("duckdb", "csv", None), ("dask", "csv", None)]
+        ref = None
+        print(f"{'engine':<22} {'input':<8} {'wall s':>8} {'peak MiB':>9} {'distinct rows':>14}  same as pandas")
+        for engine, fmt, mem in runs:
+            path = d / "data.parquet" if fmt == "parquet" else d / "csv"
+            out = d / f"{engine}-{fmt}-{mem}.npz"
+            r = subprocess.run([sys.executable, __file__, "--child", engine, str(path), str(d / "net.json"),
+                                str(out), mem or "-"], capture_output=True, text=True)
+            if r.returncode != 0:
+                print(f"{engine:<22} {fmt:<8} failed: {r.stderr.strip().splitlines()[-1] if r.stderr else r.returncode}")
+                continue
+            res = json.loads(r.stdout.strip().splitlines()[-1])
+            got = np.load(out)
+            if ref is None:
+                ref = (got["codes"], got["counts"])
+            ok = np.array_equal(ref[0], got["codes"]) and np.array_equal(ref[1], got["counts"])
+            name = engine + (f" (limit {mem})" if mem else "")
+            print(f"{name:<22} {fmt:<8} {res['wall']:>8.2f} {res['mem_mb']:>9.0f} {res['distinct']:>14,}  {ok}")
+
+
+if __name__ == "__main__":
+    main()
