@@ -603,7 +603,7 @@ def iter_csv_batches(path: str | Path, columns: Sequence[str], chunk_rows: int) 
             row_bytes = max(1, len(head) // head.count(b"\n"))
     except OSError:
         pass
-    block = int(min(max(chunk_rows * row_bytes, 1 << 16), 1 << 28))
+    block = int(min(max(chunk_rows * row_bytes, 1 << 12), 1 << 28))
     try:
         reader = pcsv.open_csv(p, *_csv_arrow_options(p, header, raw, block))
         for batch in reader:

@@ -38,7 +38,7 @@ import pandas as pd
 
 from .data import (UNKNOWN, CodedData, LabelCoder, check_columns, code_columns, common_columns, count_values,
                    csv_header, encode_frame, iter_csv_batches, iter_parquet_batches, key_layout, load_files,
-                   locator, packed_keys, reduce_rows, resolve_inputs, sum_by_key, unpack_keys, _csv_error)
+                   locator, packed_keys, parquet_names, reduce_rows, resolve_inputs, sum_by_key, unpack_keys, _csv_error)
 from .errors import DataError, OptionError
 from .network import Network
 
@@ -255,11 +255,8 @@ def reduce_duckdb(plan: ReadPlan, *, memory_limit: str | None = None, threads: i
         import duckdb
     except ImportError:
         raise OptionError("--engine duckdb needs the duckdb package: pip install 'adfit[scale]'") from None
-    raw_names = csv_header(plan.files[0]) if plan.fmt == "csv" else None
-    by_trim = {c.strip(): c for c in raw_names} if raw_names else None
-    if plan.fmt == "parquet":
-        from .data import parquet_names
-        by_trim = {c.strip(): c for c in parquet_names(plan.files[0])}
+    raw_names = csv_header(plan.files[0]) if plan.fmt == "csv" else parquet_names(plan.files[0])
+    by_trim = {c.strip(): c for c in raw_names}  # trimmed name -> name as written in the file
     tmp = tempfile.mkdtemp(prefix="adfit-duckdb-")
     config: dict[str, Any] = {"temp_directory": tmp, "preserve_insertion_order": False}
     if memory_limit:
@@ -342,7 +339,7 @@ def _client(scheduler: str | None):
         raise OptionError("--engine dask needs dask and distributed: pip install 'adfit[scale]'") from None
     if scheduler is None:
         import logging
-        cluster = LocalCluster(dashboard_address=None, silence_logs=logging.ERROR, threads_per_worker=1)
+        cluster = LocalCluster(dashboard_address=":0", silence_logs=logging.ERROR, threads_per_worker=1)
         return Client(cluster), cluster
     try:
         if scheduler.endswith(".json") and os.path.exists(scheduler):

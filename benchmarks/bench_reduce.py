@@ -102,7 +102,7 @@ def child(engine: str, path: str, net_file: str, out: str, memory_limit: str | N
     extra_mb = 0.0
     if engine == "dask":
         from distributed import Client, LocalCluster
-        cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None)
+        cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0")
         client = Client(cluster)
         kw["scheduler"] = cluster.scheduler_address
         client.run(lambda: __import__("adfit.engines"))  # imports (adfit pulls in JAX) not counted

@@ -44,7 +44,7 @@ PCOLS = ["species", "island", "sex", "year"]
 @pytest.fixture(scope="module")
 def cluster():
     from distributed import LocalCluster
-    c = LocalCluster(n_workers=2, threads_per_worker=1, processes=False, dashboard_address=None)
+    c = LocalCluster(n_workers=2, threads_per_worker=1, processes=False, dashboard_address=":0")
     yield c.scheduler_address
     c.close()
 
@@ -310,3 +310,40 @@ def test_typed_parquet_columns_in_every_engine(tmp_path, cluster, engine):
     assert decode(net, ref.codes[ref.inverse]).to_numpy().tolist()[:4] == expect
     assert ref.counts.tolist() == [1.0, 2.0, 1.0, 2.0]  # rows by code: grade gap, A (twice), B, C (twice)
     same(run(net, tmp_path / "typed.parquet", engine, cluster, chunk_rows=2), ref)
+
+
+@pytest.mark.parametrize("engine", FILE_ENGINES)
+def test_label_error_after_many_chunks(tmp_path, cluster, engine):
+    rng = np.random.default_rng(11)
+    n = 6000
+    df = pd.DataFrame({"load": rng.choice(["low", "high", ""], n), "wear": rng.choice(["none", "light", "heavy"], n),
+                       "temp": rng.choice(["1", "2", "10", "?"], n)})
+    df.to_csv(tmp_path / "big.csv", index=False)
+    ref = load_coded(NET, tmp_path / "big.csv")
+    same(run(NET, tmp_path / "big.csv", engine, cluster, chunk_rows=100), ref)  # about 15 CSV blocks
+    df.loc[4321, "temp"] = "12"
+    df.to_csv(tmp_path / "big.csv", index=False)
+    with pytest.raises(DataError) as e:
+        run(NET, tmp_path / "big.csv", engine, cluster, chunk_rows=100)
+    assert f"big.csv: line 4323 (data row 4322), column 'temp': label '12'" in one_line(e)
+
+
+def test_single_node_network_in_every_engine(tmp_path, cluster):
+    net = network_from_dict({"x": {"states": ["a", "b", "c"]}})
+    p = tmp_path / "x.csv"
+    p.write_text("x\na\nc\n?\nc\nb\nc\n")
+    ref = load_coded(net, p)
+    assert ref.codes[:, 0].tolist() == [HIDDEN, 0, 1, 2] and ref.counts.tolist() == [1, 1, 1, 3]
+    for engine in FILE_ENGINES:
+        same(run(net, p, engine, cluster), ref)
+
+
+def test_dask_without_scheduler_starts_and_closes_a_local_cluster(penguin_files):
+    import threading
+    d, _ = penguin_files
+    before = threading.active_count()
+    same(load_coded(PENG, d / "pqparts", engine="dask"), load_coded(PENG, d / "pqparts"))
+    from distributed import default_client
+    with pytest.raises(ValueError):  # no client left behind
+        default_client()
+    assert threading.active_count() <= before + 2
