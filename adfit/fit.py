@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import math
 import time
+from functools import partial
 import warnings
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Mapping
@@ -38,12 +39,15 @@ import optax
 
 from .data import HIDDEN, CodedData, load_data
 from .errors import ConvergenceWarning, OptionError
-from .likelihood import (Likelihood, _loglik_logcpt, _value_and_expected_counts, check_possible,
+from .likelihood import (Likelihood, _value_and_expected_counts, check_possible,
                          logits_from_probs, probs_from_logits)
 from .network import Network
 from .result import FitResult
 
 METHODS = ("lbfgs", "adam")
+SCALE_EPS = 0.1
+# L-BFGS restarts with a fresh preconditioner after these many iterations (then the last one)
+PHASE_LENGTHS = (10, 20, 40, 80, 160)
 
 
 @dataclass(frozen=True)
@@ -120,38 +124,137 @@ def _norm(tree: Mapping[str, np.ndarray]) -> float:
 
 
 # --------------------------------------------------------------------------- the fast objective
-def _make_neg_objective(network: Network, groups, n_total: float):
-    """−F/N as a function of (z, scale, pseudo, codes, weights), with a fast custom gradient.
-
-    The gradient of the log-likelihood part uses the chunk-accumulating scan (expected counts),
-    the forward value the cheaper value-only scan.
-    """
+@partial(jax.jit, static_argnums=(0,))
+def _head(network: Network, z, scale, pseudo, fixed_lc, l2):
+    """Log-CPTs of all nodes and the prior/penalty part of F, from the scaled logits z."""
     free = network.free_names
+    eta = {k: z[k] * scale[k] for k in free}
+    lcs = tuple(jax.nn.log_softmax(eta[n.name], axis=-1) if n.fixed is None else fixed_lc[n.name]
+                for n in network.nodes)
+    lp = sum(jnp.sum(pseudo[k] * lcs[network.index(k)]) for k in free)
+    pen = sum(jnp.sum((eta[k] - jnp.mean(eta[k], axis=-1, keepdims=True)) ** 2) for k in free)
+    return lcs, lp - l2 * pen
 
-    @jax.custom_vjp
-    def loglik(lc, codes, weights):
-        return _loglik_logcpt(network, groups, lc, codes, weights)
 
-    def fwd(lc, codes, weights):
-        val, g = _value_and_expected_counts(network, groups, lc, codes, weights)
-        return val, g
+@partial(jax.jit, static_argnums=(0,))
+def _head_grad(network: Network, z, scale, pseudo, fixed_lc, l2, counts, n_total):
+    """Gradient of −F/N w.r.t. z, given ∂ log L/∂ log θ = the expected counts."""
+    _, vjp = jax.vjp(lambda zz: _head(network, zz, scale, pseudo, fixed_lc, l2), z)
+    (g,) = vjp((tuple(counts), jnp.ones((), jnp.float64)))
+    return {k: -v / n_total for k, v in g.items()}
 
-    def bwd(g, ct):
-        return tuple(ct * x for x in g), None, None
 
-    loglik.defvjp(fwd, bwd)
+def _objective_fg(network: Network, groups, z, scale, pseudo, fixed_lc, l2, n_total, codes, weights):
+    """−F/N and its gradient w.r.t. z.
 
-    def neg_obj(z, scale, pseudo, fixed_lc, l2, codes, weights):
-        eta = {k: z[k] * scale[k] for k in free}
-        lcs = []
-        for n in network.nodes:
-            lcs.append(jax.nn.log_softmax(eta[n.name], axis=-1) if n.fixed is None else fixed_lc[n.name])
-        ll = loglik(tuple(lcs), codes, weights)
-        lp = sum(jnp.sum(pseudo[k] * jax.nn.log_softmax(eta[k], axis=-1)) for k in free)
-        pen = sum(jnp.sum((eta[k] - jnp.mean(eta[k], axis=-1, keepdims=True)) ** 2) for k in free)
-        return -(ll + lp - l2 * pen) / n_total
+    Composed in Python from three compiled pieces, of which only the expected-counts scan is
+    large; it is the same compiled program that :meth:`Likelihood.expected_counts` uses, so one
+    fit compiles the elimination once. (Tracing the objective inside an optimiser's own
+    while-loop copies the whole elimination into one XLA computation several times and
+    multiplies the compile time.)
+    """
+    lcs, rest = _head(network, z, scale, pseudo, fixed_lc, l2)
+    ll, counts = _value_and_expected_counts(network, groups, lcs, codes, weights)
+    g = _head_grad(network, z, scale, pseudo, fixed_lc, l2, counts, n_total)
+    # the optimiser's bookkeeping runs in numpy: eager JAX ops would compile per leaf shape
+    return float(-(ll + rest) / n_total), {k: np.asarray(v) for k, v in g.items()}
 
-    return neg_obj
+
+@partial(jax.jit, static_argnums=(0,))
+def _lbfgs_direction(memory: int, grad, state, params):
+    return optax.scale_by_lbfgs(memory_size=memory).update(grad, state, params)
+
+
+@partial(jax.jit, static_argnums=(0,))
+def _adam_update(learning_rate: float, grad, state, params):
+    updates, state = optax.adam(learning_rate).update(grad, state, params)
+    return optax.apply_updates(params, updates), state
+
+
+def _dot(a, b) -> float:
+    return float(sum(np.vdot(a[k], b[k]) for k in a))
+
+
+def _axpy(alpha: float, d, x):
+    return {k: x[k] + alpha * d[k] for k in x}
+
+
+def wolfe_line_search(fg: Callable, x, f0: float, g0, d, *, c1: float = 1e-4, c2: float = 0.9,
+                      alpha0: float = 1.0, max_evals: int = 30):
+    """Strong-Wolfe line search (Nocedal & Wright 2006, Algorithms 3.5 and 3.6, with cubic
+    interpolation). ``fg(x) -> (f, g)``; ``d`` a descent direction. Returns
+    ``(alpha, f, g, n_evals)``, or ``(None, f0, g0, n)`` when no acceptable step was found."""
+    dphi0 = _dot(g0, d)
+    if not dphi0 < 0:
+        return None, f0, g0, 0
+    evals = 0
+    a_prev, f_prev, dphi_prev = 0.0, f0, dphi0
+    a = alpha0
+    best = (None, f0, g0)
+
+    def phi(alpha):
+        nonlocal evals
+        evals += 1
+        f, g = fg(_axpy(alpha, d, x))
+        f = float(f)
+        return f, g, (_dot(g, d) if math.isfinite(f) else float("nan"))
+
+    def zoom(lo, f_lo, dlo, hi, f_hi, dhi):
+        nonlocal best
+        while evals < max_evals:
+            # cubic interpolation between lo and hi, safeguarded to the middle 80 %
+            aj = _cubic(lo, f_lo, dlo, hi, f_hi, dhi)
+            left, right = min(lo, hi), max(lo, hi)
+            if not (math.isfinite(aj) and left + 0.1 * (right - left) <= aj <= right - 0.1 * (right - left)):
+                aj = 0.5 * (lo + hi)
+            fj, gj, dj = phi(aj)
+            if not math.isfinite(fj) or fj > f0 + c1 * aj * dphi0 or fj >= f_lo:
+                hi, f_hi, dhi = aj, fj if math.isfinite(fj) else f_hi, dj if math.isfinite(dj) else dhi
+            else:
+                if fj < best[1]:
+                    best = (aj, fj, gj)
+                if abs(dj) <= -c2 * dphi0:
+                    return aj, fj, gj
+                if dj * (hi - lo) >= 0:
+                    hi, f_hi, dhi = lo, f_lo, dlo
+                lo, f_lo, dlo = aj, fj, dj
+            if abs(hi - lo) < 1e-14 * max(1.0, abs(lo)):
+                break
+        return best
+
+    while evals < max_evals:
+        fa, ga, da = phi(a)
+        if not math.isfinite(fa):
+            # stepped out of the domain (e.g. -inf log-likelihood): shrink
+            a_hi = a
+            a = 0.5 * (a_prev + a_hi)
+            if a - a_prev < 1e-14:
+                break
+            continue
+        if fa > f0 + c1 * a * dphi0 or (evals > 1 and fa >= f_prev):
+            return zoom(a_prev, f_prev, dphi_prev, a, fa, da) + (evals,)
+        if fa < best[1]:
+            best = (a, fa, ga)
+        if abs(da) <= -c2 * dphi0:
+            return a, fa, ga, evals
+        if da >= 0:
+            return zoom(a, fa, da, a_prev, f_prev, dphi_prev) + (evals,)
+        a_prev, f_prev, dphi_prev = a, fa, da
+        a = 2.0 * a
+    return best + (evals,)
+
+
+def _cubic(a, fa, da, b, fb, db) -> float:
+    """Minimiser of the cubic through (a, fa, da) and (b, fb, db) (Nocedal & Wright eq. 3.59)."""
+    try:
+        d1 = da + db - 3 * (fa - fb) / (a - b)
+        disc = d1 * d1 - da * db
+        if disc < 0:
+            return float("nan")
+        d2 = math.copysign(math.sqrt(disc), b - a)
+        return b - (b - a) * (db + d2 - d1) / (db - da + 2 * d2)
+    except (ZeroDivisionError, OverflowError, ValueError):
+        return float("nan")
 
 
 @dataclass
@@ -169,43 +272,18 @@ class Fitter:
     """Holds the compiled objective for one network and data set; runs starts from it."""
 
     def __init__(self, network: Network, data: CodedData, *, settings: FitSettings,
-                 pseudo_counts: Mapping[str, np.ndarray] | None = None, route: str = "auto"):
+                 pseudo_counts: Mapping[str, np.ndarray] | None = None, route: str = "auto",
+                 likelihood: Likelihood | None = None):
         settings.validate()
         self.network = network
         self.data = data
         self.settings = settings
-        self.lik = Likelihood(network, data, route=route)
+        self.lik = likelihood if likelihood is not None else Likelihood(network, data, route=route)
         self.pseudo = _pseudo(network, pseudo_counts)
         self.n_total = float(data.n_rows)
         self.free = network.free_names
         with np.errstate(divide="ignore"):
             self.fixed_lc = {n: jnp.asarray(np.log(network.fixed_table(n))) for n in network.fixed_names}
-        neg_obj = _make_neg_objective(network, self.lik.plan.groups, self.n_total)
-        self._neg_obj = neg_obj
-        if settings.method == "lbfgs":
-            self.opt = optax.lbfgs(memory_size=settings.memory,
-                                   linesearch=optax.scale_by_zoom_linesearch(max_linesearch_steps=40, initial_guess_strategy="one"))
-        else:
-            self.opt = optax.adam(settings.learning_rate)
-        opt = self.opt
-
-        def f(z, scale, pseudo, fixed_lc, l2, codes, weights):
-            return neg_obj(z, scale, pseudo, fixed_lc, l2, codes, weights)
-
-        if settings.method == "lbfgs":
-            @jax.jit
-            def step(z, state, scale, pseudo, fixed_lc, l2, codes, weights):
-                fz = lambda zz: f(zz, scale, pseudo, fixed_lc, l2, codes, weights)  # noqa: E731
-                value, grad = optax.value_and_grad_from_state(fz)(z, state=state)
-                updates, state = opt.update(grad, state, z, value=value, grad=grad, value_fn=fz)
-                return optax.apply_updates(z, updates), state, value
-        else:
-            @jax.jit
-            def step(z, state, scale, pseudo, fixed_lc, l2, codes, weights):
-                value, grad = jax.value_and_grad(f)(z, scale, pseudo, fixed_lc, l2, codes, weights)
-                updates, state = opt.update(grad, state, z)
-                return optax.apply_updates(z, updates), state, value
-        self._step = step
 
     # -- helpers -------------------------------------------------------------------------
     def probs(self, logits: Mapping[str, Any]) -> dict[str, np.ndarray]:
@@ -227,75 +305,134 @@ class Fitter:
                 "objective": ll + lp - pen, "grad": g, "gradient_norm": _norm(g),
                 "residual": resid, "counts": counts}
 
-    def _scale(self, counts: Mapping[str, np.ndarray]) -> dict[str, jax.Array]:
+    def _scale(self, counts: Mapping[str, np.ndarray], probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+        """Diagonal preconditioner: 1/sqrt(N(u)·θ(x|u) + ε) per logit.
+
+        For a completely observed CPT row with count N(u), the Hessian of the log-likelihood in
+        the logits is −N(u)(diag θ − θθᵀ); scaling logit k by 1/sqrt(N(u)θ_k) turns it into
+        −(I − √θ√θᵀ), whose non-zero eigenvalues are all 1. What is left for the quasi-Newton
+        method is the conditioning due to missing information.
+        """
         out = {}
         for name in self.free:
             nu = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
-            out[name] = jnp.asarray(1.0 / np.sqrt(nu + 1.0))
+            out[name] = 1.0 / np.sqrt(nu * np.asarray(probs[name]) + SCALE_EPS)
         return out
 
     def run(self, logits0: Mapping[str, Any], *, progress: Callable[[int, float, float], None] | None = None) -> _Run:
+        """One start. The per-iteration value and gradient are those the optimiser computed
+        anyway; the exact residual is evaluated only when a stopping rule fires."""
         s = self.settings
+        N = self.n_total
         logits = {k: np.asarray(logits0[k], dtype=np.float64) for k in self.free}
         ev = self.evaluate(logits)
         hist_obj = [ev["objective"]]
         hist_gn = [ev["gradient_norm"]]
         it = 0
-        gtol_abs = s.gtol * self.n_total
+        gtol_abs = s.gtol * N
         codes, weights = self.lik._codes, self.lik._weights
         pseudo = {k: jnp.asarray(v) for k, v in self.pseudo.items()}
-        l2 = jnp.asarray(s.l2)
+        l2 = jnp.asarray(float(s.l2))
+        n_total = jnp.asarray(N)
         stop_reason, converged = "", False
         if not math.isfinite(ev["objective"]):
             return _Run(logits, ev["objective"], hist_obj, hist_gn, 0, False, "objective not finite at the start")
-        while it < s.max_iter:
+        stalled_phases = 0
+        n_phase = 0
+        while it < s.max_iter and not converged:
             if ev["gradient_norm"] <= gtol_abs:
                 converged, stop_reason = True, "gradient norm below gtol"
                 break
-            scale = self._scale(ev["counts"])
-            z = {k: jnp.asarray(logits[k]) / scale[k] for k in self.free}
-            state = self.opt.init(z)
-            flat_count = 0
+            scale = self._scale(ev["counts"], ev["probs"])
+            phase_len = PHASE_LENGTHS[min(n_phase, len(PHASE_LENGTHS) - 1)] if s.method == "lbfgs" else s.max_iter
+            n_phase += 1
+
+            def fg(zz):
+                return _objective_fg(self.network, self.lik.plan.groups, zz, scale, pseudo, self.fixed_lc,
+                                     l2, n_total, codes, weights)
+
+            z = {k: np.asarray(logits[k]) / np.asarray(scale[k]) for k in self.free}
+            f, g = fg(z)
+            if s.method == "lbfgs":
+                state = optax.scale_by_lbfgs(memory_size=s.memory).init(z)
+            else:
+                state = optax.adam(s.learning_rate).init(z)
             phase_start = it
-            prev = ev["objective"]
-            phase_done = False
+            prev = f
+            flat_count = 0
+            stop_phase = False
             while it < s.max_iter:
-                z, state, value = self._step(z, state, scale, pseudo, self.fixed_lc, l2, codes, weights)
+                if s.method == "lbfgs":
+                    d, state = _lbfgs_direction(s.memory, g, state, z)
+                    d = {k: -np.asarray(d[k]) for k in self.free}
+                    alpha, f_new, g_new, _ = wolfe_line_search(fg, z, f, g, d)
+                    if alpha is None:
+                        # No decrease along the direction: either the objective is flat to
+                        # machine precision (converged if the residual is small) or the
+                        # quasi-Newton memory is stale (restart the phase).
+                        cand = {k: z[k] * scale[k] for k in self.free}
+                        ev_c = self.evaluate(cand)
+                        if ev_c["residual"] <= math.sqrt(s.tol) or ev_c["gradient_norm"] <= gtol_abs:
+                            logits, ev = cand, ev_c
+                            converged = True
+                            stop_reason = ("gradient norm below gtol" if ev_c["gradient_norm"] <= gtol_abs
+                                           else "objective flat to machine precision, residual below sqrt(tol)")
+                            break
+                        if it - phase_start <= 1:
+                            stop_reason = "line search found no better point"
+                        stop_phase = True
+                        break
+                    z = _axpy(alpha, d, z)
+                    f, g = f_new, g_new
+                else:
+                    z, state = _adam_update(s.learning_rate, g, state, z)
+                    z = {k: np.asarray(v) for k, v in z.items()}
+                    f, g = fg(z)
                 it += 1
-                obj = -float(value) * self.n_total  # value is at the point before the step
-                logits_new = {k: np.asarray(z[k] * scale[k]) for k in self.free}
-                # cheap bookkeeping every iteration: objective and gradient at the new point
-                ev_new = self.evaluate(logits_new)
-                if not math.isfinite(ev_new["objective"]):
-                    stop_reason = "objective not finite (line search failure)"
-                    phase_done = True
+                if not math.isfinite(f):
+                    stop_reason = "objective not finite"
+                    stop_phase = True
                     break
-                logits, ev = logits_new, ev_new
-                hist_obj.append(ev["objective"])
-                hist_gn.append(ev["gradient_norm"])
+                obj = -f * N
+                gn = _norm({k: -N * g[k] / scale[k] for k in self.free})
+                hist_obj.append(obj)
+                hist_gn.append(gn)
                 if progress is not None:
-                    progress(it, ev["objective"], ev["gradient_norm"])
-                if ev["gradient_norm"] <= gtol_abs:
-                    converged, stop_reason = True, "gradient norm below gtol"
-                    break
-                rel = abs(ev["objective"] - prev) / max(1.0, abs(ev["objective"]))
-                prev = ev["objective"]
+                    progress(it, obj, gn)
+                rel = abs(f - prev) / max(1.0 / N, abs(f))
+                prev = f
                 flat_count = flat_count + 1 if rel < s.tol else 0
-                if flat_count >= 5:
-                    if ev["residual"] <= math.sqrt(s.tol):
+                if gn <= gtol_abs or flat_count >= 5:
+                    cand = {k: z[k] * scale[k] for k in self.free}
+                    ev_c = self.evaluate(cand)
+                    if ev_c["gradient_norm"] <= gtol_abs:
+                        logits, ev = cand, ev_c
+                        converged, stop_reason = True, "gradient norm below gtol"
+                        break
+                    if flat_count >= 5 and ev_c["residual"] <= math.sqrt(s.tol):
+                        logits, ev = cand, ev_c
                         converged, stop_reason = True, "relative change below tol"
                         break
-                    phase_done = True  # stalled with a large residual: rescale and restart
-                    break
-                if s.method == "lbfgs" and it - phase_start >= 200:
-                    phase_done = True  # refresh the scaling now and then
-                    break
-            del obj
+                    if flat_count >= 5:
+                        stop_phase = True  # stalled with a large residual: rescale and restart
+                        break
+                if it - phase_start >= phase_len:
+                    break  # refresh the preconditioner
             if converged:
                 break
-            if phase_done and it - phase_start <= 5 and stop_reason.startswith("objective not finite"):
+            cand = {k: z[k] * scale[k] for k in self.free}
+            ev_c = self.evaluate(cand)
+            if math.isfinite(ev_c["objective"]) and ev_c["objective"] >= ev["objective"]:
+                gained = ev_c["objective"] - ev["objective"]
+                logits, ev = cand, ev_c
+            else:
+                gained = 0.0
+            stalled_phases = stalled_phases + 1 if gained <= s.tol * max(1.0, abs(ev["objective"])) else 0
+            if stop_phase and stalled_phases >= 2:
+                stop_reason = stop_reason or "no further progress after rescaling"
                 break
-            stop_reason = stop_reason or ""
+            if ev["gradient_norm"] <= gtol_abs:
+                converged, stop_reason = True, "gradient norm below gtol"
         if not converged and not stop_reason:
             stop_reason = f"iteration limit {s.max_iter} reached"
         return _Run(logits, ev["objective"], hist_obj, hist_gn, it, converged, stop_reason)

@@ -545,7 +545,9 @@ def probs_from_logits(network: Network, logits: Mapping[str, jax.Array]) -> dict
     out = {}
     for n in network.nodes:
         if n.fixed is None:
-            out[n.name] = np.asarray(jax.nn.softmax(jnp.asarray(logits[n.name]), axis=-1))
+            e = np.asarray(logits[n.name], dtype=np.float64)
+            e = np.exp(e - e.max(axis=-1, keepdims=True))  # numpy: eager JAX compiles per shape
+            out[n.name] = e / e.sum(axis=-1, keepdims=True)
         else:
             out[n.name] = network.fixed_table(n.name)
     return out
@@ -556,12 +558,18 @@ def logits_from_probs(network: Network, probs: Mapping[str, np.ndarray], floor: 
     out = {}
     for name in network.free_names:
         lp = np.log(np.maximum(np.asarray(probs[name], dtype=np.float64), floor))
-        out[name] = jnp.asarray(lp - lp.max(axis=-1, keepdims=True))
+        out[name] = lp - lp.max(axis=-1, keepdims=True)
     return out
 
 
 def check_possible(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> None:
-    """Raise ImpossibleDataError naming the rows with probability zero under ``probs``."""
+    """Raise ImpossibleDataError naming the rows with probability zero under ``probs``.
+
+    The per-row pass (a separate compiled program) runs only when the total is not finite.
+    """
+    total, _ = lik.expected_counts(probs)
+    if math.isfinite(total):
+        return
     ll = lik.row_logliks(probs)
     bad = np.flatnonzero(~np.isfinite(ll))
     if bad.size:
