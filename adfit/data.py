@@ -283,22 +283,72 @@ class LabelCoder:
             raise self.label_error(name, _value_at(values, i), locate(row_offset + i))
 
 
-def count_values(values: Any, name: str, locate: Locate, row_offset: int = 0) -> np.ndarray:
-    """The weights of a count column as float64; raises DataError at the first invalid one."""
+def _count_problem(values: Any) -> tuple[np.ndarray, int | None, str]:
+    """``(weights, first bad index or None, what is wrong with it)`` of a count column."""
     if hasattr(values, "to_pandas"):
         values = values.to_pandas()
     s = pd.Series(values).reset_index(drop=True)
-    if s.dtype == bool or s.dtype == object and s.map(lambda v: isinstance(v, (bool, np.bool_))).any():
-        bad = int(np.flatnonzero(s.map(lambda v: isinstance(v, (bool, np.bool_))).to_numpy())[0])
-        raise DataError(f"{locate(row_offset + bad)}, column {name!r}: count {s.iloc[bad]!r} is not a number; "
-                        f"counts must be numbers >= 0")
-    vals = pd.to_numeric(s, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
-    bad = np.flatnonzero(~np.isfinite(vals) | (vals < 0))
-    if bad.size:
-        i = int(bad[0])
-        raise DataError(f"{locate(row_offset + i)}, column {name!r}: count {_show(s.iloc[i])} is not a "
-                        f"non-negative number; counts must be numbers >= 0 (no gaps in the count column)")
+    is_bool = (np.ones(len(s), dtype=bool) if pd.api.types.is_bool_dtype(s.dtype) else
+               s.map(lambda v: isinstance(v, (bool, np.bool_))).to_numpy(dtype=bool) if s.dtype == object else None)
+    vals = pd.to_numeric(s.where(~is_bool, None) if is_bool is not None and is_bool.any() and s.dtype == object
+                         else s, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+    bad_mask = ~np.isfinite(vals) | (vals < 0)
+    if is_bool is not None:
+        bad_mask |= is_bool
+    bad = np.flatnonzero(bad_mask)
+    if not bad.size:
+        return vals, None, ""
+    i = int(bad[0])
+    v = s.iloc[i]
+    if is_bool is not None and is_bool[i]:
+        return vals, i, f"count {_show(bool(v))} is not a number; counts must be numbers >= 0"
+    return vals, i, (f"count {_show(v)} is not a non-negative number; counts must be numbers >= 0 "
+                     f"(no gaps in the count column)")
+
+
+def count_values(values: Any, name: str, locate: Locate, row_offset: int = 0) -> np.ndarray:
+    """The weights of a count column as float64; raises DataError at the first invalid one."""
+    vals, i, what = _count_problem(values)
+    if i is not None:
+        raise DataError(f"{locate(row_offset + i)}, column {name!r}: {what}")
     return vals
+
+
+class _FirstError:
+    """The error of the earliest row offered (on a tie, the one offered first)."""
+
+    def __init__(self) -> None:
+        self.row: int | None = None
+        self.make: Callable[[], DataError] | None = None
+
+    def offer(self, row: int, make: Callable[[], DataError]) -> None:
+        if self.row is None or row < self.row:
+            self.row, self.make = row, make
+
+    def raise_if_any(self) -> None:
+        if self.make is not None:
+            raise self.make()
+
+
+def first_error(coder: "LabelCoder", get: Callable[[str], Any], names: Sequence[str], count_column: str | None,
+                locate: Locate, row_offset: int = 0) -> DataError | None:
+    """The error of the earliest bad cell among the columns ``names`` (and the count column), or None.
+
+    Within one row, a label error comes before a count error and columns go in the order given.
+    """
+    first = _FirstError()
+    for name in names:
+        col = get(name)
+        bad = np.flatnonzero(coder.code(name, col) == UNKNOWN)
+        if bad.size:
+            i = int(bad[0])
+            first.offer(i, lambda name=name, col=col, i=i: coder.label_error(name, _value_at(col, i),
+                                                                            locate(row_offset + i)))
+    if count_column is not None:
+        _, i, what = _count_problem(get(count_column))
+        if i is not None:
+            first.offer(i, lambda: DataError(f"{locate(row_offset + i)}, column {count_column!r}: {what}"))
+    return first.make() if first.make is not None else None
 
 
 def check_columns(network: Network, columns: Sequence[str], *, count_column: str | None = None,
@@ -358,18 +408,24 @@ def code_columns(network: Network, coder: LabelCoder, get: Callable[[str], Any],
     Returns ``(rows, weights)`` with one entry per record (weights None without a count column):
     ``rows`` is the int32 code matrix ``(n, n_nodes)``, or with ``packed=True`` and a key that
     fits in int64, the packed int64 keys ``(n,)`` (no code matrix is built: less memory).
-    Raises DataError at the first unknown label (column by column, in network order) or invalid
-    count, naming the row through ``locate(row_offset + i)``.
+    Raises DataError for the earliest row holding an unknown label or an invalid count (within a
+    row: labels in network order, then the count), naming the row through ``locate(row_offset + i)``.
     """
     mult, _ = key_layout(network.cards) if packed else (None, None)
     if mult is not None:
         rows = np.zeros(n, dtype=np.int64)  # latent and hidden cells add (-1 + 1) * mult = 0
     else:
         rows = np.full((n, len(network)), HIDDEN, dtype=np.int32, order="F")  # filled column by column
+    first = _FirstError()
     for name in network.observed_names:
         col = get(name)
         c = coder.code(name, col)
-        coder.check(name, c, col, locate, row_offset)
+        bad = np.flatnonzero(c == UNKNOWN)
+        if bad.size:
+            i = int(bad[0])
+            first.offer(i, lambda name=name, col=col, i=i: coder.label_error(name, _value_at(col, i),
+                                                                            locate(row_offset + i)))
+            continue
         j = network.index(name)
         if mult is not None:
             rows += (c.astype(np.int64) + 1) * mult[j]
@@ -377,7 +433,10 @@ def code_columns(network: Network, coder: LabelCoder, get: Callable[[str], Any],
             rows[:, j] = c
     weights = None
     if count_column is not None:
-        weights = count_values(get(count_column), count_column, locate, row_offset)
+        weights, i, what = _count_problem(get(count_column))
+        if i is not None:
+            first.offer(i, lambda: DataError(f"{locate(row_offset + i)}, column {count_column!r}: {what}"))
+    first.raise_if_any()
     return rows, weights
 
 

@@ -37,8 +37,8 @@ import numpy as np
 import pandas as pd
 
 from .data import (UNKNOWN, CodedData, LabelCoder, check_columns, code_columns, common_columns, count_values,
-                   csv_header, encode_frame, iter_csv_batches, iter_parquet_batches, key_layout, load_files,
-                   locator, packed_keys, parquet_names, reduce_rows, resolve_inputs, sum_by_key, unpack_keys, _csv_error)
+                   csv_header, encode_frame, first_error, iter_csv_batches, iter_parquet_batches, key_layout, load_files,
+                   locator, packed_keys, parquet_names, reduce_rows, resolve_inputs, sum_by_key, unpack_keys, _count_problem, _csv_error)
 from .errors import DataError, OptionError
 from .network import Network
 
@@ -188,17 +188,17 @@ def reduce_stream(plan: ReadPlan) -> CodedData:
     return _finish(plan, *acc.result())
 
 
-def _first_bad(plan: ReadPlan, column: str) -> None:
-    """Scan one column of every file in order and raise the error of its first bad cell."""
+def _first_bad(plan: ReadPlan, columns: Sequence[str]) -> None:
+    """Scan ``columns`` of every file in order; raise the error of the earliest bad cell."""
+    names = [c for c in columns if c != plan.count_column]
+    count = plan.count_column if plan.count_column in columns else None
     for f in plan.files:
         locate = locator(Path(f), plan.fmt)
         offset = 0
-        for batch in _batches(plan, f, [column]):
-            values = batch.column(0)
-            if column == plan.count_column:
-                count_values(values, column, locate, offset)
-            else:
-                plan.coder.check(column, plan.coder.code(column, values), values, locate, offset)
+        for batch in _batches(plan, f, list(columns)):
+            err = first_error(plan.coder, batch.column, names, count, locate, offset)
+            if err is not None:
+                raise err
             offset += batch.num_rows
 
 
@@ -289,22 +289,23 @@ def _code_grouped(plan: ReadPlan, table: Any) -> CodedData:
     net = plan.network
     n = table.num_rows
     codes = np.full((n, len(net)), -1, dtype=np.int32)
+    suspects: list[str] = []  # columns holding a bad value somewhere
     for i, name in enumerate(plan.read):
         if name == plan.count_column:
             continue
         c = plan.coder.code(name, table.column(i))
         if np.any(c == UNKNOWN):
-            _first_bad(plan, name)  # raises with the file and line of the first bad cell
-            raise DataError(f"{plan.source}: column {name!r} holds a label that is not a state of {name!r}")
+            suspects.append(name)
         codes[:, net.index(name)] = c
     weights = table.column(len(plan.read)).to_numpy().astype(np.float64)
     if plan.count_column is not None:
-        try:
-            w = count_values(table.column(len(plan.read) - 1), plan.count_column, lambda i: plan.source)
-        except DataError:
-            _first_bad(plan, plan.count_column)
-            raise
+        w, bad, _ = _count_problem(table.column(len(plan.read) - 1))
+        if bad is not None:
+            suspects.append(plan.count_column)
         weights = weights * w
+    if suspects:
+        _first_bad(plan, suspects)  # raises with the file and line of the earliest bad cell
+        raise DataError(f"{plan.source}: column(s) {suspects} hold values that cannot be read; check them")
     acc = Accumulator(net.cards)
     acc.add(codes, weights)
     return _finish(plan, *acc.result())
@@ -356,17 +357,24 @@ def reduce_dask(plan: ReadPlan, scheduler: str | None = None) -> CodedData:
         from distributed import as_completed
         pieces = _pieces(plan, rows_per_piece=max(plan.chunk_rows, 1))
         futures = [client.submit(reduce_piece, plan, f, g, off, pure=False) for f, g, off in pieces]
+        order = {fut.key: k for k, fut in enumerate(futures)}
         acc = Accumulator(plan.network.cards)
-        try:
-            for fut in as_completed(futures):
+        errors: dict[int, DataError] = {}
+        for fut in as_completed(futures):
+            k = order[fut.key]
+            if errors and k > min(errors):
+                continue  # a piece after one that failed: its result no longer matters
+            try:
                 acc.add(*fut.result())
-        except DataError:
-            client.cancel(futures)
-            raise
-        except Exception as e:  # a worker died, lost the connection, ...
-            client.cancel(futures)
-            raise DataError(f"{plan.source}: a Dask task failed ({type(e).__name__}: "
-                            f"{str(e).splitlines()[0] if str(e) else ''})") from None
+            except DataError as e:
+                errors[k] = e
+                client.cancel([f for f in futures[k + 1:] if not f.done()])
+            except Exception as e:  # a worker died, lost the connection, ...
+                client.cancel(futures)
+                raise DataError(f"{plan.source}: a Dask task failed ({type(e).__name__}: "
+                                f"{str(e).splitlines()[0] if str(e) else ''})") from None
+        if errors:
+            raise errors[min(errors)]  # the earliest piece's error, whichever task finished first
         return _finish(plan, *acc.result())
     finally:
         client.close()

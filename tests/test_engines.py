@@ -347,3 +347,25 @@ def test_dask_without_scheduler_starts_and_closes_a_local_cluster(penguin_files)
     with pytest.raises(ValueError):  # no client left behind
         default_client()
     assert threading.active_count() <= before + 2
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_the_earliest_bad_row_is_reported_in_every_engine(tmp_path, cluster, engine):
+    rows = [["low", "none", "1", "1"]] * 40
+    rows[30] = ["lo", "none", "1", "1"]       # first node, late row
+    rows[12] = ["low", "none", "3", "1"]      # last node, earlier row
+    rows[25] = ["low", "nix", "1", "1"]
+    (tmp_path / "parts").mkdir()
+    head = "load,wear,temp,n\n"
+    for k, part in enumerate((rows[:20], rows[20:])):
+        (tmp_path / "parts" / f"p{k}.csv").write_text(head + "".join(",".join(r) + "\n" for r in part))
+    with pytest.raises(DataError) as e:
+        run(NET, tmp_path / "parts", engine, cluster, chunk_rows=5, count_column="n")
+    assert one_line(e).startswith(f"{tmp_path / 'parts' / 'p0.csv'}: line 14 (data row 13), column 'temp': label '3'")
+    rows[12] = ["low", "none", "1", "-2"]     # now a bad count comes first
+    rows[3] = ["low", "none", "1", "x"]
+    for k, part in enumerate((rows[:20], rows[20:])):
+        (tmp_path / "parts" / f"p{k}.csv").write_text(head + "".join(",".join(r) + "\n" for r in part))
+    with pytest.raises(DataError) as e:
+        run(NET, tmp_path / "parts", engine, cluster, chunk_rows=5, count_column="n")
+    assert one_line(e).startswith(f"{tmp_path / 'parts' / 'p0.csv'}: line 5 (data row 4), column 'n': count 'x'")
