@@ -79,6 +79,8 @@ class _PatternPlan:
     assigned: tuple[tuple[int, ...], ...]  # nodes whose factor sits in each cluster
     hidden_fams: tuple[_FamilyIndex, ...]  # families with at least one hidden member
     const_fams: tuple[_FamilyIndex, ...]   # families fully observed in this pattern
+    evidence: tuple[tuple[int, np.ndarray], ...] = ()  # (node, (n, card) 0/1 indicator) of partial nodes
+    ev_assigned: tuple[tuple[int, ...], ...] = ()     # evidence indicators sitting in each cluster
 
 
 def _min_fill_order(hidden: Sequence[int], scopes: Iterable[Sequence[int]], cards: Sequence[int]) -> list[int]:
@@ -124,16 +126,24 @@ def _family_index(network: Network, v: int, hidden_set: set[int], codes: np.ndar
                         int(math.prod(obs_cards)), tuple(cards[fam[a]] for a in hid_axes))
 
 
-def _pattern_plan(network: Network, rows: np.ndarray, codes: np.ndarray, weights: np.ndarray,
-                  hidden: tuple[int, ...]) -> _PatternPlan:
-    hidden_set = set(hidden)
+def _pattern_plan(network: Network, rows: np.ndarray, codes: np.ndarray, weights: np.ndarray) -> _PatternPlan:
+    """Junction tree for a group of rows.
+
+    A node observed in every row of the group indexes the CPTs directly; every other node (hidden
+    in every row, or observed in some: *partial*) is a variable of the junction tree, and a partial
+    node gets an evidence indicator per row (1 at the observed state, or everywhere when missing).
+    """
+    miss = codes == HIDDEN
+    tree_vars = tuple(int(j) for j in np.flatnonzero(miss.any(axis=0)))
+    partial = [j for j in tree_vars if not miss[:, j].all()]
+    hidden_set = set(tree_vars)
     fams = [_family_index(network, v, hidden_set, codes) for v in range(len(network))]
     hidden_fams = tuple(f for f in fams if f.hid_vars)
     const_fams = tuple(f for f in fams if not f.hid_vars)
-    order = _min_fill_order(hidden, [f.hid_vars for f in hidden_fams], network.cards)
+    order = _min_fill_order(tree_vars, [f.hid_vars for f in hidden_fams], network.cards)
     pos = {v: i for i, v in enumerate(order)}
     # clusters from the elimination
-    adj: dict[int, set[int]] = {v: set() for v in hidden}
+    adj: dict[int, set[int]] = {v: set() for v in tree_vars}
     for f in hidden_fams:
         for a in f.hid_vars:
             adj[a] |= set(f.hid_vars) - {a}
@@ -151,11 +161,32 @@ def _pattern_plan(network: Network, rows: np.ndarray, codes: np.ndarray, weights
     assigned: list[list[int]] = [[] for _ in order]
     for k, f in enumerate(hidden_fams):
         assigned[min(pos[u] for u in f.hid_vars)].append(k)
+    evidence = []
+    ev_assigned: list[list[int]] = [[] for _ in order]
+    for j in partial:
+        c = codes[:, j]
+        ind = np.zeros((codes.shape[0], network.cards[j]))
+        seen = c != HIDDEN
+        ind[~seen] = 1.0
+        ind[np.flatnonzero(seen), c[seen]] = 1.0
+        ev_assigned[pos[j]].append(len(evidence))
+        evidence.append((j, ind))
     return _PatternPlan(rows, weights, tuple(clusters), tuple(seps), parent, children,
-                        tuple(tuple(a) for a in assigned), hidden_fams, const_fams)
+                        tuple(tuple(a) for a in assigned), hidden_fams, const_fams,
+                        tuple(evidence), tuple(tuple(a) for a in ev_assigned))
+
+
+def _largest_cluster(network: Network, pp: _PatternPlan) -> int:
+    return max((math.prod(network.cards[v] for v in c) for c in pp.clusters), default=1)
 
 
 # =============================================================================== numerics
+#: a missingness pattern with fewer distinct rows than this shares the pooled group
+MIN_GROUP_ROWS = 16
+#: pool rare patterns only if the pooled junction tree's largest cluster has at most this many entries
+POOL_MAX_WIDTH = 1 << 12
+#: rows x largest cluster entries processed at once (memory bound, ~32 MB per potential)
+CHUNK_ENTRIES = 1 << 22
 #: most potentials multiplied in one einsum call; longer products go in rescaled chunks
 _CHUNK = 8
 
@@ -198,7 +229,7 @@ def _contract(pots: Sequence[tuple[np.ndarray, tuple[int, ...], bool]], out: tup
     if not ops:
         return np.ones((n,) + tuple(cards[v] for v in out)), logs
     if any_batched:
-        return np.einsum(*ops, [row] + [lab(v) for v in out]), logs
+        return np.einsum(*ops, [row] + [lab(v) for v in out], optimize="greedy"), logs
     res = np.einsum(*ops, [lab(v) for v in out])
     return np.broadcast_to(res, (n,) + res.shape), logs
 
@@ -227,14 +258,30 @@ class EStep:
         codes = np.asarray(data.codes)
         if codes.ndim != 2 or codes.shape[1] != len(network):
             raise OptionError(f"{data.source}: coded data has shape {codes.shape}, expected (rows, {len(network)})")
-        hidden = codes == HIDDEN
-        keys, inverse = np.unique(hidden, axis=0, return_inverse=True)
+        w_all = np.asarray(data.counts, dtype=np.float64)
+        keys, inverse = np.unique(codes == HIDDEN, axis=0, return_inverse=True)
         inverse = inverse.reshape(-1)
+        sizes = np.bincount(inverse, minlength=keys.shape[0])
+        groups = [np.flatnonzero(inverse == k) for k in np.flatnonzero(sizes >= MIN_GROUP_ROWS)]
+        rare = np.flatnonzero(sizes[inverse] < MIN_GROUP_ROWS)
+        if rare.size:
+            # rare patterns share one group with evidence indicators, unless that makes the
+            # junction tree too wide (then each keeps its own, narrower tree)
+            pooled = _pattern_plan(network, rare, codes[rare], w_all[rare])
+            if _largest_cluster(network, pooled) <= POOL_MAX_WIDTH:
+                groups.append(rare)
+            else:
+                groups.extend(np.flatnonzero(inverse == k) for k in np.flatnonzero(sizes < MIN_GROUP_ROWS))
         self.patterns: list[_PatternPlan] = []
-        for k in range(keys.shape[0]):
-            rows = np.flatnonzero(inverse == k)
-            hid = tuple(int(j) for j in np.flatnonzero(keys[k]))
-            self.patterns.append(_pattern_plan(network, rows, codes[rows], np.asarray(data.counts)[rows], hid))
+        for rows in groups:
+            first = _pattern_plan(network, rows, codes[rows], w_all[rows])
+            chunk = max(1, CHUNK_ENTRIES // _largest_cluster(network, first))
+            if rows.size <= chunk:
+                self.patterns.append(first)
+                continue
+            for a in range(0, rows.size, chunk):
+                r = rows[a:a + chunk]
+                self.patterns.append(_pattern_plan(network, r, codes[r], w_all[r]))
         # counts of families that are fully observed do not depend on the parameters
         self._complete = {name: np.zeros(network.cpt_shape(name)) for name in network.names}
         for pp in self.patterns:
@@ -281,10 +328,12 @@ class EStep:
         if m == 0:
             return ll
         fac = [self._factor(f, tables[f.node]) for f in pp.hidden_fams]
+        ev = [(ind, (j,), True) for j, ind in pp.evidence]
         # upward (collect) pass: variable elimination in the plan's order
         up: list[Any] = [None] * m
         for i in range(m):
-            pots = [fac[k] for k in pp.assigned[i]] + [up[c] for c in pp.children[i]]
+            pots = ([fac[k] for k in pp.assigned[i]] + [ev[k] for k in pp.ev_assigned[i]]
+                    + [up[c] for c in pp.children[i]])
             msg, logs0 = _contract(pots, pp.seps[i], n, cards)
             msg, logs = _rescale(msg)
             ll += logs0 + logs
@@ -294,7 +343,7 @@ class EStep:
         w = np.where(np.isfinite(ll), pp.weights, 0.0)
         names = self.network.names
         for i in reversed(range(m)):
-            base = [fac[k] for k in pp.assigned[i]]
+            base = [fac[k] for k in pp.assigned[i]] + [ev[k] for k in pp.ev_assigned[i]]
             if pp.parent[i] >= 0:
                 base.append(down[i])
             for c in pp.children[i]:

@@ -190,10 +190,23 @@ def test_stouffer_toby_latent_class():
 
 
 # ============================================================================ exact inference
+GROUPINGS = {  # how EStep groups the rows: (MIN_GROUP_ROWS, POOL_MAX_WIDTH, CHUNK_ENTRIES)
+    "pooled": (10 ** 9, 10 ** 9, 1 << 22),   # every row in one group with evidence indicators
+    "per-pattern": (1, 10 ** 9, 1 << 22),    # one junction tree per missingness pattern
+    "pool-refused": (10 ** 9, 1, 1 << 22),   # pooling refused (too wide): one tree per pattern
+    "chunked": (10 ** 9, 10 ** 9, 60),       # one pooled group split in chunks of a few rows
+}
+
+
+@pytest.mark.parametrize("grouping", list(GROUPINGS))
 @pytest.mark.parametrize("seed", range(12))
-def test_expected_counts_match_enumeration(seed):
+def test_expected_counts_match_enumeration(seed, grouping, monkeypatch):
     # brute-force enumeration of every completion of every row (an oracle independent of the
-    # junction tree), at random CPTs
+    # junction tree), at random CPTs, under every way of grouping the rows
+    import adfit.em as em_mod
+
+    for attr, val in zip(("MIN_GROUP_ROWS", "POOL_MAX_WIDTH", "CHUNK_ENTRIES"), GROUPINGS[grouping]):
+        monkeypatch.setattr(em_mod, attr, val)
     net, data, _ = random_case(seed, p_missing=0.4)
     probs = random_start(net, seed + 100)
     counts, ll = expected_counts(net, probs, data)
