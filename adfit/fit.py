@@ -19,8 +19,10 @@ Stopping rule (``converged`` is True only when it held):
       counts, N(x,u) + c − θ·(N(u) + Σc)) is at most ``gtol`` × number of records; or
     * objective: the relative change of F stayed below ``tol`` for 5 iterations in a row and the
       largest per-row residual in probability units, |∂F/∂η| / (N(u) + Σc), is at most
-      ``sqrt(tol)``. Cells whose MLE is on the boundary (θ → 0) have logits that run off to
-      −∞; the probability-unit residual still goes to 0 there, so the rule stays meaningful.
+      ``ptol`` (1e-8 by default: for a completely observed row the residual is |θ̂ − θ|, so the
+      printed probabilities are then accurate to about 1e-8). Cells whose MLE is on the
+      boundary (θ → 0) have logits that run off to −∞; the probability-unit residual still goes
+      to 0 there, so the rule stays meaningful.
 """
 
 from __future__ import annotations
@@ -48,6 +50,8 @@ METHODS = ("lbfgs", "adam")
 SCALE_EPS = 0.1
 # L-BFGS restarts with a fresh preconditioner after these many iterations (then the last one)
 PHASE_LENGTHS = (10, 20, 40, 80, 160)
+# EM steps (from the same expected counts) tried when a quasi-Newton phase stalls
+EM_POLISH_STEPS = 5
 
 
 @dataclass(frozen=True)
@@ -55,6 +59,7 @@ class FitSettings:
     method: str = "lbfgs"
     tol: float = 1e-10
     gtol: float = 1e-9
+    ptol: float = 1e-8
     max_iter: int = 1000
     learning_rate: float = 0.05
     memory: int = 20
@@ -65,6 +70,8 @@ class FitSettings:
             raise OptionError(f"--method must be one of {', '.join(METHODS)}, got {self.method!r}")
         if not (self.tol > 0):
             raise OptionError(f"--tol must be > 0, got {self.tol}")
+        if not (self.ptol > 0):
+            raise OptionError(f"--ptol must be > 0, got {self.ptol}")
         if not (self.gtol > 0):
             raise OptionError(f"--gtol must be > 0, got {self.gtol}")
         if self.max_iter < 1:
@@ -282,6 +289,7 @@ class Fitter:
         self.pseudo = _pseudo(network, pseudo_counts)
         self.n_total = float(data.n_rows)
         self.free = network.free_names
+        self.em_polish_steps = 0
         with np.errstate(divide="ignore"):
             self.fixed_lc = {n: jnp.asarray(np.log(network.fixed_table(n))) for n in network.fixed_names}
 
@@ -372,11 +380,11 @@ class Fitter:
                         # quasi-Newton memory is stale (restart the phase).
                         cand = {k: z[k] * scale[k] for k in self.free}
                         ev_c = self.evaluate(cand)
-                        if ev_c["residual"] <= math.sqrt(s.tol) or ev_c["gradient_norm"] <= gtol_abs:
+                        if ev_c["residual"] <= s.ptol or ev_c["gradient_norm"] <= gtol_abs:
                             logits, ev = cand, ev_c
                             converged = True
                             stop_reason = ("gradient norm below gtol" if ev_c["gradient_norm"] <= gtol_abs
-                                           else "objective flat to machine precision, residual below sqrt(tol)")
+                                           else "objective flat to machine precision, residual below ptol")
                             break
                         if it - phase_start <= 1:
                             stop_reason = "line search found no better point"
@@ -409,7 +417,7 @@ class Fitter:
                         logits, ev = cand, ev_c
                         converged, stop_reason = True, "gradient norm below gtol"
                         break
-                    if flat_count >= 5 and ev_c["residual"] <= math.sqrt(s.tol):
+                    if flat_count >= 5 and ev_c["residual"] <= s.ptol:
                         logits, ev = cand, ev_c
                         converged, stop_reason = True, "relative change below tol"
                         break
@@ -422,17 +430,41 @@ class Fitter:
                 break
             cand = {k: z[k] * scale[k] for k in self.free}
             ev_c = self.evaluate(cand)
+            resid_before = ev["residual"]
             if math.isfinite(ev_c["objective"]) and ev_c["objective"] >= ev["objective"]:
-                gained = ev_c["objective"] - ev["objective"]
                 logits, ev = cand, ev_c
-            else:
-                gained = 0.0
-            stalled_phases = stalled_phases + 1 if gained <= s.tol * max(1.0, abs(ev["objective"])) else 0
-            if stop_phase and stalled_phases >= 2:
-                stop_reason = stop_reason or "no further progress after rescaling"
-                break
+            if stop_phase and s.l2 == 0 and ev["residual"] > s.ptol:
+                # The quasi-Newton phase stalled with a residual above ptol: typically cells whose
+                # estimate is on the boundary (their logits must run off to -inf, which a
+                # line search along exponentially flat directions does slowly). A few EM steps
+                # computed from the same expected counts, θ ← (N + c)/(N(u) + Σc), never lower
+                # the objective (Dempster, Laird & Rubin 1977, Theorem 1) and set such cells to
+                # (near) zero at once; the next phase then resumes the quasi-Newton method.
+                for _ in range(EM_POLISH_STEPS):
+                    new_probs = {}
+                    for name in self.free:
+                        num = ev["counts"][name] + self.pseudo[name]
+                        den = num.sum(axis=-1, keepdims=True)
+                        new_probs[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), ev["probs"][name])
+                    cand = logits_from_probs(self.network, new_probs)
+                    ev_c = self.evaluate(cand)
+                    if not (math.isfinite(ev_c["objective"]) and ev_c["objective"] >= ev["objective"] - 1e-12 * abs(ev["objective"])):
+                        break
+                    logits, ev = cand, ev_c
+                    self.em_polish_steps += 1
+                    if ev["residual"] <= s.ptol or ev["gradient_norm"] <= gtol_abs:
+                        break
             if ev["gradient_norm"] <= gtol_abs:
                 converged, stop_reason = True, "gradient norm below gtol"
+                break
+            if ev["residual"] <= s.ptol and stop_phase and flat_count >= 5:
+                converged, stop_reason = True, "relative change below tol"
+                break
+            progressed = ev["residual"] < 0.9 * resid_before
+            stalled_phases = 0 if progressed else stalled_phases + 1
+            if stop_phase and stalled_phases >= 3:
+                stop_reason = stop_reason or "no further progress after rescaling"
+                break
         if not converged and not stop_reason:
             stop_reason = f"iteration limit {s.max_iter} reached"
         return _Run(logits, ev["objective"], hist_obj, hist_gn, it, converged, stop_reason)
@@ -480,7 +512,7 @@ def random_start(network: Network, rng: np.random.Generator) -> dict[str, np.nda
 
 # --------------------------------------------------------------------------- the public API
 def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, restarts: int = 1,
-        tol: float = 1e-10, gtol: float = 1e-9, max_iter: int = 1000, prior: Any = None,
+        tol: float = 1e-10, gtol: float = 1e-9, ptol: float = 1e-8, max_iter: int = 1000, prior: Any = None,
         pseudo_counts: Mapping[str, np.ndarray] | None = None, l2: float = 0.0,
         init: Mapping[str, np.ndarray] | None = None, learning_rate: float = 0.05,
         missing: Iterable[str] | None = None, count_column: str | None = None,
@@ -496,7 +528,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         restarts: number of starts; the first is from complete-family counts, the others are
             random Dirichlet draws. The best objective is kept; all are listed in
             ``result.extras["restarts"]``.
-        tol, gtol, max_iter: stopping rule (module docstring).
+        tol, gtol, ptol, max_iter: stopping rule (module docstring).
         prior: an :class:`adfit.priors.Prior` (or anything with ``pseudo_counts(network)``).
         pseudo_counts: explicit pseudo-counts per free node (alternative to ``prior``).
         l2: strength λ of the penalty λ Σ (η − row mean η)².
@@ -508,7 +540,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         A frozen :class:`adfit.result.FitResult`. A :class:`ConvergenceWarning` is issued when
         the stopping rule did not hold.
     """
-    settings = FitSettings(method=method, tol=tol, gtol=gtol, max_iter=max_iter, learning_rate=learning_rate, l2=l2)
+    settings = FitSettings(method=method, tol=tol, gtol=gtol, ptol=ptol, max_iter=max_iter,
+                           learning_rate=learning_rate, l2=l2)
     settings.validate()
     if restarts < 1:
         raise OptionError(f"--restarts must be >= 1, got {restarts}")
@@ -552,8 +585,9 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         gradient_norm=ev["gradient_norm"], converged=best.converged, stop_reason=best.stop_reason,
         iterations=best.iterations, history={"objective": tuple(best.history_obj), "gradient_norm": tuple(best.history_gn)},
         n_rows=coded.n_rows, n_distinct=coded.n_distinct, seed=seed,
-        settings={"tol": tol, "gtol": gtol, "max_iter": max_iter, "l2": l2, "restarts": restarts,
+        settings={"tol": tol, "gtol": gtol, "ptol": ptol, "max_iter": max_iter, "l2": l2, "restarts": restarts,
                   "route": fitter.lik.plan.route, "elapsed_s": elapsed, "max_residual": ev["residual"],
+                  "em_polish_steps": fitter.em_polish_steps,
                   **({"learning_rate": learning_rate} if method == "adam" else {})},
         extras={"restarts": restart_rows, "best_start": best_k, **({"prior": prior_desc} if prior_desc else {})},
     )

@@ -88,7 +88,9 @@ class FitResult:
         net = self.network
         node = net.node(name)
         table = np.asarray(self.probs[name]).reshape(-1, node.card)
-        if node.parents:
+        if len(node.parents) == 1:
+            index = pd.Index([lab[0] for lab in net.parent_config_labels(name)], name=node.parents[0])
+        elif node.parents:
             labels = net.parent_config_labels(name)
             index = pd.MultiIndex.from_tuples(labels, names=list(node.parents))
         else:

@@ -1,0 +1,136 @@
+"""The fit reaches the maximum of the marginal likelihood: closed forms and published values."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from adfit.data import HIDDEN, CodedData, encode_frame
+from adfit.errors import ConvergenceWarning, ImpossibleDataError, OptionError
+from adfit.fit import fit
+from adfit.likelihood import score
+from adfit.network import network_from_dict
+from adfit.result import load_result, result_from_dict, write_result
+
+from published import linkage_mle, linkage_one_parameter
+
+
+def penguins_complete():
+    # palmerpenguins (Gorman, Williams & Fraser 2014, PLoS ONE), shipped in the PyPI package.
+    from palmerpenguins import load_penguins
+
+    df = load_penguins()[["species", "island", "sex"]].dropna()
+    net = network_from_dict({
+        "species": {"states": ["Adelie", "Chinstrap", "Gentoo"]},
+        "island": {"states": ["Biscoe", "Dream", "Torgersen"], "parents": ["species"]},
+        "sex": {"states": ["female", "male"], "parents": ["species"]},
+    })
+    return net, df
+
+
+def test_complete_data_fit_equals_normalised_counts():
+    # With complete records the MLE of a CPT row is its normalised counts (pandas crosstab).
+    net, df = penguins_complete()
+    res = fit(net, df)
+    assert res.converged
+    expect_island = pd.crosstab(df["species"], df["island"], normalize="index")
+    expect_sex = pd.crosstab(df["species"], df["sex"], normalize="index")
+    expect_species = df["species"].value_counts(normalize=True)
+    got_island = res.cpt("island")
+    for sp in net.node("species").states:
+        for isl in net.node("island").states:
+            e = expect_island.loc[sp, isl] if isl in expect_island.columns else 0.0
+            assert got_island.loc[sp, isl] == pytest.approx(e, abs=2e-7)
+        for sx in net.node("sex").states:
+            assert res.cpt("sex").loc[sp, sx] == pytest.approx(expect_sex.loc[sp, sx], abs=1e-8)
+        assert res.cpt("species").loc["(none)", sp] == pytest.approx(expect_species[sp], abs=1e-8)
+
+
+def test_monotone_gaps_factored_likelihood_closed_form():
+    # Rubin (1974, JASA); Little & Rubin, Statistical Analysis with Missing Data, ch. 7: with A
+    # always observed and B missing in m rows (MAR), the MLE factors:
+    # theta(a, b) = (n_a+ + m_a)/(n + m) * n_ab / n_a+.
+    net = network_from_dict({"a": {"states": ["a0", "a1", "a2"]},
+                             "b": {"states": ["b0", "b1"], "parents": ["a"]}})
+    n_ab = np.array([[30, 10], [5, 25], [12, 12]], dtype=float)
+    m_a = np.array([20, 3, 9], dtype=float)
+    codes = [[a, b] for a in range(3) for b in range(2)] + [[a, HIDDEN] for a in range(3)]
+    counts = list(n_ab.ravel()) + list(m_a)
+    res = fit(net, CodedData(np.array(codes, np.int32), np.array(counts)))
+    n, m = n_ab.sum(), m_a.sum()
+    pa = (n_ab.sum(1) + m_a) / (n + m)
+    pb = n_ab / n_ab.sum(1, keepdims=True)
+    np.testing.assert_allclose(res.probs["a"], pa, atol=1e-8)
+    np.testing.assert_allclose(res.probs["b"], pb, atol=1e-8)
+    np.testing.assert_allclose(res.probs["a"][:, None] * res.probs["b"], pa[:, None] * pb, atol=1e-8)
+
+
+def test_linkage_data_mle():
+    # Dempster, Laird & Rubin (1977), §1: pi_hat = 0.6268214980 (closed form: positive root of
+    # 197 pi^2 - 15 pi - 68 = 0).
+    net, df = linkage_one_parameter()
+    res = fit(net, df, count_column="count")
+    assert res.converged
+    pi = res.probs["g"][list(net.node("g").states).index("yes")]
+    assert pi == pytest.approx(0.6268214980, abs=1e-8)
+    assert pi == pytest.approx(linkage_mle(), abs=1e-8)
+
+
+def test_adam_reaches_the_same_maximum():
+    net, df = linkage_one_parameter()
+    ref = fit(net, df, count_column="count")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        res = fit(net, df, count_column="count", method="adam", learning_rate=0.05, max_iter=3000, tol=1e-12)
+    assert res.log_likelihood == pytest.approx(ref.log_likelihood, abs=1e-6)
+
+
+def test_fit_is_deterministic_given_the_seed_and_reports_history():
+    net, df = penguins_complete()
+    a = fit(net, df, seed=4, restarts=2)
+    b = fit(net, df, seed=4, restarts=2)
+    for name in net.names:
+        np.testing.assert_array_equal(a.probs[name], b.probs[name])
+    assert len(a.history["gradient_norm"]) == a.iterations + 1
+    assert a.gradient_norm == pytest.approx(score(net, encode_frame(net, df), a.probs)["gradient_norm"], rel=1e-6, abs=1e-9)
+
+
+def test_boundary_mle_converges():
+    # A zero count makes the MLE sit on the boundary (theta = 0): logits run off to -inf, but the
+    # stopping rule is judged in probability units and must still hold.
+    net = network_from_dict({"a": {"states": ["x", "y"]}, "b": {"states": ["u", "v", "w"], "parents": ["a"]}})
+    df = pd.DataFrame({"a": ["x"] * 10 + ["y"] * 6 + ["?"] * 4, "b": ["u"] * 6 + ["v"] * 4 + ["w"] * 6 + ["u"] * 4})
+    res = fit(net, df)
+    assert res.converged
+    assert res.probs["b"][0, 2] < 1e-6 and res.probs["b"][1, 0] < 1e-3
+
+
+def test_result_json_round_trip(tmp_path):
+    net, df = linkage_one_parameter()
+    res = fit(net, df, count_column="count")
+    path = tmp_path / "r.json"
+    write_result(path, res)
+    back = load_result(path)
+    assert back.log_likelihood == pytest.approx(res.log_likelihood, rel=1e-15)
+    for name in net.names:
+        np.testing.assert_allclose(back.probs[name], res.probs[name], rtol=0, atol=1e-15)
+    doc = res.to_dict()
+    for key in ("format", "method", "objective", "log_likelihood", "gradient_norm", "converged", "iterations", "nodes"):
+        assert key in doc
+    assert doc["format"] == "adfit-result/1" and doc["objective"] == "mle"
+    assert result_from_dict(doc).method == "lbfgs"
+
+
+def test_bad_options_and_impossible_data():
+    net, df = linkage_one_parameter()
+    with pytest.raises(OptionError, match="--method"):
+        fit(net, df, count_column="count", method="newton")
+    with pytest.raises(OptionError, match="--restarts"):
+        fit(net, df, count_column="count", restarts=0)
+    net2 = network_from_dict({"a": {"states": ["x", "y"], "fixed": [1.0, 0.0]},
+                              "b": {"states": ["u", "v"], "parents": ["a"]}})
+    with pytest.raises(ImpossibleDataError, match="probability 0"):
+        fit(net2, pd.DataFrame({"a": ["y", "x"], "b": ["u", "v"]}))
