@@ -146,17 +146,24 @@ class Accumulator:
             return unpack_keys(self.rows, self.mult, self.bases), self.counts
         return self.rows, self.counts
 
+    def partial(self) -> tuple[np.ndarray, np.ndarray]:
+        """``(distinct keys or code rows, counts)``: what another Accumulator's :meth:`add` takes."""
+        self._merge()
+        return self.rows, self.counts
 
-def _finish(plan: ReadPlan, codes: np.ndarray, counts: np.ndarray) -> CodedData:
-    d, c, _ = reduce_rows(codes, counts, plan.network.cards)  # sorted by the packed key
-    if d.shape[0] == 0:
+
+def _finish(plan: ReadPlan, acc: "Accumulator") -> CodedData:
+    codes, counts = acc.result()  # distinct, merged, sorted by the packed key
+    if codes.shape[0] == 0:
         raise DataError(f"{plan.source}: no records (the table is empty or all counts are 0)")
-    return CodedData(d, c, None, plan.source)
+    return CodedData(codes, counts, None, plan.source)
 
 
 def reduce_piece(plan: ReadPlan, file: str, row_groups: Sequence[int] | None = None,
                  row_offset: int = 0) -> tuple[np.ndarray, np.ndarray]:
     """Stream one file (or some row groups of a Parquet file) into distinct rows and counts.
+
+    Returns :meth:`Accumulator.partial` (packed keys when they fit, else code rows).
 
     ``row_offset`` is the number of data rows of the file before the first row group given
     (for messages). Raises DataError naming file, line/row, column and label.
@@ -172,7 +179,7 @@ def reduce_piece(plan: ReadPlan, file: str, row_groups: Sequence[int] | None = N
                                      count_column=plan.count_column, locate=locate, row_offset=offset, packed=True)
         acc.add(rows, weights)
         offset += batch.num_rows
-    return acc.result()
+    return acc.partial()
 
 
 def _host() -> str:
@@ -185,7 +192,7 @@ def reduce_stream(plan: ReadPlan) -> CodedData:
     acc = Accumulator(plan.network.cards)
     for f in plan.files:
         acc.add(*reduce_piece(plan, f))
-    return _finish(plan, *acc.result())
+    return _finish(plan, acc)
 
 
 def _first_bad(plan: ReadPlan, columns: Sequence[str]) -> None:
@@ -288,7 +295,9 @@ def _code_grouped(plan: ReadPlan, table: Any) -> CodedData:
     """Code a table of distinct raw rows (columns c0.. in ``plan.read`` order, then __adfit_n)."""
     net = plan.network
     n = table.num_rows
-    codes = np.full((n, len(net)), -1, dtype=np.int32)
+    acc = Accumulator(net.cards)
+    # packed keys when they fit (no code matrix of all raw groups), else code rows
+    rows = np.zeros(n, np.int64) if acc.mult is not None else np.full((n, len(net)), -1, dtype=np.int32)
     suspects: list[str] = []  # columns holding a bad value somewhere
     for i, name in enumerate(plan.read):
         if name == plan.count_column:
@@ -296,7 +305,12 @@ def _code_grouped(plan: ReadPlan, table: Any) -> CodedData:
         c = plan.coder.code(name, table.column(i))
         if np.any(c == UNKNOWN):
             suspects.append(name)
-        codes[:, net.index(name)] = c
+            continue
+        j = net.index(name)
+        if acc.mult is not None:
+            rows += (c.astype(np.int64) + 1) * acc.mult[j]
+        else:
+            rows[:, j] = c
     weights = table.column(len(plan.read)).to_numpy().astype(np.float64)
     if plan.count_column is not None:
         w, bad, _ = _count_problem(table.column(len(plan.read) - 1))
@@ -306,9 +320,8 @@ def _code_grouped(plan: ReadPlan, table: Any) -> CodedData:
     if suspects:
         _first_bad(plan, suspects)  # raises with the file and line of the earliest bad cell
         raise DataError(f"{plan.source}: column(s) {suspects} hold values that cannot be read; check them")
-    acc = Accumulator(net.cards)
-    acc.add(codes, weights)
-    return _finish(plan, *acc.result())
+    acc.add(rows, weights)
+    return _finish(plan, acc)
 
 
 def _pieces(plan: ReadPlan, rows_per_piece: int) -> list[tuple[str, list[int] | None, int]]:
@@ -340,7 +353,10 @@ def _client(scheduler: str | None):
         raise OptionError("--engine dask needs dask and distributed: pip install 'adfit[scale]'") from None
     if scheduler is None:
         import logging
-        cluster = LocalCluster(dashboard_address=":0", silence_logs=logging.ERROR, threads_per_worker=1)
+        # Threads, not processes: starts in a fraction of a second and the readers (pyarrow) release
+        # the GIL; a worker process would first import adfit and JAX (seconds, ~200 MB each).
+        cluster = LocalCluster(processes=False, n_workers=max(1, min(os.cpu_count() or 1, 8)), threads_per_worker=1,
+                               dashboard_address=":0", silence_logs=logging.ERROR)
         return Client(cluster), cluster
     try:
         if scheduler.endswith(".json") and os.path.exists(scheduler):
@@ -375,7 +391,7 @@ def reduce_dask(plan: ReadPlan, scheduler: str | None = None) -> CodedData:
                                 f"{str(e).splitlines()[0] if str(e) else ''})") from None
         if errors:
             raise errors[min(errors)]  # the earliest piece's error, whichever task finished first
-        return _finish(plan, *acc.result())
+        return _finish(plan, acc)
     finally:
         client.close()
         if cluster is not None:

@@ -129,6 +129,8 @@ def main() -> None:
     ap.add_argument("--card", type=int, default=3)
     ap.add_argument("--noise", type=float, default=0.02)
     ap.add_argument("--gaps", type=float, default=0.02)
+    ap.add_argument("--runs", default="all",
+                    help="comma-separated subset, e.g. duckdb-parquet,duckdb300-parquet (default: all)")
     ap.add_argument("--child", nargs=5, help=argparse.SUPPRESS)
     a = ap.parse_args()
     if a.child:
@@ -148,6 +150,9 @@ def main() -> None:
         runs = [("pandas", "parquet", None), ("stream", "parquet", None), ("duckdb", "parquet", None),
                 ("duckdb", "parquet", "300MB"), ("dask", "parquet", None),
                 ("pandas", "csv", None), ("stream", "csv", None), ("duckdb", "csv", None), ("dask", "csv", None)]
+        if a.runs != "all":
+            want = set(a.runs.split(","))
+            runs = [r for r in runs if f"{r[0]}{'300' if r[2] else ''}-{r[1]}" in want]
         ref = None
         print(f"{'engine':<22} {'input':<8} {'wall s':>8} {'peak MiB':>9} {'distinct rows':>14}  same as pandas")
         for engine, fmt, mem in runs:
