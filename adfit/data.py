@@ -603,7 +603,8 @@ def parquet_rows(path: str | Path) -> Locate:
 def _csv_error(path: Path, exc: Exception) -> DataError:
     """Turn a CSV parser failure into one line naming the first malformed record."""
     msg = str(exc)
-    if "UTF8" in msg or "UTF-8" in msg or isinstance(exc, UnicodeDecodeError):
+    low = msg.lower()
+    if "utf8" in low or "utf-8" in low or "unicode" in low or isinstance(exc, UnicodeDecodeError):
         return DataError(f"{path}: not UTF-8 text; save the CSV as UTF-8")
     try:
         n = len(csv_header(path))

@@ -369,3 +369,12 @@ def test_the_earliest_bad_row_is_reported_in_every_engine(tmp_path, cluster, eng
     with pytest.raises(DataError) as e:
         run(NET, tmp_path / "parts", engine, cluster, chunk_rows=5, count_column="n")
     assert one_line(e).startswith(f"{tmp_path / 'parts' / 'p0.csv'}: line 5 (data row 4), column 'n': count 'x'")
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_not_utf8_in_every_engine(tmp_path, cluster, engine):
+    p = tmp_path / "latin.csv"
+    p.write_bytes("load,wear,temp\nlow,none,1\nl\xf6w,none,1\n".encode("latin-1"))
+    with pytest.raises(DataError) as e:
+        run(NET, p, engine, cluster)
+    assert one_line(e) == f"{p}: not UTF-8 text; save the CSV as UTF-8"
