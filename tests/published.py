@@ -116,3 +116,39 @@ def stouffer_toby(n_classes: int = 2) -> tuple[Network, pd.DataFrame]:
         bits = [(k >> (3 - j)) & 1 for j in range(4)]  # 0 = "+", last item fastest
         rows.append({it: "+-"[b] for it, b in zip(STOUFFER_TOBY_ITEMS, bits)} | {"count": c})
     return net, pd.DataFrame(rows)
+
+
+# ----------------------------------------------------------------------------------------------
+# Lauritzen & Spiegelhalter (1988), "Local computations with probabilities on graphical structures
+# and their application to expert systems", JRSS B 50, 157-224: the fictitious chest clinic
+# ("Asia") network and its published CPTs. With evidence asia = yes and dyspnoea = yes the paper
+# prints P(tuberculosis) = .088, P(lung cancer) = .100, P(bronchitis) = .812; recomputed by exact
+# enumeration of the 2^8 joint states: 0.0878, 0.0995, 0.8114 (to four places). The CPT values
+# below are from memory; that enumeration reproduces the posteriors the paper prints.
+CHEST_CLINIC_EVIDENCE = {"asia": "yes", "dysp": "yes"}
+CHEST_CLINIC_POSTERIOR_YES = {"tub": 0.0878, "lung": 0.0995, "bronc": 0.8114}  # four places
+CHEST_CLINIC_POSTERIOR_PRINTED = {"tub": 0.088, "lung": 0.100, "bronc": 0.812}   # as printed
+
+
+def chest_clinic() -> Network:
+    """The chest-clinic network with every CPT fixed to the published values (states yes/no).
+
+    Unlike the other functions here it returns only the network (there are no records): the
+    CPTs are ``network.fixed_table(name)``. ``either`` is the logical "tub or lung".
+    """
+    def yn(p: float) -> list[float]:
+        return [p, 1.0 - p]
+
+    s = ["yes", "no"]
+    return network_from_dict({
+        "asia": {"states": s, "fixed": yn(0.01)},                                   # visit to Asia
+        "tub": {"states": s, "parents": ["asia"], "fixed": [yn(0.05), yn(0.01)]},   # tuberculosis
+        "smoke": {"states": s, "fixed": yn(0.5)},                                   # smoker
+        "lung": {"states": s, "parents": ["smoke"], "fixed": [yn(0.1), yn(0.01)]},  # lung cancer
+        "bronc": {"states": s, "parents": ["smoke"], "fixed": [yn(0.6), yn(0.3)]},  # bronchitis
+        "either": {"states": s, "parents": ["tub", "lung"],                          # tub or lung
+                   "fixed": [[1.0, 0.0], [1.0, 0.0], [1.0, 0.0], [0.0, 1.0]]},
+        "xray": {"states": s, "parents": ["either"], "fixed": [yn(0.98), yn(0.05)]},  # positive X-ray
+        "dysp": {"states": s, "parents": ["either", "bronc"],                        # dyspnoea
+                 "fixed": [yn(0.9), yn(0.7), yn(0.8), yn(0.1)]},
+    })
