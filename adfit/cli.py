@@ -63,7 +63,9 @@ def user_errors():
 def main() -> None:
     """Console-script entry point: run the app, turning AdfitError into one line and exit 1."""
     try:
-        app(standalone_mode=False)
+        rc = app(standalone_mode=False)
+        if isinstance(rc, int) and rc:  # without standalone mode, click returns a typer.Exit's code
+            sys.exit(rc)
     except AdfitError as e:
         typer.echo(f"adfit: error: {e}", err=True)
         sys.exit(1)

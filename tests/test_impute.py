@@ -391,3 +391,16 @@ def test_cli_query_prints_posteriors_and_fails_in_one_line(tmp_path):
                          (["--target", "cancer"], "'cancer'"), (["--given", "asia"], "NODE=STATE")):
         r = run_cli(["query", toml, "--params", params] + args)
         assert r.exit_code == 1 and r.output.count("\n") == 1 and needle in r.output, r.output
+
+
+def test_console_entry_point_exits_1_on_a_bad_query(tmp_path, monkeypatch, capsys):
+    from adfit.cli import main
+
+    net = chest_clinic()
+    toml, params = write_inputs(tmp_path, net, chest_probs(net))
+    monkeypatch.setattr("sys.argv", ["adfit", "query", toml, "--params", params, "--given", "asia=perhaps"])
+    with pytest.raises(SystemExit) as ex:
+        main()
+    assert ex.value.code == 1
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "'perhaps'" in err
