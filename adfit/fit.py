@@ -40,10 +40,11 @@ import numpy as np
 import optax
 
 from .data import HIDDEN, CodedData, load_data
-from .errors import ConvergenceWarning, OptionError
+from .errors import ConvergenceWarning, IdentifiabilityWarning, OptionError
 from .likelihood import (Likelihood, _value_and_expected_counts, check_possible,
                          logits_from_probs, probs_from_logits)
 from .network import Network
+from .priors import describe_rows, prior_only_rows, resolve_pseudo_counts
 from .result import FitResult
 
 METHODS = ("lbfgs", "adam")
@@ -550,8 +551,10 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     if prior is not None:
         if pseudo_counts is not None:
             raise OptionError("give either prior or pseudo_counts, not both")
-        pseudo_counts = prior.pseudo_counts(network)
-        prior_desc = prior.describe() if hasattr(prior, "describe") else None
+        prior_desc = prior.describe(network) if hasattr(prior, "describe") else None
+        pseudo_counts = resolve_pseudo_counts(prior, network)
+    elif pseudo_counts is not None:
+        pseudo_counts = resolve_pseudo_counts(pseudo_counts, network)  # validates shapes and signs
     if not network.free_names:
         raise OptionError("every CPT of the network is fixed; nothing to estimate (use `adfit score` instead)")
     t0 = time.perf_counter()
@@ -591,6 +594,18 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
                   **({"learning_rate": learning_rate} if method == "adam" else {})},
         extras={"restarts": restart_rows, "best_start": best_k, **({"prior": prior_desc} if prior_desc else {})},
     )
+    if is_map:
+        parent_weight = {n: ev["counts"][n].sum(axis=-1) for n in network.free_names}
+        only = prior_only_rows(network, parent_weight, fitter.pseudo)
+        if only:
+            labels = describe_rows(network, only)
+            result = result.with_extras(prior_only_rows={"rows": only, "labels": labels,
+                                                          "note": "no record informs these parent configurations: "
+                                                                  "the estimate there is the prior mode"})
+            if warn:
+                warnings.warn(f"{len(labels)} CPT row(s) are informed by the prior only (no records): "
+                              f"{'; '.join(labels[:5])}{' ...' if len(labels) > 5 else ''}",
+                              IdentifiabilityWarning, stacklevel=2)
     if warn and not best.converged:
         warnings.warn(f"the fit did not converge ({best.stop_reason}); gradient norm {ev['gradient_norm']:.3g}. "
                       f"Raise --max-iter or check the model", ConvergenceWarning, stacklevel=2)

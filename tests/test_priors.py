@@ -389,9 +389,12 @@ def complete_fit():
         "nodes": {"load": {"alpha": [3.0, 1.5]},                                   # c = [2, 0.5]
                   "wear": {"table": [[0.7, 0.3], [0.4, 0.6]], "strength": 1e6},    # -> expert table
                   "vibration": {"table": EXPERT, "strength": 0}}}, net)            # -> MLE
+    from adfit.errors import IdentifiabilityWarning
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        res = fit(net, df, prior=prior)
+        # the unseen parent configuration is reported as informed by the prior only
+        with pytest.warns(IdentifiabilityWarning, match=r"prior only.*oil_temp \| wear=worn, load=high"):
+            res = fit(net, df, prior=prior)
     return net, df, prior, res
 
 
