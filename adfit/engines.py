@@ -274,7 +274,7 @@ def reduce_duckdb(plan: ReadPlan, *, memory_limit: str | None = None, threads: i
         try:
             con = duckdb.connect(":memory:", config=config)
         except duckdb.Error as e:
-            raise OptionError(f"DuckDB settings rejected ({str(e).splitlines()[0]}); check --memory-limit") from None
+            raise OptionError(f"DuckDB settings rejected ({str(e).splitlines()[0]}); give the memory limit as, for example, 2GB") from None
         try:
             src, where = _duckdb_source(plan)
             sel = ", ".join(f"{_sql_ident(by_trim[c])} AS {_sql_ident('c' + str(i))}" for i, c in enumerate(plan.read))
