@@ -19,8 +19,8 @@ Engines (``--engine``):
 
 Counts add up across chunks, files and partitions, so each engine counts its pieces and sums
 the partial counts. A label that is not a state is an error in every engine, naming the file,
-line (CSV) or data row (Parquet), column and label; DuckDB checks the distinct values first and
-then scans the one offending column to find the first bad row.
+line (CSV) or data row (Parquet), column and label, and every engine reports the same (earliest)
+bad row; DuckDB checks the distinct values first and then scans only the offending columns.
 """
 
 from __future__ import annotations
@@ -36,9 +36,10 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 import pandas as pd
 
-from .data import (UNKNOWN, CodedData, LabelCoder, check_columns, code_columns, common_columns, count_values,
-                   csv_header, encode_frame, first_error, iter_csv_batches, iter_parquet_batches, key_layout, load_files,
-                   locator, packed_keys, parquet_names, reduce_rows, resolve_inputs, sum_by_key, unpack_keys, _count_problem, _csv_error)
+from .data import (UNKNOWN, CodedData, LabelCoder, _count_problem, _csv_error, check_columns, code_columns,
+                   common_columns, csv_header, encode_frame, first_error, iter_csv_batches, iter_parquet_batches,
+                   key_layout, load_files, locator, packed_keys, parquet_names, reduce_rows, resolve_inputs,
+                   sum_by_key, unpack_keys)
 from .errors import DataError, OptionError
 from .network import Network
 
