@@ -244,6 +244,8 @@ def fit_command(
     gtol: Annotated[float, typer.Option("--gtol", help="Stop when the gradient norm (records) is below gtol x number of records.")] = 1e-9,
     max_iter: Annotated[int, typer.Option("--max-iter", help="Most iterations per start.")] = 1000,
     learning_rate: Annotated[float, typer.Option("--learning-rate", help="Step size of Adam (with --method adam).")] = 0.05,
+    batch_size: Annotated[Optional[int], typer.Option(
+        "--batch-size", help="With --method adam: minibatch gradients from this many sampled distinct rows per step (very large data); the full-data gradient norm is reported at the end.")] = None,
     prior: Annotated[Optional[Path], typer.Option(
         "--prior", help="Prior file (TOML): Dirichlet pseudo-counts, BDeu equivalent sample size or expert tables; gives MAP estimates.",
         exists=True, dir_okay=False, readable=True)] = None,
@@ -285,7 +287,7 @@ def fit_command(
         if em_check:
             em_check_options(l2)
         fit_kwargs = dict(method=method, seed=seed, tol=tol, gtol=gtol, max_iter=max_iter, prior=pri, l2=l2,
-                          learning_rate=learning_rate)
+                          learning_rate=learning_rate, batch_size=batch_size)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", ConvergenceWarning)
             result = fit(net, coded, restarts=restarts, **fit_kwargs)

@@ -40,7 +40,7 @@ import numpy as np
 import optax
 
 from .data import HIDDEN, CodedData, load_data
-from .errors import ConvergenceWarning, IdentifiabilityWarning, OptionError
+from .errors import ConvergenceWarning, IdentifiabilityWarning, LocalOptimaWarning, OptionError
 from .likelihood import (Likelihood, _value_and_expected_counts, check_possible,
                          logits_from_probs, probs_from_logits)
 from .network import Network
@@ -65,8 +65,14 @@ class FitSettings:
     learning_rate: float = 0.05
     memory: int = 20
     l2: float = 0.0
+    batch_size: int | None = None
 
     def validate(self) -> None:
+        if self.batch_size is not None:
+            if self.method != "adam":
+                raise OptionError("--batch-size (minibatch gradients) needs --method adam")
+            if self.batch_size < 1:
+                raise OptionError(f"--batch-size must be >= 1, got {self.batch_size}")
         if self.method not in METHODS:
             raise OptionError(f"--method must be one of {', '.join(METHODS)}, got {self.method!r}")
         if not (self.tol > 0):
@@ -295,6 +301,13 @@ class Fitter:
             self.fixed_lc = {n: jnp.asarray(np.log(network.fixed_table(n))) for n in network.fixed_names}
 
     # -- helpers -------------------------------------------------------------------------
+    def objective_fg(self, z, scale, pseudo, l2, n_total):
+        """−F/N and its gradient w.r.t. the scaled logits ``z``: every objective evaluation of
+        :meth:`run` goes through here (:mod:`adfit.restarts` overrides it to evaluate the
+        points of several starts in one vmapped call)."""
+        return _objective_fg(self.network, self.lik.plan.groups, z, scale, pseudo, self.fixed_lc,
+                             l2, n_total, self.lik._codes, self.lik._weights)
+
     def probs(self, logits: Mapping[str, Any]) -> dict[str, np.ndarray]:
         return probs_from_logits(self.network, logits)
 
@@ -328,10 +341,29 @@ class Fitter:
             out[name] = 1.0 / np.sqrt(nu * np.asarray(probs[name]) + SCALE_EPS)
         return out
 
+    def _run_minibatch(self, logits0: Mapping[str, Any], *, progress=None) -> _Run:
+        """Minibatch Adam (adfit.minibatch), then the exact full-data stopping rule at the end."""
+        from .minibatch import run_minibatch
+
+        s = self.settings
+        ev0 = self.evaluate(logits0)
+        z, h_obj, h_gn = run_minibatch(self, logits0, batch_size=s.batch_size, max_iter=s.max_iter,
+                                       learning_rate=s.learning_rate, seed=0, progress=progress)
+        ev = self.evaluate(z)
+        gtol_abs = s.gtol * self.n_total
+        converged = ev["gradient_norm"] <= gtol_abs or ev["residual"] <= s.ptol
+        reason = ("full-data gradient norm below gtol" if ev["gradient_norm"] <= gtol_abs else
+                  "full-data residual below ptol" if converged else
+                  f"minibatch run of {s.max_iter} steps ended; full-data gradient norm {ev['gradient_norm']:.3g}")
+        return _Run(z, ev["objective"], [ev0["objective"]] + h_obj[:-1] + [ev["objective"]],
+                    [ev0["gradient_norm"]] + h_gn[:-1] + [ev["gradient_norm"]], s.max_iter, converged, reason)
+
     def run(self, logits0: Mapping[str, Any], *, progress: Callable[[int, float, float], None] | None = None) -> _Run:
         """One start. The per-iteration value and gradient are those the optimiser computed
         anyway; the exact residual is evaluated only when a stopping rule fires."""
         s = self.settings
+        if s.batch_size is not None:
+            return self._run_minibatch(logits0, progress=progress)
         N = self.n_total
         logits = {k: np.asarray(logits0[k], dtype=np.float64) for k in self.free}
         ev = self.evaluate(logits)
@@ -357,8 +389,7 @@ class Fitter:
             n_phase += 1
 
             def fg(zz):
-                return _objective_fg(self.network, self.lik.plan.groups, zz, scale, pseudo, self.fixed_lc,
-                                     l2, n_total, codes, weights)
+                return self.objective_fg(zz, scale, pseudo, l2, n_total)
 
             z = {k: np.asarray(logits[k]) / np.asarray(scale[k]) for k in self.free}
             f, g = fg(z)
@@ -517,7 +548,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         pseudo_counts: Mapping[str, np.ndarray] | None = None, l2: float = 0.0,
         init: Mapping[str, np.ndarray] | None = None, learning_rate: float = 0.05,
         missing: Iterable[str] | None = None, count_column: str | None = None,
-        ignore_columns: Iterable[str] = (), route: str = "auto",
+        ignore_columns: Iterable[str] = (), route: str = "auto", batch_size: int | None = None,
         progress: Callable[[int, int, float, float], None] | None = None, warn: bool = True) -> FitResult:
     """Fit the free CPTs of ``network`` to ``data`` by maximising the marginal likelihood.
 
@@ -535,6 +566,9 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         l2: strength λ of the penalty λ Σ (η − row mean η)².
         init: starting CPTs (probabilities, free nodes) for the first start.
         route: elimination route, see :func:`adfit.likelihood.build_plan`.
+        batch_size: with ``method="adam"``, minibatch gradients from this many sampled distinct
+            rows per step (:mod:`adfit.minibatch`); the full-data gradient norm is reported at
+            the end and decides ``converged``.
         progress: called as ``progress(start, iteration, objective, gradient_norm)``.
 
     Returns:
@@ -542,7 +576,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         the stopping rule did not hold.
     """
     settings = FitSettings(method=method, tol=tol, gtol=gtol, ptol=ptol, max_iter=max_iter,
-                           learning_rate=learning_rate, l2=l2)
+                           learning_rate=learning_rate, l2=l2, batch_size=batch_size)
     settings.validate()
     if restarts < 1:
         raise OptionError(f"--restarts must be >= 1, got {restarts}")
@@ -570,10 +604,16 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
             p0 = random_start(network, rng)
         starts.append(p0)
     check_possible(fitter.lik, starts[0])
-    runs = []
-    for k, p0 in enumerate(starts):
-        cb = None if progress is None else (lambda it, o, g, k=k: progress(k, it, o, g))
-        runs.append(fitter.run(logits_from_probs(network, p0), progress=cb))
+    finals, restart_stats = None, {}
+    if restarts == 1:
+        cb = None if progress is None else (lambda it, o, g: progress(0, it, o, g))
+        runs = [fitter.run(logits_from_probs(network, starts[0]), progress=cb)]
+    else:
+        # the K starts side by side, each objective evaluation of all K in one vmapped call
+        from .restarts import run_starts
+
+        runs, finals = run_starts(fitter, [logits_from_probs(network, p0) for p0 in starts], progress=progress,
+                                  stats=restart_stats)
     best_k = int(np.nanargmax([r.value if math.isfinite(r.value) else -np.inf for r in runs]))
     best = runs[best_k]
     ev = fitter.evaluate(best.logits)
@@ -582,6 +622,10 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     restart_rows = [{"start": k, "kind": "complete-family counts" if k == 0 and init is None else ("given" if k == 0 else "random Dirichlet"),
                      "objective": r.value, "iterations": r.iterations, "converged": r.converged,
                      "gradient_norm": r.history_gn[-1]} for k, r in enumerate(runs)]
+    from .restarts import local_optima_message, restarts_report
+
+    restarts_section = restarts_report(network, restart_rows, finals if finals is not None else [ev], best=best_k,
+                                       gtol_abs=gtol * coded.n_rows, ptol=ptol, batch_width=restart_stats.get("width", 1))
     result = FitResult(
         network=network, method=method, objective="map" if is_map else "mle", probs=ev["probs"],
         log_likelihood=ev["log_likelihood"], log_prior=ev["log_prior"], penalty=ev["penalty"],
@@ -591,8 +635,9 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         settings={"tol": tol, "gtol": gtol, "ptol": ptol, "max_iter": max_iter, "l2": l2, "restarts": restarts,
                   "route": fitter.lik.plan.route, "elapsed_s": elapsed, "max_residual": ev["residual"],
                   "em_polish_steps": fitter.em_polish_steps,
-                  **({"learning_rate": learning_rate} if method == "adam" else {})},
-        extras={"restarts": restart_rows, "best_start": best_k, **({"prior": prior_desc} if prior_desc else {})},
+                  **({"learning_rate": learning_rate} if method == "adam" else {}),
+                  **({"batch_size": batch_size} if batch_size else {})},
+        extras={"restarts": restarts_section, "best_start": best_k, **({"prior": prior_desc} if prior_desc else {})},
     )
     if is_map:
         parent_weight = {n: ev["counts"][n].sum(axis=-1) for n in network.free_names}
@@ -606,6 +651,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
                 warnings.warn(f"{len(labels)} CPT row(s) are informed by the prior only (no records): "
                               f"{'; '.join(labels[:5])}{' ...' if len(labels) > 5 else ''}",
                               IdentifiabilityWarning, stacklevel=2)
+    if warn and (msg := local_optima_message(restarts_section)):
+        warnings.warn(msg, LocalOptimaWarning, stacklevel=2)
     if warn and not best.converged:
         warnings.warn(f"the fit did not converge ({best.stop_reason}); gradient norm {ev['gradient_norm']:.3g}. "
                       f"Raise --max-iter or check the model", ConvergenceWarning, stacklevel=2)
