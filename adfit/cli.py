@@ -259,6 +259,9 @@ def fit_command(
     compare_complete_case: Annotated[bool, typer.Option(
         "--compare-complete-case", help="Also fit on the complete rows only and compare every CPT entry.")] = False,
     folds: Annotated[int, typer.Option("--folds", help="K-fold cross-validation of the held-out marginal log-likelihood (0: off).")] = 0,
+    errors: Annotated[Optional[bool], typer.Option(
+        "--errors/--no-errors", help="Standard errors, intervals and identifiability flags for every CPT entry "
+                                     "(default: on up to 1000 free parameters).")] = None,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print only the file written and warnings.")] = False,
 ) -> None:
     """Fit the free CPTs by maximising the exact marginal likelihood of the observed cells.
@@ -320,6 +323,10 @@ def fit_command(
             typer.echo(ic.format_text())
             typer.echo("")
             typer.echo(format_cpts(result, names=net.free_names))
+        from .uncertainty import cli_errors
+
+        result = cli_errors(result, coded, pseudo_counts=None if pri is None else pri.pseudo_counts(net), l2=l2,
+                            errors=errors, quiet=quiet, echo=typer.echo)
         write_result(out, result)
         typer.echo(f"wrote {out}")
         if not quiet:

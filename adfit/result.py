@@ -228,6 +228,10 @@ def result_from_dict(doc: Mapping[str, Any], *, network: Network | None = None, 
              "gradient_norm", "converged", "stop_reason", "iterations", "n_rows", "n_distinct", "seed",
              "settings", "history", "nodes", "network"}
     extras = {k: v for k, v in doc.items() if k not in known}
+    node_keys = {"states", "parents", "latent", "fixed", "table"}
+    node_extras = {n: {k: v for k, v in nodes[n].items() if k not in node_keys} for n in network.names}
+    if any(node_extras.values()):  # per-node sections (se, interval, ...) go back where to_dict took them
+        extras["nodes"] = {n: v for n, v in node_extras.items() if v}
     return FitResult(
         network=network, method=str(doc.get("method", "")), objective=str(doc.get("objective", "mle")),
         probs=probs, log_likelihood=_float(doc.get("log_likelihood")), log_prior=_float(doc.get("log_prior", 0.0)),

@@ -1,0 +1,1039 @@
+"""Error bars on every CPT entry, and identifiability (docs/uncertainty.md).
+
+The observed information is minus the Hessian of the fitted objective
+
+    F = log L(θ) + Σ c·log θ − λ Σ (η − row mean η)²
+
+(log-likelihood, Dirichlet log-prior, L2 penalty: exactly what the fit maximised) with respect
+to a minimal parameterisation of the free CPTs. Each CPT row ``u`` keeps one **reference
+state** ``r(u)`` (its most expected state) with logit pinned at 0; the coordinates are the
+logits ``φ_uk = log θ_uk − log θ_ur`` of the other states. The softmax shift is then gone and a
+zero eigenvalue of the information means a real flat direction of the objective.
+
+Cells are set apart before the Hessian is formed:
+
+* **no data**: rows whose expected count plus pseudo-count ``n_u = N̂(u) + c(u)`` is below
+  :data:`UNINFORMED_COUNT` (no record reaches the parent configuration): interval [0, 1];
+* **boundary**: cells whose expected count plus pseudo-count is below
+  ``BOUNDARY_COUNT·min(1, n_u)`` (θ̂ → 0, logit → −∞). They stay at their estimate; their
+  interval is one-sided, ``[0, U]`` with ``U`` the exact binomial (Clopper–Pearson) upper limit
+  for zero events in ``n_u`` trials, ``1 − (α/2)^(1/n_u)``; a reference state whose other
+  states are all on the boundary gets ``[1 − U, 1]``. No SE is given for them.
+
+Standard errors of θ follow by the delta method from the covariance ``I⁻¹`` of the
+coordinates; the intervals are Wald intervals on the logit scale of each θ, mapped back, so
+they stay inside (0, 1).
+
+Identifiability is read from the generalised eigenproblem ``I x = ρ M x`` where ``M`` is the
+complete-data information at the estimate (block diagonal, per row
+``n_u (diag θ − θθᵀ)`` restricted to the coordinates, plus the penalty's ``2λ(1 − 1/K)``
+block): ``ρ`` is the share of the complete-data information that the observed data keep along
+``x``, ``1 − ρ`` the fraction of missing information (Louis 1982: observed = complete −
+missing), and the largest ``1 − ρ`` is EM's rate of convergence (Dempster, Laird & Rubin 1977,
+§3). Directions with ``ρ ≤ FLAT_TOL`` are **flat**: every entry that loads on one gets no SE
+and the interval [0, 1] ("not identified"); directions with ``ρ ≤ WEAK_TOL`` are named
+(node and parent configuration) as weakly identified.
+
+Where the switch is: with at most :data:`DENSE_MAX_PARAMETERS` coordinates the information is
+formed densely, as Hessian-vector products on batches of :data:`HVP_BATCH` basis vectors
+(forward-over-reverse; one batch is ``jax.hessian`` itself when there are at most that many
+coordinates), which bounds the memory by one batch of chunks whatever the number of rows.
+Above it nothing of size P² is formed: the smallest ρ come from LOBPCG on the pencil (I, M)
+and each requested column of ``I⁻¹`` from a preconditioned conjugate-gradient solve (deflated
+by those eigenvectors) driven by the same batched products. The CLI computes error bars by
+default only up to :data:`AUTO_MAX_PARAMETERS` free parameters.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from functools import partial
+from typing import Any, Callable, Iterable, Mapping, Sequence
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pandas as pd
+import scipy.linalg
+from scipy import stats
+
+from .data import CodedData, load_data
+from .errors import OptionError
+from .likelihood import Likelihood, _loglik_logcpt, check_possible
+from .network import Network
+
+#: default confidence level of the intervals
+LEVEL = 0.95
+#: coordinates up to which the information matrix is formed densely (P² floats, eigh in P³)
+DENSE_MAX_PARAMETERS = 3000
+#: the CLI computes error bars by default up to this many free parameters (--errors forces)
+AUTO_MAX_PARAMETERS = 1000
+#: basis vectors per batched Hessian-vector product
+HVP_BATCH = 32
+#: a row with N̂(u) + c(u) below this (records) is "no data"
+UNINFORMED_COUNT = 1e-6
+#: a cell with N̂(x,u) + c(x,u) below BOUNDARY_COUNT · min(1, n_u) is "on the boundary"
+BOUNDARY_COUNT = 0.01
+#: ρ (observed / complete-data information along a direction) at or below this: flat
+FLAT_TOL = 1e-8
+#: ρ at or below this: weakly identified (named, with its rows)
+WEAK_TOL = 1e-2
+#: an entry whose variance direction has at least this share on flat directions is not identified
+FLAT_SHARE_TOL = 1e-6
+#: intervals wider than this are listed
+WIDE_WIDTH = 0.5
+#: at most this many weak directions are named
+MAX_NAMED = 10
+#: a row is named in a direction when it carries at least this share of it
+NAME_SHARE = 0.05
+
+STATUS = ("interior", "boundary", "not identified", "no data", "not computed")
+_INTERIOR, _BOUNDARY, _NOT_IDENTIFIED, _NO_DATA, _NOT_COMPUTED = range(5)
+_FLOOR = 1e-300  # floor of θ before logs (boundary cells of an EM fit can be exact zeros)
+
+LATENT_NOTE = ("the states of a latent node are identified only up to a relabelling (any permutation of "
+               "its states fits equally well); its error bars describe this labelling, from the local "
+               "curvature, and hold only if the fit is well separated from its relabelled copies")
+
+CAUTION = ("Error bars rest on the network structure, on the missing-at-random (MAR) assumption and on a "
+           "quadratic approximation of the objective at its maximum; they support, and do not replace, "
+           "engineering or clinical judgement.")
+
+
+# --------------------------------------------------------------------------- coordinates
+@dataclass(frozen=True)
+class Coordinates:
+    """The minimal parameterisation at an estimate.
+
+    Attributes:
+        network: the network.
+        coords: one ``(node, row, state)`` per coordinate φ (row = table row, state = index).
+        sizes: coordinates per free node, in ``network.free_names`` order.
+        reference: per free node, the reference state of every row (shape ``(rows,)``).
+        status: per free node, ``(rows, card)`` int codes into :data:`STATUS` fixed before the
+            Hessian (interior, boundary, no data).
+        probs: per free node, the estimate ``(rows, card)``.
+        n: per free node, ``N̂(x,u) + c(x,u)`` ``(rows, card)`` at the estimate.
+        base: per free node, flat logits at the estimate (reference 0).
+        index: per free node, flat cell index of each of its coordinates.
+    """
+
+    network: Network
+    coords: tuple[tuple[str, int, int], ...]
+    sizes: tuple[int, ...]
+    reference: Mapping[str, np.ndarray]
+    status: Mapping[str, np.ndarray]
+    probs: Mapping[str, np.ndarray]
+    n: Mapping[str, np.ndarray]
+    base: Mapping[str, np.ndarray]
+    index: Mapping[str, np.ndarray]
+
+    @property
+    def size(self) -> int:
+        return len(self.coords)
+
+    def logits_at(self, phi: np.ndarray) -> dict[str, np.ndarray]:
+        """Logits (reference 0) of every free node at coordinates ``phi`` (the estimate at 0)."""
+        phi = np.asarray(phi, dtype=np.float64)
+        out, off = {}, 0
+        for name, s in zip(self.network.free_names, self.sizes):
+            eta = np.array(self.base[name])
+            eta[self.index[name]] += phi[off:off + s]
+            off += s
+            out[name] = eta.reshape(self.network.cpt_shape(name))
+        return out
+
+    def probs_at(self, phi: np.ndarray) -> dict[str, np.ndarray]:
+        """CPTs of every node (fixed ones included) at coordinates ``phi``."""
+        out = {}
+        for name, eta in self.logits_at(phi).items():
+            e = np.exp(eta - eta.max(axis=-1, keepdims=True))
+            out[name] = e / e.sum(axis=-1, keepdims=True)
+        for name in self.network.fixed_names:
+            out[name] = self.network.fixed_table(name)
+        return out
+
+    def offsets(self) -> dict[str, int]:
+        out, off = {}, 0
+        for name, s in zip(self.network.free_names, self.sizes):
+            out[name] = off
+            off += s
+        return out
+
+    def row_slices(self) -> dict[tuple[str, int], np.ndarray]:
+        """Coordinate indices of every (node, row) that has coordinates."""
+        out: dict[tuple[str, int], list[int]] = {}
+        for j, (name, row, _) in enumerate(self.coords):
+            out.setdefault((name, row), []).append(j)
+        return {k: np.asarray(v) for k, v in out.items()}
+
+
+def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
+                     n_cells: Mapping[str, np.ndarray]) -> Coordinates:
+    """Reference states, boundary and no-data cells, and the coordinates, at an estimate.
+
+    ``n_cells``: per free node, expected counts plus pseudo-counts (CPT-shaped).
+    """
+    coords: list[tuple[str, int, int]] = []
+    sizes, ref_d, st_d, pr_d, n_d, base_d, idx_d = [], {}, {}, {}, {}, {}, {}
+    for name in network.free_names:
+        K = network.node(name).card
+        th = np.asarray(probs[name], dtype=np.float64).reshape(-1, K)
+        n = np.asarray(n_cells[name], dtype=np.float64).reshape(-1, K)
+        nu = n.sum(axis=1)
+        ref = np.argmax(n + 1e-12 * th, axis=1)  # most expected state; ties by the estimate
+        status = np.full(th.shape, _INTERIOR, dtype=np.int64)
+        status[n < BOUNDARY_COUNT * np.minimum(1.0, nu)[:, None]] = _BOUNDARY
+        status[np.arange(len(ref)), ref] = _INTERIOR
+        status[nu < UNINFORMED_COUNT] = _NO_DATA
+        lt = np.log(np.maximum(th, _FLOOR))
+        base = lt - lt[np.arange(len(ref)), ref][:, None]
+        free_cells = []
+        for u in range(th.shape[0]):
+            for k in range(K):
+                if k != ref[u] and status[u, k] == _INTERIOR:
+                    coords.append((name, u, k))
+                    free_cells.append(u * K + k)
+        sizes.append(len(free_cells))
+        ref_d[name], st_d[name], pr_d[name], n_d[name] = ref, status, th, n
+        base_d[name] = base.reshape(-1)
+        idx_d[name] = np.asarray(free_cells, dtype=np.int32)
+    return Coordinates(network, tuple(coords), tuple(sizes), ref_d, st_d, pr_d, n_d, base_d, idx_d)
+
+
+# --------------------------------------------------------------------------- the objective in JAX
+def _objective(network: Network, groups, sizes: tuple[int, ...], phi, aux):
+    base, index, pseudo, fixed_lc, l2, codes, weights = aux
+    lcs, lp, pen = [], 0.0, 0.0
+    off = k = 0
+    for node in network.nodes:
+        if node.fixed is not None:
+            lcs.append(fixed_lc[node.name])
+            continue
+        s = sizes[k]
+        k += 1
+        eta = base[node.name]
+        if s:
+            eta = eta.at[index[node.name]].add(phi[off:off + s])
+        off += s
+        eta = eta.reshape(network.cpt_shape(node.name))
+        lc = jax.nn.log_softmax(eta, axis=-1)
+        lcs.append(lc)
+        lp = lp + jnp.sum(pseudo[node.name] * lc)
+        pen = pen + jnp.sum((eta - jnp.mean(eta, axis=-1, keepdims=True)) ** 2)
+    ll = _loglik_logcpt(network, groups, tuple(lcs), codes, weights)
+    return ll + lp - l2 * pen
+
+
+@partial(jax.jit, static_argnums=(0, 1, 2))
+def _value_and_grad(network: Network, groups, sizes, phi, aux):
+    return jax.value_and_grad(lambda p: _objective(network, groups, sizes, p, aux))(phi)
+
+
+@partial(jax.jit, static_argnums=(0, 1, 2))
+def _hvp_batch(network: Network, groups, sizes, phi, vecs, aux):
+    """Rows of ``vecs`` times the Hessian of F (forward-over-reverse)."""
+    grad = jax.grad(lambda p: _objective(network, groups, sizes, p, aux))
+    return jax.vmap(lambda v: jax.jvp(grad, (phi,), (v,))[1])(vecs)
+
+
+class _Problem:
+    """The objective at an estimate in the coordinates, with batched Hessian-vector products."""
+
+    def __init__(self, network: Network, data: CodedData, coordinates: Coordinates,
+                 pseudo: Mapping[str, np.ndarray], l2: float, batch: int):
+        self.network = network
+        self.co = coordinates
+        self.batch = max(1, min(batch, coordinates.size))
+        # smaller chunks when many tangents travel together: memory ~ batch × chunk
+        probe = Likelihood(network, data)
+        chunk = max(64, min(g.chunk for g in probe.plan.groups) // self.batch)
+        self.lik = probe if chunk >= min(g.chunk for g in probe.plan.groups) else Likelihood(network, data, chunk=chunk)
+        with np.errstate(divide="ignore"):
+            fixed_lc = {n: jnp.asarray(np.log(network.fixed_table(n))) for n in network.fixed_names}
+        self.aux = ({k: jnp.asarray(v) for k, v in coordinates.base.items()},
+                    {k: jnp.asarray(v) for k, v in coordinates.index.items()},
+                    {k: jnp.asarray(np.asarray(pseudo[k], dtype=np.float64)) for k in network.free_names},
+                    fixed_lc, jnp.asarray(float(l2)), self.lik._codes, self.lik._weights)
+        self.phi0 = jnp.zeros(coordinates.size)
+        self.n_products = 0
+
+    def value_and_grad(self, phi: np.ndarray | None = None) -> tuple[float, np.ndarray]:
+        p = self.phi0 if phi is None else jnp.asarray(phi, dtype=jnp.float64)
+        v, g = _value_and_grad(self.network, self.lik.plan.groups, self.co.sizes, p, self.aux)
+        return float(v), np.asarray(g)
+
+    def information_times(self, V: np.ndarray) -> np.ndarray:
+        """``I @ V`` for a (P, m) array (I = −Hessian of F), in padded batches."""
+        V = np.asarray(V, dtype=np.float64)
+        P, m = V.shape
+        out = np.empty((P, m))
+        B = self.batch
+        for s in range(0, m, B):
+            cols = V[:, s:s + B]
+            w = cols.shape[1]
+            vecs = np.zeros((B, P))
+            vecs[:w] = cols.T
+            hv = np.asarray(_hvp_batch(self.network, self.lik.plan.groups, self.co.sizes, self.phi0,
+                                       jnp.asarray(vecs), self.aux))
+            out[:, s:s + w] = -hv[:w].T
+            self.n_products += w
+        return out
+
+    def dense_information(self) -> np.ndarray:
+        info = self.information_times(np.eye(self.co.size))
+        return 0.5 * (info + info.T)
+
+
+def observed_information(network: Network, data: Any, probs: Mapping[str, np.ndarray], *,
+                         pseudo_counts: Mapping[str, np.ndarray] | None = None, l2: float = 0.0,
+                         batch: int = HVP_BATCH) -> tuple[np.ndarray, Coordinates]:
+    """The observed information (−Hessian of F) in the coordinates at ``probs`` (any point).
+
+    Returns ``(I, coordinates)``; ``coordinates.coords[j]`` names coordinate ``j``. Dense: use
+    it for small problems (P ≤ :data:`DENSE_MAX_PARAMETERS`).
+    """
+    coded = load_data(network, data)
+    pseudo = _pseudo(network, pseudo_counts)
+    lik = Likelihood(network, coded)
+    full = _full_probs(network, probs)
+    check_possible(lik, full)
+    _, counts = lik.expected_counts(full)
+    co = make_coordinates(network, full, {k: counts[k] + pseudo[k] for k in network.free_names})
+    pb = _Problem(network, coded, co, pseudo, l2, batch)
+    return pb.dense_information(), co
+
+
+def coordinate_gradient(co: Coordinates, l2: float = 0.0) -> np.ndarray:
+    """∂F/∂φ at the estimate from the expected counts (Fisher's identity):
+    ``n(x,u) − θ(x|u) n_u − 2λ (η − row mean η)`` for each coordinate (n: counts + pseudo-counts)."""
+    g = np.empty(co.size)
+    for j, (name, u, k) in enumerate(co.coords):
+        n = co.n[name][u]
+        g[j] = n[k] - co.probs[name][u, k] * n.sum()
+        if l2:
+            eta = co.base[name].reshape(co.probs[name].shape)[u]
+            g[j] -= 2.0 * l2 * (eta[k] - eta.mean())
+    return g
+
+
+def complete_information(co: Coordinates, l2: float = 0.0) -> dict[tuple[str, int], np.ndarray]:
+    """Complete-data information per (node, row) block in the coordinates, at the estimate.
+
+    ``n_u (diag θ_s − θ_s θ_sᵀ) + 2λ (1 − 11ᵀ/K)`` over the row's coordinate states ``s``
+    (``n_u`` = expected count plus pseudo-counts of the parent configuration).
+    """
+    out = {}
+    for (name, row), js in co.row_slices().items():
+        K = co.network.node(name).card
+        states = [co.coords[j][2] for j in js]
+        th = co.probs[name][row, states]
+        nu = co.n[name][row].sum()
+        blk = nu * (np.diag(th) - np.outer(th, th))
+        if l2:
+            blk = blk + 2.0 * l2 * (np.eye(len(states)) - 1.0 / K)
+        out[(name, row)] = blk
+    return out
+
+
+def _block_matrix(co: Coordinates, blocks: Mapping[tuple[str, int], np.ndarray]) -> np.ndarray:
+    M = np.zeros((co.size, co.size))
+    for key, js in co.row_slices().items():
+        M[np.ix_(js, js)] = blocks[key]
+    return M
+
+
+# --------------------------------------------------------------------------- results
+@dataclass(frozen=True)
+class Uncertainty:
+    """Error bars and identifiability of a fit (JSON form: :meth:`node_sections`, :meth:`summary`).
+
+    Arrays are CPT-shaped per free node (``network.cpt_shape``): ``se`` (NaN where no SE is
+    given), ``lower``/``upper`` (interval), ``status`` (codes into :data:`STATUS`).
+    """
+
+    network: Network
+    level: float
+    method: str
+    se: Mapping[str, np.ndarray]
+    lower: Mapping[str, np.ndarray]
+    upper: Mapping[str, np.ndarray]
+    status: Mapping[str, np.ndarray]
+    coordinates: Coordinates
+    relative_eigenvalues: np.ndarray          # ρ, ascending (all, or the smallest found)
+    eigenvalues: np.ndarray | None            # of I itself, ascending (dense only)
+    directions: tuple[dict[str, Any], ...]    # named flat / weak / negative directions
+    missing: Mapping[str, dict[str, Any]]     # per node fraction of missing information
+    em_rate: float | None                     # largest fraction of missing information
+    gradient_norm: float                      # of F in the coordinates at the estimate
+    information: np.ndarray | None = None     # dense I (coordinates order)
+    covariance: np.ndarray | None = None      # dense I⁻¹ on the identified directions
+    notes: tuple[str, ...] = ()
+    wide: float = WIDE_WIDTH
+    settings: Mapping[str, Any] = field(default_factory=dict)
+
+    # -- lists ---------------------------------------------------------------------------
+    def _label(self, name: str, row: int) -> dict[str, str]:
+        node = self.network.node(name)
+        return dict(zip(node.parents, self.network.parent_config_labels(name)[row]))
+
+    def entries(self, code: int) -> list[dict[str, Any]]:
+        out = []
+        for name in self.network.free_names:
+            st = self.status[name].reshape(-1, self.network.node(name).card)
+            for u, k in zip(*np.nonzero(st == code)):
+                out.append(self._entry(name, int(u), int(k)))
+        return out
+
+    def _entry(self, name: str, u: int, k: int) -> dict[str, Any]:
+        K = self.network.node(name).card
+        lo, hi = self.lower[name].reshape(-1, K)[u, k], self.upper[name].reshape(-1, K)[u, k]
+        return {"node": name, "row": u, "parents": self._label(name, u), "state": self.network.node(name).states[k],
+                "estimate": float(self.coordinates.probs[name][u, k]), "interval": [float(lo), float(hi)],
+                "width": float(hi - lo), "status": STATUS[int(self.status[name].reshape(-1, K)[u, k])]}
+
+    def wide_entries(self) -> list[dict[str, Any]]:
+        out = []
+        for name in self.network.free_names:
+            K = self.network.node(name).card
+            width = (self.upper[name] - self.lower[name]).reshape(-1, K)
+            st = self.status[name].reshape(-1, K)
+            for u, k in zip(*np.nonzero((width > self.wide) & (st != _NOT_COMPUTED))):
+                out.append(self._entry(name, int(u), int(k)))
+        return sorted(out, key=lambda e: -e["width"])
+
+    def rows_with(self, code: int) -> list[dict[str, Any]]:
+        out = []
+        for name in self.network.free_names:
+            st = self.status[name].reshape(-1, self.network.node(name).card)
+            for u in np.flatnonzero((st == code).any(axis=1)):
+                out.append({"node": name, "row": int(u), "parents": self._label(name, int(u))})
+        return out
+
+    def prior_only_rows(self) -> list[dict[str, Any]]:
+        """Rows no record reaches that a prior alone informs (N̂(u) ≈ 0 < c(u))."""
+        out = []
+        pc = self.settings.get("_pseudo") or {}
+        for name in self.network.free_names:
+            c = np.asarray(pc.get(name, 0.0))
+            if not np.any(c):
+                continue
+            K = self.network.node(name).card
+            n = self.coordinates.n[name]
+            cu = np.broadcast_to(c, self.network.cpt_shape(name)).reshape(-1, K).sum(axis=1)
+            for u in np.flatnonzero((n.sum(axis=1) - cu < UNINFORMED_COUNT) & (cu > 0)):
+                out.append({"node": name, "row": int(u), "parents": self._label(name, int(u))})
+        return out
+
+    # -- JSON ------------------------------------------------------------------------------
+    def node_sections(self) -> dict[str, dict[str, Any]]:
+        """Per free node: "se", "interval" (pair of tables), "se_status", "missing_information"."""
+        net = self.network
+        out = {}
+        for name in net.free_names:
+            K = net.node(name).card
+            se = self.se[name].reshape(-1, K)
+            out[name] = {
+                "se": [[None if not np.isfinite(x) else float(x) for x in row] for row in se],
+                "interval": [net.array_to_table(name, self.lower[name]), net.array_to_table(name, self.upper[name])],
+                "se_status": [[STATUS[int(c)] for c in row] for row in self.status[name].reshape(-1, K)],
+                "missing_information": self.missing.get(name),
+            }
+        return out
+
+    def summary(self) -> dict[str, Any]:
+        ev = self.eigenvalues
+        return {
+            "level": self.level,
+            "method": self.method,
+            "interval_kind": "Wald interval on the logit scale of each entry (delta method), mapped back to [0, 1]",
+            "boundary_rule": (f"a cell with expected count plus pseudo-count below {BOUNDARY_COUNT:g} x min(1, n_u) is on "
+                              f"the boundary: no SE; interval [0, U], U = 1 - (alpha/2)^(1/n_u) (exact binomial "
+                              f"upper limit for zero events in n_u = N(u) + c(u) records; optimistic when the "
+                              f"family is partly hidden); its reference state gets [1 - U, 1] if nothing else "
+                              f"in the row is interior"),
+            "n_free_parameters": int(self.network.n_free_parameters()),
+            "n_coordinates": int(self.coordinates.size),
+            "gradient_norm": self.gradient_norm,
+            "eigenvalues": None if ev is None else {
+                "smallest": [float(x) for x in ev[:10]], "largest": float(ev[-1]) if len(ev) else None,
+                "meaning": "observed information in the coordinates (logits against each row's reference state)"},
+            "relative_eigenvalues": {
+                "smallest": [float(x) for x in self.relative_eigenvalues[:10]],
+                "meaning": "observed over complete-data information along each direction (1 - fraction of missing information)"},
+            "em_rate": self.em_rate,
+            "em_rate_meaning": "largest fraction of missing information; EM converges linearly at this rate",
+            "flat_tol": FLAT_TOL, "weak_tol": WEAK_TOL,
+            "directions": list(self.directions),
+            "not_identified": self.rows_with(_NOT_IDENTIFIED),
+            "no_data_rows": self.rows_with(_NO_DATA),
+            "prior_only_rows": self.prior_only_rows(),
+            "boundary_entries": self.entries(_BOUNDARY),
+            "wide_threshold": self.wide,
+            "wide_entries": self.wide_entries(),
+            "latent": {n: LATENT_NOTE for n in relabelable_latent(self.network)},
+            "notes": list(self.notes),
+            "caution": CAUTION,
+        }
+
+    def format_text(self, *, max_list: int = 10) -> str:
+        return format_uncertainty(self.summary(), self.node_sections(), network=self.network, max_list=max_list)
+
+
+# --------------------------------------------------------------------------- the computation
+def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndarray], *,
+                        pseudo_counts: Mapping[str, np.ndarray] | None = None, l2: float = 0.0,
+                        level: float = LEVEL, wide: float = WIDE_WIDTH, method: str = "auto",
+                        nodes: Iterable[str] | None = None, batch: int = HVP_BATCH,
+                        cg_tol: float = 1e-10, cg_max_iter: int = 500, n_eig: int = 8,
+                        converged: bool | None = None, missing: Iterable[str] | None = None,
+                        count_column: str | None = None, ignore_columns: Iterable[str] = ()) -> Uncertainty:
+    """Error bars and identifiability at the estimate ``probs`` (module docstring).
+
+    Args:
+        pseudo_counts, l2: the prior and penalty of the fit (the Hessian is of that objective).
+        level: confidence level of the intervals.
+        wide: intervals wider than this are listed.
+        method: ``"dense"``, ``"matrix-free"`` or ``"auto"`` (dense up to
+            :data:`DENSE_MAX_PARAMETERS` coordinates).
+        nodes: with the matrix-free method, the free nodes whose error bars are computed (all by
+            default; each costs a solve per coordinate). The dense method computes all.
+        batch: basis vectors per batched Hessian-vector product (memory ~ batch × chunk).
+        cg_tol, cg_max_iter, n_eig: the matrix-free solves and the number of smallest ρ sought.
+        converged: whether the fit's stopping rule held (a note is added when False).
+    """
+    if not (0 < level < 1):
+        raise OptionError(f"level must be between 0 and 1 (e.g. 0.95), got {level}")
+    if not (wide > 0):
+        raise OptionError(f"the wide-interval threshold must be > 0, got {wide}")
+    if method not in ("auto", "dense", "matrix-free"):
+        raise OptionError(f"method must be 'auto', 'dense' or 'matrix-free', got {method!r}")
+    if not (l2 >= 0) or not math.isfinite(l2):
+        raise OptionError(f"l2 must be a finite number >= 0, got {l2}")
+    if not network.free_names:
+        raise OptionError("every CPT of the network is fixed; there is nothing to put error bars on")
+    coded = load_data(network, data, missing=missing, count_column=count_column, ignore_columns=ignore_columns)
+    pseudo = _pseudo(network, pseudo_counts)
+    wanted = _wanted_nodes(network, nodes)
+    full = _full_probs(network, probs)
+    lik = Likelihood(network, coded)
+    check_possible(lik, full)
+    _, counts = lik.expected_counts(full)
+    co = make_coordinates(network, full, {k: counts[k] + pseudo[k] for k in network.free_names})
+    P = co.size
+    if method == "auto":
+        method = "dense" if P <= DENSE_MAX_PARAMETERS else "matrix-free"
+    notes: list[str] = []
+    if converged is False:
+        notes.append("the fit did not converge: the error bars assume a maximum and may be meaningless")
+    z = float(stats.norm.ppf(0.5 + level / 2))
+    blocks = complete_information(co, l2)
+    if P == 0:
+        sec = _assemble(co, level, z, {}, np.zeros((0, 0)), np.zeros((0, 0)), blocks, wanted)
+        return Uncertainty(network, level, method, *sec, co, np.zeros(0), np.zeros(0), (),
+                           {n: _missing_none(co, n) for n in network.free_names}, None, 0.0,
+                           notes=tuple(notes + ["no coordinate is left to estimate (every row is on the boundary or has no data)"]),
+                           wide=wide, settings={"_pseudo": pseudo, "l2": l2})
+    pb = _Problem(network, coded, co, pseudo, l2, batch)
+    gnorm = float(np.linalg.norm(coordinate_gradient(co, l2)))
+    M = _block_matrix(co, blocks)
+    info = cov = ev = None
+    if method == "dense":
+        info = pb.dense_information()
+        ev = np.linalg.eigvalsh(info)
+        rho, X = _generalised_eigh(info, M)
+        ok = rho > FLAT_TOL
+        cov = (X[:, ok] / rho[ok]) @ X[:, ok].T
+        flat_X = X[:, ~ok]
+        cov_cols = cov
+        cols = np.arange(P)
+        all_rho, all_X = rho, X
+    else:
+        all_rho, all_X, cov_cols, cols, flat_X, cg_note = _matrix_free(pb, co, blocks, wanted, cg_tol, cg_max_iter, n_eig)
+        notes.extend(cg_note)
+        notes.append(f"matrix-free: {P} coordinates > {DENSE_MAX_PARAMETERS}; the relative eigenvalues listed are "
+                     f"only the smallest {len(all_rho)} (LOBPCG), the error bars come from conjugate-gradient solves")
+    if np.any(all_rho < -FLAT_TOL):
+        notes.append("the observed information has negative curvature: the estimate is not a local maximum "
+                     "(a saddle or an unconverged fit); the entries loading on those directions get no error bar")
+    if gnorm > 1e-3 * max(1.0, math.sqrt(coded.n_rows)):
+        notes.append(f"the gradient at the estimate is not small ({gnorm:.3g}); the error bars assume a maximum")
+    se, lower, upper, status = _assemble(co, level, z, _column_lookup(cols), cov_cols, flat_X, blocks, wanted)
+    directions = _name_directions(co, all_rho, all_X, blocks, info)
+    missing_info = {n: _missing_fraction(co, n, status, cov_cols, _column_lookup(cols), blocks) if n in wanted
+                    else None for n in network.free_names}
+    em_rate = float(np.clip(1.0 - all_rho.min(), 0.0, 1.0)) if len(all_rho) else None
+    return Uncertainty(network, level, method, se, lower, upper, status, co, all_rho, ev, tuple(directions),
+                       missing_info, em_rate, gnorm, info, cov, tuple(notes), wide,
+                       {"_pseudo": pseudo, "l2": l2, "hessian_vector_products": pb.n_products})
+
+
+def relabelable_latent(network: Network) -> list[str]:
+    """Latent nodes whose states could be permuted without changing the fit: free CPT, and no
+    fixed CPT of the node's children mentions them (a fixed table pins the labelling)."""
+    pinned = {p for n in network.nodes if n.fixed is not None for p in n.parents}
+    return [n.name for n in network.nodes if n.latent and n.fixed is None and n.name not in pinned]
+
+
+def _wanted_nodes(network: Network, nodes: Iterable[str] | None) -> set[str]:
+    if nodes is None:
+        return set(network.free_names)
+    out = set()
+    for n in nodes:
+        network.index(n)
+        if n not in network.free_names:
+            raise OptionError(f"node {n!r} has a fixed CPT; error bars are for free nodes ({', '.join(network.free_names)})")
+        out.add(n)
+    return out
+
+
+def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) -> dict[str, np.ndarray]:
+    out = {}
+    for name in network.free_names:
+        c = None if pseudo_counts is None else pseudo_counts.get(name)
+        c = np.zeros(network.cpt_shape(name)) if c is None else np.broadcast_to(
+            np.asarray(c, dtype=np.float64), network.cpt_shape(name)).copy()
+        if not np.all(np.isfinite(c)) or np.any(c < 0):
+            raise OptionError(f"node {name!r}: pseudo-counts must be finite and >= 0")
+        out[name] = c
+    return out
+
+
+def _full_probs(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    out = {}
+    for n in network.nodes:
+        if n.fixed is not None:
+            out[n.name] = network.fixed_table(n.name)
+            continue
+        if n.name not in probs:
+            raise OptionError(f"no CPT given for the free node {n.name!r}")
+        a = np.asarray(probs[n.name], dtype=np.float64)
+        if a.shape != network.cpt_shape(n.name):
+            raise OptionError(f"node {n.name!r}: CPT has shape {a.shape}, expected {network.cpt_shape(n.name)}")
+        out[n.name] = a
+    return out
+
+
+def _generalised_eigh(info: np.ndarray, M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """ρ ascending and X with Xᵀ M X = 1 for I X = M X diag ρ."""
+    try:
+        return scipy.linalg.eigh(info, M)
+    except np.linalg.LinAlgError:  # pragma: no cover - M is positive definite by construction
+        jitter = 1e-12 * np.trace(M) / len(M)
+        return scipy.linalg.eigh(info, M + jitter * np.eye(len(M)))
+
+
+def _column_lookup(cols: np.ndarray) -> dict[int, int]:
+    return {int(c): i for i, c in enumerate(cols)}
+
+
+def _boundary_upper(nu: float, level: float) -> float:
+    """Exact binomial (Clopper–Pearson) upper limit for 0 events in ``nu`` trials."""
+    alpha = 1.0 - level
+    return 1.0 if nu <= 0 else float(1.0 - (alpha / 2) ** (1.0 / nu))
+
+
+def _assemble(co: Coordinates, level: float, z: float, lookup: Mapping[int, int], cov_cols: np.ndarray,
+              flat_X: np.ndarray, blocks, wanted: set[str]):
+    """SE, interval and status of every entry of every free node."""
+    net = co.network
+    offs = co.offsets()
+    rows = co.row_slices()
+    se_d, lo_d, hi_d, st_d = {}, {}, {}, {}
+    for name in net.free_names:
+        K = net.node(name).card
+        th = co.probs[name]
+        Q = th.shape[0]
+        se = np.full((Q, K), np.nan)
+        lo = np.zeros((Q, K))
+        hi = np.ones((Q, K))
+        st = co.status[name].copy()
+        if name not in wanted:
+            st[:] = _NOT_COMPUTED
+            lo[:] = np.nan
+            hi[:] = np.nan
+        else:
+            for u in range(Q):
+                if st[u, 0] == _NO_DATA:
+                    continue
+                nu = float(co.n[name][u].sum())
+                bnd = st[u] == _BOUNDARY
+                U = _boundary_upper(nu, level)
+                for k in np.flatnonzero(bnd):
+                    hi[u, k] = max(U, float(th[u, k]))
+                js = rows.get((name, u))
+                if js is None:  # only the reference is interior: it sits at (nearly) 1
+                    r = co.reference[name][u]
+                    lo[u, r] = min(1.0 - U, float(th[u, r])) if bnd.any() else 0.0
+                    st[u, r] = _BOUNDARY if bnd.any() else st[u, r]
+                    continue
+                states = [co.coords[j][2] for j in js]
+                G = th[u][:, None] * ((np.arange(K)[:, None] == np.asarray(states)[None, :]) - th[u, states][None, :])
+                Minv = np.linalg.inv(blocks[(name, u)])
+                ci = [lookup[int(j)] for j in js]
+                S = cov_cols[np.ix_(js, ci)]
+                S = 0.5 * (S + S.T)
+                for k in range(K):
+                    if bnd[k]:
+                        continue
+                    g = G[k]
+                    den = float(g @ Minv @ g)
+                    if flat_X.shape[1]:
+                        share = float(np.sum((flat_X[js].T @ g) ** 2)) / den if den > 0 else 1.0
+                        if share >= FLAT_SHARE_TOL:
+                            st[u, k] = _NOT_IDENTIFIED
+                            continue
+                    var = float(g @ S @ g)
+                    t = float(th[u, k])
+                    if not (var >= 0) or t <= 0 or t >= 1:
+                        st[u, k] = _NOT_IDENTIFIED
+                        continue
+                    s = math.sqrt(var)
+                    se[u, k] = s
+                    lg = math.log(t) - math.log1p(-t)
+                    half = z * s / (t * (1.0 - t))
+                    lo[u, k] = _expit(lg - half)
+                    hi[u, k] = _expit(lg + half)
+            ni = st == _NOT_IDENTIFIED
+            lo[ni], hi[ni] = 0.0, 1.0
+        shape = net.cpt_shape(name)
+        se_d[name], lo_d[name], hi_d[name], st_d[name] = (se.reshape(shape), lo.reshape(shape), hi.reshape(shape),
+                                                          st.reshape(shape))
+    return se_d, lo_d, hi_d, st_d
+
+
+def _expit(x: float) -> float:
+    return 1.0 / (1.0 + math.exp(-x)) if x >= 0 else math.exp(x) / (1.0 + math.exp(x))
+
+
+def _missing_none(co: Coordinates, name: str) -> dict[str, Any]:
+    Q = co.probs[name].shape[0]
+    return {"largest": None, "mean": None, "rows": [None] * Q}
+
+
+def _fractions(cov_block: np.ndarray, com_block: np.ndarray) -> np.ndarray:
+    """Fractions of missing information 1 − eig(I_com⁻¹ S), S = (cov block)⁻¹ the marginal information."""
+    S = np.linalg.inv(0.5 * (cov_block + cov_block.T))
+    L = np.linalg.cholesky(com_block)
+    Li = np.linalg.inv(L)
+    mu = np.linalg.eigvalsh(Li @ S @ Li.T)
+    return np.clip(1.0 - mu, 0.0, 1.0)
+
+
+def _missing_fraction(co: Coordinates, name: str, status: Mapping[str, np.ndarray], cov_cols: np.ndarray,
+                      lookup: Mapping[int, int], blocks) -> dict[str, Any]:
+    """Per row and per node: fraction of missing information (marginal over the other parameters)."""
+    K = co.network.node(name).card
+    st = status[name].reshape(-1, K)
+    rows = co.row_slices()
+    per_row: list[float | None] = []
+    ident_js: list[int] = []
+    any_flat = False
+    for u in range(st.shape[0]):
+        js = rows.get((name, u))
+        if (st[u] == _NOT_IDENTIFIED).any():
+            per_row.append(1.0)
+            any_flat = True
+            continue
+        if js is None:
+            per_row.append(None)
+            continue
+        ci = [lookup[int(j)] for j in js]
+        per_row.append(float(_fractions(cov_cols[np.ix_(js, ci)], blocks[(name, u)]).max()))
+        ident_js.extend(int(j) for j in js)
+    largest = mean = None
+    if ident_js:
+        js = np.asarray(ident_js)
+        com = np.zeros((len(js), len(js)))
+        pos = {j: i for i, j in enumerate(ident_js)}
+        for (nm, u), rj in rows.items():
+            if nm == name and int(rj[0]) in pos:
+                ix = [pos[int(j)] for j in rj]
+                com[np.ix_(ix, ix)] = blocks[(nm, u)]
+        fr = _fractions(cov_cols[np.ix_(js, [lookup[int(j)] for j in js])], com)
+        largest, mean = float(fr.max()), float(fr.mean())
+    if any_flat:
+        largest = 1.0
+    return {"largest": largest, "mean": mean, "rows": per_row,
+            "meaning": "1 - observed/complete-data information (Louis 1982), marginal over the other parameters; "
+                       "largest over the node's directions, mean over its identified directions, largest per row"}
+
+
+def _name_directions(co: Coordinates, rho: np.ndarray, X: np.ndarray, blocks, info: np.ndarray | None) -> list[dict[str, Any]]:
+    net = co.network
+    rows = co.row_slices()
+    out = []
+    for i in np.argsort(rho):
+        if rho[i] > WEAK_TOL or len(out) >= MAX_NAMED:
+            break
+        x = X[:, i]
+        shares = []
+        for (name, u), js in rows.items():
+            s = float(x[js] @ blocks[(name, u)] @ x[js])
+            if s >= NAME_SHARE:
+                shares.append({"node": name, "row": int(u),
+                               "parents": dict(zip(net.node(name).parents, net.parent_config_labels(name)[u])),
+                               "share": s})
+        shares.sort(key=lambda d: -d["share"])
+        kind = "negative" if rho[i] < -FLAT_TOL else ("flat" if rho[i] <= FLAT_TOL else "weak")
+        d = {"kind": kind, "relative_curvature": float(rho[i]), "fraction_missing": float(np.clip(1 - rho[i], 0, 1)),
+             "rows": shares}
+        if info is not None:
+            xn = x / np.linalg.norm(x)
+            d["curvature"] = float(xn @ info @ xn)
+        out.append(d)
+    return out
+
+
+# --------------------------------------------------------------------------- matrix-free
+def _matrix_free(pb: _Problem, co: Coordinates, blocks, wanted: set[str], tol: float, max_iter: int, n_eig: int):
+    """Smallest ρ by LOBPCG on (I, M); columns of I⁻¹ for the wanted nodes by deflated PCG."""
+    from scipy.sparse.linalg import LinearOperator, lobpcg
+
+    P = co.size
+    rows = co.row_slices()
+    inv_blocks = {k: np.linalg.inv(b) for k, b in blocks.items()}
+
+    def m_times(V):
+        out = np.zeros_like(V)
+        for key, js in rows.items():
+            out[js] = blocks[key] @ V[js]
+        return out
+
+    def m_solve(V):
+        out = np.zeros_like(V)
+        for key, js in rows.items():
+            out[js] = inv_blocks[key] @ V[js]
+        return out
+
+    def as2d(f):
+        return lambda V: f(V.reshape(P, -1)) if V.ndim == 2 else f(V.reshape(P, 1)).ravel()
+
+    A = LinearOperator((P, P), matvec=as2d(pb.information_times), matmat=pb.information_times, dtype=np.float64)
+    B = LinearOperator((P, P), matvec=as2d(m_times), matmat=m_times, dtype=np.float64)
+    T = LinearOperator((P, P), matvec=as2d(m_solve), matmat=m_solve, dtype=np.float64)
+    k = max(1, min(n_eig, P // 5))
+    rng = np.random.default_rng(0)
+    X0 = m_solve(rng.standard_normal((P, k)))
+    import warnings
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        rho, X = lobpcg(A, X0, B=B, M=T, largest=False, tol=1e-9, maxiter=max(200, 4 * k))
+    order = np.argsort(rho)
+    rho, X = np.asarray(rho)[order], np.asarray(X)[:, order]
+    X = X / np.sqrt(np.einsum("ij,ij->j", X, m_times(X)))[None, :]  # M-normalise
+    flat = rho <= FLAT_TOL
+    # columns of I⁻¹ for the wanted nodes' coordinates
+    cols = np.asarray([j for j, (name, _, _) in enumerate(co.coords) if name in wanted], dtype=np.int64)
+    notes: list[str] = []
+    cov_cols = np.zeros((P, len(cols)))
+    worst = 0.0
+    for s in range(0, len(cols), pb.batch):
+        c = cols[s:s + pb.batch]
+        Bm = np.zeros((P, len(c)))
+        Bm[c, np.arange(len(c))] = 1.0
+        Xt_b = X.T @ Bm
+        known = (X[:, ~flat] / rho[~flat]) @ Xt_b[~flat]
+        rhs = Bm - m_times(X @ Xt_b)
+        y, res = _pcg(pb.information_times, m_solve, lambda V: V - X @ (X.T @ m_times(V)), rhs, tol, max_iter)
+        worst = max(worst, res)
+        cov_cols[:, s:s + len(c)] = known + y
+    if worst > tol:
+        notes.append(f"conjugate-gradient solves stopped at relative residual {worst:.2g} (> {tol:g}); "
+                     f"raise cg_max_iter for tighter error bars")
+    return rho, X, cov_cols, cols, X[:, flat], notes
+
+
+def _pcg(apply_a: Callable, precond: Callable, project: Callable, rhs: np.ndarray, tol: float,
+         max_iter: int) -> tuple[np.ndarray, float]:
+    """Block (column-wise) preconditioned conjugate gradients for A Y = RHS in the projected space."""
+    Y = np.zeros_like(rhs)
+    R = rhs.copy()
+    Z = project(precond(R))
+    Pd = Z.copy()
+    rz = np.einsum("ij,ij->j", R, Z)
+    norm0 = np.sqrt(np.maximum(rz, 0.0))
+    norm0[norm0 == 0] = 1.0
+    rel = np.zeros(rhs.shape[1])
+    for _ in range(max_iter):
+        rel = np.sqrt(np.maximum(rz, 0.0)) / norm0
+        active = rel > tol
+        if not active.any():
+            break
+        AP = apply_a(Pd[:, active])
+        pap = np.einsum("ij,ij->j", Pd[:, active], AP)
+        alpha = np.where(pap > 0, rz[active] / np.where(pap > 0, pap, 1.0), 0.0)
+        Y[:, active] += Pd[:, active] * alpha
+        R[:, active] -= AP * alpha
+        Zn = project(precond(R[:, active]))
+        rz_new = np.einsum("ij,ij->j", R[:, active], Zn)
+        beta = rz_new / np.where(rz[active] > 0, rz[active], 1.0)
+        Pd[:, active] = Zn + Pd[:, active] * beta
+        rz[active] = rz_new
+    rel = np.sqrt(np.maximum(rz, 0.0)) / norm0
+    return project(Y), float(rel.max(initial=0.0))
+
+
+# --------------------------------------------------------------------------- the result
+def _pseudo_for(result: Any, pseudo_counts: Mapping[str, np.ndarray] | None) -> dict[str, np.ndarray] | None:
+    """The fit's pseudo-counts: given, or rebuilt from the prior the result records."""
+    if pseudo_counts is not None:
+        if getattr(result, "objective", "mle") == "mle" and any(np.any(np.asarray(v) > 0) for v in pseudo_counts.values()):
+            raise OptionError("pseudo_counts were given but the result is a maximum-likelihood fit (objective mle); "
+                              "pass the pseudo-counts the fit used, or none")
+        return {k: np.asarray(v, dtype=np.float64) for k, v in pseudo_counts.items()}
+    if getattr(result, "objective", "mle") != "map":
+        return None
+    spec = (result.extras or {}).get("prior", {})
+    spec = spec.get("spec") if isinstance(spec, Mapping) else None
+    if spec is None:
+        raise OptionError("error bars of a MAP fit need its prior: pass pseudo_counts=... "
+                          "(the result does not record its prior)")
+    from .priors import prior_from_dict
+
+    return prior_from_dict(spec, result.network, source="<result prior>").pseudo_counts(result.network)
+
+
+def attach_uncertainty(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] | None = None,
+                       l2: float = 0.0, level: float = LEVEL, wide: float = WIDE_WIDTH, method: str = "auto",
+                       nodes: Iterable[str] | None = None, **kwargs: Any) -> Any:
+    """The result with error bars: ``"se"``, ``"interval"``, ``"se_status"`` and
+    ``"missing_information"`` in each free node's section and an ``"uncertainty"`` summary.
+
+    ``pseudo_counts`` and ``l2`` must be those of the fit (a MAP result that records its prior
+    needs no ``pseudo_counts``); further keyword arguments go to :func:`compute_uncertainty`.
+    """
+    fit_l2 = float((result.settings or {}).get("l2", 0.0) or 0.0)
+    if not math.isclose(fit_l2, float(l2), rel_tol=1e-12, abs_tol=0.0):
+        raise OptionError(f"the fit used an L2 penalty of {fit_l2:g} but l2={l2:g} was given; "
+                          f"pass l2={fit_l2:g} so that the Hessian is of the fitted objective")
+    pc = _pseudo_for(result, pseudo_counts)
+    unc = compute_uncertainty(result.network, data, result.probs, pseudo_counts=pc, l2=l2, level=level, wide=wide,
+                              method=method, nodes=nodes, converged=bool(result.converged), **kwargs)
+    return with_uncertainty(result, unc)
+
+
+def with_uncertainty(result: Any, unc: Uncertainty) -> Any:
+    """``result`` with the sections of ``unc`` merged into its extras (other node sections kept)."""
+    nodes = {k: dict(v) for k, v in (result.extras or {}).get("nodes", {}).items()}
+    for name, sec in unc.node_sections().items():
+        nodes.setdefault(name, {}).update(sec)
+    return result.with_extras(nodes=nodes, uncertainty=unc.summary())
+
+
+# --------------------------------------------------------------------------- reading it back
+def _node_section(result: Any, name: str) -> Mapping[str, Any]:
+    sec = (result.extras or {}).get("nodes", {}).get(name)
+    if not sec or "se" not in sec:
+        raise OptionError(f"the result has no error bars for node {name!r}; run attach_uncertainty first "
+                          f"(or fit without --no-errors)")
+    return sec
+
+
+def se_frame(result: Any, name: str) -> pd.DataFrame:
+    """Standard errors of node ``name`` laid out like ``result.cpt(name)`` (NaN: no SE)."""
+    sec = _node_section(result, name)
+    frame = result.cpt(name)
+    vals = np.array([[np.nan if x is None else float(x) for x in row] for row in sec["se"]])
+    return pd.DataFrame(vals, index=frame.index, columns=frame.columns)
+
+
+def interval_frames(result: Any, name: str) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Lower and upper interval limits of node ``name`` laid out like ``result.cpt(name)``."""
+    sec = _node_section(result, name)
+    frame = result.cpt(name)
+    lo, hi = (np.array([[np.nan if x is None else float(x) for x in row] for row in t]) for t in sec["interval"])
+    return (pd.DataFrame(lo, index=frame.index, columns=frame.columns),
+            pd.DataFrame(hi, index=frame.index, columns=frame.columns))
+
+
+# --------------------------------------------------------------------------- text
+def _cfg(d: Mapping[str, str]) -> str:
+    return ", ".join(f"{p}={s}" for p, s in d.items()) or "(no parents)"
+
+
+def format_uncertainty(summary: Mapping[str, Any], nodes: Mapping[str, Mapping[str, Any]] | None = None, *,
+                       network: Network | None = None, max_list: int = 10, digits: int = 3) -> str:
+    """Plain lines for the terminal: method, EM rate, per-node missing information, the flags
+    and (when ``network`` and ``nodes`` are given) the interval tables."""
+    pct = f"{100 * summary['level']:g}%"
+    lines = [f"error bars: {pct} intervals on the logit scale, {summary['n_coordinates']} coordinates "
+             f"({summary['method']} observed information)"]
+    if summary.get("em_rate") is not None:
+        lines.append(f"largest fraction of missing information (EM rate) {summary['em_rate']:.4f}")
+    if nodes:
+        parts = []
+        for name, sec in nodes.items():
+            mi = sec.get("missing_information") or {}
+            if mi.get("largest") is not None:
+                parts.append(f"{name} {mi['largest']:.3f}" + (f" (mean {mi['mean']:.3f})" if mi.get("mean") is not None else ""))
+        if parts:
+            lines.append("missing information per node (largest): " + "; ".join(parts))
+    for d in summary.get("directions", [])[:max_list]:
+        where = "; ".join(f"{r['node']} given {_cfg(r['parents'])} ({r['share']:.0%})" for r in d["rows"][:4]) or "spread out"
+        word = {"flat": "flat direction (not identified)", "weak": "weakly identified direction",
+                "negative": "negative curvature (not a maximum)"}[d["kind"]]
+        lines.append(f"{word}, observed/complete information {d['relative_curvature']:.2e}: {where}")
+    for key, text in (("not_identified", "not identified (interval [0, 1])"),
+                      ("no_data_rows", "no records reach this parent configuration (interval [0, 1])"),
+                      ("prior_only_rows", "informed by the prior only")):
+        rows = summary.get(key) or []
+        if rows:
+            shown = "; ".join(f"{r['node']} given {_cfg(r['parents'])}" for r in rows[:max_list])
+            more = f" and {len(rows) - max_list} more" if len(rows) > max_list else ""
+            lines.append(f"{text}: {shown}{more}")
+    b = summary.get("boundary_entries") or []
+    if b:
+        shown = "; ".join(f"{e['node']}={e['state']} given {_cfg(e['parents'])} [{e['interval'][0]:.3g}, {e['interval'][1]:.3g}]"
+                          for e in b[:max_list])
+        lines.append(f"on the boundary (one-sided exact binomial limit, no SE): {shown}"
+                     + (f" and {len(b) - max_list} more" if len(b) > max_list else ""))
+    w = [e for e in summary.get("wide_entries") or [] if e["status"] in ("interior", "boundary")]
+    if w:
+        shown = "; ".join(f"{e['node']}={e['state']} given {_cfg(e['parents'])} width {e['width']:.2f}" for e in w[:max_list])
+        lines.append(f"intervals wider than {summary['wide_threshold']:g}: {shown}"
+                     + (f" and {len(w) - max_list} more" if len(w) > max_list else ""))
+    for n in (summary.get("latent") or {}):
+        lines.append(f"latent node {n}: states identified only up to a relabelling; the error bars are for this labelling")
+    for note in summary.get("notes") or []:
+        lines.append(f"note: {note}")
+    if network is not None and nodes:
+        mark = {"interior": "", "boundary": "*", "not identified": "?", "no data": "-", "not computed": ""}
+        for name, sec in nodes.items():
+            if "interval" not in sec:
+                continue
+            node = network.node(name)
+            lo, hi = sec["interval"]
+            cells = [[("n/a" if a is None or (isinstance(a, float) and math.isnan(a)) else
+                       f"[{a:.{digits}f}, {c:.{digits}f}]{mark[s]}") for a, c, s in zip(r1, r2, r3)]
+                     for r1, r2, r3 in zip(lo, hi, sec["se_status"])]
+            index = (pd.MultiIndex.from_tuples(network.parent_config_labels(name), names=list(node.parents))
+                     if node.parents else pd.Index(["(none)"], name="parents"))
+            df = pd.DataFrame(cells, index=index, columns=pd.Index(list(node.states), name=name))
+            with pd.option_context("display.width", 200, "display.max_columns", 20):
+                lines.append(f"\n{pct} intervals for P({name} | {', '.join(node.parents) or '-'})"
+                             f" (* boundary, ? not identified, - no data)\n{df.to_string()}")
+    return "\n".join(lines)
+
+
+def cli_errors(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] | None, l2: float,
+               errors: bool | None, quiet: bool, echo: Callable[..., None]) -> Any:
+    """For ``adfit fit``: attach error bars (by default when the free parameters are at most
+    :data:`AUTO_MAX_PARAMETERS`; ``errors`` True forces, False skips) and print their summary."""
+    if errors is False:
+        return result
+    P = result.network.n_free_parameters()
+    if errors is None and P > AUTO_MAX_PARAMETERS:
+        echo(f"error bars skipped: {P} free parameters > {AUTO_MAX_PARAMETERS} (use --errors to compute them anyway)")
+        return result
+    out = attach_uncertainty(result, data, pseudo_counts=pseudo_counts, l2=l2)
+    summary = out.extras["uncertainty"]
+    if not quiet:
+        echo("")
+        echo(format_uncertainty(summary, {n: out.extras["nodes"][n] for n in result.network.free_names},
+                                network=result.network))
+    elif summary["not_identified"] or any(d["kind"] != "weak" for d in summary["directions"]):
+        echo("adfit: warning: some CPT entries are not identified by the data (see \"uncertainty\" in the result)",
+             err=True)
+    return out
