@@ -490,3 +490,39 @@ def demo_command(
             typer.echo(outcome.format_quiet())
         else:
             typer.echo(outcome.format_text())
+
+
+# ------------------------------------------------------------------ report (the HTML page)
+@app.command("report")
+def report_command(
+    result: Annotated[Path, typer.Argument(help="Result file (JSON, format adfit-result/1) from fit or em.",
+                                           exists=True, dir_okay=False, readable=True)],
+    out: Annotated[Path, typer.Option("--out", help="HTML file to write (one self-contained page).")],
+    data: Annotated[Optional[Path], typer.Option(
+        "--data", help="The records that were fitted (CSV or Parquet): adds the gaps overview.",
+        exists=True, readable=True)] = None,
+    missing: MissingOpt = None,
+    count_column: CountOpt = None,
+    ignore_columns: IgnoreOpt = None,
+    engine: EngineOpt = "pandas",
+    scheduler: SchedulerOpt = None,
+    title: Annotated[Optional[str], typer.Option("--title", help="Title of the page (default: from the file name).")] = None,
+) -> None:
+    """Write the fit as one self-contained HTML page (plots inside; opens offline, prints).
+
+    Sections: what was fitted (the network drawn, records, gaps, objective, prior), convergence
+    per start, the CPTs with intervals and identifiability flags, the EM cross-check, the gaps
+    overview and the complete-case comparison, AIC/BIC and cross-validation, cautions. A section
+    the result lacks says so and names the option that produces it.
+
+    Caution: the page restates the fit; its estimates rest on the network and on MAR, and support,
+    not replace, engineering or clinical judgement.
+
+    Example: adfit report fit.json --data inspections.csv --out report.html
+    """
+    from .report import write_report
+
+    with user_errors():
+        write_report(out, result, data=data, missing=missing, count_column=count_column,
+                     ignore_columns=split_list(ignore_columns), engine=engine, scheduler=scheduler, title=title)
+        typer.echo(f"wrote {out}")
