@@ -32,8 +32,7 @@ app = typer.Typer(
 # Shared option declarations (reuse these in every command that reads data).
 NetworkArg = Annotated[Path, typer.Argument(help="Network file (TOML): [nodes.NAME] tables with states, parents, latent, fixed.",
                                             exists=True, dir_okay=False, readable=True)]
-DataArg = Annotated[Path, typer.Argument(help="Records: CSV or Parquet, one column per non-latent node.",
-                                         exists=True, dir_okay=False, readable=True)]
+DataArg = Annotated[Path, typer.Argument(help="Records: a CSV or Parquet file (or a folder or glob pattern of such files), one column per non-latent node.")]
 MissingOpt = Annotated[Optional[list[str]], typer.Option(
     "--missing", help="A label that means 'not recorded' (repeat for several). Default: empty, NA, NaN, ?.")]
 CountOpt = Annotated[Optional[str], typer.Option(
