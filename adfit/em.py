@@ -5,15 +5,18 @@ elimination order, its own junction tree and its own message passing, so that ag
 EM and the gradient fit is a real check.
 
 E-step. Distinct data rows are grouped by their pattern of hidden cells (missing cells and the
-latent nodes). For each pattern one junction tree is built over the hidden nodes, from a greedy
-min-fill elimination order: eliminating ``x`` makes the cluster ``{x} ∪ neighbours(x)``, whose
-parent is the cluster of the first-eliminated node of its separator. Every CPT, indexed by the
-row's observed values, becomes a factor over its hidden family members, batched over the rows of
-the pattern, and is attached to the cluster of its first-eliminated member. An upward pass
-(messages rescaled per row, the log scales summed) gives each row's log-likelihood; a downward
-pass (Shafer–Shenoy: no division) gives every cluster's posterior, from which the posterior of
-each family over its hidden members is read off. Expected counts are
-``N̂(x, u) = Σ_rows weight · P(X = x, U = u | row)``, shaped like the CPT.
+latent nodes); patterns with few rows are pooled into one group. Per group one junction tree is
+built over the nodes not observed in every row of the group, from a greedy min-fill elimination
+order: eliminating ``x`` makes the cluster ``{x} ∪ neighbours(x)``, whose parent is the cluster of
+the first-eliminated node of its separator. Every CPT, indexed by the values of the nodes
+observed throughout the group, becomes a factor over its other family members, batched over the
+rows, and is attached to the cluster of its first-eliminated member; a node observed in only some
+rows of a pooled group adds a 0/1 evidence indicator per row. An upward pass (messages rescaled
+per row, the log scales summed) gives each row's log-likelihood; a downward pass
+(Shafer–Shenoy: no division) gives every cluster's posterior, from which the posterior of each
+family over its unobserved members is read off. Expected counts are
+``N̂(x, u) = Σ_rows weight · P(X = x, U = u | row)``, shaped like the CPT. Large groups are cut
+into chunks of rows to bound memory.
 
 M-step. Per free CPT row, ``θ(x|u) = (N̂(x,u) + c(x,u)) / (N̂(u) + c(u))`` with ``c`` the prior's
 pseudo-counts (``c = 0``: maximum likelihood; ``c ≥ 0``: the posterior mode of a Dirichlet with
@@ -70,13 +73,15 @@ class _FamilyIndex:
 
 @dataclass(frozen=True)
 class _PatternPlan:
+    """One group of rows (a missingness pattern, the pooled rare patterns, or a chunk of either)."""
+
     rows: np.ndarray                      # indices of the distinct rows of this pattern
     weights: np.ndarray                   # their counts
     clusters: tuple[tuple[int, ...], ...]  # cluster scopes (node indices), one per eliminated node
     seps: tuple[tuple[int, ...], ...]     # separator of each cluster towards its parent
     parent: tuple[int, ...]               # parent cluster (-1: a root)
     children: tuple[tuple[int, ...], ...]
-    assigned: tuple[tuple[int, ...], ...]  # nodes whose factor sits in each cluster
+    assigned: tuple[tuple[int, ...], ...]  # indices (into hidden_fams) of the factors in each cluster
     hidden_fams: tuple[_FamilyIndex, ...]  # families with at least one hidden member
     const_fams: tuple[_FamilyIndex, ...]   # families fully observed in this pattern
     evidence: tuple[tuple[int, np.ndarray], ...] = ()  # (node, (n, card) 0/1 indicator) of partial nodes
