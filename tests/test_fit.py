@@ -156,3 +156,12 @@ def test_minibatch_adam_reports_the_full_data_gradient():
     assert mb.settings["batch_size"] == 128
     with pytest.raises(OptionError, match="--batch-size"):
         fit(net, df, batch_size=64)
+
+
+def test_api_em_check_flag():
+    # The EM reference (own numpy inference) must reach the same optimum as the fit.
+    net, df = linkage_one_parameter()
+    res = fit(net, df, count_column="count", em_check=True)
+    assert res.extras["em_check"]["verdict"] == "agree"
+    with pytest.raises(OptionError, match="L2"):
+        fit(net, df, count_column="count", em_check=True, l2=0.1)
