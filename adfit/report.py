@@ -295,20 +295,34 @@ def _img(fig, alt: str, caption: str) -> str:
             f"<figcaption>{esc(caption)}</figcaption></figure>")
 
 
-def network_layers(network: Network, sweeps: int = 4) -> list[list[str]]:
-    """Nodes in layers by topological depth (roots in layer 0, each node one below its deepest
-    parent), ordered within each layer to shorten the arrows (barycentres of the neighbours'
-    positions, alternately from parents and from children)."""
+def _layered(network: Network, sweeps: int = 4) -> tuple[list[list[str]], dict[tuple[str, str], list[str]]]:
+    """Layers with a waypoint in every layer an arrow passes over, and the waypoints of each arrow.
+
+    A waypoint (a name starting with NUL) keeps a slot free for the arrow in the layers between
+    a parent and a child more than one layer below it, so that the arrow need not cross a box.
+    """
     depth: dict[str, int] = {}
     for n in network.nodes:
         depth[n.name] = 0 if not n.parents else 1 + max(depth[p] for p in n.parents)
     layers: list[list[str]] = [[] for _ in range(max(depth.values(), default=-1) + 1)]
     for n in network.nodes:
         layers[depth[n.name]].append(n.name)
-    kids: dict[str, list[str]] = {n: [] for n in network.names}
+    up: dict[str, list[str]] = {n: [] for n in network.names}     # neighbours one layer up
+    down: dict[str, list[str]] = {n: [] for n in network.names}   # neighbours one layer down
+    ways: dict[tuple[str, str], list[str]] = {}
     for n in network.nodes:
         for p in n.parents:
-            kids[p].append(n.name)
+            chain = [p]
+            for d in range(depth[p] + 1, depth[n.name]):
+                w = f"\0{p}>{n.name}@{d}"
+                layers[d].append(w)
+                up[w], down[w] = [], []
+                chain.append(w)
+            chain.append(n.name)
+            ways[(p, n.name)] = chain[1:-1]
+            for a, b in zip(chain, chain[1:]):
+                down[a].append(b)
+                up[b].append(a)
 
     def pos() -> dict[str, float]:
         return {name: i - (len(layer) - 1) / 2.0 for layer in layers for i, name in enumerate(layer)}
@@ -320,15 +334,23 @@ def network_layers(network: Network, sweeps: int = 4) -> list[list[str]]:
             return (float(np.mean([where[m] for m in nb])) if nb else i - (len(layer) - 1) / 2.0, i)
         return [name for _, name in sorted(enumerate(layer), key=key)]
 
-    parents = {n.name: list(n.parents) for n in network.nodes}
     for s in range(sweeps):
         if s % 2 == 0:
             for d in range(1, len(layers)):
-                layers[d] = reorder(layers[d], parents, pos())
+                layers[d] = reorder(layers[d], up, pos())
         else:
             for d in range(len(layers) - 2, -1, -1):
-                layers[d] = reorder(layers[d], kids, pos())
-    return layers
+                layers[d] = reorder(layers[d], down, pos())
+    return layers, ways
+
+
+def network_layers(network: Network, sweeps: int = 4) -> list[list[str]]:
+    """Nodes in layers by topological depth (roots in layer 0, each node one below its deepest
+    parent), ordered within each layer to shorten the arrows (barycentres of the neighbours'
+    positions, alternately from above and from below; an arrow that skips layers counts with a
+    waypoint in each layer it passes)."""
+    layers, _ = _layered(network, sweeps)
+    return [[n for n in layer if not n.startswith("\0")] for layer in layers]
 
 
 def _node_label(network: Network, name: str, limit: int = 26) -> tuple[str, str]:
@@ -339,22 +361,45 @@ def _node_label(network: Network, name: str, limit: int = 26) -> tuple[str, str]
     return name, text
 
 
+def _clip(centre: tuple[float, float], toward: tuple[float, float], hw: float, hh: float) -> tuple[float, float]:
+    """Where the segment from a box's centre toward a point leaves the box."""
+    (x1, y1), (x2, y2) = centre, toward
+    dx, dy = x2 - x1, y2 - y1
+    t = min(hw / abs(dx) if dx else math.inf, hh / abs(dy) if dy else math.inf)
+    return x1 + dx * t, y1 + dy * t
+
+
+def _crosses(a: tuple[float, float], b: tuple[float, float], boxes: Sequence[tuple[float, float]],
+             hw: float, hh: float) -> bool:
+    ts = np.linspace(0.0, 1.0, 41)
+    x = a[0] + ts * (b[0] - a[0])
+    y = a[1] + ts * (b[1] - a[1])
+    return any(bool(np.any((np.abs(x - ox) < hw) & (np.abs(y - oy) < hh))) for ox, oy in boxes)
+
+
 def network_figure(network: Network):
     """The network drawn in layers (a matplotlib Figure, no display needed).
 
     Plain boxes: solid outline = observed node with an estimated CPT; dashed outline = latent
-    node; grey fill = CPT fixed in the network. Arrows run from parent to child.
+    node; grey fill = CPT fixed in the network. Arrows run straight from parent to child; one
+    that skips layers and would cross a box runs through the free slots kept for it instead.
     """
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch, Rectangle
 
-    layers = network_layers(network)
+    layers, ways = _layered(network)
     labels = {n: _node_label(network, n) for n in network.names}
     chars = max(max(len(a), len(b)) for a, b in labels.values())
     bw = min(3.0, max(1.0, 0.085 * chars + 0.35))   # box width, inches
-    bh, gap, vgap, margin, legend_h = 0.55, 0.35, 0.75, 0.3, 0.75
-    widest = max(len(layer) for layer in layers)
-    width = max(6.0, widest * (bw + gap) - gap + 2 * margin)
+    bh, gap, vgap, margin, legend_h, slot = 0.55, 0.35, 0.75, 0.3, 0.75, 0.3
+
+    def w_of(name: str) -> float:
+        return slot if name.startswith("\0") else bw
+
+    def span(layer: list[str]) -> float:
+        return sum(w_of(n) for n in layer) + gap * (len(layer) - 1)
+
+    width = max(6.0, max(span(layer) for layer in layers) + 2 * margin)
     height = len(layers) * (bh + vgap) - vgap + 2 * margin + legend_h
     scale = min(1.0, 16.0 / width)
     fig = _figure(width * scale, height * scale)
@@ -365,12 +410,13 @@ def network_figure(network: Network):
     centre: dict[str, tuple[float, float]] = {}
     for d, layer in enumerate(layers):
         y = height - margin - bh / 2 - d * (bh + vgap)
-        span = len(layer) * (bw + gap) - gap
-        x0 = (width - span) / 2 + bw / 2
-        for i, name in enumerate(layer):
-            centre[name] = (x0 + i * (bw + gap), y)
+        x = (width - span(layer)) / 2
+        for name in layer:
+            centre[name] = (x + w_of(name) / 2, y)
+            x += w_of(name) + gap
     fs = 10.5 * scale
-    for name, (cx, cy) in centre.items():
+    for name in network.names:
+        cx, cy = centre[name]
         node = network.node(name)
         ax.add_patch(Rectangle((cx - bw / 2, cy - bh / 2), bw, bh, facecolor=SHADE if node.fixed is not None else "white",
                                edgecolor=INK, linewidth=1.3 * scale if not node.latent else 1.1 * scale,
@@ -379,16 +425,21 @@ def network_figure(network: Network):
         ax.text(cx, cy + 0.1, top, ha="center", va="center", fontsize=fs, fontweight="bold", color=INK, zorder=3)
         ax.text(cx, cy - 0.13, bottom, ha="center", va="center", fontsize=fs * 0.82, color="#444444", zorder=3)
     hw, hh = bw / 2 + 0.03, bh / 2 + 0.03
+    arrow = dict(arrowstyle="-|>", color=INK, lw=1.0 * scale, shrinkA=0, shrinkB=0, mutation_scale=12 * scale)
     for node in network.nodes:
         for p in node.parents:
-            (x1, y1), (x2, y2) = centre[p], centre[node.name]
-            dx, dy = x2 - x1, y2 - y1
-            length = math.hypot(dx, dy)
-            ux, uy = dx / length, dy / length
-            t = min(hw / abs(ux) if ux else math.inf, hh / abs(uy) if uy else math.inf)
-            ax.annotate("", xy=(x2 - ux * t, y2 - uy * t), xytext=(x1 + ux * t, y1 + uy * t),
-                        arrowprops=dict(arrowstyle="-|>", color=INK, lw=1.0 * scale, shrinkA=0, shrinkB=0,
-                                        mutation_scale=12 * scale), zorder=1)
+            a, b = centre[p], centre[node.name]
+            others = [centre[m] for m in network.names if m not in (p, node.name)]
+            pts = [a, b]
+            if ways[(p, node.name)] and _crosses(_clip(a, b, hw, hh), _clip(b, a, hw, hh), others,
+                                                 bw / 2 + 0.05, bh / 2 + 0.05):
+                pts = [a] + [centre[w] for w in ways[(p, node.name)]] + [b]
+            pts[0] = _clip(pts[0], pts[1], hw, hh)
+            pts[-1] = _clip(pts[-1], pts[-2], hw, hh)
+            if len(pts) > 2:
+                ax.plot([q[0] for q in pts[:-1]], [q[1] for q in pts[:-1]], color=INK, lw=1.0 * scale,
+                        solid_joinstyle="round", zorder=1)
+            ax.annotate("", xy=pts[-1], xytext=pts[-2], arrowprops=arrow, zorder=1)
     handles = [Patch(facecolor="white", edgecolor=INK, label="observed node, CPT estimated"),
                Patch(facecolor="white", edgecolor=INK, linestyle="--", label="latent node (never observed)"),
                Patch(facecolor=SHADE, edgecolor=INK, label="CPT fixed in the network"),
@@ -575,7 +626,11 @@ def complete_case_figure(doc: Mapping[str, Any], entries: Sequence[Mapping[str, 
     the comparison's entries, else none (the figure says which).
     """
     n = len(entries)
-    fig = _figure(9.5, 1.5 + 0.3 * n)
+    labels = [_entry_label(e) for e in entries]
+    labels = [t if len(t) <= 64 else t[:61] + "..." for t in labels]
+    label_w = min(4.8, 0.07 * max((len(t) for t in labels), default=10) + 0.3)   # inches at 9 pt
+    fig_w = label_w + 6.2
+    fig = _figure(fig_w, 1.9 + 0.3 * n)
     ax = fig.add_subplot(1, 1, 1)
     y = np.arange(n)[::-1].astype(float)
     full = np.array([_f(e.get("full")) for e in entries])
@@ -604,7 +659,8 @@ def complete_case_figure(doc: Mapping[str, Any], entries: Sequence[Mapping[str, 
     if (~supported).any():
         ax.plot(cc[~supported], y[~supported] - 0.15, "x", color="#999999", markersize=4.5,
                 label="complete case: configuration in no complete row")
-    ax.set_yticks(y, [_entry_label(e) for e in entries], fontsize=9)
+    ax.set_yticks(y, labels, fontsize=9)
+    ax.tick_params(axis="x", top=True, labeltop=n > 12)
     ax.set_xlim(-0.02, 1.02)
     ax.set_ylim(-0.8, n - 0.2)
     ax.set_xlabel("probability", fontsize=10)
@@ -615,10 +671,11 @@ def complete_case_figure(doc: Mapping[str, Any], entries: Sequence[Mapping[str, 
             f"error bars: full fit ± {z:g} SE" if kinds == {"se"} else
             "error bars: recorded interval, else ± 1.96 SE" if kinds else
             "no error bars: the result has no standard errors")
-    ax.legend(loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=3, frameon=False, fontsize=9, title=bars,
-              title_fontsize=9)
     h = fig.get_size_inches()[1]
-    fig.subplots_adjust(left=0.32, right=0.98, top=1 - 0.8 / h, bottom=0.55 / h)
+    fig.legend(*ax.get_legend_handles_labels(), loc="upper center", bbox_to_anchor=(0.5, 1.0 - 0.05 / h), ncol=3,
+               frameon=False, fontsize=9, title=bars, title_fontsize=9)
+    fig.subplots_adjust(left=(label_w + 0.1) / fig_w, right=1 - 0.2 / fig_w, top=1 - (1.05 if n > 12 else 0.8) / h,
+                        bottom=0.55 / h)
     return fig
 
 
@@ -982,7 +1039,7 @@ def _cpt_block(net: Network, name: str, sec: Mapping[str, Any], excluded: set[in
     heads = [esc(p) for p in parents] if parents else [""]
     heads += [esc(s) for s in node.states] + [esc(k) for k in row_flags]
     if mi_rows is not None:
-        heads.append("missing information")
+        heads.append("missing info")
     out.append(f'<table class="cpt-table" data-node="{esc(name)}"><thead><tr>'
                + "".join(f"<th>{h}</th>" for h in heads) + "</tr></thead><tbody>")
     shown = min(n_rows, MAX_TABLE_ROWS)

@@ -381,6 +381,40 @@ def test_network_drawing_marks_latent_and_fixed_nodes(case):
     assert len(arrows) == sum(len(n.parents) for n in net.nodes)
 
 
+def test_no_arrow_runs_through_a_box():
+    # a layer-skipping arrow (c -> z) beside short ones: drawn straight, it would cut the box of
+    # y; every drawn segment must stay out of every box but its own two ends'
+    from matplotlib.patches import Rectangle
+
+    net = network_from_dict({"r": {"states": ["0", "1"]}, "s": {"states": ["0", "1"]},
+                             "a": {"states": ["0", "1"], "parents": ["r"]},
+                             "c": {"states": ["clean", "dirty"], "parents": ["s"], "latent": True},
+                             "x": {"states": ["0", "1", "2"], "parents": ["a", "c"]},
+                             "y": {"states": ["0", "1"], "parents": ["a", "c"]},
+                             "z": {"states": ["0", "1"], "parents": ["x", "c"]},
+                             "w": {"states": ["0", "1"], "parents": ["x"]}})
+    fig = network_figure(net)
+    ax = fig.axes[0]
+    boxes = [(b.get_x(), b.get_y(), b.get_x() + b.get_width(), b.get_y() + b.get_height())
+             for b in ax.patches if isinstance(b, Rectangle)]
+    segments = [(np.array(t.xyann, float), np.array(t.xy, float)) for t in ax.texts
+                if getattr(t, "arrow_patch", None) is not None]
+    for line in ax.lines:
+        xy = np.column_stack(line.get_data())
+        segments += list(zip(xy[:-1], xy[1:]))
+    assert len(segments) > sum(len(n.parents) for n in net.nodes)  # at least one arrow was routed
+    tol = 0.02
+
+    def inside(pt, bx, pad):
+        return bx[0] + pad < pt[0] < bx[2] - pad and bx[1] + pad < pt[1] < bx[3] - pad
+
+    for p0, p1 in segments:
+        own = [bx for bx in boxes if inside(p0, bx, -0.06) or inside(p1, bx, -0.06)]
+        for t in np.linspace(0.02, 0.98, 97):
+            pt = p0 + t * (p1 - p0)
+            assert not any(inside(pt, bx, tol) for bx in boxes if bx not in own), (p0, p1)
+
+
 def _crossings(net, layers) -> int:
     pos = {n: (d, i) for d, layer in enumerate(layers) for i, n in enumerate(layer)}
     edges = [(pos[p], pos[n.name]) for n in net.nodes for p in n.parents]
