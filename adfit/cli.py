@@ -298,6 +298,10 @@ def fit_command(
         if not quiet:
             typer.echo(result.summary())
             typer.echo(f"elimination route: {result.settings.get('route')}")
+            if restarts > 1:
+                from .restarts import format_optima
+
+                typer.echo(format_optima(result.extras["restarts"]))
         if em_check:
             result = with_em_check(result, coded, pseudo_counts=None if pri is None else pri.pseudo_counts(net), seed=seed)
         if compare_complete_case:

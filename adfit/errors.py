@@ -41,3 +41,7 @@ class ConvergenceWarning(UserWarning):
 
 class IdentifiabilityWarning(UserWarning):
     """Some parameters are not pinned down by the data (flat directions, prior-only rows)."""
+
+
+class LocalOptimaWarning(UserWarning):
+    """Of several starts, only one reached the best objective: a higher optimum may exist."""

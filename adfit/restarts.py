@@ -1,0 +1,497 @@
+"""Several starts of one fit, run side by side, and the optima they reach.
+
+**Running the starts together.** Each start is the ordinary single-start optimiser
+(:meth:`adfit.fit.Fitter.run`: its own L-BFGS memory, its own diagonal preconditioner, its own
+strong-Wolfe line search and the same stopping rule), run in a thread of its own. Every
+objective evaluation a start asks for (a trial point of its line search, or the exact
+expected counts when a stopping test fires) is handed to a driver that waits until every
+unfinished start has asked, then evaluates all K points in **one** compiled call: the
+expected-counts pass of :mod:`adfit.likelihood` and the softmax/prior head of :mod:`adfit.fit`
+under ``jax.vmap`` over the K parameter sets, the data arrays shared (not batched). A start
+that has finished keeps a placeholder point in its slot, and its result is ignored; the
+compiled program is the same every round (one compile per network, plan and K). The threads
+only ever run the optimiser's small numpy bookkeeping; their answers depend on their own
+evaluations alone, so the result does not depend on how the threads are scheduled, and every
+start follows the path it would follow alone (up to rounding in the last bits, since the
+batched program may sum in another order).
+
+With K starts the largest intermediate of one chunk is K times that of a single start, so
+the batched plan uses chunks of ``chunk // K`` rows (at least 64): the memory of one
+evaluation stays near the single-start figure.
+
+**The optima.** After the starts stop, their end points are grouped: two starts reached the
+*same optimum* when their objectives agree within ``objective_rtol · max(1, |objective|)`` and,
+after the latent states are relabelled to match (:func:`adfit.crosscheck.align_latent_states`),
+every CPT entry agrees within ``theta_atol``. CPT rows whose parent configuration has an
+expected count below ``count_floor`` records at both points (not informed by the data) are
+left out of that comparison. Each optimum is reported with its objective, log-likelihood, the
+starts that reached it, the largest |Δθ| to the best optimum (relabelled), and whether it is
+*stationary*: the gradient norm (records) is at most ``gtol`` × records, or the largest
+per-row residual in probability units is at most ``ptol`` (the two thresholds of the stopping
+rule, :mod:`adfit.fit`). Optima of the same objective as the best but different CPTs point to
+parameters that the data do not identify (a flat ridge, e.g. three latent classes on four
+binary items) or to equally high optima.
+
+A :class:`adfit.errors.LocalOptimaWarning` is due when, of two or more starts, only one
+reached the best objective: a higher optimum may then have been missed.
+"""
+
+from __future__ import annotations
+
+import copy
+import dataclasses
+import math
+import threading
+import types
+from functools import partial
+from typing import Any, Callable, Mapping, Sequence
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from .crosscheck import LL_RTOL, THETA_ATOL, align_latent_states, relabel
+from .fit import _head, _head_grad
+from .likelihood import Plan, _value_and_expected_counts
+from .network import Network
+
+__all__ = ["run_starts", "BatchedObjective", "summarise_optima", "restarts_report", "local_optima_message",
+           "format_optima", "rechunk",
+           "COUNT_FLOOR", "MIN_BATCH_CHUNK"]
+
+#: CPT rows with an expected parent count below this many records (at both points compared)
+#: are not informed by the data and are left out of |Δθ|
+COUNT_FLOOR = 1e-6
+#: smallest chunk (rows) of the batched plan
+MIN_BATCH_CHUNK = 64
+
+
+# --------------------------------------------------------------------------- the batched objective
+@partial(jax.jit, static_argnums=(0, 1))
+def _batched_objective(network: Network, groups, z, scale, lc_given, use_given, pseudo, fixed_lc, l2, n_total,
+                       codes, weights):
+    """For K points at once: log-likelihood, −F/N, expected counts and ∂(−F/N)/∂z.
+
+    Slot ``i`` is evaluated at the log-CPTs given in ``lc_given`` where ``use_given[i]`` (the
+    exact evaluation of :meth:`Fitter.evaluate`), else at ``softmax(z·scale)`` (a point of the
+    optimiser, :func:`adfit.fit._objective_fg`).
+    """
+    free = network.free_names
+
+    def one(zi, si, lci, use):
+        lcs, rest = _head(network, zi, si, pseudo, fixed_lc, l2)
+        lcs = tuple(jnp.where(use, lci[n.name], a) if n.name in free else a for n, a in zip(network.nodes, lcs))
+        ll, counts = _value_and_expected_counts(network, groups, lcs, codes, weights)
+        g = _head_grad(network, zi, si, pseudo, fixed_lc, l2, counts, n_total)
+        return ll, -(ll + rest) / n_total, counts, g
+
+    return jax.vmap(one)(z, scale, lc_given, use_given)
+
+
+def rechunk(plan: Plan, width: int) -> Plan:
+    """The same groups and rows in chunks of ``max(MIN_BATCH_CHUNK, chunk // width)`` rows."""
+    groups, codes, weights = [], [], []
+    for gp, rows, c, w in zip(plan.groups, plan.rows, plan.codes, plan.weights):
+        n = len(rows)
+        new = min(gp.chunk, max(MIN_BATCH_CHUNK, gp.chunk // max(1, width)))
+        flat_c = c.reshape(-1, c.shape[-1])[:n]
+        flat_w = w.reshape(-1)[:n]
+        n_chunks = max(1, -(-n // new))
+        pad = n_chunks * new - n
+        # padding as in build_plan: copies of the group's first row with weight 0
+        flat_c = np.concatenate([flat_c, np.repeat(flat_c[:1], pad, axis=0)])
+        flat_w = np.concatenate([flat_w, np.zeros(pad)])
+        groups.append(dataclasses.replace(gp, chunk=new))
+        codes.append(flat_c.reshape(n_chunks, new, -1))
+        weights.append(flat_w.reshape(n_chunks, new))
+    return dataclasses.replace(plan, groups=tuple(groups), codes=tuple(codes), weights=tuple(weights))
+
+
+class BatchedObjective:
+    """Evaluates the objective of one fitter at up to ``width`` points in one compiled call.
+
+    Requests are ``("fg", z, scale)`` (a point of the optimiser, scaled logits) answered with
+    ``(−F/N, ∂(−F/N)/∂z)`` as :meth:`Fitter.objective_fg` does, or ``("counts", log_theta)``
+    (log-CPTs of the free nodes, by name) answered with ``(log-likelihood, expected counts per
+    node)`` as :meth:`Likelihood.expected_counts` does.
+    """
+
+    def __init__(self, fitter: Any, width: int):
+        if width < 1:
+            raise ValueError(f"width must be >= 1, got {width}")
+        self.width = int(width)
+        self.network = fitter.network
+        self.free = tuple(fitter.free)
+        plan = rechunk(fitter.lik.plan, self.width)
+        self.groups = plan.groups
+        self.codes = tuple(jnp.asarray(c) for c in plan.codes)
+        self.weights = tuple(jnp.asarray(w) for w in plan.weights)
+        self.pseudo = {k: jnp.asarray(v) for k, v in fitter.pseudo.items()}
+        self.fixed_lc = fitter.fixed_lc
+        self.l2 = jnp.asarray(float(fitter.settings.l2))
+        self.n_total = jnp.asarray(float(fitter.n_total))
+        shapes = {k: self.network.cpt_shape(k) for k in self.free}
+        self._zero = {k: np.zeros(s) for k, s in shapes.items()}
+        self._one = {k: np.ones(s) for k, s in shapes.items()}
+        self.calls = 0
+        self.slots_used = 0
+
+    def __call__(self, requests: Mapping[int, tuple]) -> dict[int, tuple]:
+        """Evaluate ``{slot: request}`` (slots in ``range(width)``); returns ``{slot: answer}``."""
+        K = self.width
+        z = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
+        scale = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
+        lcg = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
+        use = np.zeros(K, dtype=bool)
+        for i in range(K):
+            req = requests.get(i)
+            if req is not None and req[0] == "counts":
+                use[i] = True
+                for k in self.free:
+                    z[k][i], scale[k][i] = self._zero[k], self._one[k]
+                    lcg[k][i] = req[1][k]
+            else:
+                zi, si = (req[1], req[2]) if req is not None else (self._zero, self._one)
+                for k in self.free:
+                    z[k][i], scale[k][i], lcg[k][i] = zi[k], si[k], self._zero[k]
+        ll, f, counts, g = _batched_objective(self.network, self.groups, z, scale, lcg, use, self.pseudo,
+                                              self.fixed_lc, self.l2, self.n_total, self.codes, self.weights)
+        self.calls += 1
+        self.slots_used += len(requests)
+        ll, f = np.asarray(ll), np.asarray(f)
+        out: dict[int, tuple] = {}
+        if use.any():
+            counts = {n: np.asarray(c) for n, c in zip(self.network.names, counts)}
+        if not use.all():
+            g = {k: np.asarray(v) for k, v in g.items()}
+        for i, req in requests.items():
+            if req[0] == "counts":
+                out[i] = (float(ll[i]), {n: c[i] for n, c in counts.items()})
+            else:
+                out[i] = (float(f[i]), {k: v[i] for k, v in g.items()})
+        return out
+
+
+# --------------------------------------------------------------------------- lock-step exchange
+class _Aborted(Exception):
+    pass
+
+
+class _Exchange:
+    """Start threads post one request each and wait; the driver answers a full round at once."""
+
+    def __init__(self, width: int):
+        self.cond = threading.Condition()
+        self.requests: dict[int, tuple] = {}
+        self.answers: dict[int, tuple] = {}
+        self.live = set(range(width))
+        self.aborted = False
+
+    def ask(self, slot: int, request: tuple) -> tuple:
+        with self.cond:
+            if self.aborted:
+                raise _Aborted()
+            self.requests[slot] = request
+            self.cond.notify_all()
+            while slot not in self.answers:
+                if self.aborted:
+                    raise _Aborted()
+                self.cond.wait(0.5)
+            return self.answers.pop(slot)
+
+    def finish(self, slot: int) -> None:
+        with self.cond:
+            self.live.discard(slot)
+            self.cond.notify_all()
+
+    def abort(self) -> None:
+        with self.cond:
+            self.aborted = True
+            self.cond.notify_all()
+
+    def next_round(self) -> dict[int, tuple] | None:
+        """Block until every live start has posted; the round's requests, or None when all are done."""
+        with self.cond:
+            while True:
+                if self.aborted:
+                    return None
+                if not self.live:
+                    return None
+                if all(s in self.requests for s in self.live):
+                    batch, self.requests = self.requests, {}
+                    return batch
+                self.cond.wait(0.5)
+
+    def answer(self, answers: Mapping[int, tuple]) -> None:
+        with self.cond:
+            self.answers.update(answers)
+            self.cond.notify_all()
+
+
+class _SlotLikelihood:
+    """The fitter's Likelihood, with ``expected_counts`` answered by the batched driver."""
+
+    def __init__(self, lik: Any, exchange: _Exchange, slot: int):
+        self._lik, self._exchange, self._slot = lik, exchange, slot
+
+    def expected_counts(self, probs: Mapping[str, np.ndarray]) -> tuple[float, dict[str, np.ndarray]]:
+        # the log-CPTs of adfit.likelihood.logcpts_from_probs (fixed nodes come from the fitter)
+        with np.errstate(divide="ignore"):
+            lc = {k: np.log(np.asarray(probs[k], dtype=np.float64)) for k in self._lik.network.free_names}
+        return self._exchange.ask(self._slot, ("counts", lc))
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._lik, name)
+
+
+def _slot_fitter(fitter: Any, exchange: _Exchange, slot: int) -> Any:
+    """A copy of ``fitter`` whose evaluations are posted to ``exchange`` (all else shared)."""
+    f = copy.copy(fitter)
+    f.lik = _SlotLikelihood(fitter.lik, exchange, slot)
+
+    def objective_fg(self, z, scale, pseudo, l2, n_total):
+        return exchange.ask(slot, ("fg", z, scale))
+
+    f.objective_fg = types.MethodType(objective_fg, f)
+    if hasattr(f, "em_polish_steps"):
+        f.em_polish_steps = 0
+    return f
+
+
+# --------------------------------------------------------------------------- running K starts
+def run_starts(fitter: Any, starts: Sequence[Mapping[str, Any]], *,
+               progress: Callable[[int, int, float, float], None] | None = None,
+               batched: bool = True, stats: dict | None = None) -> tuple[list[Any], list[dict[str, Any]]]:
+    """Run every start of ``starts`` (logits of the free nodes) with ``fitter``.
+
+    Args:
+        fitter: an :class:`adfit.fit.Fitter`.
+        starts: one logits dict per start.
+        progress: called as ``progress(start, iteration, objective, gradient_norm)`` (from the
+            start's thread when batched).
+        batched: evaluate the K starts' points together (module docstring); ``False`` runs
+            them one after the other with the fitter itself (the reference).
+        stats: if given, filled with ``"rounds"`` (batched calls) and ``"slot_use"`` (fraction
+            of the slots that carried a live request).
+
+    Returns:
+        ``(runs, finals)``: per start the optimiser's run (``logits``, ``value``, ``iterations``,
+        ``converged``, ``stop_reason``, histories) and :meth:`Fitter.evaluate` at its end point.
+    """
+    K = len(starts)
+    if K == 0:
+        return [], []
+    sequential = (not batched or K == 1 or getattr(fitter.settings, "batch_size", None) is not None)
+    if sequential:
+        # minibatch Adam samples rows per step: its evaluations do not batch over starts
+        runs, finals = [], []
+        for k, s0 in enumerate(starts):
+            cb = None if progress is None else (lambda it, o, g, k=k: progress(k, it, o, g))
+            r = fitter.run(s0, progress=cb)
+            runs.append(r)
+            finals.append(fitter.evaluate(r.logits))
+        if stats is not None:
+            stats.update(rounds=None, slot_use=None, width=1)
+        return runs, finals
+
+    objective = BatchedObjective(fitter, K)
+    exchange = _Exchange(K)
+    workers = [_slot_fitter(fitter, exchange, k) for k in range(K)]
+    out: list[Any] = [None] * K
+    errors: list[BaseException | None] = [None] * K
+
+    def work(k: int) -> None:
+        try:
+            cb = None if progress is None else (lambda it, o, g: progress(k, it, o, g))
+            r = workers[k].run(starts[k], progress=cb)
+            out[k] = (r, workers[k].evaluate(r.logits))
+        except _Aborted:
+            pass
+        except BaseException as e:  # re-raised in the caller's thread below
+            errors[k] = e
+            exchange.abort()
+        finally:
+            exchange.finish(k)
+
+    threads = [threading.Thread(target=work, args=(k,), name=f"adfit-start-{k}", daemon=True) for k in range(K)]
+    for t in threads:
+        t.start()
+    try:
+        while True:
+            batch = exchange.next_round()
+            if batch is None:
+                break
+            exchange.answer(objective(batch))
+    except BaseException:
+        exchange.abort()
+        raise
+    finally:
+        for t in threads:
+            t.join()
+    for e in errors:
+        if e is not None:
+            raise e
+    if hasattr(fitter, "em_polish_steps"):
+        fitter.em_polish_steps += sum(w.em_polish_steps for w in workers)
+    if stats is not None:
+        stats.update(rounds=objective.calls, width=K,
+                     slot_use=objective.slots_used / max(1, objective.calls * K))
+    return [o[0] for o in out], [o[1] for o in out]
+
+
+# --------------------------------------------------------------------------- the optima
+def _max_delta(network: Network, a: Mapping[str, np.ndarray], b: Mapping[str, np.ndarray],
+               ca: Mapping[str, np.ndarray], cb: Mapping[str, np.ndarray], floor: float) -> tuple[float, dict | None]:
+    """Largest |θa − θb| over the free CPT entries, rows uninformed at both points left out."""
+    worst, where = 0.0, None
+    for name in network.free_names:
+        node = network.node(name)
+        d = np.abs(np.asarray(a[name]) - np.asarray(b[name])).reshape(-1, node.card)
+        na = np.asarray(ca[name]).reshape(-1, node.card).sum(axis=1)
+        nb = np.asarray(cb[name]).reshape(-1, node.card).sum(axis=1)
+        d[(na < floor) & (nb < floor)] = 0.0
+        if d.size and d.max() > worst:
+            i, j = np.unravel_index(int(np.argmax(d)), d.shape)
+            worst = float(d[i, j])
+            where = {"node": name, "parents": dict(zip(node.parents, network.parent_config_labels(name)[i])),
+                     "state": node.states[j]}
+    return worst, where
+
+
+def summarise_optima(network: Network, finals: Sequence[Mapping[str, Any]], *, gtol_abs: float, ptol: float,
+                     converged: Sequence[bool] | None = None, best: int | None = None,
+                     objective_rtol: float = LL_RTOL, theta_atol: float = THETA_ATOL,
+                     count_floor: float = COUNT_FLOOR) -> dict[str, Any]:
+    """Group the end points of several starts into distinct optima (module docstring).
+
+    Args:
+        finals: per start, :meth:`Fitter.evaluate` at its end point (``objective``,
+            ``log_likelihood``, ``probs``, ``counts``, ``gradient_norm``, ``residual``).
+        gtol_abs, ptol: the stationarity thresholds (gradient norm in records; residual in
+            probability units).
+        converged: per start, whether its stopping rule held (reported per optimum).
+        best: the start that was kept (default: the highest objective); it represents the
+            first optimum, the one the others are measured against.
+
+    Returns:
+        JSON-ready: ``"optima"`` (best first), ``"start_optimum"`` (the optimum of each start,
+        ``None`` when its objective is not finite), ``"starts_at_best_objective"`` and the
+        tolerances.
+    """
+    K = len(finals)
+    conv = list(converged) if converged is not None else [None] * K
+    obj = np.array([float(f["objective"]) for f in finals])
+    order = [int(k) for k in np.argsort(-np.where(np.isfinite(obj), obj, -np.inf), kind="stable") if np.isfinite(obj[k])]
+    if best is not None and best in order:
+        order.remove(best)
+        order.insert(0, best)
+    reps: list[int] = []
+    members: list[list[int]] = []
+    aligned: dict[int, tuple[dict, dict]] = {}  # start -> (probs, counts) relabelled to its optimum's representative
+    start_opt: list[int | None] = [None] * K
+
+    def tol_of(x: float) -> float:
+        return objective_rtol * max(1.0, abs(x))
+
+    for k in order:
+        placed = False
+        for j, r in enumerate(reps):
+            if abs(obj[k] - obj[r]) > tol_of(obj[r]):
+                continue
+            perms = align_latent_states(network, finals[k]["probs"], finals[r]["probs"])
+            pk, ck = relabel(network, finals[k]["probs"], perms), relabel(network, finals[k]["counts"], perms)
+            d, _ = _max_delta(network, pk, finals[r]["probs"], ck, finals[r]["counts"], count_floor)
+            if d <= theta_atol:
+                members[j].append(k)
+                start_opt[k] = j
+                placed = True
+                break
+        if not placed:
+            reps.append(k)
+            members.append([k])
+            start_opt[k] = len(reps) - 1
+
+    optima = []
+    best = reps[0] if reps else None
+    for j, (r, ms) in enumerate(zip(reps, members)):
+        fr = finals[r]
+        if j == 0:
+            d, where = 0.0, None
+        else:
+            perms = align_latent_states(network, fr["probs"], finals[best]["probs"])
+            d, where = _max_delta(network, relabel(network, fr["probs"], perms), finals[best]["probs"],
+                                  relabel(network, fr["counts"], perms), finals[best]["counts"], count_floor)
+        gn, res = float(fr["gradient_norm"]), float(fr["residual"])
+        optima.append({
+            "optimum": j,
+            "objective": float(fr["objective"]),
+            "log_likelihood": float(fr["log_likelihood"]),
+            "count": len(ms),
+            "starts": [int(m) for m in ms],
+            "best_start": int(r),
+            "max_abs_delta_theta": d,
+            "largest_delta_at": where,
+            "same_objective_as_best": bool(abs(fr["objective"] - finals[best]["objective"]) <= tol_of(finals[best]["objective"])),
+            "stationary": bool(gn <= gtol_abs or res <= ptol),
+            "gradient_norm": gn,
+            "residual": res,
+            "converged": [bool(conv[m]) for m in ms] if converged is not None else None,
+        })
+    at_best = sum(o["count"] for o in optima if o["same_objective_as_best"])
+    return {
+        "optima": optima,
+        "start_optimum": start_opt,
+        "starts_at_best_objective": int(at_best),
+        "n_starts": K,
+        "n_failed": int(K - len(order)),
+        "tolerances": {"objective_rtol": objective_rtol, "theta_atol": theta_atol, "count_floor": count_floor,
+                       "stationary_gradient_norm": gtol_abs, "stationary_residual": ptol},
+    }
+
+
+def restarts_report(network: Network, rows: list[dict[str, Any]], finals: Sequence[Mapping[str, Any]], *,
+                    best: int, gtol_abs: float, ptol: float, batch_width: int = 1) -> dict[str, Any]:
+    """The ``"restarts"`` section of a fit result: the per-start ``rows`` (each given the index
+    of its optimum, ``"optimum"``) and the optima of :func:`summarise_optima`."""
+    converged = [bool(r.get("converged")) for r in rows]
+    summary = summarise_optima(network, finals, gtol_abs=gtol_abs, ptol=ptol, converged=converged, best=best)
+    for r, j in zip(rows, summary.pop("start_optimum")):
+        r["optimum"] = j
+    return {"starts": rows, **summary, "batch_width": int(batch_width)}
+
+
+def local_optima_message(summary: Mapping[str, Any]) -> str | None:
+    """The text of the LocalOptimaWarning, or None when it is not due."""
+    K = summary["n_starts"]
+    if K < 2 or not summary["optima"] or summary["starts_at_best_objective"] > 1:
+        return None
+    best = summary["optima"][0]
+    others = len(summary["optima"]) - 1
+    return (f"the best objective {best['objective']:.6f} was reached by only 1 of {K} starts "
+            f"(the others reached {others} other optim{'um' if others == 1 else 'a'}"
+            + (f", {summary['n_failed']} failed" if summary["n_failed"] else "")
+            + "); a higher optimum may exist: run more starts (--restarts)")
+
+
+def format_optima(section: Mapping[str, Any]) -> str:
+    """A short plain-text table of the optima (for ``adfit fit --restarts K``)."""
+    opt = section["optima"]
+    tol = section["tolerances"]
+    lines = [f"starts: {section['n_starts']}"
+             + (f" ({section['batch_width']} evaluated together)" if section.get("batch_width", 1) > 1 else "")
+             + f"; {len(opt)} distinct optim{'um' if len(opt) == 1 else 'a'} (objectives within "
+             f"{tol['objective_rtol']:g} x max(1, |objective|), CPT entries within {tol['theta_atol']:g} "
+             f"after relabelling latent states)",
+             f"  {'#':>3s} {'objective':>18s} {'log-likelihood':>18s} {'starts':>6s} {'max |dtheta|':>12s} "
+             f"{'stationary':>10s} {'gradient norm':>13s}"]
+    for o in opt:
+        dt = "best" if o["optimum"] == 0 else f"{o['max_abs_delta_theta']:.3g}"
+        lines.append(f"  {o['optimum'] + 1:>3d} {o['objective']:18.8f} {o['log_likelihood']:18.8f} {o['count']:>6d} "
+                     f"{dt:>12s} {'yes' if o['stationary'] else 'no':>10s} {o['gradient_norm']:13.3e}")
+    ties = [o for o in opt[1:] if o["same_objective_as_best"]]
+    if ties:
+        lines.append(f"  {len(ties)} other optim{'um has' if len(ties) == 1 else 'a have'} the best objective with "
+                     f"different CPTs: parameters not identified by the data (a flat ridge) or equally high optima")
+    if section.get("n_failed"):
+        lines.append(f"  {section['n_failed']} start(s) ended with a non-finite objective")
+    return "\n".join(lines)
