@@ -221,22 +221,33 @@ class RichReporter(Reporter):
 
 
 def fit_progress(reporter: Reporter, label: str, restarts: int) -> tuple[Callable, Callable]:
-    """``(callback for fit(progress=...), close)``: a bar over the starts and one over the iterations."""
-    starts = reporter.begin(f"{label}: starts", total=restarts)
-    iters = reporter.begin(f"{label}: iterations of start 1", total=None)  # the count is unknown in advance
-    state = {"start": 0}
+    """``(callback for fit(progress=...), close)``: one line per start with its iterations.
+
+    The starts may run side by side (the callback is then called from several threads, in any
+    order), so each start gets its own line, made at its first iteration.
+    """
+    import threading
+
+    lock = threading.Lock()
+    lines: dict[int, int] = {}
+    waiting = reporter.begin(f"{label}: preparing {restarts} start{'s' if restarts > 1 else ''}", total=None)
 
     def callback(start: int, iteration: int, objective: float, gradient_norm: float) -> None:
-        if start != state["start"]:
-            reporter.update(starts, completed=start)
-            state["start"] = start
-        reporter.update(iters, completed=iteration,
-                        description=f"{label}: start {start + 1}, objective {objective:,.2f}")
+        with lock:
+            if start not in lines:
+                lines[start] = reporter.begin(f"{label}: start {start + 1} of {restarts}", total=None)
+                if len(lines) == 1:
+                    reporter.end(waiting)
+            reporter.update(lines[start], completed=iteration,
+                            description=f"{label}: start {start + 1} of {restarts}, objective {objective:,.2f}")
 
     def close() -> None:
-        reporter.update(starts, completed=restarts)
-        reporter.end(iters)
-        reporter.end(starts)
+        with lock:
+            if not lines:
+                reporter.end(waiting)
+            for task in lines.values():
+                reporter.end(task)
+            lines.clear()
 
     return callback, close
 
