@@ -196,10 +196,6 @@ def esc(s: Any) -> str:
     return html.escape(str(s), quote=True)
 
 
-def _num_td(text: str, cls: str = "num", attrs: str = "") -> str:
-    return f'<td class="{cls}"{attrs}>{esc(text)}</td>'
-
-
 def _table(headers: Sequence[str], rows: Iterable[Sequence[str]], *, cls: str = "plain", caption: str | None = None,
            raw: bool = False, num_from: int = 1) -> str:
     """A simple table; cells are escaped unless ``raw``; columns from ``num_from`` on are right-aligned."""

@@ -18,18 +18,14 @@ import copy
 import io
 import itertools
 import json
-import os
 import re
 import shutil
 import subprocess
-import tempfile
 import warnings
 from decimal import ROUND_HALF_EVEN, Context, Decimal
 from html.parser import HTMLParser
-from pathlib import Path
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from adfit.errors import AdfitError, ResultError
