@@ -288,13 +288,16 @@ def fit_command(
             pri = load_prior(prior, net)
         if em_check:
             em_check_options(l2)
-        fit_kwargs = dict(method=method, seed=seed, tol=tol, gtol=gtol, max_iter=max_iter, prior=pri, l2=l2,
+        fit_kwargs = dict(method=method, tol=tol, gtol=gtol, max_iter=max_iter, prior=pri, l2=l2,
                           learning_rate=learning_rate, batch_size=batch_size)
+        pseudo = None if pri is None else pri.pseudo_counts(net)
         with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always", ConvergenceWarning)
-            result = fit(net, coded, restarts=restarts, **fit_kwargs)
+            warnings.simplefilter("always")
+            with _progress(quiet) as (callback, reporter):
+                result = fit(net, coded, restarts=restarts, seed=seed, progress=callback, **fit_kwargs)
         for w in caught:
-            typer.echo(f"adfit: warning: {w.message}", err=True)
+            if issubclass(w.category, UserWarning):
+                typer.echo(f"adfit: warning: {w.message}", err=True)
         if not quiet:
             typer.echo(result.summary())
             typer.echo(f"elimination route: {result.settings.get('route')}")
@@ -302,12 +305,16 @@ def fit_command(
                 from .restarts import format_optima
 
                 typer.echo(format_optima(result.extras["restarts"]))
+        # error bars first: the complete-case comparison reports differences in their units
+        from .uncertainty import cli_errors
+
+        result = cli_errors(result, coded, pseudo_counts=pseudo, l2=l2, errors=errors, quiet=quiet, echo=typer.echo)
         if em_check:
-            result = with_em_check(result, coded, pseudo_counts=None if pri is None else pri.pseudo_counts(net), seed=seed)
+            result = with_em_check(result, coded, pseudo_counts=pseudo, seed=seed)
         if compare_complete_case:
             from .gaps import compare_complete_case as ccc
 
-            cmp = ccc(net, coded, full=result, **{k: v for k, v in fit_kwargs.items()})
+            cmp = ccc(net, coded, full=result, seed=seed, **fit_kwargs)
             result = result.with_extras(complete_case=cmp.to_dict())
             if not quiet:
                 typer.echo(cmp.format_text())
@@ -326,14 +333,27 @@ def fit_command(
             typer.echo(ic.format_text())
             typer.echo("")
             typer.echo(format_cpts(result, names=net.free_names))
-        from .uncertainty import cli_errors
-
-        result = cli_errors(result, coded, pseudo_counts=None if pri is None else pri.pseudo_counts(net), l2=l2,
-                            errors=errors, quiet=quiet, echo=typer.echo)
         write_result(out, result)
         typer.echo(f"wrote {out}")
         if not quiet:
             typer.echo(CAUTION)
+
+
+@contextmanager
+def _progress(quiet: bool):
+    """Progress bars on stderr for the starts and iterations of a fit (none with -q)."""
+    from .demo import Reporter, RichReporter, fit_progress
+
+    reporter = Reporter() if quiet else RichReporter()
+    if quiet:
+        yield None, reporter
+        return
+    with reporter.running():
+        callback, close = fit_progress(reporter, "fit", 1)
+        try:
+            yield callback, reporter
+        finally:
+            close()
 
 
 @app.command("score")
@@ -458,77 +478,6 @@ def query_command(
             typer.echo(q.format_text())
             typer.echo("")
             typer.echo(CAUTION)
-
-
-# ------------------------------------------------------------------ demo (the embedded scenario)
-@app.command("demo")
-def demo_command(
-    out: Annotated[Path, typer.Option("--out", help="Folder to write the demo's files into (created if needed).",
-                                      file_okay=False)] = Path("adfit-demo"),
-    restarts: Annotated[int, typer.Option("--restarts", help="Starts of the fit (the best is kept).")] = 4,
-    seed: Annotated[int, typer.Option("--seed", help="Seed of the random starts and of EM's own start.")] = 0,
-    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars; print only the files written and warnings.")] = False,
-    as_json: Annotated[bool, typer.Option("--json", help="Print the summary as JSON (format adfit-demo/1) instead of text.")] = False,
-) -> None:
-    """Run the whole job on the embedded wind-turbine gearbox scenario (simulated records).
-
-    Writes into --out: the network, the prior and the records, then looks at the gaps, fits the CPTs (MAP, expert prior on oil_debris, several starts), cross-checks the fit with EM, adds error bars, compares with dropping incomplete records, imputes the gaps, and writes fit.json and report.html. The summary says where each file went and what the numbers mean.
-
-    Caution: the records are simulated; estimates rest on the network, the prior and MAR.
-
-    Example: adfit demo --out adfit-demo
-    """
-    import json
-
-    from .demo import Reporter, RichReporter, run_demo
-
-    with user_errors():
-        reporter = Reporter() if (quiet or as_json) else RichReporter()
-        outcome = run_demo(out, restarts=restarts, seed=seed, reporter=reporter)
-        for w in outcome.warnings:
-            typer.echo(f"adfit: warning: {w}", err=True)
-        if as_json:
-            typer.echo(json.dumps(outcome.to_dict(), indent=2))
-        elif quiet:
-            typer.echo(outcome.format_quiet())
-        else:
-            typer.echo(outcome.format_text())
-
-
-# ------------------------------------------------------------------ report (the HTML page)
-@app.command("report")
-def report_command(
-    result: Annotated[Path, typer.Argument(help="Result file (JSON, format adfit-result/1) from fit or em.",
-                                           exists=True, dir_okay=False, readable=True)],
-    out: Annotated[Path, typer.Option("--out", help="HTML file to write (one self-contained page).")],
-    data: Annotated[Optional[Path], typer.Option(
-        "--data", help="The records that were fitted (CSV or Parquet): adds the gaps overview.",
-        exists=True, readable=True)] = None,
-    missing: MissingOpt = None,
-    count_column: CountOpt = None,
-    ignore_columns: IgnoreOpt = None,
-    engine: EngineOpt = "pandas",
-    scheduler: SchedulerOpt = None,
-    title: Annotated[Optional[str], typer.Option("--title", help="Title of the page (default: from the file name).")] = None,
-) -> None:
-    """Write the fit as one self-contained HTML page (plots inside; opens offline, prints).
-
-    Sections: what was fitted (the network drawn, records, gaps, objective, prior), convergence
-    per start, the CPTs with intervals and identifiability flags, the EM cross-check, the gaps
-    overview and the complete-case comparison, AIC/BIC and cross-validation, cautions. A section
-    the result lacks says so and names the option that produces it.
-
-    Caution: the page restates the fit; its estimates rest on the network and on MAR, and support,
-    not replace, engineering or clinical judgement.
-
-    Example: adfit report fit.json --data inspections.csv --out report.html
-    """
-    from .report import write_report
-
-    with user_errors():
-        write_report(out, result, data=data, missing=missing, count_column=count_column,
-                     ignore_columns=split_list(ignore_columns), engine=engine, scheduler=scheduler, title=title)
-        typer.echo(f"wrote {out}")
 
 
 # ------------------------------------------------------------------ demo (the embedded scenario)

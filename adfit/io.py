@@ -23,6 +23,10 @@ def atomic_write(path: str | Path, mode: str = "w", encoding: str | None = "utf-
     if not parent.exists():
         raise AdfitError(f"{p}: output folder {parent} does not exist; create it first")
     fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".tmp", dir=parent)
+    # mkstemp creates the file owner-only; give it the permissions an ordinary open() would
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o666 & ~umask)
     try:
         with os.fdopen(fd, mode, encoding=encoding if "b" not in mode else None) as fh:
             yield fh
