@@ -23,9 +23,9 @@ Verdicts (``"verdict"``):
 
 * ``"agree"``: the fit and EM from its own start reach the same optimum: objectives within
   ``ll_rtol · max(1, |objective|)`` and every informed CPT entry within ``theta_atol``;
-* ``"different-optima"``: all runs stationary, objectives differ by more than the tolerance (the
+* ``"disagree-different-optima"``: all runs stationary, objectives differ by more than the tolerance (the
   likelihood is multimodal); ``"higher"`` says which is higher;
-* ``"different-parameters"``: all runs stationary, the same objective within tolerance, but CPT
+* ``"disagree-different-parameters"``: all runs stationary, the same objective within tolerance, but CPT
   entries differ by more than ``theta_atol``: a flat ridge (parameters not identified by the
   data) or equally high optima;
 * ``"not-converged"``: the fit or an EM run did not meet its stopping rule, or EM started from
@@ -49,7 +49,7 @@ from .network import Network
 __all__ = ["em_check", "attach_em_check", "format_em_check", "align_latent_states", "VERDICTS",
            "LL_RTOL", "THETA_ATOL"]
 
-VERDICTS = ("agree", "different-optima", "different-parameters", "not-converged")
+VERDICTS = ("agree", "disagree-different-optima", "disagree-different-parameters", "not-converged")
 #: default tolerance on the objective: relative to max(1, |objective|)
 LL_RTOL = 1e-6
 #: default tolerance on CPT entries (probabilities)
@@ -235,12 +235,12 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
         verdict = "not-converged"
         detail = "; ".join(problems)
     elif abs(diff) > tol_obj:
-        verdict = "different-optima"
+        verdict = "disagree-different-optima"
         higher = "em" if diff > 0 else "fit"
         detail = (f"both stationary, objectives differ by {abs(diff):.6g}: the likelihood is multimodal; "
                   f"the {'EM optimum' if higher == 'em' else 'fit'} is higher (try more restarts)")
     elif d_own > theta_atol:
-        verdict = "different-parameters"
+        verdict = "disagree-different-parameters"
         higher = "equal"
         detail = (f"same objective within {tol_obj:.3g} but CPT entries differ by up to {d_own:.3g}: "
                   f"parameters not identified by the data (a flat ridge), or equally high optima")

@@ -1094,9 +1094,9 @@ def _cpt_block(net: Network, name: str, sec: Mapping[str, Any], excluded: set[in
 
 _VERDICT_TEXT = {
     "agree": "The fit and an independent EM run from its own start reach the same optimum.",
-    "different-optima": "Both are stationary but reach different objective values: the likelihood has several "
+    "disagree-different-optima": "Both are stationary but reach different objective values: the likelihood has several "
                         "maxima. Try more restarts.",
-    "different-parameters": "Same objective, different CPTs: some parameters are not pinned down by the data "
+    "disagree-different-parameters": "Same objective, different CPTs: some parameters are not pinned down by the data "
                             "(a flat ridge), or there are equally high optima.",
     "not-converged": "A run did not meet its stopping rule, or EM from the fit's answer climbed above it: "
                      "the fit may have stopped short of a maximum.",

@@ -110,7 +110,7 @@ def test_saddle_point_gives_different_optima(st_case):
         probs[it] = np.array([[p, 1 - p], [p, 1 - p]])
     saddle = _as_fit(net, data, probs)
     chk = em_check(saddle, data, seed=1)
-    assert chk["verdict"] == "different-optima", format_em_check(chk)
+    assert chk["verdict"] == "disagree-different-optima", format_em_check(chk)
     assert chk["higher"] == "em"
     assert chk["em_own_start"]["objective_value"] == pytest.approx(res.log_likelihood, rel=1e-9)
     assert chk["fit"]["gradient_norm"] < 1e-9
@@ -140,7 +140,7 @@ def test_flat_row_gives_different_parameters():
     pi = linkage_mle()
     at = _as_fit(net, data, {"g": np.array([[0.9, 0.1], [pi, 1 - pi]])})
     chk = em_check(at, data)
-    assert chk["verdict"] == "different-parameters", format_em_check(chk)
+    assert chk["verdict"] == "disagree-different-parameters", format_em_check(chk)
     assert chk["em_own_start"]["largest_delta_at"]["parents"] == {"half": "yes"}
     assert abs(chk["objective_difference"]) < 1e-9
 

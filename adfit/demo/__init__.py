@@ -476,8 +476,8 @@ def run_demo(out_dir: str | Path = DEFAULT_OUT, *, restarts: int = DEFAULT_RESTA
             result = attach_em_check(result, coded, pseudo_counts=pseudo, seed=seed)
         chk = result.extras["em_check"]
         meaning = {"agree": "the independent EM reaches the same optimum",
-                   "different-optima": "EM found a different optimum; more starts are needed",
-                   "different-parameters": "same objective, different CPTs: some parameters are not pinned down",
+                   "disagree-different-optima": "EM found a different optimum; more starts are needed",
+                   "disagree-different-parameters": "same objective, different CPTs: some parameters are not pinned down",
                    "not-converged": "a run did not converge"}[chk["verdict"]]
         outcome.numbers["em_check"] = {"verdict": chk["verdict"], "max_abs_delta_theta": chk["max_abs_delta_theta"]}
         timed("em_check", "done", f"{chk['verdict']}: {meaning} (largest CPT difference {chk['max_abs_delta_theta']:.1e})", t0)
