@@ -308,6 +308,11 @@ class Fitter:
         return _objective_fg(self.network, self.lik.plan.groups, z, scale, pseudo, self.fixed_lc,
                              l2, n_total, self.lik._codes, self.lik._weights)
 
+    def lbfgs_direction(self, memory: int, grad, state, params):
+        """optax's L-BFGS direction and memory update for one start (:mod:`adfit.restarts`
+        overrides it to update the memories of several starts in one vmapped call)."""
+        return _lbfgs_direction(memory, grad, state, params)
+
     def probs(self, logits: Mapping[str, Any]) -> dict[str, np.ndarray]:
         return probs_from_logits(self.network, logits)
 
@@ -403,7 +408,7 @@ class Fitter:
             stop_phase = False
             while it < s.max_iter:
                 if s.method == "lbfgs":
-                    d, state = _lbfgs_direction(s.memory, g, state, z)
+                    d, state = self.lbfgs_direction(s.memory, g, state, z)
                     d = {k: -np.asarray(d[k]) for k in self.free}
                     alpha, f_new, g_new, _ = wolfe_line_search(fg, z, f, g, d)
                     if alpha is None:

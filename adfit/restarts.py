@@ -9,7 +9,9 @@ unfinished start has asked, then evaluates all K points in **one** compiled call
 expected-counts pass of :mod:`adfit.likelihood` and the softmax/prior head of :mod:`adfit.fit`
 under ``jax.vmap`` over the K parameter sets, the data arrays shared (not batched). A start
 that has finished keeps a placeholder point in its slot, and its result is ignored; the
-compiled program is the same every round (one compile per network, plan and K). The threads
+compiled program is the same every round (one compile per network, plan and K). When a single
+start is left, its evaluations go to the single-start programs instead (compiled for the
+fitter anyway), so a long last start does not pay for K slots. The threads
 only ever run the optimiser's small numpy bookkeeping; their answers depend on their own
 evaluations alone, so the result does not depend on how the threads are scheduled, and every
 start follows the path it would follow alone (up to rounding in the last bits, since the
@@ -49,6 +51,7 @@ from typing import Any, Callable, Mapping, Sequence
 import jax
 import jax.numpy as jnp
 import numpy as np
+import optax
 
 from .crosscheck import LL_RTOL, THETA_ATOL, align_latent_states, relabel
 from .fit import _head, _head_grad
@@ -88,6 +91,76 @@ def _batched_objective(network: Network, groups, z, scale, lc_given, use_given, 
     return jax.vmap(one)(z, scale, lc_given, use_given)
 
 
+@partial(jax.jit, static_argnums=(0,))
+def _batched_lbfgs(memory: int, grads, params, states, active, reset):
+    """optax's L-BFGS direction and memory update for K starts (stacked on axis 0).
+
+    A slot with ``reset`` starts from a fresh memory (a new phase); a slot that is not
+    ``active`` keeps its memory (its direction is ignored).
+    """
+    opt = optax.scale_by_lbfgs(memory_size=memory)
+
+    def one(g, p, st, act, rst):
+        fresh = opt.init(p)
+        st0 = jax.tree.map(lambda a, b: jnp.where(rst, a, b), fresh, st)
+        d, new = opt.update(g, st0, p)
+        return d, jax.tree.map(lambda a, b: jnp.where(act, a, b), new, st0)
+
+    return jax.vmap(one)(grads, params, states, active, reset)
+
+
+class _Memory:
+    """Stands for a start's L-BFGS memory, which the driver keeps stacked with the others'.
+
+    :meth:`Fitter.run` only hands the state back to the next :meth:`Fitter.lbfgs_direction`
+    call; a state that is not a ``_Memory`` is a fresh one from ``init`` (a new phase).
+    """
+
+    __slots__ = ("slot",)
+
+    def __init__(self, slot: int):
+        self.slot = slot
+
+
+class BatchedDirections:
+    """L-BFGS directions of up to ``width`` starts in one vmapped call, each start with its own
+    memory (kept here, stacked; the starts hold a :class:`_Memory` handle)."""
+
+    def __init__(self, width: int, memory: int, template: Mapping[str, np.ndarray]):
+        self.width = int(width)
+        self.memory = int(memory)
+        self.free = tuple(template)
+        self._zero = {k: np.zeros(np.shape(v)) for k, v in template.items()}
+        stacked = {k: np.zeros((self.width,) + v.shape) for k, v in self._zero.items()}
+        self.states = jax.vmap(optax.scale_by_lbfgs(memory_size=self.memory).init)(stacked)
+        self.calls = 0
+
+    def __call__(self, requests: Mapping[int, tuple]) -> dict[int, tuple]:
+        """``{slot: ("dir", memory, grad, state, params)}`` -> ``{slot: (direction, handle)}``."""
+        K = self.width
+        g = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
+        z = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
+        active = np.zeros(K, dtype=bool)
+        reset = np.zeros(K, dtype=bool)
+        for i in range(K):
+            req = requests.get(i)
+            if req is None:
+                for k in self.free:
+                    g[k][i] = z[k][i] = self._zero[k]
+                continue
+            _, memory, gi, st, zi = req
+            if memory != self.memory:  # pragma: no cover - one fitter, one memory size
+                raise ValueError(f"L-BFGS memory {memory} != {self.memory}")
+            active[i] = True
+            reset[i] = not isinstance(st, _Memory)
+            for k in self.free:
+                g[k][i], z[k][i] = gi[k], zi[k]
+        d, self.states = _batched_lbfgs(self.memory, g, z, self.states, active, reset)
+        self.calls += 1
+        d = {k: np.asarray(v) for k, v in d.items()}
+        return {i: ({k: v[i] for k, v in d.items()}, _Memory(i)) for i in requests}
+
+
 def rechunk(plan: Plan, width: int) -> Plan:
     """The same groups and rows in chunks of ``max(MIN_BATCH_CHUNK, chunk // width)`` rows."""
     groups, codes, weights = [], [], []
@@ -116,10 +189,12 @@ class BatchedObjective:
     node)`` as :meth:`Likelihood.expected_counts` does.
     """
 
-    def __init__(self, fitter: Any, width: int):
+    def __init__(self, fitter: Any, width: int, *, single_tail: bool = True):
         if width < 1:
             raise ValueError(f"width must be >= 1, got {width}")
         self.width = int(width)
+        self.fitter = fitter
+        self.single_tail = single_tail
         self.network = fitter.network
         self.free = tuple(fitter.free)
         plan = rechunk(fitter.lik.plan, self.width)
@@ -135,10 +210,27 @@ class BatchedObjective:
         self._one = {k: np.ones(s) for k, s in shapes.items()}
         self.calls = 0
         self.slots_used = 0
+        self.single_calls = 0
+
+    def _single(self, slot: int, req: tuple) -> dict[int, tuple]:
+        """One request by the single-start programs (compiled for the fitter anyway)."""
+        f = self.fitter
+        self.single_calls += 1
+        if req[0] == "counts":
+            lcs = tuple(jnp.asarray(req[1][n.name]) if n.fixed is None else f.fixed_lc[n.name] for n in self.network.nodes)
+            ll, counts = f.lik.expected_counts_logcpt(lcs)
+            return {slot: (float(ll), {n: np.asarray(c) for n, c in zip(self.network.names, counts)})}
+        return {slot: f.objective_fg(req[1], req[2], self.pseudo, self.l2, self.n_total)}
 
     def __call__(self, requests: Mapping[int, tuple]) -> dict[int, tuple]:
-        """Evaluate ``{slot: request}`` (slots in ``range(width)``); returns ``{slot: answer}``."""
+        """Evaluate ``{slot: request}`` (slots in ``range(width)``); returns ``{slot: answer}``.
+
+        With ``single_tail`` a round with one request left (the last start still running) is
+        evaluated by the single-start programs instead of the K-wide one."""
         K = self.width
+        if self.single_tail and len(requests) == 1 and K > 1:
+            (slot, req), = requests.items()
+            return self._single(slot, req)
         z = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
         scale = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
         lcg = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
@@ -178,10 +270,15 @@ class _Aborted(Exception):
 
 
 class _Exchange:
-    """Start threads post one request each and wait; the driver answers a full round at once."""
+    """Start threads post one request each and wait; the driver answers a full round at once.
+
+    The driver waits on one condition (a request posted, a start finished); each start waits
+    on an event of its own, so a round wakes every thread once.
+    """
 
     def __init__(self, width: int):
         self.cond = threading.Condition()
+        self.ready = [threading.Event() for _ in range(width)]
         self.requests: dict[int, tuple] = {}
         self.answers: dict[int, tuple] = {}
         self.live = set(range(width))
@@ -192,40 +289,50 @@ class _Exchange:
             if self.aborted:
                 raise _Aborted()
             self.requests[slot] = request
-            self.cond.notify_all()
-            while slot not in self.answers:
-                if self.aborted:
-                    raise _Aborted()
-                self.cond.wait(0.5)
+            if len(self.requests) >= len(self.live):
+                self.cond.notify()
+        ev = self.ready[slot]
+        while not ev.wait(0.5):
+            pass
+        ev.clear()
+        with self.cond:
+            if self.aborted:
+                raise _Aborted()
             return self.answers.pop(slot)
 
     def finish(self, slot: int) -> None:
         with self.cond:
             self.live.discard(slot)
-            self.cond.notify_all()
+            self.cond.notify()
 
     def abort(self) -> None:
         with self.cond:
             self.aborted = True
-            self.cond.notify_all()
+            self.cond.notify()
+        for ev in self.ready:
+            ev.set()
 
     def next_round(self) -> dict[int, tuple] | None:
         """Block until every live start has posted; the round's requests, or None when all are done."""
         with self.cond:
             while True:
-                if self.aborted:
-                    return None
-                if not self.live:
+                if self.aborted or not self.live:
                     return None
                 if all(s in self.requests for s in self.live):
                     batch, self.requests = self.requests, {}
                     return batch
                 self.cond.wait(0.5)
 
+    def hold(self, requests: Mapping[int, tuple]) -> None:
+        """Put requests of a round back, to be served in the next one."""
+        with self.cond:
+            self.requests.update(requests)
+
     def answer(self, answers: Mapping[int, tuple]) -> None:
         with self.cond:
             self.answers.update(answers)
-            self.cond.notify_all()
+        for s in answers:
+            self.ready[s].set()
 
 
 class _SlotLikelihood:
@@ -252,7 +359,11 @@ def _slot_fitter(fitter: Any, exchange: _Exchange, slot: int) -> Any:
     def objective_fg(self, z, scale, pseudo, l2, n_total):
         return exchange.ask(slot, ("fg", z, scale))
 
+    def lbfgs_direction(self, memory, grad, state, params):
+        return exchange.ask(slot, ("dir", memory, grad, state, params))
+
     f.objective_fg = types.MethodType(objective_fg, f)
+    f.lbfgs_direction = types.MethodType(lbfgs_direction, f)
     if hasattr(f, "em_polish_steps"):
         f.em_polish_steps = 0
     return f
@@ -271,8 +382,10 @@ def run_starts(fitter: Any, starts: Sequence[Mapping[str, Any]], *,
             start's thread when batched).
         batched: evaluate the K starts' points together (module docstring); ``False`` runs
             them one after the other with the fitter itself (the reference).
-        stats: if given, filled with ``"rounds"`` (batched calls) and ``"slot_use"`` (fraction
-            of the slots that carried a live request).
+        stats: if given, filled with ``"rounds"`` (K-wide calls), ``"slot_use"`` (fraction of
+            their slots that carried a live request), ``"single_rounds"`` (rounds with one start
+            left, evaluated by the single-start programs), ``"direction_rounds"`` (vmapped L-BFGS
+            updates) and ``"width"``.
 
     Returns:
         ``(runs, finals)``: per start the optimiser's run (``logits``, ``value``, ``iterations``,
@@ -291,10 +404,11 @@ def run_starts(fitter: Any, starts: Sequence[Mapping[str, Any]], *,
             runs.append(r)
             finals.append(fitter.evaluate(r.logits))
         if stats is not None:
-            stats.update(rounds=None, slot_use=None, width=1)
+            stats.update(rounds=None, slot_use=None, single_rounds=None, direction_rounds=None, width=1)
         return runs, finals
 
     objective = BatchedObjective(fitter, K)
+    directions = BatchedDirections(K, fitter.settings.memory, starts[0])
     exchange = _Exchange(K)
     workers = [_slot_fitter(fitter, exchange, k) for k in range(K)]
     out: list[Any] = [None] * K
@@ -321,7 +435,14 @@ def run_starts(fitter: Any, starts: Sequence[Mapping[str, Any]], *,
             batch = exchange.next_round()
             if batch is None:
                 break
-            exchange.answer(objective(batch))
+            dirs = {s: r for s, r in batch.items() if r[0] == "dir"}
+            if dirs:
+                # directions first; the evaluation requests wait for the line searches that
+                # follow, so that the evaluation round carries every live start
+                exchange.hold({s: r for s, r in batch.items() if r[0] != "dir"})
+                exchange.answer(directions(dirs))
+            else:
+                exchange.answer(objective(batch))
     except BaseException:
         exchange.abort()
         raise
@@ -334,7 +455,8 @@ def run_starts(fitter: Any, starts: Sequence[Mapping[str, Any]], *,
     if hasattr(fitter, "em_polish_steps"):
         fitter.em_polish_steps += sum(w.em_polish_steps for w in workers)
     if stats is not None:
-        stats.update(rounds=objective.calls, width=K,
+        stats.update(rounds=objective.calls, width=K, single_rounds=objective.single_calls,
+                     direction_rounds=directions.calls,
                      slot_use=objective.slots_used / max(1, objective.calls * K))
     return [o[0] for o in out], [o[1] for o in out]
 

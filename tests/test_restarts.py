@@ -141,6 +141,37 @@ def test_batched_objective_answers_each_slot_as_the_single_start_code(st2):
     assert out[1][0] == pytest.approx(lcm_loglik(probs[1], 2), rel=1e-12)  # closed form
     for name in net.names:
         np.testing.assert_allclose(out[1][1][name], counts_ref[name], rtol=1e-11, atol=1e-12)
+    # a round with one request left goes to the single-start programs: the same answers
+    alone = obj({2: ("counts", lc1)})
+    assert obj.single_calls == 1 and alone[2][0] == pytest.approx(ll_ref, rel=1e-13)
+
+
+def test_batched_lbfgs_memories_equal_separate_optax_updates(st2):
+    # Two starts' L-BFGS memories kept side by side (one with a fresh memory half-way, as at a
+    # new phase) give the directions of optax.scale_by_lbfgs run separately for each.
+    import optax
+
+    from adfit.restarts import BatchedDirections
+
+    net, data, fitter, starts = st2
+    rng = np.random.default_rng(11)
+    memory = fitter.settings.memory
+    opt = optax.scale_by_lbfgs(memory_size=memory)
+    dirs = BatchedDirections(3, memory, starts[0])
+    ref_state = {0: opt.init(starts[0]), 2: opt.init(starts[1])}
+    handle = dict(ref_state)
+    z = {0: starts[0], 2: starts[1]}
+    for step in range(6):
+        if step == 3:  # slot 2 starts a new phase
+            ref_state[2] = handle[2] = opt.init(z[2])
+        g = {i: {k: rng.standard_normal(v.shape) for k, v in z[i].items()} for i in z}
+        out = dirs({i: ("dir", memory, g[i], handle[i], z[i]) for i in z})
+        for i in z:
+            d_ref, ref_state[i] = opt.update(g[i], ref_state[i], z[i])
+            for k in net.free_names:
+                np.testing.assert_allclose(out[i][0][k], np.asarray(d_ref[k]), rtol=1e-12, atol=1e-14)
+            handle[i] = out[i][1]
+            z[i] = {k: v - 0.1 * np.asarray(d_ref[k]) for k, v in z[i].items()}
 
 
 def test_rechunked_plan_has_the_same_rows_and_likelihood():
