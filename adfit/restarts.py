@@ -7,19 +7,25 @@ objective evaluation a start asks for (a trial point of its line search, or the 
 expected counts when a stopping test fires) is handed to a driver that waits until every
 unfinished start has asked, then evaluates all K points in **one** compiled call: the
 expected-counts pass of :mod:`adfit.likelihood` and the softmax/prior head of :mod:`adfit.fit`
-under ``jax.vmap`` over the K parameter sets, the data arrays shared (not batched). A start
-that has finished keeps a placeholder point in its slot, and its result is ignored; the
-compiled program is the same every round (one compile per network, plan and K). When a single
-start is left, its evaluations go to the single-start programs instead (compiled for the
-fitter anyway), so a long last start does not pay for K slots. The threads
-only ever run the optimiser's small numpy bookkeeping; their answers depend on their own
-evaluations alone, so the result does not depend on how the threads are scheduled, and every
-start follows the path it would follow alone (up to rounding in the last bits, since the
-batched program may sum in another order).
+under ``jax.vmap`` over the K parameter sets, the data arrays shared (not batched). The L-BFGS
+directions go the same way: the driver keeps the K memories stacked and updates those of the
+starts that ask in one vmapped ``optax.scale_by_lbfgs`` update (the others keep theirs; a start
+that begins a new phase gets a fresh memory); a round of directions is served before the
+round of evaluations that follows it, so that the evaluation round carries every live start.
+A start that has finished keeps a placeholder point in its slot and its result is ignored;
+the compiled programs are the same every round (one compile per network, plan and K). When a
+single start is left, its evaluations go to the single-start programs instead (compiled for
+the fitter anyway), so a long last start does not pay for K slots. The threads only run the
+optimiser's small numpy bookkeeping; their answers depend on their own evaluations alone, so
+the result does not depend on how the threads are scheduled, and every start follows the path
+it would follow alone (up to rounding in the last bits, since the batched programs may sum in
+another order). Adam's updates stay per start; minibatch Adam (``batch_size``) samples rows
+per step and runs its starts one after the other.
 
 With K starts the largest intermediate of one chunk is K times that of a single start, so
-the batched plan uses chunks of ``chunk // K`` rows (at least 64): the memory of one
-evaluation stays near the single-start figure.
+the batched plan uses chunks of ``chunk // K`` rows (at least 64) where the plan is made of
+row groups in equal chunks (:func:`rechunk`): the memory of one evaluation then stays near
+the single-start figure. Plans of other layouts are used as they are.
 
 **The optima.** After the starts stop, their end points are grouped: two starts reached the
 *same optimum* when their objectives agree within ``objective_rtol · max(1, |objective|)`` and,
@@ -42,7 +48,6 @@ from __future__ import annotations
 
 import copy
 import dataclasses
-import math
 import threading
 import types
 from functools import partial
@@ -58,8 +63,8 @@ from .fit import _head, _head_grad
 from .likelihood import Plan, _value_and_expected_counts
 from .network import Network
 
-__all__ = ["run_starts", "BatchedObjective", "summarise_optima", "restarts_report", "local_optima_message",
-           "format_optima", "rechunk",
+__all__ = ["run_starts", "BatchedObjective", "BatchedDirections", "summarise_optima", "restarts_report", "local_optima_message",
+           "format_optima", "rechunk", "can_rechunk",
            "COUNT_FLOOR", "MIN_BATCH_CHUNK"]
 
 #: CPT rows with an expected parent count below this many records (at both points compared)
@@ -161,8 +166,24 @@ class BatchedDirections:
         return {i: ({k: v[i] for k, v in d.items()}, _Memory(i)) for i in requests}
 
 
+def can_rechunk(plan: Any) -> bool:
+    """Whether ``plan`` is laid out as row groups in equal chunks (``GroupPlan.chunk`` rows per
+    chunk, codes ``(chunks, chunk, nodes)``, weights ``(chunks, chunk)``), which
+    :func:`rechunk` knows how to cut smaller. Other layouts are used as they are."""
+    rows = getattr(plan, "rows", ())
+    if not plan.groups or len(rows) != len(plan.groups):
+        return False
+    for gp, c, w in zip(plan.groups, plan.codes, plan.weights):
+        chunk = getattr(gp, "chunk", None)
+        if not (isinstance(chunk, int) and isinstance(c, np.ndarray) and isinstance(w, np.ndarray)
+                and c.ndim == 3 and w.ndim == 2 and c.shape[1] == chunk == w.shape[1]):
+            return False
+    return True
+
+
 def rechunk(plan: Plan, width: int) -> Plan:
-    """The same groups and rows in chunks of ``max(MIN_BATCH_CHUNK, chunk // width)`` rows."""
+    """The same groups and rows in chunks of ``max(MIN_BATCH_CHUNK, chunk // width)`` rows
+    (a plan of the layout :func:`can_rechunk` accepts)."""
     groups, codes, weights = [], [], []
     for gp, rows, c, w in zip(plan.groups, plan.rows, plan.codes, plan.weights):
         n = len(rows)
@@ -197,10 +218,14 @@ class BatchedObjective:
         self.single_tail = single_tail
         self.network = fitter.network
         self.free = tuple(fitter.free)
-        plan = rechunk(fitter.lik.plan, self.width)
-        self.groups = plan.groups
-        self.codes = tuple(jnp.asarray(c) for c in plan.codes)
-        self.weights = tuple(jnp.asarray(w) for w in plan.weights)
+        lik = fitter.lik
+        if can_rechunk(lik.plan):
+            plan = rechunk(lik.plan, self.width)
+            self.groups = plan.groups
+            self.codes = jax.tree_util.tree_map(jnp.asarray, plan.codes)
+            self.weights = jax.tree_util.tree_map(jnp.asarray, plan.weights)
+        else:  # another layout of the core: its own chunks (K times the memory of one start)
+            self.groups, self.codes, self.weights = lik.plan.groups, lik._codes, lik._weights
         self.pseudo = {k: jnp.asarray(v) for k, v in fitter.pseudo.items()}
         self.fixed_lc = fitter.fixed_lc
         self.l2 = jnp.asarray(float(fitter.settings.l2))

