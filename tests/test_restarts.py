@@ -117,6 +117,21 @@ def test_batched_starts_reach_the_optima_of_separate_fits(st2):
                                    atol=1.5e-3)
 
 
+def test_batched_map_with_l2_equals_separate_fits(st2):
+    # The prior (pseudo-counts) and the L2 penalty enter the batched head as in the single
+    # start: MAP + L2 fits side by side end where the separate ones do.
+    net, data, _, starts = st2
+    pc = {n: np.full(net.cpt_shape(n), 1.5) for n in net.free_names}
+    fitter = Fitter(net, data, settings=FitSettings(l2=0.3), pseudo_counts=pc)
+    rb, fb = run_starts(fitter, starts)
+    rs, fs = run_starts(fitter, starts, batched=False)
+    for a, b, fa, fb_ in zip(rb, rs, fb, fs):
+        assert a.converged and b.converged and a.value == pytest.approx(b.value, rel=1e-11)
+        assert fa["log_prior"] != 0 and fa["penalty"] > 0
+        for name in net.free_names:
+            np.testing.assert_allclose(fa["probs"][name], fb_["probs"][name], rtol=0, atol=1e-6)
+
+
 def test_batched_objective_answers_each_slot_as_the_single_start_code(st2):
     # One round with mixed requests (optimiser points, exact evaluations, an empty slot): each
     # answer equals the single-start code's (Fitter.objective_fg, Likelihood.expected_counts).
