@@ -5,30 +5,46 @@ For a distinct coded row ``e`` (observed cells) the marginal likelihood is
     P(e) = sum over the hidden cells h of  prod_i theta_i(x_i | x_pa(i))   with x = (e, h),
 
 a sum over every assignment of the row's hidden cells (missing cells and latent nodes). It is
-never enumerated here: the products are organised by variable elimination with an order chosen
-from the graph (greedy min-fill), so the cost grows with the treewidth of the part of the
-network that is hidden, not with the number of hidden cells.
+never enumerated over all hidden cells at once: the sum factorises, and each factor is computed
+by the cheapest exact method for its size.
 
-How the rows are organised (the *plan*, built once per network and data in plain numpy):
+How a row is taken apart (the *plan*, built once per network and data, in plain numpy):
 
-* Rows are split into **groups**. A frequent missingness pattern gets a group of its own; the
-  long tail of rare patterns shares one group. Inside a group a node is *observed* (in every row
-  of the group), *hidden* (in every row), or *partial* (observed in some rows).
-* Observed nodes are never summed over: their values index the CPTs directly (a gather). A
-  family whose members are all observed contributes ``log theta`` gathered in log space.
-* Partial nodes get an evidence-indicator factor (one-hot where observed, all ones where
-  missing), so one contraction serves every row of the group.
-* Hidden nodes none of whose descendants is observed or partial in the group sum out to 1 and
-  are pruned (barren nodes).
-* Factors carry the rows on their **last** axis, so that each elimination step is an
-  elementwise product and a sum over small leading axes, vectorised over rows.
-* Each elimination step divides its message by its maximum per row and adds the log of that
-  maximum back (stop-gradient is exact here: the scale cancels), so a row whose likelihood is
-  far below 1e-308 is still finite in float64.
-* Rows are processed in fixed-size chunks by ``lax.scan`` that accumulates each chunk's value
-  and gradient, so memory is bounded by the chunk size, not by the number of rows.
+* **Barren nodes.** A hidden node none of whose descendants is observed in the row sums out to 1
+  and is dropped (its family and those of its hidden descendants).
+* **Components.** The remaining hidden nodes of the row fall into connected components (two
+  hidden nodes are linked when they appear in one kept family). A family touches at most one
+  component. With ``H`` a component and ``F`` the families that touch it,
 
-The core function takes **log-CPTs** (``log theta``, all nodes). Its gradient with respect to
+      log P(e) = sum over families with every member observed of  log theta(e)
+               + sum over components (H, F) of  log sum_{x_H} prod_{f in F} theta_f.
+
+* **Observed families** contribute the data counts times ``log theta``: the counts are summed
+  over the rows once, at plan time, so their cost per evaluation is the size of the CPTs, not the
+  number of rows (their expected counts are the data counts themselves).
+* **Small components** (the common case: one to a few hidden cells whose neighbours are
+  observed) are enumerated: each of the ``prod |H|`` assignments gathers ``|F|`` log-CPT entries
+  (observed values looked up directly), followed by one log-sum-exp. A component is identified by
+  the CPT entries it reads, so equal components of different rows are computed once with summed
+  weights. Components of every type share a few padded shapes (*buckets*), compiled once each.
+* **Large components** (or, for the uniform route, whole rows) go to the *elimination tape*:
+  variable elimination with a greedy min-fill order, compiled into a flat program of
+  log-sum-exp products over a buffer of table entries (``sum_v prod_j input_j`` per output entry,
+  in log space), packed into fixed-width batches and executed by one ``lax.scan``. The program
+  is data, not code: every program of a shape class runs on one compiled loop, so compile time
+  does not grow with the number of variables, steps or component types. Uniform evidence (the
+  classical form: one-hot indicators for observed cells, all ones for missing ones) lets one
+  program serve rows of different missingness patterns.
+* The route per component (enumerate, its own elimination program, or the whole row in the
+  uniform program) is chosen by an estimated cost that includes compile time; ``Plan.route`` and
+  ``Plan.describe()`` say what was chosen.
+
+Everything is computed in log space with max-shifted log-sum-exp, so a row whose likelihood is
+far below 1e-308 is still finite in float64; a row of probability zero gives ``-inf``. Rows are
+processed in fixed-size chunks by ``lax.scan`` that accumulates each chunk's value and gradient,
+so memory is bounded by the chunk size, not by the number of rows.
+
+The core functions take **log-CPTs** (``log theta``, all nodes). The gradient with respect to
 ``log theta_i(x|u)`` is the expected count ``N(x, u)`` of the family given the data (the
 derivative of the network polynomial, Darwiche 2003, J. ACM 50(3)); composed with
 ``log_softmax`` it gives the gradient with respect to the logits, ``N(x,u) - theta(x|u) N(u)``
@@ -41,26 +57,45 @@ import dataclasses
 import math
 from dataclasses import dataclass
 from functools import partial
-from typing import Mapping, Sequence
+from typing import Any, Mapping, Sequence
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 
 from .data import HIDDEN, CodedData
-from .errors import ImpossibleDataError
+from .errors import ImpossibleDataError, OptionError
 from .network import Network
 
-# A group needs at least this many distinct rows to get code of its own (compile time is paid
-# per group); at most MAX_PATTERN_GROUPS patterns are specialised.
-MIN_PATTERN_ROWS = 512
-MAX_PATTERN_GROUPS = 12
-# Target number of float64 entries in the largest intermediate of one chunk (~4 MB): measured
-# on the 37-node benchmark, smaller chunks pay per-iteration overhead, larger ones leave cache.
+# --------------------------------------------------------------------------- cost model
+# Seconds on the 2-core reference machine for one value-and-gradient, fitted to the figures of
+# benchmarks/bench_likelihood.py (docs/performance.md). They only rank the routes; a factor of
+# two either way changes few decisions.
+PLAN_EVALUATIONS = 100      # evaluations a fit is planned for (iterations x line-search steps)
+T_ENUM = 3.7e-9               # per padded entry of an enumerated component (gather, exp, scatter)
+T_TAPE = 9e-9               # per gathered operand of the elimination tape, per row
+T_LOOP = 1.5e-5             # per iteration of a compiled loop (one chunk, or one tape batch)
+COMPILE_ENUM = 0.3          # compile time of one enumeration bucket
+COMPILE_TAPE = 1.2          # compile time of one elimination-tape class
+TAPE_PAD = 2.0              # tape operands per min-fill cost unit (padding of batches and slots)
+ENUM_ALWAYS = 256           # a component with at most this many entries is always enumerated
+ENUM_MAX = 1 << 16          # ... and one with more is never enumerated
+ENUM_BUDGET = 1 << 18       # padded entries per chunk of an enumeration bucket
+TAPE_BUDGET = 1 << 17       # float64 entries of one tape chunk's buffer (1 MiB: stays in cache)
+TAPE_SLOTS = 4              # summed terms per tape entry (states of the eliminated variable) ...
+TAPE_FACTORS = 3            # ... and multiplied operands per term; larger steps are split
+PLAN_BLOCK = 1 << 22        # cells (rows x nodes) decomposed at a time when building a plan
+
+# Legacy knobs of the per-pattern route, still honoured: a component type gets an elimination
+# program of its own only with at least MIN_PATTERN_ROWS distinct instances (below, the cost
+# model decides) and at most MAX_PATTERN_GROUPS such programs are made under route="auto".
+MIN_PATTERN_ROWS = 1
+MAX_PATTERN_GROUPS = 1 << 16
+# Target number of float64 entries in the largest intermediate of one posterior chunk (~4 MB).
 CHUNK_BUDGET = 1 << 19
 
 
-# --------------------------------------------------------------------------- the static plan
+# --------------------------------------------------------------------------- elimination plans
 @dataclass(frozen=True)
 class FactorSpec:
     """A CPT factor of one node restricted to a group.
@@ -89,7 +124,7 @@ class Step:
 
 @dataclass(frozen=True)
 class GroupPlan:
-    """Everything static about one group of rows (hashable: a static jit argument)."""
+    """An elimination plan for a set of rows (hashable: a static jit argument)."""
 
     log_terms: tuple[tuple[int, tuple[int, ...]], ...]  # (node, family in CPT axis order)
     factors: tuple[FactorSpec, ...]                     # ids 0..len-1
@@ -103,34 +138,6 @@ class GroupPlan:
     n_hidden: int
     n_partial: int
     n_pruned: int
-
-
-@dataclass(frozen=True)
-class Plan:
-    """Groups of distinct rows, each with its static plan and its padded data arrays."""
-
-    network: Network
-    groups: tuple[GroupPlan, ...]
-    rows: tuple[np.ndarray, ...]      # indices into the distinct rows, per group
-    codes: tuple[np.ndarray, ...]     # (n_chunks, chunk, n_nodes) int32, per group
-    weights: tuple[np.ndarray, ...]   # (n_chunks, chunk) float64 (0 on padding), per group
-    n_distinct: int
-
-    def describe(self) -> str:
-        parts = []
-        for g, r in zip(self.groups, self.rows):
-            parts.append(f"{g.kind}: {len(r)} rows, {g.n_hidden} hidden + {g.n_partial} partial nodes, "
-                         f"{g.n_pruned} pruned, ~{g.cost:.0f} entries/row")
-        return "; ".join(parts)
-
-    @property
-    def route(self) -> str:
-        kinds = {g.kind for g in self.groups}
-        if kinds == {"pattern"}:
-            return "per-pattern"
-        if kinds == {"mixed"}:
-            return "uniform evidence"
-        return "hybrid (per-pattern + uniform evidence)"
 
 
 def _min_fill_order(variables: Sequence[int], scopes: Sequence[Sequence[int]], cards: Sequence[int]) -> list[int]:
@@ -172,11 +179,14 @@ def _min_fill_order(variables: Sequence[int], scopes: Sequence[Sequence[int]], c
 
 
 def _group_plan(network: Network, hidden_mask: np.ndarray, *, kind: str, n_rows: int,
-                keep_all: bool = False, indicator_nodes: Sequence[int] = ()) -> GroupPlan:
-    """Static plan for a group. ``hidden_mask`` is (rows, n_nodes) bool for the group's rows.
+                keep_all: bool = False, indicator_nodes: Sequence[int] = (),
+                families: Sequence[int] | None = None) -> GroupPlan:
+    """Static elimination plan for a set of rows. ``hidden_mask`` is (rows, n_nodes) bool.
 
-    ``keep_all`` disables barren pruning and ``indicator_nodes`` forces indicator factors (used
-    for posterior marginals, where the gradient with respect to the indicators is wanted).
+    A node is *observed* (in every row), *hidden* (in every row) or *partial*; partial nodes get
+    evidence indicators. ``keep_all`` disables barren pruning and ``indicator_nodes`` forces
+    indicator factors (posterior marginals). ``families`` restricts the plan to the families of
+    those nodes (a component: the families that touch its hidden nodes).
     """
     n = len(network)
     cards = network.cards
@@ -189,12 +199,16 @@ def _group_plan(network: Network, hidden_mask: np.ndarray, *, kind: str, n_rows:
     hidden_set = {i for i in range(n) if always[i] and i not in forced}
     observed = {i for i in range(n) if i not in partial_set and i not in hidden_set}
 
-    # Barren pruning: keep a node if it is not always hidden, or if a kept child depends on it.
-    keep = [True] * n
-    if not keep_all:
-        for i in reversed(range(n)):  # children come after parents in topological order
-            if i in hidden_set:
-                keep[i] = any(keep[c] for c in kids[i])
+    if families is not None:
+        fam_set = set(families)
+        keep = [i in fam_set for i in range(n)]
+    else:
+        # Barren pruning: keep a node if it is not always hidden, or if a kept child depends on it.
+        keep = [True] * n
+        if not keep_all:
+            for i in reversed(range(n)):  # children come after parents in topological order
+                if i in hidden_set:
+                    keep[i] = any(keep[c] for c in kids[i])
     n_pruned = n - sum(keep)
 
     log_terms: list[tuple[int, tuple[int, ...]]] = []
@@ -215,7 +229,8 @@ def _group_plan(network: Network, hidden_mask: np.ndarray, *, kind: str, n_rows:
             strides.append(s)
             s *= cards[v]
         factors.append(FactorSpec(i, scope, obs, perm, tuple(reversed(strides))))
-    indicators = tuple(sorted(v for v in partial_set if keep[v]))
+    in_plan = {v for f in factors for v in f.scope}
+    indicators = tuple(sorted(v for v in partial_set if v in in_plan))
 
     scopes: list[tuple[int, ...]] = [f.scope for f in factors] + [(v,) for v in indicators]
     variables = sorted({v for s in scopes for v in s})
@@ -239,7 +254,7 @@ def _group_plan(network: Network, hidden_mask: np.ndarray, *, kind: str, n_rows:
     final = tuple(f for f in live if not scopes[f])
     assert len(final) == len(live), "every variable is eliminated"
 
-    # Chunk size: keep the largest intermediate near CHUNK_BUDGET entries.
+    # Chunk size (posterior marginals): keep the largest intermediate near CHUNK_BUDGET entries.
     biggest = max([1] + [math.prod(cards[u] for u in scopes[s.out_id]) * cards[s.var] for s in steps])
     chunk = 1 << max(6, min(15, int(math.log2(max(1, CHUNK_BUDGET // biggest)))))
     chunk = min(chunk, max(64, 1 << math.ceil(math.log2(max(1, n_rows)))))
@@ -247,65 +262,1177 @@ def _group_plan(network: Network, hidden_mask: np.ndarray, *, kind: str, n_rows:
                      chunk, cost + len(log_terms), kind, len(hidden_set), len(partial_set), n_pruned)
 
 
+# --------------------------------------------------------------------------- flat log-CPTs
+def _layout(network: Network) -> tuple[tuple[int, ...], tuple[dict[int, int], ...], int]:
+    """Offsets of each CPT in the concatenated flat vector and each family member's stride."""
+    offsets, strides = [], []
+    off = 0
+    for i, node in enumerate(network.nodes):
+        fam = tuple(network.parent_indices[i]) + (i,)
+        st, s = {}, 1
+        for u in reversed(fam):
+            st[u] = s
+            s *= network.cards[u]
+        offsets.append(off)
+        strides.append(st)
+        off += s
+    return tuple(offsets), tuple(strides), off
+
+
+def _flat(logcpts: Sequence[jax.Array]) -> jax.Array:
+    """All log-CPTs in one vector, followed by log 1 (slot ZERO) and log 0 (slot NEG)."""
+    return jnp.concatenate([jnp.ravel(x) for x in logcpts] + [jnp.array([0.0, -jnp.inf], jnp.float64)])
+
+
+def _unflat(network: Network, g: jax.Array) -> tuple[jax.Array, ...]:
+    out, off = [], 0
+    for name in network.names:
+        shape = network.cpt_shape(name)
+        size = math.prod(shape)
+        out.append(g[off:off + size].reshape(shape))
+        off += size
+    return tuple(out)
+
+
+def _logsumexp_last(t: jax.Array, axis: int) -> jax.Array:
+    """log sum exp along ``axis``; -inf (not NaN, with a finite gradient) where every term is -inf."""
+    m = jax.lax.stop_gradient(jnp.max(t, axis=axis))
+    m = jnp.where(jnp.isfinite(m), m, 0.0)
+    s = jnp.sum(jnp.exp(t - jnp.expand_dims(m, axis)), axis=axis)
+    ok = s > 0
+    return jnp.where(ok, jnp.log(jnp.where(ok, s, 1.0)) + m, -jnp.inf)
+
+
+# --------------------------------------------------------------------------- blocks
+@dataclass(frozen=True)
+class GatheredBlock:
+    """Families with every member observed: data counts times log theta (no per-row work)."""
+
+    n_rows: int          # rows of the per-pattern route (whose observed families are counted here)
+    n_families: int      # (row, family) pairs with every member observed, over the distinct rows
+    n_pruned: int        # nodes barren (hidden, no observed descendant) in at least one row
+    n_components: int    # hidden components of those rows (handled by the other blocks)
+    kind: str = "pattern"
+    chunk: int = 1 << 30
+    steps: tuple = ()
+    cost: float = 0.0
+    n_hidden: int = 0
+    n_partial: int = 0
+
+
+@dataclass(frozen=True)
+class EnumBlock:
+    """Small components enumerated: ``A`` assignments x ``m`` gathered log-CPT entries each."""
+
+    A: int
+    m: int
+    chunk: int
+    n_instances: int     # distinct components (after merging equal ones)
+    n_components: int    # component occurrences in the rows
+    n_types: int         # distinct (hidden nodes, families) types
+    kind: str = "pattern"
+    steps: tuple = ()
+    n_pruned: int = 0
+    n_hidden: int = 0
+    n_partial: int = 0
+
+    @property
+    def cost(self) -> float:
+        return float(self.A * self.m)
+
+
+@dataclass(frozen=True)
+class TapeBlock:
+    """Elimination programs of one shape class, run by one compiled loop.
+
+    Buffer rows: ``n_leaf`` log-CPT entries, ``n_ind`` evidence indicators, log 1, log 0, then
+    ``n_batch x width`` computed entries; each computed entry is the log-sum-exp over ``slots``
+    terms of sums of ``ops`` buffer entries.
+    """
+
+    kind: str            # "pattern" (components, own programs) or "mixed" (uniform evidence, whole rows)
+    n_programs: int
+    n_leaf: int
+    n_fac: int
+    n_ind: int
+    n_icodes: int
+    n_batch: int
+    width: int
+    slots: int
+    ops: int
+    n_final: int
+    chunk: int           # rows per chunk
+    n_rows: int          # distinct rows (or component instances) handled
+    cost: float          # gathered operands per row (padded)
+    n_hidden: int = 0
+    n_partial: int = 0
+    n_pruned: int = 0
+    steps: tuple = ()
+
+    @property
+    def start(self) -> int:
+        return self.n_leaf + self.n_ind + 2
+
+
+Block = Any  # GatheredBlock | EnumBlock | TapeBlock
+
+
+@dataclass(frozen=True)
+class Plan:
+    """The blocks of work for one network and data set, with their data arrays.
+
+    ``groups`` are the static block descriptions (a static jit argument), ``codes`` and
+    ``weights`` the matching arrays (pytrees). ``maps`` say, per block, which distinct row each
+    computed instance belongs to (for per-row log-likelihoods).
+    """
+
+    network: Network
+    groups: tuple[Block, ...]
+    codes: tuple[Any, ...]
+    weights: tuple[Any, ...]
+    n_distinct: int
+    maps: tuple[Any, ...] = ()
+    observed_rows: Any = None       # bool mask of rows whose observed families are in the gathered block
+    estimate: Mapping[str, float] | None = None
+    rows: tuple[np.ndarray, ...] = ()
+
+    def describe(self) -> str:
+        parts = []
+        for g in self.groups:
+            if isinstance(g, GatheredBlock):
+                parts.append(f"observed families gathered: {g.n_rows} rows, {g.n_families} row-families, "
+                             f"{g.n_components} hidden components, {g.n_pruned} nodes barren in some rows")
+            elif isinstance(g, EnumBlock):
+                parts.append(f"enumerated components {g.A}x{g.m}: {g.n_components} components -> "
+                             f"{g.n_instances} distinct, {g.n_types} types")
+            elif isinstance(g, GroupPlan):
+                parts.append(f"{g.kind}: {g.n_hidden} hidden + {g.n_partial} partial nodes, ~{g.cost:.0f} entries/row")
+            else:
+                what = "component programs" if g.kind == "pattern" else "uniform evidence program"
+                parts.append(f"{what}: {g.n_programs} program(s), {g.n_rows} rows, {g.n_batch} batches x "
+                             f"{g.width} entries x {g.slots}x{g.ops} operands (~{g.cost:.0f} per row)")
+        if self.estimate:
+            e = self.estimate
+            parts.append(f"estimated {e['evaluation_s'] * 1e3:.1f} ms per evaluation + {e['compile_s']:.1f} s compile")
+        return "; ".join(parts)
+
+    @property
+    def route(self) -> str:
+        kinds = {g.kind for g in self.groups}
+        if "mixed" not in kinds:
+            return "per-pattern"
+        if kinds == {"mixed"}:
+            return "uniform evidence"
+        return "hybrid (per-pattern + uniform evidence)"
+
+
+# --------------------------------------------------------------------------- rows -> components
+def _decompose(network: Network, codes: np.ndarray):
+    """Barren pruning and hidden components of a block of rows.
+
+    Returns ``(comp_row, comp_key, pruned_any, observed)``: one entry per component, its row (in
+    the block) and its key, ``(W words of the hidden-node bit set, W words of the family bit
+    set)`` as uint64; ``pruned_any`` marks nodes pruned in at least one row.
+    """
+    n = len(network)
+    pa, kids = network.parent_indices, network.children
+    hidden = codes < 0
+    R = codes.shape[0]
+    # Barren nodes (hidden, no observed descendant) sum out to 1, but their expected counts are
+    # not 0 (they are the CPT propagated from the posterior of their parents), so they stay in
+    # their components; they are only counted here, for the description.
+    obs_desc = ~hidden
+    some = hidden.any(axis=0)
+    for i in reversed(range(n)):
+        if some[i] and kids[i]:
+            obs_desc[:, i] |= obs_desc[:, list(kids[i])].any(axis=1)
+    pruned_any = (hidden & ~obs_desc).any(axis=0)
+    kept = np.ones_like(hidden)
+    hk = hidden
+    hk_any = hk.any(axis=0)
+    lab = np.where(hk, np.arange(n, dtype=np.int32), np.int32(n))
+    links = []
+    for v in range(n):
+        mem = [u for u in (*pa[v], v) if hk_any[u]]
+        if len(mem) < 2:
+            continue
+        mem_a = np.asarray(mem)
+        rows = np.flatnonzero((hk[:, mem_a].sum(axis=1) >= 2) & kept[:, v])
+        if rows.size:
+            links.append((mem_a, rows))
+    changed = bool(links)
+    while changed:  # propagate the smallest node index over shared families until stable
+        changed = False
+        for mem_a, rows in links:
+            sub = lab[rows[:, None], mem_a]
+            new = np.where(sub < n, sub.min(axis=1, keepdims=True), np.int32(n))
+            if not np.array_equal(new, sub):
+                lab[rows[:, None], mem_a] = new
+                changed = True
+    W = (n + 63) // 64
+    hm = np.zeros((R, n, W), np.uint64)
+    fm = np.zeros((R, n, W), np.uint64)
+    for u in np.flatnonzero(hk_any):
+        rr = np.flatnonzero(hk[:, u])
+        hm[rr, lab[rr, u], u // 64] |= np.uint64(1 << (int(u) % 64))
+    for v in range(n):
+        mem = [u for u in (*pa[v], v) if hk_any[u]]
+        if not mem:
+            continue
+        fl = lab[:, mem].min(axis=1)
+        rr = np.flatnonzero((fl < n) & kept[:, v])
+        fm[rr, fl[rr], v // 64] |= np.uint64(1 << (v % 64))
+    r, root = np.nonzero(hm.any(axis=2))
+    key = np.concatenate([hm[r, root], fm[r, root]], axis=1)
+    return r, key, pruned_any
+
+
+def _bits(words: np.ndarray) -> tuple[int, ...]:
+    out = []
+    for w, x in enumerate(words.tolist()):
+        while x:
+            low = x & -x
+            out.append(w * 64 + low.bit_length() - 1)
+            x ^= low
+    return tuple(out)
+
+
+@dataclass
+class _Type:
+    """A component type: hidden nodes, the families that touch them, and where it occurs."""
+
+    hidden: tuple[int, ...]
+    families: tuple[int, ...]
+    rows: list                       # arrays of distinct-row indices, joined later
+    A: int = 0
+    boundary: tuple[int, ...] = ()
+
+    @property
+    def m(self) -> int:
+        return len(self.families)
+
+
+def _components(network: Network, codes: np.ndarray):
+    """Component types of every row (blockwise, to bound memory)."""
+    n = len(network)
+    W = (n + 63) // 64
+    R = codes.shape[0]
+    step = max(1024, PLAN_BLOCK // max(1, n * W))
+    types: dict[bytes, int] = {}
+    tlist: list[_Type] = []
+    pruned = np.zeros(n, bool)
+    comp_type_parts, comp_row_parts = [], []
+    for s in range(0, R, step):
+        block = codes[s:s + step]
+        r, key, pr = _decompose(network, block)
+        pruned |= pr
+        if not len(r):
+            continue
+        kv = np.ascontiguousarray(key).view(np.dtype((np.void, key.dtype.itemsize * key.shape[1]))).ravel()
+        uk, inv = np.unique(kv, return_inverse=True)
+        gid = np.empty(len(uk), np.int64)
+        for j, k in enumerate(uk):
+            b = k.tobytes()
+            t = types.get(b)
+            if t is None:
+                words = np.frombuffer(b, dtype=np.uint64)
+                hid, fam = _bits(words[:W]), _bits(words[W:])
+                t = len(tlist)
+                types[b] = t
+                tlist.append(_Type(hid, fam, [], math.prod(network.cards[u] for u in hid)))
+            gid[j] = t
+        comp_type_parts.append(gid[inv.reshape(-1)])
+        comp_row_parts.append(r.astype(np.int64) + s)
+    if comp_type_parts:
+        ct = np.concatenate(comp_type_parts)
+        cr = np.concatenate(comp_row_parts)
+        order = np.argsort(ct, kind="stable")
+        ct, cr = ct[order], cr[order]
+        bounds = np.searchsorted(ct, np.arange(len(tlist) + 1))
+        for t, typ in enumerate(tlist):
+            typ.rows = cr[bounds[t]:bounds[t + 1]]
+    pa = network.parent_indices
+    for typ in tlist:
+        hs = set(typ.hidden)
+        typ.boundary = tuple(sorted({u for v in typ.families for u in (*pa[v], v)} - hs))
+    return tlist, pruned
+
+
+def _distinct_rows(sub: np.ndarray, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray]:
+    """Distinct rows of a small non-negative code matrix: (first index of each, inverse)."""
+    if sub.shape[1] == 0:
+        return np.zeros(1, np.int64), np.zeros(len(sub), np.int64)
+    mult = 1
+    key = np.zeros(len(sub), np.int64)
+    if math.prod(int(c) for c in cards) < (1 << 62):
+        for j in range(sub.shape[1]):
+            key = key * int(cards[j]) + sub[:, j]
+        _, first, inv = np.unique(key, return_index=True, return_inverse=True)
+    else:
+        _, first, inv = np.unique(sub, axis=0, return_index=True, return_inverse=True)
+    del mult
+    return first, inv.reshape(-1)
+
+
+def _type_instances(network: Network, typ: _Type, codes: np.ndarray, counts: np.ndarray, rows: np.ndarray):
+    """Distinct instances of a component type among ``rows``: (boundary codes, weights, inverse)."""
+    bd = list(typ.boundary)
+    sub = codes[np.ix_(rows, bd)] if bd else np.zeros((len(rows), 0), np.int32)
+    first, inv = _distinct_rows(sub, [network.cards[u] for u in bd])
+    w = np.bincount(inv, weights=counts[rows], minlength=len(first))
+    return sub[first], w, inv
+
+
+def _enum_tables(network: Network, typ: _Type, bcodes: np.ndarray, layout) -> np.ndarray:
+    """Flat indices (instances, A, m) of the log-CPT entries each assignment of ``typ`` reads."""
+    offsets, strides, _ = layout
+    cards = network.cards
+    pa = network.parent_indices
+    H = typ.hidden
+    shape = [cards[u] for u in H]
+    digits = np.indices(shape).reshape(len(H), -1).T if H else np.zeros((1, 0), np.int64)
+    bpos = {u: j for j, u in enumerate(typ.boundary)}
+    hpos = {u: j for j, u in enumerate(H)}
+    obs = np.zeros((len(bcodes), typ.m), np.int64)
+    asg = np.zeros((digits.shape[0], typ.m), np.int64)
+    for j, v in enumerate(typ.families):
+        obs[:, j] = offsets[v]
+        for u in (*pa[v], v):
+            if u in hpos:
+                asg[:, j] += strides[v][u] * digits[:, hpos[u]]
+            else:
+                obs[:, j] += strides[v][u] * bcodes[:, bpos[u]]
+    return obs[:, None, :] + asg[None, :, :]
+
+
+def _enum_bucket_menu(classes: dict[tuple[int, int], int]) -> dict[tuple[int, int], tuple[int, int]]:
+    """Merge (A, m) shape classes into buckets when the padding costs less than a compile."""
+    buckets = {k: [k] for k in classes}
+    size = dict(classes)
+
+    def merged_cost(a, b):
+        A = max(a[0], b[0])
+        m = max(a[1], b[1])
+        extra = size[a] * (A * m - a[0] * a[1]) + size[b] * (A * m - b[0] * b[1])
+        return extra * T_ENUM * PLAN_EVALUATIONS - COMPILE_ENUM, (A, m)
+
+    while len(buckets) > 1:
+        keys = list(buckets)
+        best = None
+        for i in range(len(keys)):
+            for j in range(i + 1, len(keys)):
+                c, shape = merged_cost(keys[i], keys[j])
+                if best is None or c < best[0]:
+                    best = (c, keys[i], keys[j], shape)
+        if best[0] >= 0:
+            break
+        _, a, b, shape = best
+        members = buckets.pop(a) + buckets.pop(b)
+        n = size.pop(a) + size.pop(b)
+        if shape in buckets:
+            members += buckets.pop(shape)
+            n += size.pop(shape)
+        buckets[shape] = members
+        size[shape] = n
+    out = {}
+    for shape, members in buckets.items():
+        for k in members:
+            out[k] = shape
+    return out
+
+
+def _round_shape(A: int, m: int) -> tuple[int, int]:
+    """Candidate padded shape of an enumeration class (few distinct shapes, little padding)."""
+    def up(x):
+        if x <= 4:
+            return x
+        p = 1 << (x - 1).bit_length()
+        return 3 * p // 4 if x <= 3 * p // 4 else p
+    return up(A), up(m)
+
+
+# --------------------------------------------------------------------------- the elimination tape
+# Abstract ids while a program is built: log-CPT leaves 0.., indicator leaves _IND + k, the
+# constants log 1 and log 0, computed entries _ITEM + k. Buffer positions are assigned when the
+# programs of a shape class are laid out together.
+_IND = 1 << 40
+_ONE = 1 << 45
+_NEG = _ONE + 1
+_ITEM = 1 << 50
+
+
+@dataclass
+class _Program:
+    leaf_off: np.ndarray      # (n_leaf,) flat offset of each log-CPT leaf (plus the row's base)
+    leaf_fac: np.ndarray      # (n_leaf,) which per-row base offset it adds
+    n_fac: int
+    ind_code: np.ndarray      # (n_ind,) which indicator code row it reads
+    ind_state: np.ndarray     # (n_ind,) the state it indicates
+    icode_nodes: tuple[int, ...]
+    src: np.ndarray           # (n_items, slots, ops) abstract ids
+    level: np.ndarray         # (n_items,)
+    finals: np.ndarray        # abstract ids summed into the row's log-likelihood
+    gp: GroupPlan
+    batch: np.ndarray | None = None
+    slot: np.ndarray | None = None
+    n_batch: int = 0
+    width: int = 0
+
+
+def _bcast_ids(scope: Sequence[int], ids: np.ndarray, union: Sequence[int], cards: Mapping[int, int]) -> np.ndarray:
+    """Ids of a table broadcast over ``union`` (every variable of ``scope`` is in ``union``)."""
+    pos = [union.index(u) for u in scope]
+    order = np.argsort(pos)
+    a = np.transpose(ids, order) if len(scope) > 1 else ids
+    shape = [1] * len(union)
+    for u in scope:
+        shape[union.index(u)] = cards[u]
+    return np.broadcast_to(a.reshape(shape), tuple(cards[u] for u in union))
+
+
+class _TapeWriter:
+    def __init__(self, slots: int, ops: int):
+        self.slots, self.ops = slots, ops
+        self.src: list[np.ndarray] = []
+        self.lev: list[np.ndarray] = []
+        self.level = np.zeros(1024, np.int64)
+        self.n = 0
+
+    def add(self, terms: np.ndarray) -> np.ndarray:
+        """New entries, each ``log sum_s exp(sum_j terms[., s, j])``; terms (k, s<=slots, j<=ops)."""
+        k, s, j = terms.shape
+        src = np.full((k, self.slots, self.ops), _ONE, np.int64)
+        src[:, :, 0] = _NEG
+        src[:, :s, :j] = terms
+        if s < self.slots:
+            src[:, s:, 0] = _NEG
+        it = src >= _ITEM
+        lv = np.zeros(src.shape, np.int64)
+        lv[it] = self.level[src[it] - _ITEM]
+        lev = lv.reshape(k, -1).max(axis=1) + 1
+        if self.n + k > len(self.level):
+            self.level = np.concatenate([self.level, np.zeros(max(self.n + k, 2 * len(self.level)), np.int64)])
+        self.level[self.n:self.n + k] = lev
+        ids = _ITEM + self.n + np.arange(k, dtype=np.int64)
+        self.n += k
+        self.src.append(src)
+        return ids
+
+    def product(self, tables, cards):
+        """Entry-wise product (sum of logs) of up to ``ops`` tables, over the union of scopes."""
+        union: list[int] = []
+        for sc, _ in tables:
+            for u in sc:
+                if u not in union:
+                    union.append(u)
+        terms = np.stack([_bcast_ids(sc, ids, union, cards).reshape(-1) for sc, ids in tables], axis=-1)
+        ids = self.add(terms[:, None, :])
+        return tuple(union), ids.reshape(tuple(cards[u] for u in union))
+
+    def eliminate(self, tables, out_scope, var, cards, pseudo):
+        """``sum over var`` of the product of ``tables`` (each at most ``ops``)."""
+        while len(tables) > self.ops:
+            tables = sorted(tables, key=lambda t: t[1].size)
+            tables = tables[self.ops:] + [self.product(tables[:self.ops], cards)]
+        union = list(out_scope) + [var]
+        arrs = [_bcast_ids(sc, ids, union, cards) for sc, ids in tables]
+        K = math.prod(cards[u] for u in out_scope)
+        V = cards[var]
+        terms = np.stack([a.reshape(K, V) for a in arrs], axis=-1)      # (K, V, J)
+        while V > self.slots:
+            G = -(-V // self.slots)
+            padded = np.full((K, G * self.slots, terms.shape[2]), _ONE, np.int64)
+            padded[:, :, 0] = _NEG
+            padded[:, :V] = terms
+            ids = self.add(padded.reshape(K * G, self.slots, terms.shape[2]))
+            terms = ids.reshape(K, G, 1)
+            V = G
+        ids = self.add(terms)
+        return ids.reshape(tuple(cards[u] for u in out_scope))
+
+
+def _compile_program(network: Network, gp: GroupPlan, layout, slots: int, ops: int) -> _Program:
+    """Turn an elimination plan into tape entries (abstract ids) with their dependency levels."""
+    offsets, strides, _ = layout
+    cards = dict(enumerate(network.cards))
+    leaf_off, leaf_fac = [], []
+    tables: dict[int, tuple[tuple[int, ...], np.ndarray]] = {}
+    n_leaf = 0
+    for fid, f in enumerate(gp.factors):
+        shape = tuple(cards[u] for u in f.scope)
+        grid = np.indices(shape).reshape(len(shape), -1)
+        off = np.full(grid.shape[1], offsets[f.node], np.int64)
+        for k, u in enumerate(f.scope):
+            off += strides[f.node][u] * grid[k]
+        leaf_off.append(off)
+        leaf_fac.append(np.full(off.size, fid, np.int64))
+        tables[fid] = (f.scope, (n_leaf + np.arange(off.size, dtype=np.int64)).reshape(shape))
+        n_leaf += off.size
+    finals = []
+    n_fac = len(gp.factors) + len(gp.log_terms)
+    for j, (node, _fam) in enumerate(gp.log_terms):
+        leaf_off.append(np.array([offsets[node]], np.int64))
+        leaf_fac.append(np.array([len(gp.factors) + j], np.int64))
+        finals.append(n_leaf)
+        n_leaf += 1
+    ind_code, ind_state = [], []
+    base = len(gp.factors)
+    for k, v in enumerate(gp.indicators):
+        ids = _IND + len(ind_code) + np.arange(cards[v], dtype=np.int64)
+        ind_code += [k] * cards[v]
+        ind_state += list(range(cards[v]))
+        tables[base + k] = ((v,), ids)
+    w = _TapeWriter(slots, ops)
+    pseudo = [-1]
+    for st in gp.steps:
+        ins = [tables.pop(f) for f in st.inputs]
+        ids = w.eliminate(ins, st.out_scope, st.var, cards, pseudo)
+        tables[st.out_id] = (st.out_scope, ids)
+    for f in gp.final:
+        finals.append(int(tables[f][1].reshape(())))
+    src = np.concatenate(w.src) if w.src else np.zeros((0, slots, ops), np.int64)
+    cat = (lambda xs: np.concatenate(xs) if xs else np.zeros(0, np.int64))
+    return _Program(cat(leaf_off), cat(leaf_fac), n_fac, np.asarray(ind_code, np.int64),
+                    np.asarray(ind_state, np.int64), tuple(gp.indicators), src, w.level[:w.n].copy(),
+                    np.asarray(finals, np.int64), gp)
+
+
+def _pack(prog: _Program, width: int) -> None:
+    """Assign every entry a batch (after the batches of its operands) and a slot, first fit."""
+    if prog.batch is not None and prog.width == width:
+        return
+    n = len(prog.src)
+    batch = np.zeros(n, np.int64)
+    slot = np.zeros(n, np.int64)
+    fill: list[int] = []
+    nxt: list[int] = []  # first batch >= b that may have room (path compression)
+
+    def find(b):
+        path = []
+        while b < len(fill) and fill[b] >= width:
+            path.append(b)
+            b = nxt[b]
+        for p in path:
+            nxt[p] = b
+        return b
+
+    order = np.argsort(prog.level, kind="stable")
+    src = prog.src
+    # earliest batch per entry, level by level (operands of a level are placed before it)
+    levels = prog.level[order]
+    cuts = np.flatnonzero(np.diff(levels)) + 1
+    for group in np.split(order, cuts):
+        s = src[group]
+        it = s >= _ITEM
+        eb = np.full(s.shape, -1, np.int64)
+        eb[it] = batch[s[it] - _ITEM]
+        earliest = eb.reshape(len(group), -1).max(axis=1) + 1
+        for i, e in zip(group.tolist(), earliest.tolist()):
+            b = find(e)
+            while b >= len(fill):
+                fill.append(0)
+                nxt.append(len(fill))
+            batch[i] = b
+            slot[i] = fill[b]
+            fill[b] += 1
+    prog.batch, prog.slot, prog.n_batch, prog.width = batch, slot, len(fill), width
+
+
+def _choose_width(progs: Sequence[_Program], rows: Sequence[int]) -> int:
+    """Batch width of a class: every instance runs the class's largest batch count, so minimise
+    (instances x batches x width) operands plus loop iterations (batches per level estimated)."""
+    best = None
+    total = sum(rows)
+    for width in (8, 16, 32, 64, 128):
+        nb = 1
+        for p in progs:
+            counts = np.bincount(p.level) if len(p.level) else np.zeros(1, np.int64)
+            nb = max(nb, int(np.sum(-(-counts // width))))
+        S, O = progs[0].src.shape[1:] if len(progs[0].src) else (TAPE_SLOTS, TAPE_FACTORS)
+        t = total * nb * width * S * O * T_TAPE + nb * T_LOOP * max(1.0, total / 64)
+        if best is None or t < best[0]:
+            best = (t, width)
+    return best[1]
+
+
+def _split_classes(sizes: Sequence[float], n_inst: Sequence[int], max_classes: int = 3) -> list[list[int]]:
+    """Partition programs (by padded size) into shape classes: padding against compile time."""
+    order = sorted(range(len(sizes)), key=lambda i: sizes[i])
+    cum = np.concatenate([[0], np.cumsum([n_inst[i] for i in order])])
+    cand = sorted(set(np.linspace(0, len(order), min(len(order), 40) + 1).astype(int).tolist()))
+
+    def group_cost(i, j):  # programs order[i:j]
+        return (cum[j] - cum[i]) * sizes[order[j - 1]] * T_TAPE * PLAN_EVALUATIONS + COMPILE_TAPE
+
+    best = {0: (0.0, [])}
+    for _ in range(max_classes):
+        nxt = dict(best)
+        for i, (c, cuts) in best.items():
+            for j in cand:
+                if j <= i:
+                    continue
+                cc = c + group_cost(i, j)
+                if j not in nxt or cc < nxt[j][0]:
+                    nxt[j] = (cc, cuts + [j])
+        best = nxt
+    _, cuts = best[len(order)]
+    out, i = [], 0
+    for j in cuts:
+        out.append(order[i:j])
+        i = j
+    return out
+
+
+def _bases(network: Network, gp: GroupPlan, codes: np.ndarray, layout) -> np.ndarray:
+    """Per-row base offsets (rows, n_fac): the observed family members' part of each index."""
+    _, strides, _ = layout
+    out = np.zeros((len(codes), len(gp.factors) + len(gp.log_terms)), np.int64)
+    for fid, f in enumerate(gp.factors):
+        for u in f.obs:
+            out[:, fid] += strides[f.node][u] * codes[:, u]
+    for j, (node, fam) in enumerate(gp.log_terms):
+        for u in fam:
+            out[:, len(gp.factors) + j] += strides[node][u] * codes[:, u]
+    return out
+
+
+def _tape_block(network: Network, kind: str, progs: Sequence[_Program], datas, width: int,
+                chunk: int | None, slots: int, ops: int):
+    """Lay out the programs of one class in a common padded shape, with their chunked data.
+
+    ``datas[p] = (codes (instances, n), weights (instances,))`` for program ``p``. Instances of
+    different programs share chunks: each carries its program id.
+    Returns ``(block, arrays, weights, starts)``, ``starts[p]`` the first flat instance of ``p``.
+    """
+    for p in progs:
+        _pack(p, width)
+    n_leaf = max(1, max(len(p.leaf_off) for p in progs))
+    n_fac = max(1, max(p.n_fac for p in progs))
+    n_ind = max(1, max(len(p.ind_code) for p in progs))
+    n_icodes = max(1, max(len(p.icode_nodes) for p in progs))
+    n_batch = max(1, max(p.n_batch for p in progs))
+    n_final = max(1, max(len(p.finals) for p in progs))
+    start = n_leaf + n_ind + 2
+    one, neg = n_leaf + n_ind, n_leaf + n_ind + 1
+    M = start + n_batch * width
+    n_inst = sum(len(d[1]) for d in datas)
+    if chunk is None:
+        chunk = _pow2_clip(TAPE_BUDGET / M, 8, 1024)
+        chunk = min(chunk, max(8, 1 << math.ceil(math.log2(max(1, n_inst)))))
+    P = len(progs)
+    n_flat = layout_size(network)
+    leaf_off = np.full((P, n_leaf), n_flat, np.int64)      # padding leaves read log 1
+    leaf_fac = np.full((P, n_leaf), n_fac, np.int64)       # ... with a zero base
+    ind_code = np.full((P, n_ind), n_icodes, np.int64)
+    ind_state = np.zeros((P, n_ind), np.int64)
+    items = np.empty((n_batch, P, width, slots, ops), np.int64)
+    items[...] = one
+    items[..., 0] = neg
+    finals = np.full((P, n_final), one, np.int64)
+    nch = max(1, -(-n_inst // chunk))
+    pid = np.zeros(nch * chunk, np.int32)
+    base = np.zeros((nch * chunk, n_fac + 1), np.int64)
+    icodes = np.full((nch * chunk, n_icodes + 1), -1, np.int64)
+    wts = np.zeros(nch * chunk)
+    starts = []
+    off = 0
+    lay = layout_of(network)
+    for p, (prog, (codes, w)) in enumerate(zip(progs, datas)):
+        k = len(prog.leaf_off)
+        leaf_off[p, :k] = prog.leaf_off
+        leaf_fac[p, :k] = prog.leaf_fac
+        ki = len(prog.ind_code)
+        ind_code[p, :ki] = prog.ind_code
+        ind_state[p, :ki] = prog.ind_state
+
+        def pos(ids, prog=prog):
+            ids = np.asarray(ids, np.int64)
+            out = np.empty(ids.shape, np.int64)
+            leaf = ids < _IND
+            out[leaf] = ids[leaf]
+            ind = (ids >= _IND) & (ids < _ONE)
+            out[ind] = n_leaf + ids[ind] - _IND
+            out[ids == _ONE] = one
+            out[ids == _NEG] = neg
+            it = ids >= _ITEM
+            j = ids[it] - _ITEM
+            out[it] = start + prog.batch[j] * width + prog.slot[j]
+            return out
+
+        if len(prog.src):
+            items[prog.batch, p, prog.slot] = pos(prog.src)
+        finals[p, :len(prog.finals)] = pos(prog.finals)
+        R = len(w)
+        starts.append(off)
+        pid[off:off + R] = p
+        bases = _bases(network, prog.gp, codes, lay)
+        base[off:off + R, :bases.shape[1]] = bases
+        if prog.icode_nodes:
+            icodes[off:off + R, :len(prog.icode_nodes)] = codes[:, list(prog.icode_nodes)]
+        wts[off:off + R] = w
+        off += R
+    tables = (leaf_off, leaf_fac, ind_code, ind_state, items, finals)
+    tables = tuple(np.ascontiguousarray(t, dtype=np.int32) for t in tables)
+    data = (pid.reshape(nch, chunk), base.astype(np.int32).reshape(nch, chunk, -1),
+            icodes.astype(np.int32).reshape(nch, chunk, -1))
+    cost = (n_leaf + n_batch * width * slots * ops) * nch * chunk / max(1, n_inst)
+    blk = TapeBlock(kind, P, n_leaf, n_fac, n_ind, n_icodes, n_batch, width, slots, ops, n_final, chunk,
+                    n_inst, cost, n_hidden=max(p.gp.n_hidden for p in progs),
+                    n_partial=max(p.gp.n_partial for p in progs), n_pruned=min(p.gp.n_pruned for p in progs))
+    return blk, (tables, data), wts.reshape(nch, chunk), starts
+
+
+_LAYOUTS: dict[Network, Any] = {}
+
+
+def layout_of(network: Network):
+    lay = _LAYOUTS.get(network)
+    if lay is None:
+        lay = _LAYOUTS[network] = _layout(network)
+    return lay
+
+
+def layout_size(network: Network) -> int:
+    return layout_of(network)[2]
+
+
+# --------------------------------------------------------------------------- choosing the route
 def build_plan(network: Network, data: CodedData, *, route: str = "auto",
-               min_pattern_rows: int = MIN_PATTERN_ROWS, max_pattern_groups: int = MAX_PATTERN_GROUPS,
+               min_pattern_rows: int | None = None, max_pattern_groups: int | None = None,
                chunk: int | None = None, for_posteriors: bool = False) -> Plan:
-    """Split the distinct rows into groups and build each group's elimination plan.
+    """Take the rows apart (barren nodes, observed families, hidden components) and plan the work.
 
     Args:
-        route: ``"auto"`` (frequent patterns specialised, the rest uniform), ``"uniform"`` (one
-            group, evidence indicators for every partially observed node) or ``"pattern"``
-            (one group per missingness pattern; compile time grows with the patterns).
-        chunk: rows per chunk (default: chosen from the largest intermediate of each group).
-        for_posteriors: every node gets an indicator factor and nothing is pruned (for
-            :func:`posterior_marginals`).
+        route: ``"auto"`` (each row and component by the cheapest estimated method, compile time
+            included), ``"pattern"`` (per missingness pattern: observed families gathered, every
+            hidden component computed on its own, never the uniform program) or ``"uniform"``
+            (every row in one elimination program with evidence indicators).
+        min_pattern_rows, max_pattern_groups: under ``"auto"``, a large component type gets an
+            elimination program of its own only with at least ``min(min_pattern_rows, rows that
+            make it pay)`` distinct instances, and at most ``max_pattern_groups`` such programs;
+            rows with other large components go to the uniform program.
+        chunk: rows (instances) per chunk of every block (default: from the block's size).
+        for_posteriors: one uniform plan with an indicator for every node and no pruning (used
+            by :func:`posterior_marginals`).
     """
     if route not in ("auto", "uniform", "pattern"):
-        raise ValueError(f"route must be 'auto', 'uniform' or 'pattern', got {route!r}")
-    codes = np.asarray(data.codes, dtype=np.int32)
+        raise OptionError(f"route must be 'auto', 'uniform' or 'pattern', got {route!r}")
+    min_pattern_rows = MIN_PATTERN_ROWS if min_pattern_rows is None else int(min_pattern_rows)
+    max_pattern_groups = MAX_PATTERN_GROUPS if max_pattern_groups is None else int(max_pattern_groups)
+    codes = np.ascontiguousarray(data.codes, dtype=np.int32)
     counts = np.asarray(data.counts, dtype=np.float64)
-    hidden = codes == HIDDEN
     n = len(network)
-    groups_rows: list[tuple[str, np.ndarray]] = []
-    if for_posteriors or route == "uniform":
-        groups_rows.append(("mixed", np.arange(len(codes))))
-    else:
-        if n <= 62:
-            key = hidden.astype(np.int64) @ (np.int64(1) << np.arange(n, dtype=np.int64))
-            _, pat_inv, pat_count = np.unique(key, return_inverse=True, return_counts=True)
+    R = len(codes)
+    if for_posteriors:
+        return _posterior_plan(network, codes, counts, chunk)
+    hidden_rows = codes < 0
+    if route == "uniform" or R == 0:
+        return _assemble(network, codes, counts, uniform=np.ones(R, bool), enum_types=[], prog_types=[],
+                         pruned=np.zeros(n, bool), chunk=chunk)
+    tlist, pruned = _components(network, codes)
+    enum_types, prog_types, to_uniform = _choose_methods(network, codes, counts, tlist, route,
+                                                         min_pattern_rows, max_pattern_groups)
+    uniform = np.zeros(R, bool)
+    for t in to_uniform:
+        uniform[t.rows] = True
+    plan = _assemble(network, codes, counts, uniform=uniform, enum_types=enum_types, prog_types=prog_types,
+                     pruned=pruned, chunk=chunk)
+    if route == "auto" and plan.estimate is not None:
+        # the whole data set as one uniform program, when that is cheaper (small data: compile)
+        uni_gp = _group_plan(network, hidden_rows, kind="mixed", n_rows=R, keep_all=True)
+        alt = COMPILE_TAPE + R * TAPE_PAD * uni_gp.cost * T_TAPE * PLAN_EVALUATIONS
+        mine = plan.estimate["compile_s"] + plan.estimate["evaluation_s"] * PLAN_EVALUATIONS
+        if alt < mine and route != "pattern":
+            plan = _assemble(network, codes, counts, uniform=np.ones(R, bool), enum_types=[], prog_types=[],
+                             pruned=np.zeros(n, bool), chunk=chunk)
+    return plan
+
+
+def _choose_methods(network: Network, codes: np.ndarray, counts: np.ndarray, tlist: Sequence[_Type], route: str,
+                    min_pattern_rows: int, max_pattern_groups: int):
+    """Per component type: enumerate it, give it an elimination program of its own, or send its
+    rows to the uniform program, whichever is cheapest in total (compile time included)."""
+    n = len(network)
+    E = PLAN_EVALUATIONS
+    always, rest = [], []
+    for t in tlist:
+        if t.A * t.m <= ENUM_ALWAYS:
+            always.append(t)
+            continue
+        mask = np.zeros((1, n), bool)
+        mask[0, list(t.hidden)] = True
+        t.gp = _group_plan(network, mask, kind="pattern", n_rows=len(t.rows), families=t.families)
+        _, w, _ = _type_instances(network, t, codes, counts, t.rows)
+        t.n_inst = len(w)
+        rest.append(t)
+    if not rest:
+        return list(tlist), [], []
+    uni_gp = _group_plan(network, codes < 0, kind="mixed", n_rows=len(codes), keep_all=True)
+    per_row_uniform = TAPE_PAD * uni_gp.cost * T_TAPE
+    costs = []
+    for t in rest:
+        enum = t.n_inst * t.A * t.m * T_ENUM if t.A * t.m <= ENUM_MAX else math.inf
+        own = t.n_inst * TAPE_PAD * t.gp.cost * T_TAPE
+        uni = len(t.rows) * per_row_uniform
+        costs.append((enum, own, uni))
+    best = None
+    options = [("enum", "own", "uni"), ("enum", "own"), ("enum", "uni"), ("enum",)]
+    if route == "pattern":
+        options = [("enum", "own"), ("enum",)]
+    for allowed in options:
+        choice, total = [], 0.0
+        for (enum, own, uni) in costs:
+            c = {"enum": enum, "own": own, "uni": uni}
+            k = min(allowed, key=lambda a: c[a])
+            choice.append(k)
+            total += c[k] * E
+        if not math.isfinite(total):
+            continue
+        # programs of their own: at most max_pattern_groups (the most used) under "auto"
+        if route == "auto" and "own" in choice:
+            own_idx = sorted((i for i, k in enumerate(choice) if k == "own"), key=lambda i: -rest[i].n_inst)
+            for j, i in enumerate(own_idx):
+                if j >= max_pattern_groups or rest[i].n_inst < min_pattern_rows:
+                    alt = min((a for a in allowed if a != "own"), key=lambda a: costs[i][("enum", "own", "uni").index(a)])
+                    total += (costs[i][("enum", "own", "uni").index(alt)] - costs[i][1]) * E
+                    choice[i] = alt
+        total += COMPILE_TAPE * (("own" in choice) + ("uni" in choice))
+        if best is None or total < best[0]:
+            best = (total, choice)
+    choice = best[1]
+    enum_types = always + [t for t, k in zip(rest, choice) if k == "enum"]
+    prog_types = [t for t, k in zip(rest, choice) if k == "own"]
+    to_uniform = [t for t, k in zip(rest, choice) if k == "uni"]
+    return enum_types, prog_types, to_uniform
+
+
+def _pow2_clip(x: float, lo: int, hi: int) -> int:
+    return 1 << max(int(math.log2(lo)), min(int(math.log2(hi)), int(math.log2(max(1.0, x)))))
+
+
+def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, uniform: np.ndarray,
+              enum_types: Sequence[_Type], prog_types: Sequence[_Type], pruned: np.ndarray,
+              chunk: int | None) -> Plan:
+    n = len(network)
+    R = len(codes)
+    pa = network.parent_indices
+    layout = layout_of(network)
+    offsets, strides, n_flat = layout
+    local = ~uniform
+    blocks, arrays, weights, maps = [], [], [], []
+    eval_s = compile_s = 0.0
+    n_local = int(local.sum())
+    if n_local:
+        N = np.zeros(n_flat + 2)
+        n_fam = 0
+        step = max(1024, PLAN_BLOCK // max(1, n))
+        for s in range(0, R, step):
+            cb = codes[s:s + step]
+            lb = local[s:s + step]
+            obs = cb >= 0
+            for v in range(n):
+                fam = (*pa[v], v)
+                ok = lb & obs[:, fam].all(axis=1)
+                if not ok.any():
+                    continue
+                rows = np.flatnonzero(ok)
+                idx = np.full(len(rows), offsets[v], np.int64)
+                for u in fam:
+                    idx += strides[v][u] * cb[rows, u]
+                N += np.bincount(idx, weights=counts[s + rows], minlength=n_flat + 2)
+                n_fam += len(rows)
+        n_comp = sum(int(local[t.rows].sum()) for t in (*enum_types, *prog_types))
+        blocks.append(GatheredBlock(n_local, n_fam, int(pruned.sum()), n_comp))
+        arrays.append(np.zeros(0, np.int32))
+        weights.append(N)
+        maps.append(None)
+    # enumerated components, in buckets of a common padded shape
+    classes: dict[tuple[int, int], list] = {}
+    for t in enum_types:
+        rows = t.rows[local[t.rows]]
+        if not len(rows):
+            continue
+        bc, w, inv = _type_instances(network, t, codes, counts, rows)
+        classes.setdefault(_round_shape(t.A, t.m), []).append((t, bc, w, inv, rows))
+    menu = _enum_bucket_menu({k: sum(len(x[2]) for x in v) for k, v in classes.items()})
+    buckets: dict[tuple[int, int], list] = {}
+    for k, v in classes.items():
+        buckets.setdefault(menu[k], []).extend(v)
+    for (A, m), members in sorted(buckets.items()):
+        n_inst = sum(len(x[2]) for x in members)
+        c = chunk or _pow2_clip(ENUM_BUDGET / (A * m), 64, 16384)
+        c = min(c, max(8, 1 << math.ceil(math.log2(max(1, n_inst)))))
+        nch = -(-n_inst // c)
+        idx = np.full((nch * c, A, m), n_flat, np.int32)     # log 1 ...
+        idx[:, 1:, 0] = n_flat + 1                            # ... and log 0: padding is 0 = log 1
+        wts = np.zeros(nch * c)
+        rows_l, inst_l = [], []
+        off = 0
+        for t, bc, w, inv, rows in members:
+            k = len(w)
+            idx[off:off + k, :t.A, :t.m] = _enum_tables(network, t, bc, layout)
+            wts[off:off + k] = w
+            rows_l.append(rows)
+            inst_l.append(off + inv)
+            off += k
+        blocks.append(EnumBlock(A, m, c, n_inst, sum(len(x[4]) for x in members), len(members)))
+        arrays.append(idx.reshape(nch, c, A, m))
+        weights.append(wts.reshape(nch, c))
+        maps.append((np.concatenate(rows_l), np.concatenate(inst_l)))
+        eval_s += nch * c * A * m * T_ENUM + nch * T_LOOP
+        compile_s += COMPILE_ENUM
+    # large components with programs of their own
+    if prog_types:
+        progs, datas, occ = [], [], []
+        for t in prog_types:
+            rows = t.rows[local[t.rows]]
+            if not len(rows):
+                continue
+            bc, w, inv = _type_instances(network, t, codes, counts, rows)
+            full = np.zeros((len(w), n), np.int32)
+            full[:, list(t.hidden)] = HIDDEN
+            if t.boundary:
+                full[:, list(t.boundary)] = bc
+            progs.append(_compile_program(network, t.gp, layout, TAPE_SLOTS, TAPE_FACTORS))
+            datas.append((full, w))
+            occ.append((rows, inv))
+        if progs:
+            width = _choose_width(progs, [len(d[1]) for d in datas])
+            sizes = []
+            for pr in progs:
+                _pack(pr, width)
+                sizes.append(len(pr.leaf_off) + len(pr.ind_code) + pr.n_batch * width * TAPE_SLOTS * TAPE_FACTORS)
+            for cls in _split_classes(sizes, [len(d[1]) for d in datas]):
+                cp, cd, co = [progs[i] for i in cls], [datas[i] for i in cls], [occ[i] for i in cls]
+                blk, arr, wts, starts = _tape_block(network, "pattern", cp, cd, width, chunk, TAPE_SLOTS, TAPE_FACTORS)
+                blocks.append(blk)
+                arrays.append(arr)
+                weights.append(wts)
+                maps.append((np.concatenate([r for r, _ in co]), np.concatenate([s0 + i for (_, i), s0 in zip(co, starts)])))
+                eval_s += _tape_seconds(blk, wts)
+                compile_s += COMPILE_TAPE
+    # whole rows with uniform evidence
+    urows = np.flatnonzero(uniform)
+    if len(urows):
+        gp = _group_plan(network, codes[urows] < 0, kind="mixed", n_rows=len(urows), keep_all=True)
+        prog = _compile_program(network, gp, layout, TAPE_SLOTS, TAPE_FACTORS)
+        width = _choose_width([prog], [len(urows)])
+        blk, arr, wts, starts = _tape_block(network, "mixed", [prog], [(codes[urows], counts[urows])], width,
+                                            chunk, TAPE_SLOTS, TAPE_FACTORS)
+        blocks.append(blk)
+        arrays.append(arr)
+        weights.append(wts)
+        maps.append((urows, np.arange(len(urows))))
+        eval_s += _tape_seconds(blk, wts)
+        compile_s += COMPILE_TAPE
+    return Plan(network, tuple(blocks), tuple(arrays), tuple(weights), R, tuple(maps), local,
+                {"evaluation_s": eval_s, "compile_s": compile_s})
+
+
+def _tape_seconds(blk: TapeBlock, wts: np.ndarray) -> float:
+    n_chunks = wts.shape[0]
+    per_row = blk.n_leaf + blk.n_batch * blk.width * blk.slots * blk.ops
+    return n_chunks * (blk.chunk * per_row * T_TAPE + blk.n_batch * T_LOOP)
+
+
+def _posterior_plan(network: Network, codes: np.ndarray, counts: np.ndarray, chunk: int | None) -> Plan:
+    n = len(network)
+    gp = _group_plan(network, codes < 0, kind="mixed", n_rows=len(codes), keep_all=True, indicator_nodes=range(n))
+    if chunk is not None:
+        gp = dataclasses.replace(gp, chunk=int(chunk))
+    c = gp.chunk
+    rows = np.arange(len(codes))
+    n_chunks = max(1, -(-len(rows) // c))
+    pad = n_chunks * c - len(rows)
+    idx = np.concatenate([rows, np.full(pad, rows[0] if len(rows) else 0, dtype=rows.dtype)])
+    w = np.concatenate([counts, np.zeros(pad)])
+    return Plan(network, (gp,), (codes[idx].reshape(n_chunks, c, n),), (w.reshape(n_chunks, c),), len(codes),
+                rows=(rows,))
+
+
+# --------------------------------------------------------------------------- the computation
+def _safe_weighted(ll: jax.Array, w: jax.Array) -> jax.Array:
+    return jnp.sum(jnp.where(w > 0, w * ll, 0.0))
+
+
+def _enum_rows(flat: jax.Array, idx: jax.Array) -> jax.Array:
+    """log sum over assignments of the product of gathered entries: (instances,)."""
+    return _logsumexp_last(jnp.sum(flat[idx], axis=-1), axis=-1)
+
+
+def _tape_rows(blk: TapeBlock, flat: jax.Array, progs, pid, base, icodes) -> jax.Array:
+    """Run the elimination programs of one chunk of instances; returns their log-likelihoods.
+
+    ``pid`` (rows,) program of each instance, ``base`` (rows, n_fac + 1) its observed part of each
+    log-CPT index, ``icodes`` (rows, n_icodes + 1) its codes of the indicator nodes.
+    """
+    leaf_off, leaf_fac, ind_code, ind_state, items, finals = progs
+    rows = base.shape[0]
+    shared = blk.n_programs == 1
+    pick = (lambda t: t[0][None]) if shared else (lambda t: jnp.take(t, pid, axis=0))
+    leaves = flat[pick(leaf_off) + jnp.take_along_axis(base, jnp.broadcast_to(pick(leaf_fac), (rows, blk.n_leaf)), axis=1)]
+    ic = jnp.take_along_axis(icodes, jnp.broadcast_to(pick(ind_code), (rows, blk.n_ind)), axis=1)
+    ind = jnp.where((ic == pick(ind_state)) | (ic < 0), 0.0, -jnp.inf)
+    buf = jnp.concatenate([leaves, ind, jnp.zeros((rows, 1)), jnp.full((rows, 1), -jnp.inf),
+                           jnp.zeros((rows, blk.n_batch * blk.width))], axis=1)
+    k = blk.width * blk.slots * blk.ops
+
+    def body(buf, xs):
+        ib, b = xs                                   # ib: (programs, width, slots, ops)
+        if shared:
+            g = jnp.take(buf, ib[0].reshape(-1), axis=1)
         else:
-            _, pat_inv, pat_count = np.unique(hidden, axis=0, return_inverse=True, return_counts=True)
-        pat_inv = pat_inv.reshape(-1)
-        order = np.argsort(-pat_count, kind="stable")
-        tail: list[np.ndarray] = []
-        for rank, p in enumerate(order):
-            rows = np.flatnonzero(pat_inv == p)
-            if route == "pattern" or (rank < max_pattern_groups and pat_count[p] >= min_pattern_rows):
-                groups_rows.append(("pattern", rows))
-            else:
-                tail.append(rows)
-        if tail:
-            groups_rows.append(("mixed", np.sort(np.concatenate(tail))))
+            g = jnp.take_along_axis(buf, jnp.take(ib.reshape(-1, k), pid, axis=0), axis=1)
+        g = g.reshape(rows, blk.width, blk.slots, blk.ops)
+        out = _logsumexp_last(jnp.sum(g, axis=3), axis=2)    # (rows, width)
+        return jax.lax.dynamic_update_slice(buf, out, (0, blk.start + b * blk.width)), None
 
-    plans, rows_l, codes_l, w_l = [], [], [], []
-    for kind, rows in groups_rows:
-        gp = _group_plan(network, hidden[rows], kind=kind, n_rows=len(rows),
-                         keep_all=for_posteriors, indicator_nodes=range(n) if for_posteriors else ())
-        if chunk is not None:
-            gp = dataclasses.replace(gp, chunk=int(chunk))
-        c = gp.chunk
-        n_chunks = max(1, -(-len(rows) // c))
-        pad = n_chunks * c - len(rows)
-        idx = np.concatenate([rows, np.full(pad, rows[0], dtype=rows.dtype)])
-        w = np.concatenate([counts[rows], np.zeros(pad)])
-        plans.append(gp)
-        rows_l.append(rows)
-        codes_l.append(codes[idx].reshape(n_chunks, c, n))
-        w_l.append(w.reshape(n_chunks, c))
-    return Plan(network, tuple(plans), tuple(rows_l), tuple(codes_l), tuple(w_l), len(codes))
+    buf, _ = jax.lax.scan(body, buf, (items, jnp.arange(blk.n_batch)))
+    fin = jnp.broadcast_to(pick(finals), (rows, blk.n_final))
+    return jnp.sum(jnp.take_along_axis(buf, fin, axis=1), axis=1)
 
 
-# --------------------------------------------------------------------------- the contraction
+def _enum_value_and_grad(flat: jax.Array, xs) -> tuple[jax.Array, jax.Array]:
+    """Value and gradient (w.r.t. ``flat``) of one enumeration chunk, the gradient written out:
+    the posterior of each assignment times the weight, added to every entry it read."""
+    idx, w = xs
+    t = jnp.sum(flat[idx], axis=-1)                          # (chunk, A)
+    m = jnp.max(t, axis=-1, keepdims=True)
+    m = jnp.where(jnp.isfinite(m), m, 0.0)
+    e = jnp.exp(t - m)
+    s = jnp.sum(e, axis=-1, keepdims=True)
+    ok = s > 0
+    safe = jnp.where(ok, s, 1.0)
+    v = jnp.where(ok[:, 0], jnp.log(safe[:, 0]) + m[:, 0], -jnp.inf)
+    p = jnp.where(ok, e / safe, 0.0) * jnp.where(w > 0, w, 0.0)[:, None]
+    g = jnp.zeros_like(flat).at[idx.reshape(-1)].add(jnp.broadcast_to(p[..., None], idx.shape).reshape(-1))
+    return _safe_weighted(v, w), g
+
+
+def _block_chunks(blk, arrays, weights, network: Network | None = None):
+    """(xs for lax.scan over the chunks, chunk function (flat, xs) -> weighted log-likelihood)."""
+    if isinstance(blk, GroupPlan):
+        # a plain elimination group over coded rows (the layout of adfit.minibatch): the
+        # per-step contraction, with rows of codes (chunk, n_nodes) as data
+        cards = network.cards
+
+        def f(flat, xs):
+            cc, w = xs
+            return _safe_weighted(_group_rows_loglik(blk, cards, _unflat(network, flat), cc), w)
+        return (arrays, weights), f
+    if isinstance(blk, EnumBlock):
+        def f(flat, xs):
+            idx, w = xs
+            return _safe_weighted(_enum_rows(flat, idx), w)
+        return (arrays, weights), f
+    progs, (pid, base, icodes) = arrays
+
+    def f(flat, xs):
+        p, b, ic, w = xs
+        return _safe_weighted(_tape_rows(blk, flat, progs, p, b, ic), w)
+    return (pid, base, icodes, weights), f
+
+
+def _gathered_value(flat: jax.Array, counts: jax.Array) -> jax.Array:
+    return jnp.sum(jnp.where(counts > 0, counts * flat, 0.0))
+
+
+@partial(jax.jit, static_argnums=(0, 1))
+def _loglik_logcpt(network: Network, groups: tuple, logcpts: tuple[jax.Array, ...],
+                   codes: tuple, weights: tuple) -> jax.Array:
+    """Weighted total log-likelihood; differentiable in both modes (chunks are recomputed in the
+    backward pass, so memory stays that of one chunk)."""
+    flat = _flat(logcpts)
+    total = jnp.zeros((), jnp.float64)
+    for blk, arr, w in zip(groups, codes, weights):
+        if isinstance(blk, GatheredBlock):
+            total = total + _gathered_value(flat, w)
+            continue
+        xs, f = _block_chunks(blk, arr, w, network)
+        fc = jax.checkpoint(f)
+
+        def body(acc, x, fc=fc):
+            return acc + fc(flat, x), None
+
+        val, _ = jax.lax.scan(body, jnp.zeros((), jnp.float64), xs)
+        total = total + val
+    return total
+
+
+def _value_and_expected_counts(network: Network, groups: tuple, logcpts: Sequence[jax.Array],
+                               codes: tuple, weights: tuple):
+    """Total log-likelihood and its gradient w.r.t. the log-CPTs (= expected family counts).
+
+    Each chunk's value and gradient are computed and accumulated inside ``lax.scan``, so the
+    memory is one chunk's, whatever the number of rows. The compiled program returns the
+    gradient as one flat vector; it is cut into CPT-shaped arrays here (numpy views when the
+    call is not traced): XLA compiles every sliced output as a kernel of its own, which cost
+    0.5 s of compile time for 37 nodes.
+    """
+    val, g = _value_and_flat_counts(network, groups, tuple(logcpts), codes, weights)
+    if isinstance(g, jax.core.Tracer):
+        return val, _unflat(network, g)
+    g = np.asarray(g)
+    out, off = [], 0
+    for name in network.names:
+        shape = network.cpt_shape(name)
+        size = math.prod(shape)
+        out.append(g[off:off + size].reshape(shape))
+        off += size
+    return val, tuple(out)
+
+
+@partial(jax.jit, static_argnums=(0, 1))
+def _value_and_flat_counts(network: Network, groups: tuple, logcpts: tuple[jax.Array, ...],
+                           codes: tuple, weights: tuple):
+    flat = _flat(logcpts)
+    total = jnp.zeros((), jnp.float64)
+    grad = jnp.zeros_like(flat)
+    for blk, arr, w in zip(groups, codes, weights):
+        if isinstance(blk, GatheredBlock):
+            total = total + _gathered_value(flat, w)
+            grad = grad + w
+            continue
+        xs, f = _block_chunks(blk, arr, w, network)
+        vg = _enum_value_and_grad if isinstance(blk, EnumBlock) else jax.value_and_grad(f)
+
+        def body(carry, x, vg=vg):
+            acc, g = carry
+            v, gg = vg(flat, x)
+            return (acc + v, g + gg), None
+
+        (val, g), _ = jax.lax.scan(body, (jnp.zeros((), jnp.float64), jnp.zeros_like(flat)), xs)
+        total = total + val
+        grad = grad + g
+    return total, grad
+
+
+@partial(jax.jit, static_argnums=(0, 1))
+def _rows_loglik(network: Network, groups: tuple, logcpts: tuple[jax.Array, ...], codes: tuple) -> tuple:
+    """Per-instance log-likelihood of every block but the gathered one (flattened chunks)."""
+    flat = _flat(logcpts)
+    out = []
+    for blk, arr in zip(groups, codes):
+        if isinstance(blk, GatheredBlock):
+            out.append(jnp.zeros(0))
+            continue
+        if isinstance(blk, GroupPlan):
+            lcs = _unflat(network, flat)
+            _, ll = jax.lax.scan(lambda _, cc, blk=blk: (None, _group_rows_loglik(blk, network.cards, lcs, cc)), None, arr)
+        elif isinstance(blk, EnumBlock):
+            _, ll = jax.lax.scan(lambda _, idx: (None, _enum_rows(flat, idx)), None, arr)
+        else:
+            progs, (pid, base, icodes) = arr
+
+            def body(_, x, blk=blk, progs=progs):
+                p, b, ic = x
+                return None, _tape_rows(blk, flat, progs, p, b, ic)
+            _, ll = jax.lax.scan(body, None, (pid, base, icodes))
+        out.append(ll.reshape(-1))
+    return tuple(out)
+
+
+# --------------------------------------------------------------------------- per-step contraction (posteriors)
 def _gather_factor(logcpt: jax.Array, f: FactorSpec, cards: Sequence[int], codes: jax.Array,
                    normalise: bool) -> tuple[jax.Array, jax.Array]:
     """CPT restricted to the observed family members of each row: shape (*scope_cards, rows)."""
@@ -403,70 +1530,28 @@ def _logcpts_from_logits(network: Network, logits: Mapping[str, jax.Array]) -> l
     return out
 
 
-def _safe_weighted(ll: jax.Array, w: jax.Array) -> jax.Array:
-    return jnp.sum(jnp.where(w > 0, w * ll, 0.0))
 
 
-@partial(jax.jit, static_argnums=(0, 1))
-def _loglik_logcpt(network: Network, groups: tuple[GroupPlan, ...], logcpts: tuple[jax.Array, ...],
-                   codes: tuple[jax.Array, ...], weights: tuple[jax.Array, ...]) -> jax.Array:
-    """Weighted total log-likelihood; differentiable (chunks recomputed in the backward pass)."""
-    cards = network.cards
-    total = jnp.zeros((), jnp.float64)
-    for gp, c, w in zip(groups, codes, weights):
-        @jax.checkpoint
-        def chunk_val(lc, cc, ww, gp=gp):
-            return _safe_weighted(_group_rows_loglik(gp, cards, lc, cc), ww)
-
-        def body(acc, xs, gp=gp):
-            cc, ww = xs
-            return acc + chunk_val(logcpts, cc, ww), None
-
-        val, _ = jax.lax.scan(body, jnp.zeros((), jnp.float64), (c, w))
-        total = total + val
-    return total
-
-
-@partial(jax.jit, static_argnums=(0, 1))
-def _value_and_expected_counts(network: Network, groups: tuple[GroupPlan, ...], logcpts: tuple[jax.Array, ...],
-                               codes: tuple[jax.Array, ...], weights: tuple[jax.Array, ...]):
-    """Total log-likelihood and its gradient w.r.t. the log-CPTs (= expected family counts).
-
-    Each chunk's value and gradient are computed and accumulated inside ``lax.scan``, so the
-    memory is one chunk's, whatever the number of rows.
-    """
-    cards = network.cards
-    total = jnp.zeros((), jnp.float64)
-    grads = tuple(jnp.zeros_like(x) for x in logcpts)
-    for gp, c, w in zip(groups, codes, weights):
-        def chunk_val(lc, cc, ww, gp=gp):
-            return _safe_weighted(_group_rows_loglik(gp, cards, lc, cc), ww)
-
-        vg = jax.value_and_grad(chunk_val)
-
-        def body(carry, xs):
-            acc, g = carry
-            cc, ww = xs
-            v, gg = vg(logcpts, cc, ww)
-            return (acc + v, tuple(a + b for a, b in zip(g, gg))), None
-
-        (val, g), _ = jax.lax.scan(body, (jnp.zeros((), jnp.float64), tuple(jnp.zeros_like(x) for x in logcpts)), (c, w))
-        total = total + val
-        grads = tuple(a + b for a, b in zip(grads, g))
-    return total, grads
-
-
-@partial(jax.jit, static_argnums=(0, 1))
-def _rows_loglik(network: Network, groups: tuple[GroupPlan, ...], logcpts: tuple[jax.Array, ...],
-                 codes: tuple[jax.Array, ...]) -> tuple[jax.Array, ...]:
-    cards = network.cards
-    out = []
-    for gp, c in zip(groups, codes):
-        def body(_, cc, gp=gp):
-            return None, _group_rows_loglik(gp, cards, logcpts, cc)
-        _, ll = jax.lax.scan(body, None, c)
-        out.append(ll.reshape(-1))
-    return tuple(out)
+def _assemble_rows(plan: Plan, codes: np.ndarray, lcs: Sequence[np.ndarray], parts: Sequence[np.ndarray]) -> np.ndarray:
+    """Per distinct row: its observed families (numpy) plus its components' values."""
+    network = plan.network
+    codes = np.asarray(codes)
+    out = np.zeros(plan.n_distinct)
+    local = plan.observed_rows
+    if local is not None and local.any():
+        obs = codes >= 0
+        pa = network.parent_indices
+        for v in range(len(network)):
+            fam = (*pa[v], v)
+            ok = np.flatnonzero(local & obs[:, fam].all(axis=1))
+            if ok.size:
+                out[ok] += lcs[v][tuple(codes[ok, u] for u in fam)]
+    for blk, mp, vals in zip(plan.groups, plan.maps, parts):
+        if mp is None:
+            continue
+        rows, inst = mp
+        np.add.at(out, rows, vals[inst])
+    return out
 
 
 # --------------------------------------------------------------------------- public API
@@ -484,8 +1569,8 @@ class Likelihood:
         self.network = network
         self.data = data
         self.plan = build_plan(network, data, route=route, chunk=chunk)
-        self._codes = tuple(jnp.asarray(c) for c in self.plan.codes)
-        self._weights = tuple(jnp.asarray(w) for w in self.plan.weights)
+        self._codes = jax.tree_util.tree_map(jnp.asarray, self.plan.codes)
+        self._weights = jax.tree_util.tree_map(jnp.asarray, self.plan.weights)
         self.free = network.free_names
 
     # -- log-CPT level (all nodes) ---------------------------------------------------------
@@ -517,17 +1602,14 @@ class Likelihood:
         """Log-likelihood of every distinct row (in the order of ``data.codes``)."""
         lc = logcpts_from_probs(self.network, probs)
         parts = _rows_loglik(self.network, self.plan.groups, tuple(lc), self._codes)
-        out = np.empty(self.plan.n_distinct)
-        for rows, ll in zip(self.plan.rows, parts):
-            out[rows] = np.asarray(ll)[: len(rows)]
-        return out
+        return _assemble_rows(self.plan, self.data.codes, [np.asarray(x) for x in lc], [np.asarray(p) for p in parts])
 
 
 def _value_and_grad_logits(lik: Likelihood, logits: Mapping[str, jax.Array]):
     logits = {k: jnp.asarray(logits[k]) for k in lik.free}
     lc, vjp = jax.vjp(lambda lg: lik.logcpts(lg), logits)
     val, counts = lik.expected_counts_logcpt(lc)
-    (g,) = vjp(tuple(counts))
+    (g,) = vjp(tuple(jnp.asarray(c) for c in counts))
     return val, g
 
 
