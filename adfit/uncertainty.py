@@ -47,6 +47,8 @@ default only up to :data:`AUTO_MAX_PARAMETERS` free parameters.
 from __future__ import annotations
 
 import math
+import time
+import warnings
 from dataclasses import dataclass, field
 from functools import partial
 from typing import Any, Callable, Iterable, Mapping, Sequence
@@ -67,10 +69,17 @@ from .network import Network
 LEVEL = 0.95
 #: coordinates up to which the information matrix is formed densely (P² floats, eigh in P³)
 DENSE_MAX_PARAMETERS = 3000
-#: the CLI computes error bars by default up to this many free parameters (--errors forces)
+#: the CLI computes error bars by default up to this many free parameters (--errors forces) ...
 AUTO_MAX_PARAMETERS = 1000
+#: ... and when the estimated time is at most this (seconds): P products × HVP_COST × one
+#: gradient evaluation, timed on the data
+AUTO_MAX_SECONDS = 120.0
+#: one Hessian-vector product costs about this many gradient evaluations (measured 1.3–1.5)
+HVP_COST = 1.5
 #: basis vectors per batched Hessian-vector product
 HVP_BATCH = 32
+#: rows per chunk are divided by the batch, down to this
+MIN_CHUNK = 64
 #: a row with N̂(u) + c(u) below this (records) is "no data"
 UNINFORMED_COUNT = 1e-6
 #: a cell with N̂(x,u) + c(x,u) below BOUNDARY_COUNT · min(1, n_u) is "on the boundary"
@@ -242,14 +251,17 @@ class _Problem:
     """The objective at an estimate in the coordinates, with batched Hessian-vector products."""
 
     def __init__(self, network: Network, data: CodedData, coordinates: Coordinates,
-                 pseudo: Mapping[str, np.ndarray], l2: float, batch: int):
+                 pseudo: Mapping[str, np.ndarray], l2: float, batch: int, likelihood: Likelihood | None = None):
         self.network = network
         self.co = coordinates
         self.batch = max(1, min(batch, coordinates.size))
-        # smaller chunks when many tangents travel together: memory ~ batch × chunk
-        probe = Likelihood(network, data)
-        chunk = max(64, min(g.chunk for g in probe.plan.groups) // self.batch)
-        self.lik = probe if chunk >= min(g.chunk for g in probe.plan.groups) else Likelihood(network, data, chunk=chunk)
+        # smaller chunks when many tangents travel together: memory ~ batch × chunk rows
+        lik = likelihood if likelihood is not None else Likelihood(network, data)
+        chunks = [c for c in (getattr(g, "chunk", None) for g in lik.plan.groups)
+                  if isinstance(c, int) and 0 < c < (1 << 30)]
+        if chunks and self.batch > 1 and max(MIN_CHUNK, min(chunks) // self.batch) < min(chunks):
+            lik = Likelihood(network, data, chunk=max(MIN_CHUNK, min(chunks) // self.batch))
+        self.lik = lik
         with np.errstate(divide="ignore"):
             fixed_lc = {n: jnp.asarray(np.log(network.fixed_table(n))) for n in network.fixed_names}
         self.aux = ({k: jnp.asarray(v) for k, v in coordinates.base.items()},
@@ -264,15 +276,17 @@ class _Problem:
         v, g = _value_and_grad(self.network, self.lik.plan.groups, self.co.sizes, p, self.aux)
         return float(v), np.asarray(g)
 
-    def information_times(self, V: np.ndarray) -> np.ndarray:
-        """``I @ V`` for a (P, m) array (I = −Hessian of F), in padded batches."""
+    def information_times(self, V: np.ndarray, *, full_batches: bool = True) -> np.ndarray:
+        """``I @ V`` for a (P, m) array (I = −Hessian of F), in batches of ``self.batch``
+        columns; a last, narrower batch is padded to the full batch (``full_batches``, one
+        compiled program) or to the next power of two (at most log2(batch) more programs)."""
         V = np.asarray(V, dtype=np.float64)
         P, m = V.shape
         out = np.empty((P, m))
-        B = self.batch
-        for s in range(0, m, B):
-            cols = V[:, s:s + B]
+        for s in range(0, m, self.batch):
+            cols = V[:, s:s + self.batch]
             w = cols.shape[1]
+            B = self.batch if full_batches else min(self.batch, 1 << max(0, math.ceil(math.log2(w))))
             vecs = np.zeros((B, P))
             vecs[:w] = cols.T
             hv = np.asarray(_hvp_batch(self.network, self.lik.plan.groups, self.co.sizes, self.phi0,
@@ -487,8 +501,9 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
                         level: float = LEVEL, wide: float = WIDE_WIDTH, method: str = "auto",
                         nodes: Iterable[str] | None = None, batch: int = HVP_BATCH,
                         cg_tol: float = 1e-10, cg_max_iter: int = 500, n_eig: int = 8,
-                        converged: bool | None = None, missing: Iterable[str] | None = None,
-                        count_column: str | None = None, ignore_columns: Iterable[str] = ()) -> Uncertainty:
+                        converged: bool | None = None, likelihood: Likelihood | None = None,
+                        missing: Iterable[str] | None = None, count_column: str | None = None,
+                        ignore_columns: Iterable[str] = ()) -> Uncertainty:
     """Error bars and identifiability at the estimate ``probs`` (module docstring).
 
     Args:
@@ -502,6 +517,7 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
         batch: basis vectors per batched Hessian-vector product (memory ~ batch × chunk).
         cg_tol, cg_max_iter, n_eig: the matrix-free solves and the number of smallest ρ sought.
         converged: whether the fit's stopping rule held (a note is added when False).
+        likelihood: a :class:`adfit.likelihood.Likelihood` of this network and data to reuse.
     """
     if not (0 < level < 1):
         raise OptionError(f"level must be between 0 and 1 (e.g. 0.95), got {level}")
@@ -517,7 +533,7 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     pseudo = _pseudo(network, pseudo_counts)
     wanted = _wanted_nodes(network, nodes)
     full = _full_probs(network, probs)
-    lik = Likelihood(network, coded)
+    lik = likelihood if likelihood is not None else Likelihood(network, coded)
     check_possible(lik, full)
     _, counts = lik.expected_counts(full)
     co = make_coordinates(network, full, {k: counts[k] + pseudo[k] for k in network.free_names})
@@ -530,27 +546,27 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     z = float(stats.norm.ppf(0.5 + level / 2))
     blocks = complete_information(co, l2)
     if P == 0:
-        sec = _assemble(co, level, z, {}, np.zeros((0, 0)), np.zeros((0, 0)), blocks, wanted)
+        sec = _assemble(co, level, z, _CovBlocks(co, {}), np.zeros((0, 0)), blocks, wanted)
         return Uncertainty(network, level, method, *sec, co, np.zeros(0), np.zeros(0), (),
                            {n: _missing_none(co, n) for n in network.free_names}, None, 0.0,
                            notes=tuple(notes + ["no coordinate is left to estimate (every row is on the boundary or has no data)"]),
                            wide=wide, settings={"_pseudo": pseudo, "l2": l2})
-    pb = _Problem(network, coded, co, pseudo, l2, batch)
+    pb = _Problem(network, coded, co, pseudo, l2, batch, lik)
     gnorm = float(np.linalg.norm(coordinate_gradient(co, l2)))
-    M = _block_matrix(co, blocks)
     info = cov = ev = None
     if method == "dense":
         info = pb.dense_information()
         ev = np.linalg.eigvalsh(info)
-        rho, X = _generalised_eigh(info, M)
+        rho, X = _generalised_eigh(info, _block_matrix(co, blocks))
         ok = rho > FLAT_TOL
         cov = (X[:, ok] / rho[ok]) @ X[:, ok].T
         flat_X = X[:, ~ok]
-        cov_cols = cov
-        cols = np.arange(P)
+        offs = co.offsets()
+        node_cov = _CovBlocks(co, {n: cov[offs[n]:offs[n] + sz, offs[n]:offs[n] + sz]
+                                   for n, sz in zip(network.free_names, co.sizes)})
         all_rho, all_X = rho, X
     else:
-        all_rho, all_X, cov_cols, cols, flat_X, cg_note = _matrix_free(pb, co, blocks, wanted, cg_tol, cg_max_iter, n_eig)
+        all_rho, all_X, node_cov, flat_X, cg_note = _matrix_free(pb, co, blocks, wanted, cg_tol, cg_max_iter, n_eig)
         notes.extend(cg_note)
         notes.append(f"matrix-free: {P} coordinates > {DENSE_MAX_PARAMETERS}; the relative eigenvalues listed are "
                      f"only the smallest {len(all_rho)} (LOBPCG), the error bars come from conjugate-gradient solves")
@@ -559,9 +575,9 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
                      "(a saddle or an unconverged fit); the entries loading on those directions get no error bar")
     if gnorm > 1e-3 * max(1.0, math.sqrt(coded.n_rows)):
         notes.append(f"the gradient at the estimate is not small ({gnorm:.3g}); the error bars assume a maximum")
-    se, lower, upper, status = _assemble(co, level, z, _column_lookup(cols), cov_cols, flat_X, blocks, wanted)
+    se, lower, upper, status = _assemble(co, level, z, node_cov, flat_X, blocks, wanted)
     directions = _name_directions(co, all_rho, all_X, blocks, info)
-    missing_info = {n: _missing_fraction(co, n, status, cov_cols, _column_lookup(cols), blocks) if n in wanted
+    missing_info = {n: _missing_fraction(co, n, status, node_cov, blocks) if n in wanted
                     else None for n in network.free_names}
     em_rate = float(np.clip(1.0 - all_rho.min(), 0.0, 1.0)) if len(all_rho) else None
     return Uncertainty(network, level, method, se, lower, upper, status, co, all_rho, ev, tuple(directions),
@@ -624,8 +640,17 @@ def _generalised_eigh(info: np.ndarray, M: np.ndarray) -> tuple[np.ndarray, np.n
         return scipy.linalg.eigh(info, M + jitter * np.eye(len(M)))
 
 
-def _column_lookup(cols: np.ndarray) -> dict[int, int]:
-    return {int(c): i for i, c in enumerate(cols)}
+class _CovBlocks:
+    """The covariance (inverse information on the identified directions), one block per node."""
+
+    def __init__(self, co: Coordinates, blocks: Mapping[str, np.ndarray]):
+        self.off = co.offsets()
+        self.blocks = blocks
+
+    def get(self, name: str, js: Sequence[int]) -> np.ndarray:
+        ix = np.asarray(js, dtype=np.int64) - self.off[name]
+        b = self.blocks[name][np.ix_(ix, ix)]
+        return 0.5 * (b + b.T)
 
 
 def _boundary_upper(nu: float, level: float) -> float:
@@ -634,8 +659,8 @@ def _boundary_upper(nu: float, level: float) -> float:
     return 1.0 if nu <= 0 else float(1.0 - (alpha / 2) ** (1.0 / nu))
 
 
-def _assemble(co: Coordinates, level: float, z: float, lookup: Mapping[int, int], cov_cols: np.ndarray,
-              flat_X: np.ndarray, blocks, wanted: set[str]):
+def _assemble(co: Coordinates, level: float, z: float, cov: _CovBlocks, flat_X: np.ndarray, blocks,
+              wanted: set[str]):
     """SE, interval and status of every entry of every free node."""
     net = co.network
     offs = co.offsets()
@@ -671,9 +696,7 @@ def _assemble(co: Coordinates, level: float, z: float, lookup: Mapping[int, int]
                 states = [co.coords[j][2] for j in js]
                 G = th[u][:, None] * ((np.arange(K)[:, None] == np.asarray(states)[None, :]) - th[u, states][None, :])
                 Minv = np.linalg.inv(blocks[(name, u)])
-                ci = [lookup[int(j)] for j in js]
-                S = cov_cols[np.ix_(js, ci)]
-                S = 0.5 * (S + S.T)
+                S = cov.get(name, js)
                 for k in range(K):
                     if bnd[k]:
                         continue
@@ -714,15 +737,15 @@ def _missing_none(co: Coordinates, name: str) -> dict[str, Any]:
 
 def _fractions(cov_block: np.ndarray, com_block: np.ndarray) -> np.ndarray:
     """Fractions of missing information 1 − eig(I_com⁻¹ S), S = (cov block)⁻¹ the marginal information."""
-    S = np.linalg.inv(0.5 * (cov_block + cov_block.T))
+    S = np.linalg.inv(cov_block)
     L = np.linalg.cholesky(com_block)
     Li = np.linalg.inv(L)
     mu = np.linalg.eigvalsh(Li @ S @ Li.T)
     return np.clip(1.0 - mu, 0.0, 1.0)
 
 
-def _missing_fraction(co: Coordinates, name: str, status: Mapping[str, np.ndarray], cov_cols: np.ndarray,
-                      lookup: Mapping[int, int], blocks) -> dict[str, Any]:
+def _missing_fraction(co: Coordinates, name: str, status: Mapping[str, np.ndarray], cov: _CovBlocks,
+                      blocks) -> dict[str, Any]:
     """Per row and per node: fraction of missing information (marginal over the other parameters)."""
     K = co.network.node(name).card
     st = status[name].reshape(-1, K)
@@ -739,8 +762,7 @@ def _missing_fraction(co: Coordinates, name: str, status: Mapping[str, np.ndarra
         if js is None:
             per_row.append(None)
             continue
-        ci = [lookup[int(j)] for j in js]
-        per_row.append(float(_fractions(cov_cols[np.ix_(js, ci)], blocks[(name, u)]).max()))
+        per_row.append(float(_fractions(cov.get(name, js), blocks[(name, u)]).max()))
         ident_js.extend(int(j) for j in js)
     largest = mean = None
     if ident_js:
@@ -751,7 +773,7 @@ def _missing_fraction(co: Coordinates, name: str, status: Mapping[str, np.ndarra
             if nm == name and int(rj[0]) in pos:
                 ix = [pos[int(j)] for j in rj]
                 com[np.ix_(ix, ix)] = blocks[(nm, u)]
-        fr = _fractions(cov_cols[np.ix_(js, [lookup[int(j)] for j in js])], com)
+        fr = _fractions(cov.get(name, js), com)
         largest, mean = float(fr.max()), float(fr.mean())
     if any_flat:
         largest = 1.0
@@ -810,24 +832,39 @@ def _matrix_free(pb: _Problem, co: Coordinates, blocks, wanted: set[str], tol: f
     def as2d(f):
         return lambda V: f(V.reshape(P, -1)) if V.ndim == 2 else f(V.reshape(P, 1)).ravel()
 
-    A = LinearOperator((P, P), matvec=as2d(pb.information_times), matmat=pb.information_times, dtype=np.float64)
+    def info_times(V):
+        return pb.information_times(V, full_batches=False)
+
+    A = LinearOperator((P, P), matvec=as2d(info_times), matmat=info_times, dtype=np.float64)
     B = LinearOperator((P, P), matvec=as2d(m_times), matmat=m_times, dtype=np.float64)
     T = LinearOperator((P, P), matvec=as2d(m_solve), matmat=m_solve, dtype=np.float64)
-    k = max(1, min(n_eig, P // 5))
     rng = np.random.default_rng(0)
-    X0 = m_solve(rng.standard_normal((P, k)))
-    import warnings
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        rho, X = lobpcg(A, X0, B=B, M=T, largest=False, tol=1e-9, maxiter=max(200, 4 * k))
+    k = max(1, min(n_eig, P // 5))
+    while True:
+        X0 = m_solve(rng.standard_normal((P, k)))
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # lobpcg warns when it stops at maxiter; the residual is checked below
+            rho, X = lobpcg(A, X0, B=B, M=T, largest=False, tol=1e-9, maxiter=max(200, 4 * k))
+        rho = np.asarray(rho)
+        # all found directions weak: there may be more of them; look for twice as many
+        if rho.max() > WEAK_TOL or 2 * k > P // 5:
+            break
+        k *= 2
     order = np.argsort(rho)
-    rho, X = np.asarray(rho)[order], np.asarray(X)[:, order]
+    rho, X = rho[order], np.asarray(X)[:, order]
     X = X / np.sqrt(np.einsum("ij,ij->j", X, m_times(X)))[None, :]  # M-normalise
+    R = info_times(X) - m_times(X) * rho[None, :]
+    eig_res = float(np.sqrt(np.max(np.einsum("ij,ij->j", R, m_solve(R)), initial=0.0)))
     flat = rho <= FLAT_TOL
-    # columns of I⁻¹ for the wanted nodes' coordinates
+    # columns of I⁻¹ for the wanted nodes' coordinates, kept as one block per node
+    offs = co.offsets()
+    sizes = dict(zip(co.network.free_names, co.sizes))
+    node_cov = {n: np.zeros((sizes[n], sizes[n])) for n in wanted}
     cols = np.asarray([j for j, (name, _, _) in enumerate(co.coords) if name in wanted], dtype=np.int64)
     notes: list[str] = []
-    cov_cols = np.zeros((P, len(cols)))
+    if eig_res > 1e-6:
+        notes.append(f"LOBPCG stopped with residual {eig_res:.2g} on the smallest relative eigenvalues; the flat and "
+                     f"weak directions found may be incomplete")
     worst = 0.0
     for s in range(0, len(cols), pb.batch):
         c = cols[s:s + pb.batch]
@@ -836,13 +873,17 @@ def _matrix_free(pb: _Problem, co: Coordinates, blocks, wanted: set[str], tol: f
         Xt_b = X.T @ Bm
         known = (X[:, ~flat] / rho[~flat]) @ Xt_b[~flat]
         rhs = Bm - m_times(X @ Xt_b)
-        y, res = _pcg(pb.information_times, m_solve, lambda V: V - X @ (X.T @ m_times(V)), rhs, tol, max_iter)
+        y, res = _pcg(info_times, m_solve, lambda V: V - X @ (X.T @ m_times(V)), rhs, tol, max_iter)
         worst = max(worst, res)
-        cov_cols[:, s:s + len(c)] = known + y
+        sol = known + y
+        for i, j in enumerate(c):
+            name = co.coords[int(j)][0]
+            o = offs[name]
+            node_cov[name][:, int(j) - o] = sol[o:o + sizes[name], i]
     if worst > tol:
         notes.append(f"conjugate-gradient solves stopped at relative residual {worst:.2g} (> {tol:g}); "
                      f"raise cg_max_iter for tighter error bars")
-    return rho, X, cov_cols, cols, X[:, flat], notes
+    return rho, X, _CovBlocks(co, node_cov), X[:, flat], notes
 
 
 def _pcg(apply_a: Callable, precond: Callable, project: Callable, rhs: np.ndarray, tol: float,
@@ -1017,6 +1058,15 @@ def format_uncertainty(summary: Mapping[str, Any], nodes: Mapping[str, Mapping[s
     return "\n".join(lines)
 
 
+def gradient_seconds(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> float:
+    """Seconds of one gradient evaluation (expected counts), timed after a warm-up call."""
+    full = _full_probs(lik.network, probs)
+    lik.expected_counts(full)  # compiles unless the fit already did
+    t0 = time.perf_counter()
+    lik.expected_counts(full)
+    return time.perf_counter() - t0
+
+
 def cli_errors(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] | None, l2: float,
                errors: bool | None, quiet: bool, echo: Callable[..., None]) -> Any:
     """For ``adfit fit``: attach error bars (by default when the free parameters are at most
@@ -1027,7 +1077,15 @@ def cli_errors(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray
     if errors is None and P > AUTO_MAX_PARAMETERS:
         echo(f"error bars skipped: {P} free parameters > {AUTO_MAX_PARAMETERS} (use --errors to compute them anyway)")
         return result
-    out = attach_uncertainty(result, data, pseudo_counts=pseudo_counts, l2=l2)
+    lik = Likelihood(result.network, load_data(result.network, data))
+    if errors is None:
+        t = gradient_seconds(lik, result.probs)
+        est = P * HVP_COST * t
+        if est > AUTO_MAX_SECONDS:
+            echo(f"error bars skipped: about {est:.0f} s estimated ({P} Hessian-vector products at about "
+                 f"{HVP_COST:g} x {t:.2g} s per gradient) > {AUTO_MAX_SECONDS:g} s (use --errors to compute them anyway)")
+            return result
+    out = attach_uncertainty(result, data, pseudo_counts=pseudo_counts, l2=l2, likelihood=lik)
     summary = out.extras["uncertainty"]
     if not quiet:
         echo("")

@@ -365,7 +365,8 @@ def test_objective_must_match_the_fit(linkage_fits):
         attach_uncertainty(res, data, level=95)
 
 
-def test_cli_fit_prints_error_bars_and_no_errors_skips(tmp_path):
+def test_cli_fit_prints_error_bars_and_no_errors_skips(tmp_path, monkeypatch):
+    import adfit.uncertainty as unc_mod
     from adfit.cli import app
 
     (tmp_path / "net.toml").write_text('[nodes.x]\nstates = ["no", "yes"]\n[nodes.y]\nstates = ["lo", "hi"]\nparents = ["x"]\n')
@@ -384,3 +385,11 @@ def test_cli_fit_prints_error_bars_and_no_errors_skips(tmp_path):
     assert r.exit_code == 0, r.output
     doc = json.loads((tmp_path / "f.json").read_text())
     assert "se" not in doc["nodes"]["x"] and "uncertainty" not in doc and "error bars" not in r.output
+    # the default skips large jobs (here: any), saying why; --errors forces them
+    monkeypatch.setattr(unc_mod, "AUTO_MAX_SECONDS", 0.0)
+    r = runner.invoke(app, args + ["-q"])
+    assert r.exit_code == 0 and "error bars skipped" in r.output and "--errors" in r.output
+    assert "uncertainty" not in json.loads((tmp_path / "f.json").read_text())
+    r = runner.invoke(app, args + ["-q", "--errors"])
+    assert r.exit_code == 0 and "error bars skipped" not in r.output
+    assert "uncertainty" in json.loads((tmp_path / "f.json").read_text())
