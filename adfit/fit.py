@@ -197,10 +197,20 @@ def wolfe_line_search(fg: Callable, x, f0: float, g0, d, *, c1: float = 1e-4, c2
                       alpha0: float = 1.0, max_evals: int = 30):
     """Strong-Wolfe line search (Nocedal & Wright 2006, Algorithms 3.5 and 3.6, with cubic
     interpolation). ``fg(x) -> (f, g)``; ``d`` a descent direction. Returns
-    ``(alpha, f, g, n_evals)``, or ``(None, f0, g0, n)`` when no acceptable step was found."""
+    ``(alpha, f, g, n_evals)``, or ``(None, f0, g0, n)`` when no acceptable step was found.
+
+    Near the optimum the decrease of ``f`` falls below its rounding error while the gradient is
+    still informative; a point is then also accepted under the approximate Wolfe conditions of
+    Hager & Zhang (2005, SIAM J. Optim. 16): ``f`` within a few ulps of ``f0`` and
+    ``c2·φ'(0) ≤ φ'(α) ≤ (2c1 − 1)·φ'(0)``. The curvature part keeps ``yᵀs > 0``, so the
+    L-BFGS update stays positive definite."""
     dphi0 = _dot(g0, d)
     if not dphi0 < 0:
         return None, f0, g0, 0
+    eps_f = 16 * np.finfo(float).eps * max(1.0, abs(f0))
+
+    def approx_wolfe(fa, da):
+        return math.isfinite(fa) and fa <= f0 + eps_f and c2 * dphi0 <= da <= (2 * c1 - 1) * dphi0
     evals = 0
     a_prev, f_prev, dphi_prev = 0.0, f0, dphi0
     a = alpha0
@@ -222,6 +232,8 @@ def wolfe_line_search(fg: Callable, x, f0: float, g0, d, *, c1: float = 1e-4, c2
             if not (math.isfinite(aj) and left + 0.1 * (right - left) <= aj <= right - 0.1 * (right - left)):
                 aj = 0.5 * (lo + hi)
             fj, gj, dj = phi(aj)
+            if approx_wolfe(fj, dj):
+                return aj, fj, gj
             if not math.isfinite(fj) or fj > f0 + c1 * aj * dphi0 or fj >= f_lo:
                 hi, f_hi, dhi = aj, fj if math.isfinite(fj) else f_hi, dj if math.isfinite(dj) else dhi
             else:
@@ -245,6 +257,8 @@ def wolfe_line_search(fg: Callable, x, f0: float, g0, d, *, c1: float = 1e-4, c2
             if a - a_prev < 1e-14:
                 break
             continue
+        if approx_wolfe(fa, da):
+            return a, fa, ga, evals
         if fa > f0 + c1 * a * dphi0 or (evals > 1 and fa >= f_prev):
             return zoom(a_prev, f_prev, dphi_prev, a, fa, da) + (evals,)
         if fa < best[1]:
