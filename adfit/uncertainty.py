@@ -36,12 +36,12 @@ and the interval [0, 1] ("not identified"); directions with ``ρ ≤ WEAK_TOL`` 
 
 Where the switch is: with at most :data:`DENSE_MAX_PARAMETERS` coordinates the information is
 formed densely, as Hessian-vector products on batches of :data:`HVP_BATCH` basis vectors
-(forward-over-reverse; one batch is ``jax.hessian`` itself when there are at most that many
-coordinates), which bounds the memory by one batch of chunks whatever the number of rows.
+(forward-over-reverse; with at most that many coordinates the single batch is what
+``jax.hessian`` computes), which bounds the memory by one batch of chunks whatever the number of rows.
 Above it nothing of size P² is formed: the smallest ρ come from LOBPCG on the pencil (I, M)
 and each requested column of ``I⁻¹`` from a preconditioned conjugate-gradient solve (deflated
 by those eigenvectors) driven by the same batched products. The CLI computes error bars by
-default only up to :data:`AUTO_MAX_PARAMETERS` free parameters.
+default only up to :data:`AUTO_MAX_PARAMETERS` free parameters and :data:`AUTO_MAX_SECONDS` estimated.
 """
 
 from __future__ import annotations
@@ -74,7 +74,7 @@ AUTO_MAX_PARAMETERS = 1000
 #: ... and when the estimated time is at most this (seconds): P products × HVP_COST × one
 #: gradient evaluation, timed on the data
 AUTO_MAX_SECONDS = 120.0
-#: one Hessian-vector product costs about this many gradient evaluations (measured 1.3–1.5)
+#: one Hessian-vector product costs about this many gradient evaluations (measured 1.2–1.6)
 HVP_COST = 1.5
 #: basis vectors per batched Hessian-vector product
 HVP_BATCH = 32
@@ -579,7 +579,7 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     directions = _name_directions(co, all_rho, all_X, blocks, info)
     missing_info = {n: _missing_fraction(co, n, status, node_cov, blocks) if n in wanted
                     else None for n in network.free_names}
-    em_rate = float(np.clip(1.0 - all_rho.min(), 0.0, 1.0)) if len(all_rho) else None
+    em_rate = (1.0 if np.any(all_rho <= FLAT_TOL) else float(np.clip(1.0 - all_rho.min(), 0.0, 1.0))) if len(all_rho) else None
     return Uncertainty(network, level, method, se, lower, upper, status, co, all_rho, ev, tuple(directions),
                        missing_info, em_rate, gnorm, info, cov, tuple(notes), wide,
                        {"_pseudo": pseudo, "l2": l2, "hessian_vector_products": pb.n_products})
