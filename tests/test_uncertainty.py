@@ -290,7 +290,8 @@ def test_latent_row_without_evidence_is_not_identified(latent_case):
     assert len(flat) == 1 and flat[0]["rows"][0]["parents"] == {"group": "a1"} and flat[0]["rows"][0]["share"] > 0.99
     # the rest is identified (Goodman's model on the a0 records): finite SEs, intervals inside (0, 1)
     for it in STOUFFER_TOBY_ITEMS:
-        assert np.all(np.isfinite(unc.se[it])) or np.all(unc.status[it] == 1)
+        assert np.all(np.isfinite(unc.se[it])) and np.all(unc.status[it] == 0), it
+        assert np.all((unc.lower[it] > 0) & (unc.upper[it] < 1))
     assert np.all(np.isfinite(unc.se["cls"][0]))
     assert "cls" in summ["latent"]  # a free latent root of the items: labels up to permutation
 
