@@ -71,13 +71,13 @@ from .network import Network
 # Seconds on the 2-core reference machine for one value-and-gradient, fitted to the figures of
 # benchmarks/bench_likelihood.py (docs/performance.md). They only rank the routes; a factor of
 # two either way changes few decisions.
-PLAN_EVALUATIONS = 100      # evaluations a fit is planned for (iterations x line-search steps)
+PLAN_EVALUATIONS = 60       # evaluations a fit is planned for (iterations x line-search steps)
 T_ENUM = 3.7e-9               # per padded entry of an enumerated component (gather, exp, scatter)
 T_TAPE = 9e-9               # per gathered operand of the elimination tape, per row
 T_LOOP = 1.5e-5             # per iteration of a compiled loop (one chunk, or one tape batch)
 COMPILE_ENUM = 0.3          # compile time of one enumeration bucket
 COMPILE_TAPE = 1.2          # compile time of one elimination-tape class
-TAPE_PAD = 2.0              # tape operands per min-fill cost unit (padding of batches and slots)
+TAPE_PAD = 4.0              # tape operands per min-fill cost unit (padding of batches and slots)
 ENUM_ALWAYS = 256           # a component with at most this many entries is always enumerated
 ENUM_MAX = 1 << 16          # ... and one with more is never enumerated
 ENUM_BUDGET = 1 << 18       # padded entries per chunk of an enumeration bucket
@@ -93,6 +93,24 @@ MIN_PATTERN_ROWS = 1
 MAX_PATTERN_GROUPS = 1 << 16
 # Target number of float64 entries in the largest intermediate of one posterior chunk (~4 MB).
 CHUNK_BUDGET = 1 << 19
+
+
+@dataclass(frozen=True)
+class _Statics:
+    cards: tuple[int, ...]
+    parents: tuple[tuple[int, ...], ...]
+    children: tuple[tuple[int, ...], ...]
+
+
+_STATICS: dict[Network, _Statics] = {}
+
+
+def _st(network: Network) -> _Statics:
+    """Cards, parents and children of a network (the Network properties rebuild them per call)."""
+    s = _STATICS.get(network)
+    if s is None:
+        s = _STATICS[network] = _Statics(network.cards, network.parent_indices, network.children)
+    return s
 
 
 # --------------------------------------------------------------------------- elimination plans
@@ -189,9 +207,9 @@ def _group_plan(network: Network, hidden_mask: np.ndarray, *, kind: str, n_rows:
     those nodes (a component: the families that touch its hidden nodes).
     """
     n = len(network)
-    cards = network.cards
-    pa = network.parent_indices
-    kids = network.children
+    cards = _st(network).cards
+    pa = _st(network).parents
+    kids = _st(network).children
     always = hidden_mask.all(axis=0)
     some = hidden_mask.any(axis=0)
     forced = set(indicator_nodes)
@@ -268,11 +286,11 @@ def _layout(network: Network) -> tuple[tuple[int, ...], tuple[dict[int, int], ..
     offsets, strides = [], []
     off = 0
     for i, node in enumerate(network.nodes):
-        fam = tuple(network.parent_indices[i]) + (i,)
+        fam = tuple(_st(network).parents[i]) + (i,)
         st, s = {}, 1
         for u in reversed(fam):
             st[u] = s
-            s *= network.cards[u]
+            s *= _st(network).cards[u]
         offsets.append(off)
         strides.append(st)
         off += s
@@ -435,7 +453,7 @@ def _decompose(network: Network, codes: np.ndarray):
     set)`` as uint64; ``pruned_any`` marks nodes pruned in at least one row.
     """
     n = len(network)
-    pa, kids = network.parent_indices, network.children
+    pa, kids = _st(network).parents, _st(network).children
     hidden = codes < 0
     R = codes.shape[0]
     # Barren nodes (hidden, no observed descendant) sum out to 1, but their expected counts are
@@ -470,18 +488,21 @@ def _decompose(network: Network, codes: np.ndarray):
                 lab[rows[:, None], mem_a] = new
                 changed = True
     W = (n + 63) // 64
-    hm = np.zeros((R, n, W), np.uint64)
-    fm = np.zeros((R, n, W), np.uint64)
-    for u in np.flatnonzero(hk_any):
+    roots = np.flatnonzero(hk_any)             # only nodes hidden somewhere can label a component
+    pos = np.full(n + 1, -1, np.int64)
+    pos[roots] = np.arange(len(roots))
+    hm = np.zeros((R, max(1, len(roots)), W), np.uint64)
+    fm = np.zeros((R, max(1, len(roots)), W), np.uint64)
+    for u in roots:
         rr = np.flatnonzero(hk[:, u])
-        hm[rr, lab[rr, u], u // 64] |= np.uint64(1 << (int(u) % 64))
+        hm[rr, pos[lab[rr, u]], u // 64] |= np.uint64(1 << (int(u) % 64))
     for v in range(n):
         mem = [u for u in (*pa[v], v) if hk_any[u]]
         if not mem:
             continue
         fl = lab[:, mem].min(axis=1)
         rr = np.flatnonzero((fl < n) & kept[:, v])
-        fm[rr, fl[rr], v // 64] |= np.uint64(1 << (v % 64))
+        fm[rr, pos[fl[rr]], v // 64] |= np.uint64(1 << (v % 64))
     r, root = np.nonzero(hm.any(axis=2))
     key = np.concatenate([hm[r, root], fm[r, root]], axis=1)
     return r, key, pruned_any
@@ -539,7 +560,7 @@ def _components(network: Network, codes: np.ndarray):
                 hid, fam = _bits(words[:W]), _bits(words[W:])
                 t = len(tlist)
                 types[b] = t
-                tlist.append(_Type(hid, fam, [], math.prod(network.cards[u] for u in hid)))
+                tlist.append(_Type(hid, fam, [], math.prod(_st(network).cards[u] for u in hid)))
             gid[j] = t
         comp_type_parts.append(gid[inv.reshape(-1)])
         comp_row_parts.append(r.astype(np.int64) + s)
@@ -551,7 +572,7 @@ def _components(network: Network, codes: np.ndarray):
         bounds = np.searchsorted(ct, np.arange(len(tlist) + 1))
         for t, typ in enumerate(tlist):
             typ.rows = cr[bounds[t]:bounds[t + 1]]
-    pa = network.parent_indices
+    pa = _st(network).parents
     for typ in tlist:
         hs = set(typ.hidden)
         typ.boundary = tuple(sorted({u for v in typ.families for u in (*pa[v], v)} - hs))
@@ -576,18 +597,31 @@ def _distinct_rows(sub: np.ndarray, cards: Sequence[int]) -> tuple[np.ndarray, n
 
 def _type_instances(network: Network, typ: _Type, codes: np.ndarray, counts: np.ndarray, rows: np.ndarray):
     """Distinct instances of a component type among ``rows``: (boundary codes, weights, inverse)."""
+    cached = getattr(typ, "_inst", None)
+    if cached is not None and cached[0] is rows:
+        return cached[1]
+    out = _type_instances_uncached(network, typ, codes, counts, rows)
+    typ._inst = (rows, out)
+    return out
+
+
+def _type_instances_uncached(network: Network, typ: _Type, codes: np.ndarray, counts: np.ndarray, rows: np.ndarray):
     bd = list(typ.boundary)
     sub = codes[np.ix_(rows, bd)] if bd else np.zeros((len(rows), 0), np.int32)
-    first, inv = _distinct_rows(sub, [network.cards[u] for u in bd])
+    first, inv = _distinct_rows(sub, [_st(network).cards[u] for u in bd])
     w = np.bincount(inv, weights=counts[rows], minlength=len(first))
     return sub[first], w, inv
+
+
+def _n_instances(network: Network, typ: _Type, codes: np.ndarray, counts: np.ndarray) -> int:
+    return len(_type_instances(network, typ, codes, counts, typ.rows)[1])
 
 
 def _enum_tables(network: Network, typ: _Type, bcodes: np.ndarray, layout) -> np.ndarray:
     """Flat indices (instances, A, m) of the log-CPT entries each assignment of ``typ`` reads."""
     offsets, strides, _ = layout
-    cards = network.cards
-    pa = network.parent_indices
+    cards = _st(network).cards
+    pa = _st(network).parents
     H = typ.hidden
     shape = [cards[u] for u in H]
     digits = np.indices(shape).reshape(len(H), -1).T if H else np.zeros((1, 0), np.int64)
@@ -754,7 +788,7 @@ class _TapeWriter:
 def _compile_program(network: Network, gp: GroupPlan, layout, slots: int, ops: int) -> _Program:
     """Turn an elimination plan into tape entries (abstract ids) with their dependency levels."""
     offsets, strides, _ = layout
-    cards = dict(enumerate(network.cards))
+    cards = dict(enumerate(_st(network).cards))
     leaf_off, leaf_fac = [], []
     tables: dict[int, tuple[tuple[int, ...], np.ndarray]] = {}
     n_leaf = 0
@@ -1100,6 +1134,38 @@ def _choose_methods(network: Network, codes: np.ndarray, counts: np.ndarray, tli
         if best is None or total < best[0]:
             best = (total, choice)
     choice = best[1]
+    # An enumeration bucket costs a compile of its own: move the types of a bucket to their
+    # elimination programs when that is cheaper than compiling the bucket.
+    if route != "uniform":
+        tape_compiled = "own" in choice
+        sizes: dict[tuple[int, int], int] = {}
+        for t in always:
+            k = _round_shape(t.A, t.m)
+            sizes[k] = sizes.get(k, 0) + _n_instances(network, t, codes, counts)
+        members: dict[tuple[int, int], list[int]] = {}
+        for i, (t, k) in enumerate(zip(rest, choice)):
+            if k == "enum":
+                key = _round_shape(t.A, t.m)
+                sizes[key] = sizes.get(key, 0) + t.n_inst
+                members.setdefault(key, []).append(i)
+        menu = _enum_bucket_menu(sizes)
+        buckets: dict[tuple[int, int], list[tuple[int, int]]] = {}
+        for key in sizes:
+            buckets.setdefault(menu[key], []).append(key)
+        for (A, m), keys in sorted(buckets.items(), key=lambda kv: -kv[0][0] * kv[0][1]):
+            movable = [i for key in keys for i in members.get(key, [])]
+            if len(movable) == 0 or len(movable) < sum(1 for key in keys for _ in members.get(key, [])):
+                continue
+            if any(sizes[key] > sum(rest[i].n_inst for i in members.get(key, [])) for key in keys):
+                continue  # the bucket also holds small components: it is compiled anyway
+            n = sum(rest[i].n_inst for i in movable)
+            keep = n * A * m * T_ENUM * E + COMPILE_ENUM
+            move = sum(costs[i][1] for i in movable) * E + (0.0 if tape_compiled else COMPILE_TAPE)
+            if route == "pattern" or "own" in [a for opt in options for a in opt]:
+                if move < keep:
+                    for i in movable:
+                        choice[i] = "own"
+                    tape_compiled = True
     enum_types = always + [t for t, k in zip(rest, choice) if k == "enum"]
     prog_types = [t for t, k in zip(rest, choice) if k == "own"]
     to_uniform = [t for t, k in zip(rest, choice) if k == "uni"]
@@ -1115,7 +1181,7 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
               chunk: int | None) -> Plan:
     n = len(network)
     R = len(codes)
-    pa = network.parent_indices
+    pa = _st(network).parents
     layout = layout_of(network)
     offsets, strides, n_flat = layout
     local = ~uniform
@@ -1126,21 +1192,25 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
         N = np.zeros(n_flat + 2)
         n_fam = 0
         step = max(1024, PLAN_BLOCK // max(1, n))
-        for s in range(0, R, step):
-            cb = codes[s:s + step]
-            lb = local[s:s + step]
-            obs = cb >= 0
+        for s0 in range(0, R, step):
+            cbT = np.ascontiguousarray(codes[s0:s0 + step].T)     # (n, rows): whole columns
+            lb = local[s0:s0 + step]
+            hidT = cbT < 0
+            h_any = hidT.any(axis=1)
+            idx = np.empty((n, cbT.shape[1]), np.int64)
             for v in range(n):
                 fam = (*pa[v], v)
-                ok = lb & obs[:, fam].all(axis=1)
-                if not ok.any():
-                    continue
-                rows = np.flatnonzero(ok)
-                idx = np.full(len(rows), offsets[v], np.int64)
+                iv = idx[v]
+                iv[:] = offsets[v]
+                bad = None if lb.all() else ~lb
                 for u in fam:
-                    idx += strides[v][u] * cb[rows, u]
-                N += np.bincount(idx, weights=counts[s + rows], minlength=n_flat + 2)
-                n_fam += len(rows)
+                    iv += strides[v][u] * cbT[u]
+                    if h_any[u]:
+                        bad = hidT[u] if bad is None else (bad | hidT[u])
+                if bad is not None:
+                    iv[bad] = n_flat + 2                            # a bin of its own, dropped
+            N += np.bincount(idx.ravel(), weights=np.tile(counts[s0:s0 + step], n), minlength=n_flat + 3)[:n_flat + 2]
+            n_fam += int(np.count_nonzero(idx <= n_flat))
         n_comp = sum(int(local[t.rows].sum()) for t in (*enum_types, *prog_types))
         blocks.append(GatheredBlock(n_local, n_fam, int(pruned.sum()), n_comp))
         arrays.append(np.zeros(0, np.int32))
@@ -1149,7 +1219,8 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
     # enumerated components, in buckets of a common padded shape
     classes: dict[tuple[int, int], list] = {}
     for t in enum_types:
-        rows = t.rows[local[t.rows]]
+        sel = local[t.rows]
+        rows = t.rows if sel.all() else t.rows[sel]
         if not len(rows):
             continue
         bc, w, inv = _type_instances(network, t, codes, counts, rows)
@@ -1185,7 +1256,8 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
     if prog_types:
         progs, datas, occ = [], [], []
         for t in prog_types:
-            rows = t.rows[local[t.rows]]
+            sel = local[t.rows]
+            rows = t.rows if sel.all() else t.rows[sel]
             if not len(rows):
                 continue
             bc, w, inv = _type_instances(network, t, codes, counts, rows)
@@ -1314,7 +1386,7 @@ def _block_chunks(blk, arrays, weights, network: Network | None = None):
     if isinstance(blk, GroupPlan):
         # a plain elimination group over coded rows (the layout of adfit.minibatch): the
         # per-step contraction, with rows of codes (chunk, n_nodes) as data
-        cards = network.cards
+        cards = _st(network).cards
 
         def f(flat, xs):
             cc, w = xs
@@ -1418,7 +1490,7 @@ def _rows_loglik(network: Network, groups: tuple, logcpts: tuple[jax.Array, ...]
             continue
         if isinstance(blk, GroupPlan):
             lcs = _unflat(network, flat)
-            _, ll = jax.lax.scan(lambda _, cc, blk=blk: (None, _group_rows_loglik(blk, network.cards, lcs, cc)), None, arr)
+            _, ll = jax.lax.scan(lambda _, cc, blk=blk: (None, _group_rows_loglik(blk, _st(network).cards, lcs, cc)), None, arr)
         elif isinstance(blk, EnumBlock):
             _, ll = jax.lax.scan(lambda _, idx: (None, _enum_rows(flat, idx)), None, arr)
         else:
@@ -1540,7 +1612,7 @@ def _assemble_rows(plan: Plan, codes: np.ndarray, lcs: Sequence[np.ndarray], par
     local = plan.observed_rows
     if local is not None and local.any():
         obs = codes >= 0
-        pa = network.parent_indices
+        pa = _st(network).parents
         for v in range(len(network)):
             fam = (*pa[v], v)
             ok = np.flatnonzero(local & obs[:, fam].all(axis=1))
@@ -1685,7 +1757,7 @@ def score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray], *,
 # --------------------------------------------------------------------------- posteriors
 @partial(jax.jit, static_argnums=(0, 1))
 def _posteriors(network: Network, gp: GroupPlan, logcpts: tuple[jax.Array, ...], codes: jax.Array):
-    cards = network.cards
+    cards = _st(network).cards
 
     def body(_, cc):
         lam = {}
@@ -1730,6 +1802,6 @@ def posterior_marginals(network: Network, probs: Mapping[str, np.ndarray], codes
         name = network.names[v]
         p = np.asarray(g[v])[:n]
         obs = codes[:, v] >= 0
-        p = np.where(obs[:, None], np.eye(network.cards[v])[np.clip(codes[:, v], 0, None)], p)
+        p = np.where(obs[:, None], np.eye(_st(network).cards[v])[np.clip(codes[:, v], 0, None)], p)
         out[name] = p
     return ll, out
