@@ -260,7 +260,7 @@ def fit_command(
     folds: Annotated[int, typer.Option("--folds", help="K-fold cross-validation of the held-out marginal log-likelihood (0: off).")] = 0,
     errors: Annotated[Optional[bool], typer.Option(
         "--errors/--no-errors", help="Standard errors, intervals and identifiability flags for every CPT entry "
-                                     "(default: on up to 1000 free parameters).")] = None,
+                                     "(default: on up to 1000 free parameters and about 2 minutes estimated).")] = None,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print only the file written and warnings.")] = False,
 ) -> None:
     """Fit the free CPTs by maximising the exact marginal likelihood of the observed cells.
