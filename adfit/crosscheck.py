@@ -154,18 +154,9 @@ def _em_side(em: EMResult, jax_score: Mapping[str, float], delta: float, where: 
 
 
 def _pseudo_for(result: Any, pseudo_counts: Mapping[str, np.ndarray] | None) -> dict[str, np.ndarray] | None:
-    if pseudo_counts is not None:
-        return {k: np.asarray(v, dtype=np.float64) for k, v in pseudo_counts.items()}
-    if getattr(result, "objective", "mle") != "map":
-        return None
-    spec = (result.extras or {}).get("prior", {})
-    spec = spec.get("spec") if isinstance(spec, Mapping) else None
-    if spec is None:
-        raise OptionError("the EM cross-check of a MAP fit needs the prior: pass pseudo_counts=... "
-                          "(the result does not record its prior)")
-    from .priors import prior_from_dict
+    from .priors import result_pseudo_counts
 
-    return prior_from_dict(spec, result.network, source="<result prior>").pseudo_counts(result.network)
+    return result_pseudo_counts(result, pseudo_counts, what="the EM cross-check")
 
 
 def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] | None = None, seed: int = 0,

@@ -552,3 +552,26 @@ def prior_only_rows(network: Network, expected_parent_counts: Mapping[str, Any],
 def describe_rows(network: Network, rows: Mapping[str, list[int]]) -> list[str]:
     """Readable labels for :func:`prior_only_rows` output, e.g. ``"vibration | wear=worn"``."""
     return [f"{name} | {_cfg(network, name, i)}" for name, idx in rows.items() for i in idx]
+
+
+def result_pseudo_counts(result: Any, pseudo_counts: Mapping[str, Any] | None, *, what: str) -> dict[str, np.ndarray] | None:
+    """The pseudo-counts a fit used: those given, or rebuilt from the prior its result records.
+
+    ``what`` names the step that needs them, for the error message (e.g. "the EM cross-check").
+    Returns None for a maximum-likelihood fit given no pseudo-counts.
+    """
+    from .errors import OptionError
+
+    if pseudo_counts is not None:
+        if getattr(result, "objective", "mle") == "mle" and any(np.any(np.asarray(v) > 0) for v in pseudo_counts.values()):
+            raise OptionError("pseudo_counts were given but the result is a maximum-likelihood fit (objective mle); "
+                              "pass the pseudo-counts the fit used, or none")
+        return {k: np.asarray(v, dtype=np.float64) for k, v in pseudo_counts.items()}
+    if getattr(result, "objective", "mle") != "map":
+        return None
+    spec = (result.extras or {}).get("prior", {})
+    spec = spec.get("spec") if isinstance(spec, Mapping) else None
+    if spec is None:
+        raise OptionError(f"{what} of a MAP fit needs the prior: pass pseudo_counts=... "
+                          f"(the result does not record its prior)")
+    return prior_from_dict(spec, result.network, source="<result prior>").pseudo_counts(result.network)

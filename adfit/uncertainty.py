@@ -918,22 +918,9 @@ def _pcg(apply_a: Callable, precond: Callable, project: Callable, rhs: np.ndarra
 
 # --------------------------------------------------------------------------- the result
 def _pseudo_for(result: Any, pseudo_counts: Mapping[str, np.ndarray] | None) -> dict[str, np.ndarray] | None:
-    """The fit's pseudo-counts: given, or rebuilt from the prior the result records."""
-    if pseudo_counts is not None:
-        if getattr(result, "objective", "mle") == "mle" and any(np.any(np.asarray(v) > 0) for v in pseudo_counts.values()):
-            raise OptionError("pseudo_counts were given but the result is a maximum-likelihood fit (objective mle); "
-                              "pass the pseudo-counts the fit used, or none")
-        return {k: np.asarray(v, dtype=np.float64) for k, v in pseudo_counts.items()}
-    if getattr(result, "objective", "mle") != "map":
-        return None
-    spec = (result.extras or {}).get("prior", {})
-    spec = spec.get("spec") if isinstance(spec, Mapping) else None
-    if spec is None:
-        raise OptionError("error bars of a MAP fit need its prior: pass pseudo_counts=... "
-                          "(the result does not record its prior)")
-    from .priors import prior_from_dict
+    from .priors import result_pseudo_counts
 
-    return prior_from_dict(spec, result.network, source="<result prior>").pseudo_counts(result.network)
+    return result_pseudo_counts(result, pseudo_counts, what="error bars")
 
 
 def attach_uncertainty(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] | None = None,

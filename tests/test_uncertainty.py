@@ -358,7 +358,7 @@ def test_objective_must_match_the_fit(linkage_fits):
     net, data, res, _ = linkage_fits["linkage_one_parameter"]
     with pytest.raises(OptionError, match="L2 penalty of 0.1"):
         attach_uncertainty(dataclasses.replace(res, settings={"l2": 0.1}), data)
-    with pytest.raises(OptionError, match="need its prior"):
+    with pytest.raises(OptionError, match="error bars of a MAP fit needs the prior"):
         attach_uncertainty(dataclasses.replace(res, objective="map"), data)
     with pytest.raises(OptionError, match="maximum-likelihood"):
         attach_uncertainty(res, data, pseudo_counts={"g": np.ones(2)})
