@@ -217,6 +217,17 @@ def read_inputs(network: Path, data: Path, *, missing, count_column, ignore_colu
     return net, coded
 
 
+def check_output_path(path: Path) -> None:
+    """Fail before the work, not after it, when an output cannot be written."""
+    from .errors import AdfitError
+
+    parent = path.parent if str(path.parent) else Path(".")
+    if not parent.is_dir():
+        raise AdfitError(f"{path}: output folder {parent} does not exist; create it first")
+    if path.is_dir():
+        raise AdfitError(f"{path}: is a folder; give a file name for the output")
+
+
 def format_cpts(result, *, digits: int = 3, names=None) -> str:
     """The CPTs as plain text tables (rows: parent configurations, columns: states)."""
     import pandas as pd
@@ -291,6 +302,12 @@ def fit_command(
         fit_kwargs = dict(method=method, tol=tol, gtol=gtol, max_iter=max_iter, prior=pri, l2=l2,
                           learning_rate=learning_rate, batch_size=batch_size)
         pseudo = None if pri is None else pri.pseudo_counts(net)
+        # refuse bad options and an impossible output path before any work is done
+        from .fit import FitSettings
+
+        FitSettings(method=method, tol=tol, gtol=gtol, max_iter=max_iter, learning_rate=learning_rate,
+                    l2=l2, batch_size=batch_size).validate()
+        check_output_path(out)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             with _progress(quiet) as (callback, reporter):
