@@ -281,6 +281,10 @@ def fit_command(
     gradient norm per iteration and whether the stopping rule held; `adfit score`, `adfit impute`
     and `adfit report` read it.
 
+    Caution: estimates rest on the network structure and on the gaps being missing at random
+    (MAR); they support, and do not replace, engineering or clinical judgement. Local codes,
+    regulations and licensed practice come first.
+
     Example: adfit fit gearbox.toml records.csv --out fit.json --restarts 5 --em-check
     """
     import warnings
