@@ -77,6 +77,7 @@ T_TAPE = 9e-9               # per gathered operand of the elimination tape, per 
 T_LOOP = 1.5e-5             # per iteration of a compiled loop (one chunk, or one tape batch)
 COMPILE_ENUM = 0.3          # compile time of one enumeration bucket
 COMPILE_TAPE = 1.2          # compile time of one elimination-tape class
+T_PLAN_TYPE = 1e-3          # plan time of one elimination program (min-fill, tape, packing; Python)
 TAPE_PAD = 4.0              # tape operands per min-fill cost unit (padding of batches and slots)
 ENUM_ALWAYS = 256           # a component with at most this many entries is always enumerated
 ENUM_MAX = 1 << 16          # ... and one with more is never enumerated
@@ -102,15 +103,17 @@ class _Statics:
     children: tuple[tuple[int, ...], ...]
 
 
-_STATICS: dict[Network, _Statics] = {}
+_STATICS: dict[int, tuple[Network, _Statics]] = {}
 
 
 def _st(network: Network) -> _Statics:
-    """Cards, parents and children of a network (the Network properties rebuild them per call)."""
-    s = _STATICS.get(network)
-    if s is None:
-        s = _STATICS[network] = _Statics(network.cards, network.parent_indices, network.children)
-    return s
+    """Cards, parents and children of a network (the Network properties rebuild them per call).
+
+    Keyed by identity: hashing a Network hashes every node, which is slow for large networks."""
+    hit = _STATICS.get(id(network))
+    if hit is None or hit[0] is not network:
+        hit = _STATICS[id(network)] = (network, _Statics(network.cards, network.parent_indices, network.children))
+    return hit[1]
 
 
 # --------------------------------------------------------------------------- elimination plans
@@ -1016,14 +1019,14 @@ def _tape_block(network: Network, kind: str, progs: Sequence[_Program], datas, w
     return blk, (tables, data), wts.reshape(nch, chunk), starts
 
 
-_LAYOUTS: dict[Network, Any] = {}
+_LAYOUTS: dict[int, tuple[Network, Any]] = {}
 
 
 def layout_of(network: Network):
-    lay = _LAYOUTS.get(network)
-    if lay is None:
-        lay = _LAYOUTS[network] = _layout(network)
-    return lay
+    hit = _LAYOUTS.get(id(network))
+    if hit is None or hit[0] is not network:
+        hit = _LAYOUTS[id(network)] = (network, _layout(network))
+    return hit[1]
 
 
 def layout_size(network: Network) -> int:
@@ -1090,14 +1093,18 @@ def _choose_methods(network: Network, codes: np.ndarray, counts: np.ndarray, tli
     E = PLAN_EVALUATIONS
     always, rest = [], []
     for t in tlist:
-        if t.A * t.m <= ENUM_ALWAYS:
+        e = t.A * t.m
+        if e <= ENUM_ALWAYS:
+            always.append(t)
+            continue
+        t.n_inst = _n_instances(network, t, codes, counts)
+        # enumeration cheaper than planning an elimination program at all: no plan needed
+        if route != "pattern" and e <= ENUM_MAX and t.n_inst * e * T_ENUM * E <= T_PLAN_TYPE:
             always.append(t)
             continue
         mask = np.zeros((1, n), bool)
         mask[0, list(t.hidden)] = True
         t.gp = _group_plan(network, mask, kind="pattern", n_rows=len(t.rows), families=t.families)
-        _, w, _ = _type_instances(network, t, codes, counts, t.rows)
-        t.n_inst = len(w)
         rest.append(t)
     if not rest:
         return list(tlist), [], []
@@ -1106,7 +1113,7 @@ def _choose_methods(network: Network, codes: np.ndarray, counts: np.ndarray, tli
     costs = []
     for t in rest:
         enum = t.n_inst * t.A * t.m * T_ENUM if t.A * t.m <= ENUM_MAX else math.inf
-        own = t.n_inst * TAPE_PAD * t.gp.cost * T_TAPE
+        own = t.n_inst * TAPE_PAD * t.gp.cost * T_TAPE + T_PLAN_TYPE / E
         uni = len(t.rows) * per_row_uniform
         costs.append((enum, own, uni))
     best = None

@@ -1,0 +1,246 @@
+"""The fit at scale: many distinct rows, a large network, and a 10-million-row Parquet file.
+
+Each measurement runs in a fresh Python process, so that its peak resident memory (printed as
+"peak RSS", the whole process: JAX, the data, the plan) is its own. The data are seeded random
+networks and CPTs (benchmarks/workloads.py): they measure speed and memory, not accuracy.
+
+  rows      37-node network (<= 3 parents, 2-4 states, treewidth about 4), 20 % of cells missing
+            completely at random (every row distinct): value-and-gradient at 100 000 and at
+            1 000 000 distinct rows, time per row and peak memory of each.
+  net200    200-node random network (<= 3 parents among the 6 previous nodes: treewidth <= 6),
+            100 000 rows, 20 % MCAR cells: plan, first evaluation and a whole fit.
+  parquet   10 000 000 rows of the 37-node network with gaps in 5 columns, missing at random
+            (the chance of a gap depends on an always-observed column), in one Parquet file:
+            read and reduce with adfit.engines.load_coded (DuckDB), then fit to convergence,
+            each phase timed. The file is written once into --data-dir and reused.
+
+Usage:  python benchmarks/bench_scale.py [rows] [net200] [parquet] [--data-dir DIR]
+                                         [--rows-small 100000] [--rows-large 1000000]
+                                         [--rows-net200 100000] [--rows-parquet 10000000]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+
+sys.path.insert(0, os.path.dirname(__file__))
+
+GAP_COLUMNS = (3, 9, 15, 22, 30)
+DRIVERS = (0, 6, 12, 19, 27)  # always observed; each one drives the gaps of one gap column
+
+
+def peak_rss_gb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6
+
+
+def load() -> str:
+    return " ".join(f"{x:.1f}" for x in os.getloadavg())
+
+
+# --------------------------------------------------------------------------- children
+def child_rows(rows: int) -> None:
+    import jax
+    import jax.numpy as jnp
+    import numpy as np
+
+    from adfit.likelihood import Likelihood
+    from workloads import coded, local_network, mask_mcar, random_cpts, sample
+    net = local_network(37, seed=0)
+    probs = random_cpts(net, seed=1)
+    t = time.perf_counter()
+    data = coded(net, mask_mcar(net, sample(net, probs, rows, seed=2), 0.2, seed=3))
+    t_data = time.perf_counter() - t
+    before = peak_rss_gb()
+    t = time.perf_counter()
+    lik = Likelihood(net, data)
+    t_plan = time.perf_counter() - t
+    lc = [jnp.asarray(np.log(probs[n])) for n in net.names]
+    t = time.perf_counter()
+    jax.block_until_ready(lik.expected_counts_logcpt(lc))
+    t_first = time.perf_counter() - t
+    ts = []
+    for _ in range(3):
+        t = time.perf_counter()
+        jax.block_until_ready(lik.expected_counts_logcpt(lc))
+        ts.append(time.perf_counter() - t)
+    steady = float(np.median(ts))
+    print(json.dumps({"rows": data.n_distinct, "data_s": t_data, "plan_s": t_plan, "first_call_s": t_first,
+                      "value_grad_s": steady, "us_per_row": steady / data.n_distinct * 1e6,
+                      "peak_rss_gb": peak_rss_gb(), "rss_before_plan_gb": before, "route": lik.plan.route,
+                      "load": load()}))
+
+
+def child_net200(rows: int) -> None:
+    import jax
+    import jax.numpy as jnp
+    import numpy as np
+
+    from adfit.fit import fit
+    from adfit.likelihood import Likelihood
+    from workloads import coded, local_network, mask_mcar, random_cpts, sample
+    net = local_network(200, window=6, seed=0)
+    probs = random_cpts(net, seed=1)
+    data = coded(net, mask_mcar(net, sample(net, probs, rows, seed=2), 0.2, seed=3))
+    t = time.perf_counter()
+    lik = Likelihood(net, data)
+    t_plan = time.perf_counter() - t
+    lc = [jnp.asarray(np.log(probs[n])) for n in net.names]
+    t = time.perf_counter()
+    jax.block_until_ready(lik.expected_counts_logcpt(lc))
+    t_first = time.perf_counter() - t
+    t = time.perf_counter()
+    jax.block_until_ready(lik.expected_counts_logcpt(lc))
+    t_vg = time.perf_counter() - t
+    describe = lik.plan.describe()
+    rss_lik = peak_rss_gb()
+    del lik
+    import gc
+    gc.collect()
+    marks = []
+    t0 = time.perf_counter()
+    res = fit(net, data, warn=False, progress=lambda k, it, o, g: marks.append(time.perf_counter() - t0))
+    t_fit = time.perf_counter() - t0
+    print(json.dumps({"rows": data.n_distinct, "plan_s": t_plan, "first_call_s": t_first, "value_grad_s": t_vg,
+                      "describe": describe, "rss_likelihood_gb": rss_lik, "fit_s": t_fit,
+                      "first_iteration_s": marks[0] if marks else None, "iterations": res.iterations,
+                      "converged": res.converged, "stop_reason": res.stop_reason, "gradient_norm": res.gradient_norm,
+                      "max_residual": res.settings.get("max_residual"), "peak_rss_gb": peak_rss_gb(), "load": load()}))
+
+
+def child_parquet(path: str, net_path: str, engine: str) -> None:
+    from adfit.engines import load_coded
+    from adfit.fit import fit
+    from adfit.network import network_from_dict
+    net = network_from_dict(json.loads(open(net_path).read()))
+    t0 = time.perf_counter()
+    data = load_coded(net, path, engine=engine)
+    t_read = time.perf_counter() - t0
+    rss_read = peak_rss_gb()
+    marks = []
+    t1 = time.perf_counter()
+    res = fit(net, data, warn=False, progress=lambda k, it, o, g: marks.append(time.perf_counter() - t1))
+    t_fit = time.perf_counter() - t1
+    print(json.dumps({"records": data.n_rows, "distinct": data.n_distinct, "read_reduce_s": t_read,
+                      "rss_after_read_gb": rss_read, "fit_s": t_fit,
+                      "fit_until_first_iteration_s": marks[0] if marks else None,
+                      "iterations": res.iterations, "converged": res.converged, "stop_reason": res.stop_reason,
+                      "route": res.settings.get("route"), "end_to_end_s": time.perf_counter() - t0,
+                      "peak_rss_gb": peak_rss_gb(), "load": load()}))
+
+
+# --------------------------------------------------------------------------- data for the Parquet run
+def write_parquet(folder: str, rows: int, block: int = 1_000_000) -> tuple[str, str]:
+    """37-node network with states "0".."k-1"; gaps in GAP_COLUMNS, missing at random."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from workloads import local_network, random_cpts, sample
+    net = local_network(37, seed=0)
+    probs = random_cpts(net, seed=1)
+    spec = {}
+    for node in net.nodes:
+        spec[node.name] = {"states": [str(k) for k in range(node.card)], "parents": list(node.parents)}
+    path = os.path.join(folder, f"records_{rows}.parquet")
+    net_path = os.path.join(folder, "network.json")
+    with open(net_path, "w") as fh:
+        json.dump(spec, fh)
+    if os.path.exists(path):
+        return path, net_path
+    tmp = path + ".part"
+    writer = None
+    for b, start in enumerate(range(0, rows, block)):
+        n = min(block, rows - start)
+        x = sample(net, probs, n, seed=1000 + b)
+        rng = np.random.default_rng(2000 + b)
+        cols = {}
+        for j, node in enumerate(net.nodes):
+            mask = None
+            if j in GAP_COLUMNS:
+                drv = x[:, DRIVERS[GAP_COLUMNS.index(j)]]
+                mask = rng.random(n) < np.where(drv == 0, 0.45, 0.15)  # MAR: depends on an observed cell
+            cols[node.name] = pa.array(x[:, j].astype(np.int8), mask=mask)
+        table = pa.table(cols)
+        if writer is None:
+            writer = pq.ParquetWriter(tmp, table.schema)
+        writer.write_table(table, row_group_size=block)
+    writer.close()
+    os.replace(tmp, path)
+    return path, net_path
+
+
+# --------------------------------------------------------------------------- driver
+def run_child(args: list[str]) -> dict:
+    out = subprocess.run([sys.executable, __file__, "--child", *args], capture_output=True, text=True)
+    if out.returncode != 0:
+        raise SystemExit(out.stderr)
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("what", nargs="*", default=["rows", "net200", "parquet"])
+    ap.add_argument("--data-dir", default=os.path.join(tempfile.gettempdir(), "adfit-bench-scale"))
+    ap.add_argument("--rows-small", type=int, default=100_000)
+    ap.add_argument("--rows-large", type=int, default=1_000_000)
+    ap.add_argument("--rows-net200", type=int, default=100_000)
+    ap.add_argument("--rows-parquet", type=int, default=10_000_000)
+    ap.add_argument("--engine", default="duckdb")
+    ap.add_argument("--child", nargs="+", default=None, help=argparse.SUPPRESS)
+    args = ap.parse_args()
+    if args.child:
+        kind, *rest = args.child
+        if kind == "rows":
+            child_rows(int(rest[0]))
+        elif kind == "net200":
+            child_net200(int(rest[0]))
+        else:
+            child_parquet(rest[0], rest[1], rest[2])
+        return
+    print(f"{os.cpu_count()} CPUs; load average at start {load()}")
+    if "rows" in args.what:
+        print("\n== many distinct rows: 37 nodes, 20 % MCAR cells, value and gradient")
+        per = {}
+        for rows in (args.rows_small, args.rows_large):
+            r = run_child(["rows", str(rows)])
+            per[rows] = r["us_per_row"]
+            print(f"{r['rows']:>10,} distinct rows: plan {r['plan_s']:.1f} s, first call {r['first_call_s']:.1f} s, "
+                  f"value+gradient {r['value_grad_s'] * 1e3:.0f} ms = {r['us_per_row']:.2f} us/row, "
+                  f"peak RSS {r['peak_rss_gb']:.2f} GB (data alone {r['rss_before_plan_gb']:.2f} GB), "
+                  f"route {r['route']}  (load {r['load']})")
+        print(f"time per row at {args.rows_large:,} / at {args.rows_small:,}: "
+              f"{per[args.rows_large] / per[args.rows_small]:.2f}")
+    if "net200" in args.what:
+        print(f"\n== 200-node network (treewidth <= 6), {args.rows_net200:,} rows, 20 % MCAR cells")
+        r = run_child(["net200", str(args.rows_net200)])
+        print(f"plan {r['plan_s']:.1f} s; {r['describe']}")
+        print(f"first value+gradient {r['first_call_s']:.1f} s, then {r['value_grad_s']:.2f} s; "
+              f"peak RSS of plan and evaluation {r['rss_likelihood_gb']:.2f} GB")
+        print(f"fit {r['fit_s']:.1f} s (first iteration after {r['first_iteration_s']:.1f} s: plan, compiles, start): "
+              f"{r['iterations']} iterations, converged={r['converged']} ({r['stop_reason']}), gradient norm "
+              f"{r['gradient_norm']:.2e}, largest residual {r['max_residual']:.1e}; peak RSS {r['peak_rss_gb']:.2f} GB  "
+              f"(load {r['load']})")
+    if "parquet" in args.what:
+        os.makedirs(args.data_dir, exist_ok=True)
+        t = time.perf_counter()
+        path, net_path = write_parquet(args.data_dir, args.rows_parquet)
+        print(f"\n== {args.rows_parquet:,} rows, 37 nodes, MAR gaps in 5 columns, Parquet "
+              f"({os.path.getsize(path) / 2 ** 20:.0f} MiB; written or found in {time.perf_counter() - t:.0f} s)")
+        r = run_child(["parquet", path, net_path, args.engine])
+        print(f"read + reduce ({args.engine}): {r['read_reduce_s']:.1f} s -> {r['distinct']:,} distinct rows "
+              f"(RSS {r['rss_after_read_gb']:.2f} GB)")
+        print(f"fit: {r['fit_s']:.1f} s ({r['fit_until_first_iteration_s']:.1f} s until the first iteration: plan, "
+              f"compile, start, first evaluations), {r['iterations']} iterations, converged={r['converged']} "
+              f"({r['stop_reason']}), route {r['route']}")
+        print(f"end to end {r['end_to_end_s']:.1f} s; peak RSS {r['peak_rss_gb']:.2f} GB  (load {r['load']})")
+
+
+if __name__ == "__main__":
+    main()
