@@ -62,6 +62,8 @@ def user_errors():
 
 def main() -> None:
     """Console-script entry point: run the app, turning AdfitError into one line and exit 1."""
+    from .likelihood import enable_compilation_cache
+    enable_compilation_cache()  # compiled programs kept on disk between runs (ADFIT_COMPILE_CACHE=0: off)
     try:
         rc = app(standalone_mode=False)
         if isinstance(rc, int) and rc:  # without standalone mode, click returns a typer.Exit's code
