@@ -78,7 +78,7 @@ T_TAPE = 9e-9               # per gathered operand of the elimination tape, per 
 T_LOOP = 1.5e-5             # per iteration of a compiled loop (one chunk, or one tape batch)
 COMPILE_ENUM = 0.3          # compile time of one enumeration bucket
 COMPILE_TAPE = 1.2          # compile time of one elimination-tape class
-T_PLAN_TYPE = 1e-3          # plan time of one elimination program (min-fill, tape, packing; Python)
+T_PLAN_TYPE = 5e-4          # plan time of one elimination program (min-fill, tape, packing; Python)
 TAPE_PAD = 4.0              # tape operands per min-fill cost unit (padding of batches and slots)
 ENUM_ALWAYS = 256           # a component with at most this many entries is always enumerated
 ENUM_MAX = 1 << 16          # ... and one with more is never enumerated
@@ -87,6 +87,7 @@ TAPE_BUDGET = 1 << 17       # float64 entries of one tape chunk's buffer (1 MiB:
 TAPE_SLOTS = 4              # summed terms per tape entry (states of the eliminated variable) ...
 TAPE_FACTORS = 3            # ... and multiplied operands per term; larger steps are split
 PLAN_BLOCK = 1 << 22        # cells (rows x nodes) decomposed at a time when building a plan
+SHARD_MIN_S = 0.005         # evaluations estimated longer than this are split over the CPU cores
 
 # Legacy knobs of the per-pattern route, still honoured: a component type gets an elimination
 # program of its own only with at least MIN_PATTERN_ROWS distinct instances (below, the cost
@@ -417,6 +418,7 @@ class Plan:
     observed_rows: Any = None       # bool mask of rows whose observed families are in the gathered block
     estimate: Mapping[str, float] | None = None
     rows: tuple[np.ndarray, ...] = ()
+    n_shards: int = 1               # the chunks of every block split into this many equal parts
 
     def describe(self) -> str:
         parts = []
@@ -587,7 +589,6 @@ def _distinct_rows(sub: np.ndarray, cards: Sequence[int]) -> tuple[np.ndarray, n
     """Distinct rows of a small non-negative code matrix: (first index of each, inverse)."""
     if sub.shape[1] == 0:
         return np.zeros(1, np.int64), np.zeros(len(sub), np.int64)
-    mult = 1
     key = np.zeros(len(sub), np.int64)
     if math.prod(int(c) for c in cards) < (1 << 62):
         for j in range(sub.shape[1]):
@@ -595,7 +596,6 @@ def _distinct_rows(sub: np.ndarray, cards: Sequence[int]) -> tuple[np.ndarray, n
         _, first, inv = np.unique(key, return_index=True, return_inverse=True)
     else:
         _, first, inv = np.unique(sub, axis=0, return_index=True, return_inverse=True)
-    del mult
     return first, inv.reshape(-1)
 
 
@@ -767,7 +767,7 @@ class _TapeWriter:
         ids = self.add(terms[:, None, :])
         return tuple(union), ids.reshape(tuple(cards[u] for u in union))
 
-    def eliminate(self, tables, out_scope, var, cards, pseudo):
+    def eliminate(self, tables, out_scope, var, cards):
         """``sum over var`` of the product of ``tables`` (each at most ``ops``)."""
         while len(tables) > self.ops:
             tables = sorted(tables, key=lambda t: t[1].size)
@@ -821,10 +821,9 @@ def _compile_program(network: Network, gp: GroupPlan, layout, slots: int, ops: i
         ind_state += list(range(cards[v]))
         tables[base + k] = ((v,), ids)
     w = _TapeWriter(slots, ops)
-    pseudo = [-1]
     for st in gp.steps:
         ins = [tables.pop(f) for f in st.inputs]
-        ids = w.eliminate(ins, st.out_scope, st.var, cards, pseudo)
+        ids = w.eliminate(ins, st.out_scope, st.var, cards)
         tables[st.out_id] = (st.out_scope, ids)
     for f in gp.final:
         finals.append(int(tables[f][1].reshape(())))
@@ -881,7 +880,7 @@ def _choose_width(progs: Sequence[_Program], rows: Sequence[int]) -> int:
     (instances x batches x width) operands plus loop iterations (batches per level estimated)."""
     best = None
     total = sum(rows)
-    for width in (8, 16, 32, 64, 128):
+    for width in (2, 4, 8, 16, 32, 64, 128):
         nb = 1
         for p in progs:
             counts = np.bincount(p.level) if len(p.level) else np.zeros(1, np.int64)
@@ -1083,7 +1082,106 @@ def build_plan(network: Network, data: CodedData, *, route: str = "auto",
         if alt < mine and route != "pattern":
             plan = _assemble(network, codes, counts, uniform=np.ones(R, bool), enum_types=[], prog_types=[],
                              pruned=np.zeros(n, bool), chunk=chunk)
-    return plan
+    return _shard(plan)
+
+
+def n_threads() -> int:
+    """CPU cores the evaluation may use (``$ADFIT_THREADS`` overrides; at most 8)."""
+    env = os.environ.get("ADFIT_THREADS")
+    if env:
+        try:
+            return max(1, int(env))
+        except ValueError:
+            raise OptionError(f"ADFIT_THREADS must be a whole number of threads, got {env!r}") from None
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):  # pragma: no cover - not Linux
+        cores = os.cpu_count() or 1
+    return max(1, min(8, cores))
+
+
+def _shard(plan: Plan) -> Plan:
+    """Split every block's chunks into equal parts, one per core, when an evaluation is long
+    enough to pay for the threads: the parts have the same shapes, so one compiled program runs
+    them all, side by side (XLA runs these loops on one core)."""
+    S = n_threads()
+    if S == 1 or plan.estimate is None or plan.estimate["evaluation_s"] < SHARD_MIN_S:
+        return plan
+    n_flat = layout_size(plan.network)
+    groups, codes, weights = [], [], []
+    for blk, arr, w in zip(plan.groups, plan.codes, plan.weights):
+        if isinstance(blk, GatheredBlock):
+            groups.append(blk)
+            codes.append(arr)
+            weights.append(w)
+            continue
+        nch, c = w.shape
+        n = nch * c
+        if nch < S:
+            c = max(8, -(-n // S))
+            c = -(-c // 8) * 8
+        nch2 = S * -(-n // (S * c))
+        pad = nch2 * c - n
+        wf = np.concatenate([w.reshape(-1), np.zeros(pad)])
+        if isinstance(blk, EnumBlock):
+            fill = np.full((pad, blk.A, blk.m), n_flat, np.int32)
+            fill[:, 1:, 0] = n_flat + 1
+            new = np.concatenate([arr.reshape(n, blk.A, blk.m), fill]).reshape(nch2, c, blk.A, blk.m)
+        else:
+            tables, (pid, base, icodes) = arr
+            pid2 = np.concatenate([pid.reshape(-1), np.zeros(pad, pid.dtype)]).reshape(nch2, c)
+            base2 = np.concatenate([base.reshape(n, -1), np.zeros((pad, base.shape[-1]), base.dtype)]).reshape(nch2, c, -1)
+            ic2 = np.concatenate([icodes.reshape(n, -1), np.full((pad, icodes.shape[-1]), -1, icodes.dtype)]).reshape(nch2, c, -1)
+            new = (tables, (pid2, base2, ic2))
+        groups.append(dataclasses.replace(blk, chunk=c))
+        codes.append(new)
+        weights.append(wf.reshape(nch2, c))
+    return dataclasses.replace(plan, groups=tuple(groups), codes=tuple(codes), weights=tuple(weights), n_shards=S)
+
+
+@jax.tree_util.register_pytree_node_class
+class Shards:
+    """The data arrays of a plan cut into equal parts along the chunk axis (a pytree).
+
+    ``parts[s]`` is a tuple over the plan's blocks, laid out as the plan's own arrays; all parts
+    have the same shapes. The core functions accept either a Shards or one part."""
+
+    def __init__(self, parts):
+        self.parts = tuple(parts)
+
+    def tree_flatten(self):
+        return self.parts, None
+
+    @classmethod
+    def tree_unflatten(cls, aux, children):
+        return cls(children)
+
+
+def _split(plan: Plan, arrays: tuple, *, weights: bool) -> Shards:
+    S = plan.n_shards
+    conv: dict[int, Any] = {}
+
+    def dev(x):  # one device array per numpy array (tables are shared by the parts)
+        key = id(x)
+        if key not in conv:
+            conv[key] = (x, jnp.asarray(x))
+        return conv[key][1]
+
+    parts = [[] for _ in range(S)]
+    for blk, a in zip(plan.groups, arrays):
+        for s in range(S):
+            if isinstance(blk, GatheredBlock):
+                parts[s].append(dev(a) if s == 0 or not weights else jnp.zeros_like(dev(a)))
+                continue
+            k = (a.shape[0] if weights or isinstance(blk, EnumBlock) else a[1][0].shape[0]) // S
+            sl = slice(s * k, (s + 1) * k)
+            if weights or isinstance(blk, EnumBlock):
+                parts[s].append(jnp.asarray(a[sl]))
+            else:
+                tables, (pid, base, icodes) = a
+                parts[s].append((tuple(dev(t) for t in tables), (jnp.asarray(pid[sl]), jnp.asarray(base[sl]),
+                                                                  jnp.asarray(icodes[sl]))))
+    return Shards(tuple(tuple(p) for p in parts))
 
 
 def _choose_methods(network: Network, codes: np.ndarray, counts: np.ndarray, tlist: Sequence[_Type], route: str,
@@ -1417,12 +1515,44 @@ def _gathered_value(flat: jax.Array, counts: jax.Array) -> jax.Array:
     return jnp.sum(jnp.where(counts > 0, counts * flat, 0.0))
 
 
-@partial(jax.jit, static_argnums=(0, 1))
-def _loglik_logcpt(network: Network, groups: tuple, logcpts: tuple[jax.Array, ...],
-                   codes: tuple, weights: tuple) -> jax.Array:
-    """Weighted total log-likelihood; differentiable in both modes (chunks are recomputed in the
-    backward pass, so memory stays that of one chunk)."""
-    flat = _flat(logcpts)
+def _parts(codes, weights) -> list:
+    if isinstance(codes, Shards):
+        return list(zip(codes.parts, weights.parts))
+    return [(codes, weights)]
+
+
+def _traced(tree) -> bool:
+    return any(isinstance(x, jax.core.Tracer) for x in jax.tree_util.tree_leaves(tree))
+
+
+_POOL = None
+_WARM: set = set()
+
+
+def _run_parts(fn, parts: list, key) -> list:
+    """``fn(*part)`` for every part, side by side in threads (part 0 on the calling thread).
+
+    XLA runs each of these compiled loops on one core; calls from several Python threads run in
+    parallel. The first call of a program runs alone, so that it is compiled once."""
+    global _POOL
+    if len(parts) == 1:
+        return [fn(*parts[0])]
+    if _POOL is None:
+        from concurrent.futures import ThreadPoolExecutor
+        _POOL = ThreadPoolExecutor(max_workers=n_threads(), thread_name_prefix="adfit-shard")
+    shapes = tuple(getattr(x, "shape", None) for x in jax.tree_util.tree_leaves(parts[0]))
+    k = (key, shapes)
+    if k not in _WARM:
+        first = jax.block_until_ready(fn(*parts[0]))
+        _WARM.add(k)
+        futs = [_POOL.submit(lambda p=p: jax.block_until_ready(fn(*p))) for p in parts[1:]]
+        return [first] + [f.result() for f in futs]
+    futs = [_POOL.submit(lambda p=p: jax.block_until_ready(fn(*p))) for p in parts[1:]]
+    first = jax.block_until_ready(fn(*parts[0]))
+    return [first] + [f.result() for f in futs]
+
+
+def _loglik_part(network: Network, groups: tuple, flat: jax.Array, codes: tuple, weights: tuple) -> jax.Array:
     total = jnp.zeros((), jnp.float64)
     for blk, arr, w in zip(groups, codes, weights):
         if isinstance(blk, GatheredBlock):
@@ -1439,20 +1569,44 @@ def _loglik_logcpt(network: Network, groups: tuple, logcpts: tuple[jax.Array, ..
     return total
 
 
+@partial(jax.jit, static_argnums=(0, 1))
+def _loglik_logcpt(network: Network, groups: tuple, logcpts: tuple[jax.Array, ...],
+                   codes, weights) -> jax.Array:
+    """Weighted total log-likelihood; differentiable in both modes (chunks are recomputed in the
+    backward pass, so memory stays that of one chunk). ``codes``/``weights``: a :class:`Shards`
+    (``Likelihood._codes``) or one part of it; the parts run one after the other here."""
+    flat = _flat(logcpts)
+    total = jnp.zeros((), jnp.float64)
+    for cs, ws in _parts(codes, weights):
+        total = total + _loglik_part(network, groups, flat, cs, ws)
+    return total
+
+
 def _value_and_expected_counts(network: Network, groups: tuple, logcpts: Sequence[jax.Array],
-                               codes: tuple, weights: tuple):
+                               codes, weights):
     """Total log-likelihood and its gradient w.r.t. the log-CPTs (= expected family counts).
 
     Each chunk's value and gradient are computed and accumulated inside ``lax.scan``, so the
-    memory is one chunk's, whatever the number of rows. The compiled program returns the
-    gradient as one flat vector; it is cut into CPT-shaped arrays here (numpy views when the
-    call is not traced): XLA compiles every sliced output as a kernel of its own, which cost
-    0.5 s of compile time for 37 nodes.
+    memory is one chunk's, whatever the number of rows. The parts of a :class:`Shards` run in
+    threads, one per core (one after the other when the call is traced, e.g. under ``vmap``).
+    The compiled program returns the gradient as one flat vector; it is cut into CPT-shaped
+    arrays here (numpy views when the call is not traced): XLA compiles every sliced output as a
+    kernel of its own, which cost 0.5 s of compile time for 37 nodes.
     """
-    val, g = _value_and_flat_counts(network, groups, tuple(logcpts), codes, weights)
-    if isinstance(g, jax.core.Tracer):
-        return val, _unflat(network, g)
-    g = np.asarray(g)
+    logcpts = tuple(logcpts)
+    parts = _parts(codes, weights)
+    if len(parts) > 1 and not _traced((logcpts, codes, weights)):
+        res = _run_parts(lambda cs, ws: _value_and_flat_counts(network, groups, logcpts, cs, ws), parts,
+                         (id(network), groups, "vg"))
+        val = jnp.asarray(sum(float(v) for v, _ in res))
+        g = np.asarray(res[0][1]).copy()
+        for _, gg in res[1:]:
+            g += np.asarray(gg)
+    else:
+        val, g = _value_and_flat_counts(network, groups, logcpts, codes, weights)
+        if isinstance(g, jax.core.Tracer):
+            return val, _unflat(network, g)
+        g = np.asarray(g)
     out, off = [], 0
     for name in network.names:
         shape = network.cpt_shape(name)
@@ -1464,32 +1618,34 @@ def _value_and_expected_counts(network: Network, groups: tuple, logcpts: Sequenc
 
 @partial(jax.jit, static_argnums=(0, 1))
 def _value_and_flat_counts(network: Network, groups: tuple, logcpts: tuple[jax.Array, ...],
-                           codes: tuple, weights: tuple):
+                           codes, weights):
     flat = _flat(logcpts)
     total = jnp.zeros((), jnp.float64)
     grad = jnp.zeros_like(flat)
-    for blk, arr, w in zip(groups, codes, weights):
-        if isinstance(blk, GatheredBlock):
-            total = total + _gathered_value(flat, w)
-            grad = grad + w
-            continue
-        xs, f = _block_chunks(blk, arr, w, network)
-        vg = _enum_value_and_grad if isinstance(blk, EnumBlock) else jax.value_and_grad(f)
+    for cs, ws in _parts(codes, weights):
+        for blk, arr, w in zip(groups, cs, ws):
+            if isinstance(blk, GatheredBlock):
+                total = total + _gathered_value(flat, w)
+                grad = grad + w
+                continue
+            xs, f = _block_chunks(blk, arr, w, network)
+            vg = _enum_value_and_grad if isinstance(blk, EnumBlock) else jax.value_and_grad(f)
 
-        def body(carry, x, vg=vg):
-            acc, g = carry
-            v, gg = vg(flat, x)
-            return (acc + v, g + gg), None
+            def body(carry, x, vg=vg):
+                acc, g = carry
+                v, gg = vg(flat, x)
+                return (acc + v, g + gg), None
 
-        (val, g), _ = jax.lax.scan(body, (jnp.zeros((), jnp.float64), jnp.zeros_like(flat)), xs)
-        total = total + val
-        grad = grad + g
+            (val, g), _ = jax.lax.scan(body, (jnp.zeros((), jnp.float64), jnp.zeros_like(flat)), xs)
+            total = total + val
+            grad = grad + g
     return total, grad
 
 
 @partial(jax.jit, static_argnums=(0, 1))
 def _rows_loglik(network: Network, groups: tuple, logcpts: tuple[jax.Array, ...], codes: tuple) -> tuple:
-    """Per-instance log-likelihood of every block but the gathered one (flattened chunks)."""
+    """Per-instance log-likelihood of every block but the gathered one (flattened chunks; one
+    part of a :class:`Shards`)."""
     flat = _flat(logcpts)
     out = []
     for blk, arr in zip(groups, codes):
@@ -1649,8 +1805,8 @@ class Likelihood:
         self.network = network
         self.data = data
         self.plan = build_plan(network, data, route=route, chunk=chunk)
-        self._codes = jax.tree_util.tree_map(jnp.asarray, self.plan.codes)
-        self._weights = jax.tree_util.tree_map(jnp.asarray, self.plan.weights)
+        self._codes = _split(self.plan, self.plan.codes, weights=False)
+        self._weights = _split(self.plan, self.plan.weights, weights=True)
         self.free = network.free_names
 
     # -- log-CPT level (all nodes) ---------------------------------------------------------
@@ -1658,7 +1814,13 @@ class Likelihood:
         return tuple(_logcpts_from_logits(self.network, logits))
 
     def value_logcpt(self, logcpts: Sequence[jax.Array]) -> jax.Array:
-        return _loglik_logcpt(self.network, self.plan.groups, tuple(logcpts), self._codes, self._weights)
+        logcpts = tuple(logcpts)
+        parts = _parts(self._codes, self._weights)
+        if len(parts) > 1 and not _traced(logcpts):
+            res = _run_parts(lambda cs, ws: _loglik_logcpt(self.network, self.plan.groups, logcpts, cs, ws), parts,
+                             (id(self.network), self.plan.groups, "v"))
+            return jnp.asarray(sum(float(v) for v in res))
+        return _loglik_logcpt(self.network, self.plan.groups, logcpts, self._codes, self._weights)
 
     def expected_counts_logcpt(self, logcpts: Sequence[jax.Array]):
         """(log-likelihood, expected family counts N(x,u) per node, CPT-shaped)."""
@@ -1680,9 +1842,10 @@ class Likelihood:
 
     def row_logliks(self, probs: Mapping[str, np.ndarray]) -> np.ndarray:
         """Log-likelihood of every distinct row (in the order of ``data.codes``)."""
-        lc = logcpts_from_probs(self.network, probs)
-        parts = _rows_loglik(self.network, self.plan.groups, tuple(lc), self._codes)
-        return _assemble_rows(self.plan, self.data.codes, [np.asarray(x) for x in lc], [np.asarray(p) for p in parts])
+        lc = tuple(logcpts_from_probs(self.network, probs))
+        per = [_rows_loglik(self.network, self.plan.groups, lc, cs) for cs in self._codes.parts]
+        parts = [np.concatenate([np.asarray(p[b]) for p in per]) for b in range(len(self.plan.groups))]
+        return _assemble_rows(self.plan, self.data.codes, [np.asarray(x) for x in lc], parts)
 
 
 def _value_and_grad_logits(lik: Likelihood, logits: Mapping[str, jax.Array]):

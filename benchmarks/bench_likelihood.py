@@ -5,7 +5,8 @@ value-and-gradient, one value, peak memory and (optionally) a whole fit; and the
 value-and-gradient by a baseline written the obvious way (one ``jnp.einsum`` per elimination
 step over *all* rows, rows on the leading axis, evidence as indicator vectors for every node, no
 chunking, autodiff for the gradient). The two are timed in alternating rounds in the same
-process, so that the load of a shared machine hits both alike; the script prints the load
+process, so that the load of a shared machine hits both alike (each timed call 0.2 s after the
+previous one ended, so that no thread pool is still spinning); the script prints the load
 average before and after, the minimum and the median of the rounds, and their ratios.
 
 Compile time is the first call minus the median steady call. ``--cache`` also measures the first
@@ -64,7 +65,9 @@ def machine() -> str:
             f"jax {jax.__version__}, numpy {np.__version__}")
 
 
-def once(fn, *args) -> float:
+def once(fn, *args, settle: float = 0.0) -> float:
+    if settle:
+        time.sleep(settle)  # let the thread pools of the previous call go idle (they spin a while)
     t = time.perf_counter()
     jax.block_until_ready(fn(*args))
     return time.perf_counter() - t
@@ -140,10 +143,10 @@ def run_workload(label, net, probs, data, *, rounds: int, with_fit: bool, with_b
         first_b = once(vg_b, logits)
     t_a, t_v, t_b = [], [], []
     for _ in range(rounds):
-        t_a.append(once(lik.expected_counts_logcpt, lc))
-        t_v.append(once(lik.value_logcpt, lc))
+        t_a.append(once(lik.expected_counts_logcpt, lc, settle=0.2))
+        t_v.append(once(lik.value_logcpt, lc, settle=0.2))
         if vg_b is not None:
-            t_b.append(once(vg_b, logits))
+            t_b.append(once(vg_b, logits, settle=0.2))
     a_min, a_med = stats(t_a)
     v_min, v_med = stats(t_v)
     print(f"adfit    value+gradient  min {a_min * 1e3:8.1f} ms  median {a_med * 1e3:8.1f} ms   "
