@@ -78,7 +78,7 @@ T_TAPE = 9e-9               # per gathered operand of the elimination tape, per 
 T_LOOP = 1.5e-5             # per iteration of a compiled loop (one chunk, or one tape batch)
 COMPILE_ENUM = 0.3          # compile time of one enumeration bucket
 COMPILE_TAPE = 1.2          # compile time of one elimination-tape class
-T_PLAN_TYPE = 5e-4          # plan time of one elimination program (min-fill, tape, packing; Python)
+T_PLAN_TYPE = 8e-4          # plan time of one elimination program (min-fill, tape, packing; Python)
 TAPE_PAD = 4.0              # tape operands per min-fill cost unit (padding of batches and slots)
 ENUM_ALWAYS = 256           # a component with at most this many entries is always enumerated
 ENUM_MAX = 1 << 16          # ... and one with more is never enumerated
@@ -1804,9 +1804,11 @@ class Likelihood:
     def __init__(self, network: Network, data: CodedData, *, route: str = "auto", chunk: int | None = None):
         self.network = network
         self.data = data
-        self.plan = build_plan(network, data, route=route, chunk=chunk)
-        self._codes = _split(self.plan, self.plan.codes, weights=False)
-        self._weights = _split(self.plan, self.plan.weights, weights=True)
+        plan = build_plan(network, data, route=route, chunk=chunk)
+        self._codes = _split(plan, plan.codes, weights=False)
+        self._weights = _split(plan, plan.weights, weights=True)
+        # the device copies are the data from now on: release the plan's host arrays
+        self.plan = dataclasses.replace(plan, codes=(), weights=())
         self.free = network.free_names
 
     # -- log-CPT level (all nodes) ---------------------------------------------------------
