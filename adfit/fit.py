@@ -540,8 +540,9 @@ def complete_family_start(network: Network, data: CodedData, rng: np.random.Gene
         if any(network.nodes[j].latent for j in fam):
             out[name] = rng.dirichlet(np.ones(node.card), size=shape[:-1]).reshape(shape)
             continue
-        ok = np.all(codes[:, fam] != HIDDEN, axis=1)
-        flat = np.ravel_multi_index(tuple(codes[ok][:, j] for j in fam), shape) if ok.any() else np.zeros(0, int)
+        sub = codes[:, fam]  # one copy of the family's columns (codes[ok] per column copied all rows)
+        ok = np.all(sub != HIDDEN, axis=1)
+        flat = np.ravel_multi_index(tuple(sub[ok].T), shape) if ok.any() else np.zeros(0, int)
         cnt = np.bincount(flat, weights=w[ok], minlength=int(np.prod(shape))).reshape(shape) + 0.5
         if pseudo is not None and name in pseudo:
             cnt = cnt + pseudo[name]
