@@ -10,11 +10,9 @@ by the cheapest exact method for its size.
 
 How a row is taken apart (the *plan*, built once per network and data, in plain numpy):
 
-* **Barren nodes.** A hidden node none of whose descendants is observed in the row sums out to 1
-  and is dropped (its family and those of its hidden descendants).
-* **Components.** The remaining hidden nodes of the row fall into connected components (two
-  hidden nodes are linked when they appear in one kept family). A family touches at most one
-  component. With ``H`` a component and ``F`` the families that touch it,
+* **Components.** The hidden nodes of the row fall into connected components (two hidden nodes
+  are linked when they appear in one family). A family touches at most one component. With
+  ``H`` a component and ``F`` the families that touch it,
 
       log P(e) = sum over families with every member observed of  log theta(e)
                + sum over components (H, F) of  log sum_{x_H} prod_{f in F} theta_f.
@@ -35,9 +33,17 @@ How a row is taken apart (the *plan*, built once per network and data, in plain 
   does not grow with the number of variables, steps or component types. Uniform evidence (the
   classical form: one-hot indicators for observed cells, all ones for missing ones) lets one
   program serve rows of different missingness patterns.
+* **Barren nodes** (hidden, no observed descendant in the row) sum out to 1, so they do not
+  change the value, but their expected counts are not 0 (the posterior of their parents times
+  their CPT), and EM steps and the identifiability checks use those counts; so they stay in
+  their components (a barren subtree under observed parents is a component of its own, with few
+  distinct instances).
 * The route per component (enumerate, its own elimination program, or the whole row in the
-  uniform program) is chosen by an estimated cost that includes compile time; ``Plan.route`` and
-  ``Plan.describe()`` say what was chosen.
+  uniform program) is chosen by an estimated cost that includes compile and plan time;
+  ``Plan.route`` and ``Plan.describe()`` say what was chosen.
+* XLA runs each of these loops on one core; when an evaluation is long enough, every block's
+  chunks are cut into equal parts, one per core, run side by side from threads by the same
+  compiled program (:class:`Shards`, ``$ADFIT_THREADS``).
 
 Everything is computed in log space with max-shifted log-sum-exp, so a row whose likelihood is
 far below 1e-308 is still finite in float64; a row of probability zero gives ``-inf``. Rows are
@@ -89,9 +95,9 @@ TAPE_FACTORS = 3            # ... and multiplied operands per term; larger steps
 PLAN_BLOCK = 1 << 22        # cells (rows x nodes) decomposed at a time when building a plan
 SHARD_MIN_S = 0.005         # evaluations estimated longer than this are split over the CPU cores
 
-# Legacy knobs of the per-pattern route, still honoured: a component type gets an elimination
-# program of its own only with at least MIN_PATTERN_ROWS distinct instances (below, the cost
-# model decides) and at most MAX_PATTERN_GROUPS such programs are made under route="auto".
+# Limits of the per-pattern route under route="auto" (the cost model decides within them): a
+# component type gets an elimination program of its own only with at least MIN_PATTERN_ROWS
+# distinct instances, and at most MAX_PATTERN_GROUPS such programs are made.
 MIN_PATTERN_ROWS = 1
 MAX_PATTERN_GROUPS = 1 << 16
 # Target number of float64 entries in the largest intermediate of one posterior chunk (~4 MB).
@@ -1044,10 +1050,10 @@ def build_plan(network: Network, data: CodedData, *, route: str = "auto",
             included), ``"pattern"`` (per missingness pattern: observed families gathered, every
             hidden component computed on its own, never the uniform program) or ``"uniform"``
             (every row in one elimination program with evidence indicators).
-        min_pattern_rows, max_pattern_groups: under ``"auto"``, a large component type gets an
-            elimination program of its own only with at least ``min(min_pattern_rows, rows that
-            make it pay)`` distinct instances, and at most ``max_pattern_groups`` such programs;
-            rows with other large components go to the uniform program.
+        min_pattern_rows, max_pattern_groups: under ``"auto"``, at most ``max_pattern_groups``
+            component types get an elimination program of their own (the most frequent first),
+            each with at least ``min_pattern_rows`` distinct instances; the others are
+            enumerated or their rows go to the uniform program, by the cost model.
         chunk: rows (instances) per chunk of every block (default: from the block's size).
         for_posteriors: one uniform plan with an indicator for every node and no pruning (used
             by :func:`posterior_marginals`).
