@@ -579,7 +579,7 @@ def _components(network: Network, codes: np.ndarray):
     if comp_type_parts:
         ct = np.concatenate(comp_type_parts)
         cr = np.concatenate(comp_row_parts)
-        order = np.argsort(ct, kind="stable")
+        order = np.argsort(ct.astype(np.uint16) if len(tlist) < (1 << 16) else ct, kind="stable")  # radix sort
         ct, cr = ct[order], cr[order]
         bounds = np.searchsorted(ct, np.arange(len(tlist) + 1))
         for t, typ in enumerate(tlist):
@@ -596,9 +596,18 @@ def _distinct_rows(sub: np.ndarray, cards: Sequence[int]) -> tuple[np.ndarray, n
     if sub.shape[1] == 0:
         return np.zeros(1, np.int64), np.zeros(len(sub), np.int64)
     key = np.zeros(len(sub), np.int64)
-    if math.prod(int(c) for c in cards) < (1 << 62):
+    space = math.prod(int(c) for c in cards)
+    if space < (1 << 62):
         for j in range(sub.shape[1]):
             key = key * int(cards[j]) + sub[:, j]
+        if space <= max(1 << 16, 4 * len(key)):  # dense key space: no sort needed
+            seen = np.zeros(space, np.int64)
+            seen[key] = 1
+            rank = np.cumsum(seen) - 1
+            inv = rank[key]
+            first = np.zeros(int(rank[-1]) + 1, np.int64)
+            first[inv[::-1]] = np.arange(len(key) - 1, -1, -1)  # the first occurrence wins
+            return first, inv
         _, first, inv = np.unique(key, return_index=True, return_inverse=True)
     else:
         _, first, inv = np.unique(sub, axis=0, return_index=True, return_inverse=True)
@@ -1303,6 +1312,7 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
     if n_local:
         N = np.zeros(n_flat + 2)
         n_fam = 0
+        unit = bool(np.all(counts == 1.0))
         step = max(1024, PLAN_BLOCK // max(1, n))
         for s0 in range(0, R, step):
             cbT = np.ascontiguousarray(codes[s0:s0 + step].T)     # (n, rows): whole columns
@@ -1321,7 +1331,11 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
                         bad = hidT[u] if bad is None else (bad | hidT[u])
                 if bad is not None:
                     iv[bad] = n_flat + 2                            # a bin of its own, dropped
-            N += np.bincount(idx.ravel(), weights=np.tile(counts[s0:s0 + step], n), minlength=n_flat + 3)[:n_flat + 2]
+            cb_w = counts[s0:s0 + step]
+            if unit:
+                N += np.bincount(idx.ravel(), minlength=n_flat + 3)[:n_flat + 2]
+            else:
+                N += np.bincount(idx.ravel(), weights=np.tile(cb_w, n), minlength=n_flat + 3)[:n_flat + 2]
             n_fam += int(np.count_nonzero(idx <= n_flat))
         n_comp = sum(int(local[t.rows].sum()) for t in (*enum_types, *prog_types))
         blocks.append(GatheredBlock(n_local, n_fam, int(pruned.sum()), n_comp))
