@@ -1079,8 +1079,8 @@ def build_plan(network: Network, data: CodedData, *, route: str = "auto",
         return _posterior_plan(network, codes, counts, chunk)
     hidden_rows = codes < 0
     if route == "uniform" or R == 0:
-        return _assemble(network, codes, counts, uniform=np.ones(R, bool), enum_types=[], prog_types=[],
-                         pruned=np.zeros(n, bool), chunk=chunk)
+        return _shard(_assemble(network, codes, counts, uniform=np.ones(R, bool), enum_types=[], prog_types=[],
+                                pruned=np.zeros(n, bool), chunk=chunk))
     tlist, pruned = _components(network, codes)
     enum_types, prog_types, to_uniform = _choose_methods(network, codes, counts, tlist, route,
                                                          min_pattern_rows, max_pattern_groups)
@@ -1282,11 +1282,10 @@ def _choose_methods(network: Network, codes: np.ndarray, counts: np.ndarray, tli
             n = sum(rest[i].n_inst for i in movable)
             keep = n * A * m * T_ENUM * E + COMPILE_ENUM
             move = sum(costs[i][1] for i in movable) * E + (0.0 if tape_compiled else COMPILE_TAPE)
-            if route == "pattern" or "own" in [a for opt in options for a in opt]:
-                if move < keep:
-                    for i in movable:
-                        choice[i] = "own"
-                    tape_compiled = True
+            if move < keep:
+                for i in movable:
+                    choice[i] = "own"
+                tape_compiled = True
     enum_types = always + [t for t, k in zip(rest, choice) if k == "enum"]
     prog_types = [t for t, k in zip(rest, choice) if k == "own"]
     to_uniform = [t for t, k in zip(rest, choice) if k == "uni"]
