@@ -424,7 +424,12 @@ class Fitter:
                 if s.method == "lbfgs":
                     d, state = self.lbfgs_direction(s.memory, g, state, z)
                     d = {k: -np.asarray(d[k]) for k in self.free}
-                    alpha, f_new, g_new, _ = wolfe_line_search(fg, z, f, g, d)
+                    # First step of a phase (empty memory: optax returns the gradient capped to
+                    # norm 1). Under the preconditioner the complete-data curvature of F in z is
+                    # about the identity, that of f = −F/N about I/N: try the step −N·g (the
+                    # complete-data Newton step) instead of a unit step N times too short.
+                    a0 = N * math.sqrt(_dot(g, g) / max(_dot(d, d), 1e-300)) if it == phase_start else 1.0
+                    alpha, f_new, g_new, _ = wolfe_line_search(fg, z, f, g, d, alpha0=a0)
                     if alpha is None:
                         # No decrease along the direction: either the objective is flat to
                         # machine precision (converged if the residual is small) or the

@@ -65,3 +65,34 @@ def mask_mcar(net: Network, x: np.ndarray, rate: float, columns=None, seed: int 
 def coded(net: Network, x: np.ndarray) -> CodedData:
     d, c, inv = reduce_rows(x, None, net.cards)
     return CodedData(d, c, inv, "<synthetic>")
+
+
+def latent_class_workload(n_rows: int = 100_000, n_classes: int = 4, n_items: int = 20, separation: float = 0.15,
+                          seed: int = 7) -> tuple[Network, CodedData]:
+    """Latent class model built to be hard for EM (much missing information), yet identified.
+
+    A latent root ``cls`` (``n_classes`` states, equal sizes) and ``n_items`` binary items
+    ``i00``, ``i01``, ... with parent ``cls``; P(item = 1 | class) = 0.5 ± ``separation``, the
+    sign drawn at random per class and item, so the classes overlap. Responses are missing by a
+    three-form planned-missingness design (common in survey practice): the first quarter of the
+    items goes to everyone, the other items form three equal blocks, and each record gets one of
+    three forms at random, each form leaving out one block (a quarter of the responses missing,
+    completely at random). Seeded: the same call gives the same data.
+    """
+    if n_items % 4:
+        raise ValueError("n_items must be a multiple of 4 (a common block and three form blocks)")
+    nodes: dict = {"cls": {"states": [f"k{i}" for i in range(n_classes)], "latent": True}}
+    nodes |= {f"i{j:02d}": {"states": ["0", "1"], "parents": ["cls"]} for j in range(n_items)}
+    net = network_from_dict(nodes)
+    rng = np.random.default_rng(seed)
+    p1 = 0.5 + separation * rng.choice([-1.0, 1.0], size=(n_classes, n_items))
+    truth = {"cls": np.full(n_classes, 1.0 / n_classes)}
+    truth |= {f"i{j:02d}": np.stack([1.0 - p1[:, j], p1[:, j]], axis=1) for j in range(n_items)}
+    x = sample(net, truth, n_rows, seed=seed + 1)
+    block = n_items // 4
+    form = np.random.default_rng(seed + 2).integers(0, 3, n_rows)
+    for f in range(3):
+        cols = 1 + block * (1 + f) + np.arange(block)  # column 0 is cls
+        x[np.ix_(form == f, cols)] = HIDDEN
+    x[:, 0] = HIDDEN
+    return net, coded(net, x)

@@ -31,10 +31,11 @@ from adfit.result import result_from_dict
 from published import (STOUFFER_TOBY_CLASS_SIZES, STOUFFER_TOBY_COUNTS, STOUFFER_TOBY_ITEMS,
                        STOUFFER_TOBY_P_PLUS, stouffer_toby)
 
-# Stouffer-Toby with three classes, 3 starts, seed 13 (as fit() draws them): start 0 ends at a
-# lower local maximum (objective -503.4316), start 1 at the best (-503.3011), start 2 at
-# -504.459; the best is reached by one start only. Found by a scan of seeds 0-24 on this code.
-ST3_SEED, ST3_STARTS = 13, 3
+# Stouffer-Toby with three classes, 3 starts, seed 15 (as fit() draws them): one start ends at the
+# best (-503.3011), the others at lower local maxima (-503.506 and -503.541); the best is reached
+# by one start only. Found by a scan of seeds 0-24 on this code (which starts reach which optimum
+# depends on the optimiser's path: re-scan when the line search or the preconditioner changes).
+ST3_SEED, ST3_STARTS = 15, 3
 
 
 def fit_starts(net, data, fitter, seed, k):
