@@ -138,6 +138,9 @@ class Accumulator:
     def _merge(self) -> None:
         if not self._pending:
             return
+        if self.words.shape[1] == 0 and len(self._pending) == 1:  # one reduced piece: it is the table
+            (self.words, self.counts), self._pending, self._pending_rows = self._pending[0], [], 0
+            return
         words = np.concatenate([self.words] + [w for w, _ in self._pending], axis=1)
         counts = np.concatenate([self.counts] + [c for _, c in self._pending])
         self._pending, self._pending_rows = [], 0
@@ -264,7 +267,8 @@ _INT_TYPES = {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT",
               "UBIGINT", "UHUGEINT"}
 _SQL_KIND = {"VARCHAR": "text", "BOOLEAN": "bool", "FLOAT": "float", "DOUBLE": "float",
              **{t: "int" for t in _INT_TYPES}}
-_RANGE_MAX = 1 << 12  # an integer column whose values span at most this many is mapped value by value
+_RANGE_MAX = 1 << 12
+DUCKDB_ORDER = True  # DuckDB sorts the groups (in parallel); adfit then merges them in linear time  # an integer column whose values span at most this many is mapped value by value
 
 
 def _sql_literal(kind: str, v: Any) -> str:
@@ -301,10 +305,17 @@ class _ColumnMap:
             if c != UNKNOWN:
                 by_code.setdefault(int(c), []).append(_sql_literal(self.kind, v))
         null = f"{column} IS NULL" + (f" OR isnan({column})" if self.kind == "float" else "")
-        whens = [f"WHEN {null} THEN CAST(0 AS BIGINT)"]
-        for c in sorted(by_code):
-            whens.append(f"WHEN {column} IN ({', '.join(by_code[c])}) THEN CAST({(c + 1) * mult} AS BIGINT)")
-        return f"(CASE {' '.join(whens)} ELSE NULL END)"
+        low, high = (min(self.values), max(self.values)) if self.kind == "int" and self.values else (0, _RANGE_MAX)
+        if high - low < _RANGE_MAX:  # integers: a list indexed by the value (NULL: foreign or absent)
+            codes = [self.values.get(v, UNKNOWN) for v in range(low, high + 1)]
+            terms = ", ".join("NULL" if c == UNKNOWN else str((int(c) + 1) * mult) for c in codes)
+            return (f"(CASE WHEN {null} THEN CAST(0 AS BIGINT) WHEN {column} BETWEEN {low} AND {high} "
+                    f"THEN CAST([{terms}] AS BIGINT[])[{column} - ({low}) + 1] END)")
+        whens = " ".join(f"WHEN {lit} THEN CAST({(c + 1) * mult} AS BIGINT)"
+                         for c in sorted(by_code) for lit in by_code[c])
+        # a value not listed gives NULL (the row's word is then NULL); a null cell gives 0
+        tail = f"ELSE CASE WHEN {null} THEN CAST(0 AS BIGINT) END"
+        return f"(CASE {column} {whens} {tail} END)" if whens else f"(CASE WHEN {null} THEN CAST(0 AS BIGINT) END)"
 
 
 def _expected_map(plan: ReadPlan, name: str, kind: str, low: Any, high: Any) -> _ColumnMap:
@@ -383,15 +394,25 @@ def reduce_duckdb(plan: ReadPlan, *, memory_limit: str | None = None, threads: i
             kinds = {c: _SQL_KIND.get(t) for c, t in zip(names, types)}
             if any(k is None for k in kinds.values()):
                 return _reduce_duckdb_raw(plan, sql, src, where, cols)
-            return _reduce_duckdb_words(plan, sql, src, where, cols, kinds)
+            words, weights = _duckdb_groups(plan, sql, src, where, cols, kinds)
         finally:
-            con.close()
+            con.close()  # DuckDB's memory goes before adfit sorts the groups
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
+    layout = key_layout(tuple(plan.network.cards))
+    keep = weights > 0
+    if not keep.all():
+        words, weights = words[:, keep], weights[keep]
+    words, counts, _ = reduce_words(words, layout.spans, weights, inverse=False, runs=DUCKDB_ORDER)
+    if words.shape[1] == 0:
+        raise DataError(f"{plan.source}: no records (the table is empty or all counts are 0)")
+    return CodedData(layout.unpack(words), counts, None, plan.source)
 
 
-def _reduce_duckdb_words(plan: ReadPlan, sql, src: str, where: str, cols: dict[str, str],
-                         kinds: dict[str, str]) -> CodedData:
+def _duckdb_groups(plan: ReadPlan, sql, src: str, where: str, cols: dict[str, str],
+                   kinds: dict[str, str]) -> tuple[np.ndarray, np.ndarray]:
+    """The groups of rows by their words: ``(words (k, m), weights (m,))`` (sorted when
+    :data:`DUCKDB_ORDER`); raises DataError naming the earliest bad cell."""
     net = plan.network
     layout = key_layout(tuple(net.cards))
     names = list(kinds)
@@ -433,15 +454,13 @@ def _reduce_duckdb_words(plan: ReadPlan, sql, src: str, where: str, cols: dict[s
     if suspects:
         _first_bad(plan, [c for c in plan.read if c in suspects])  # raises with the earliest bad cell
         raise DataError(f"{plan.source}: column(s) {suspects} hold values that cannot be read; check them")
-    words = np.stack([table.column(f"w{i}").to_numpy() for i in range(layout.k)]) if table.num_rows else \
-        layout.empty().words
-    keep = weights > 0
-    if not keep.all():
-        words, weights = words[:, keep], weights[keep]
-    words, counts, _ = reduce_words(words, layout.spans, weights, inverse=False, runs=True)
-    if words.shape[1] == 0:
-        raise DataError(f"{plan.source}: no records (the table is empty or all counts are 0)")
-    return CodedData(layout.unpack(words), counts, None, plan.source)
+    words = np.empty((layout.k, table.num_rows), dtype=np.int64)
+    for i in range(layout.k):
+        offset = 0
+        for chunk in table.column(f"w{i}").chunks:  # one copy, chunk by chunk
+            words[i, offset:offset + len(chunk)] = chunk.to_numpy()
+            offset += len(chunk)
+    return words, weights
 
 
 def _group_words(plan: ReadPlan, sql, src: str, where: str, cols: dict[str, str], maps: dict[str, "_ColumnMap"],
@@ -455,7 +474,8 @@ def _group_words(plan: ReadPlan, sql, src: str, where: str, cols: dict[str, str]
         terms[int(layout.word[j])].append(m.sql(cols[c], int(layout.mult[j])))
     words = [(" + ".join(t) if t else "CAST(0 AS BIGINT)") + f" AS w{i}" for i, t in enumerate(terms)]
     count = f", {cols[plan.count_column]} AS k" if plan.count_column is not None else ""
-    q = f"SELECT {', '.join(words)}{count}, count(*) AS n FROM {src}{where} GROUP BY ALL ORDER BY ALL"
+    order = " ORDER BY " + ", ".join(f"w{i}" for i in range(layout.k)) if DUCKDB_ORDER else ""
+    q = f"SELECT {', '.join(words)}{count}, count(*) AS n FROM {src}{where} GROUP BY ALL{order}"
     table = sql(q)
     nulls = np.array([table.column(f"w{i}").null_count > 0 for i in range(layout.k)])
     return table, nulls
