@@ -1,9 +1,10 @@
 """Reduction of large data files to distinct coded rows with counts, by several engines.
 
 Every engine returns the same :class:`~adfit.data.CodedData`: the same codes (the rules of
-:mod:`adfit.data`), the same counts, distinct rows sorted by the packed key (lexicographic
-order of the coded rows), and ``source`` the path as given. Only the ``pandas`` engine keeps the
-per-record ``inverse``; the others set it to None.
+:mod:`adfit.data`), the same counts, distinct rows in the lexicographic order of the coded
+rows (first node most significant; rows are packed into int64 words, :mod:`adfit.rowkeys`),
+and ``source`` the path as given. Only the ``pandas`` engine keeps the per-record ``inverse``;
+the others set it to None.
 
 Engines (``--engine``):
 
@@ -159,7 +160,7 @@ class Accumulator:
 
 
 def _finish(plan: ReadPlan, acc: "Accumulator") -> CodedData:
-    codes, counts = acc.result()  # distinct, merged, sorted by the packed key
+    codes, counts = acc.result()  # distinct, merged, in lexicographic order
     if codes.shape[0] == 0:
         raise DataError(f"{plan.source}: no records (the table is empty or all counts are 0)")
     return CodedData(codes, counts, None, plan.source)

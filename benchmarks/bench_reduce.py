@@ -18,7 +18,9 @@ reused), every engine at each size:
 Memory: "peak MiB" is the peak resident memory of the process during the call (sampled every
 5 ms) minus the resident memory just before it; for Dask the same figure of the two local worker
 processes (processes=True) is added. "peak RSS GB" is the whole client process's peak (imports,
-data, result; for Dask without the workers). Every engine's codes and counts are compared with
+data, result; for Dask without the workers). "CPU s": user + system time of the client process
+during the call, all its threads (DuckDB's and pyarrow's included; for Dask not the workers').
+Every engine's codes and counts are compared with
 the pandas engine's (a SHA-256 digest of both arrays). Copy the printed table into
 docs/performance.md ("Reduction").
 """
@@ -122,16 +124,21 @@ def child(engine: str, path: str, net_file: str, out: str, memory_limit: str | N
         kw["memory_limit"] = memory_limit
     sampler = PeakSampler()
     t = time.perf_counter()
+    cpu = time.process_time()
     cd = load_coded(net, path, engine=engine, **kw)
     wall = time.perf_counter() - t
+    cpu = time.process_time() - cpu
     mem = sampler.stop()
+    maxrss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6
     if engine == "dask":
         extra_mb = sum(client.run(_worker_stop).values())
         client.close()
         cluster.close()
-    digest = hashlib.sha256(np.ascontiguousarray(cd.codes).tobytes() + cd.counts.tobytes()).hexdigest()
-    print(json.dumps({"wall": wall, "mem_mb": mem + extra_mb, "distinct": cd.n_distinct, "rows": cd.n_rows,
-                      "digest": digest, "maxrss_gb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6,
+    h = hashlib.sha256()
+    h.update(memoryview(np.ascontiguousarray(cd.codes)).cast("B"))
+    h.update(memoryview(np.ascontiguousarray(cd.counts)).cast("B"))
+    print(json.dumps({"wall": wall, "cpu": cpu, "mem_mb": mem + extra_mb, "distinct": cd.n_distinct, "rows": cd.n_rows,
+                      "digest": h.hexdigest(), "maxrss_gb": maxrss,
                       "load": " ".join(f"{x:.1f}" for x in os.getloadavg())}))
 
 
@@ -151,8 +158,8 @@ def main_net37(a) -> None:
     print(f"# 37-node network (benchmarks/bench_scale.py parquet data), Parquet; "
           f"{platform.processor() or platform.machine()}, {os.cpu_count()} CPUs, Python {platform.python_version()}; "
           f"load average at start {' '.join(f'{x:.1f}' for x in os.getloadavg())}")
-    print(f"{'rows':>11} {'engine':<8} {'wall s':>7} {'peak MiB':>9} {'peak RSS GB':>12} {'distinct rows':>14}  "
-          f"same as pandas  load")
+    print(f"{'rows':>11} {'engine':<8} {'wall s':>7} {'CPU s':>6} {'peak MiB':>9} {'peak RSS GB':>12} "
+          f"{'distinct rows':>14}  same as pandas  load")
     for rows in (int(r) for r in a.rows_list.split(",")):
         path, net_path = write_parquet(a.data_dir, rows)
         net_file = Path(net_path)
@@ -165,7 +172,7 @@ def main_net37(a) -> None:
             if engine == "pandas":
                 ref = res["digest"]
             same = "-" if ref is None else str(res["digest"] == ref)
-            print(f"{rows:>11,} {engine:<8} {res['wall']:>7.2f} {res['mem_mb']:>9.0f} {res['maxrss_gb']:>12.2f} "
+            print(f"{rows:>11,} {engine:<8} {res['wall']:>7.2f} {res['cpu']:>6.2f} {res['mem_mb']:>9.0f} {res['maxrss_gb']:>12.2f} "
                   f"{res['distinct']:>14,}  {same:<14}  {res['load']}", flush=True)
 
 
