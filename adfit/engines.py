@@ -37,7 +37,7 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 import pandas as pd
 
-from .data import (UNKNOWN, CodedData, LabelCoder, _count_problem, _csv_error, check_columns, code_columns,
+from .data import (HIDDEN, UNKNOWN, CodedData, LabelCoder, _count_problem, _csv_error, check_columns, code_columns,
                    common_columns, csv_header, encode_frame, first_error, iter_csv_batches, iter_parquet_batches,
                    key_layout, load_files, locator, parquet_names, resolve_inputs)
 from .rowkeys import PackedRows, reduce_words
@@ -307,6 +307,14 @@ class _ColumnMap:
                 by_code.setdefault(int(c), []).append(_sql_literal(self.kind, v))
         null = f"{column} IS NULL" + (f" OR isnan({column})" if self.kind == "float" else "")
         low, high = (min(self.values), max(self.values)) if self.kind == "int" and self.values else (0, _RANGE_MAX)
+        shift = int(self.values[low]) - low if high - low < _RANGE_MAX else None
+        if shift is not None and shift + low >= HIDDEN and all(self.values.get(v) == v + shift
+                                                                for v in range(low, high + 1)):
+            # integers that are the codes themselves (up to a shift): arithmetic, the cheapest form
+            term = f"(CAST({column} AS BIGINT) + ({shift + 1})) * CAST({mult} AS BIGINT)"
+            guard = "" if self.complete else f" WHEN {column} BETWEEN {low} AND {high} THEN {term} ELSE NULL"
+            return (f"(CASE WHEN {null} THEN CAST(0 AS BIGINT){guard} ELSE {term} END)" if self.complete
+                    else f"(CASE WHEN {null} THEN CAST(0 AS BIGINT){guard} END)")
         if high - low < _RANGE_MAX:  # integers: a list indexed by the value (NULL: foreign or absent)
             codes = [self.values.get(v, UNKNOWN) for v in range(low, high + 1)]
             terms = ", ".join("NULL" if c == UNKNOWN else str((int(c) + 1) * mult) for c in codes)
