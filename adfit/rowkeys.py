@@ -12,12 +12,16 @@ versions); the 37-node benchmark network (about 74 bits) has two.
 Reduction (:func:`reduce_words`) folds the words from the most significant one: the dense rank
 of word 0 among its distinct values (order-preserving) is combined with word 1 into one int64,
 ``rank * span_1 + word_1`` (or with the dense rank of word 1 when that would overflow), which is
-ranked again, and so on; the final dense rank is the index of each row's distinct row. A rank is
-found by sorting (few repeated values: ``np.sort`` with the row index packed into the low bits
-when key and index fit in 63 bits, else ``np.argsort``; a stable sort, which merges already
-sorted runs in linear time, when the input is known to be sorted pieces), by hashing
-(``pandas.factorize``, then sorting only the distinct values, when a sample shows many repeats),
-or by counting (``np.bincount`` when the key's range is small). Every path gives the same result.
+ranked again, and so on; the final dense rank is the index of each row's distinct row. When most
+rows differ (a sample of word 0 decides) the fold works in sorted order: word 0 is sorted
+(``np.sort`` with the row index packed into the low bits when key and index fit in 63 bits,
+else ``np.argsort``; a stable sort, which merges already sorted runs in linear time, when the
+input is known to be sorted pieces), the next combined key, taken in that order, is sorted
+except inside runs of equal word 0, so a stable sort orders it in about linear time, and the
+distinct rows are the words of the first row of each final run. When a sample shows many
+repeats, each combined key is ranked by hashing (``pandas.factorize``, then sorting only the
+distinct values), or by counting (``np.bincount``) when its range is small. Every path gives the
+same result; counts are summed in row order.
 """
 
 from __future__ import annotations
@@ -337,14 +341,13 @@ def _reduce_sorted(words: np.ndarray, spans: Sequence[int], w: np.ndarray | None
                    runs: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
     """Fold in sorted order: sort word 0; the next combined key, taken in that order, is sorted
     except inside runs of equal earlier words, so a stable sort (timsort) orders it in about
-    linear time when most rows differ; the last order gives every row's distinct row."""
+    linear time when most rows differ; the last order gives every row's distinct row, and the
+    distinct rows are the words of the first row of each run."""
     k, n = words.shape
     order, sk = _sorted(words[0], int(spans[0]), runs)
-    steps: list[tuple[np.ndarray, int, np.ndarray | None]] = []
     for i in range(1, k):
         new = _starts(sk)
-        uniq = sk[new]
-        m = uniq.shape[0]
+        m = int(np.count_nonzero(new))
         rs = np.cumsum(new, out=sk)  # the dense rank, in sorted order (sk is not needed any more)
         rs -= 1
         del new
@@ -352,21 +355,20 @@ def _reduce_sorted(words: np.ndarray, spans: Sequence[int], w: np.ndarray | None
         if m * si < LIMIT:
             rs *= np.int64(si)
             rs += np.take(words[i], order)
-            steps.append((uniq, si, None))
         else:  # rank word i too (its distinct values are at most n, and m * n < 2**63)
             r2 = _dense_rank(words[i], si) if _few_distinct(words[i]) else _rank_by_sort(words[i], si)
-            m2 = r2.uniq.shape[0]
-            rs *= np.int64(m2)
+            rs *= np.int64(r2.uniq.shape[0])
             rs += np.take(r2.rank, order)
-            steps.append((uniq, m2, r2.uniq))
             del r2
         o2 = np.argsort(rs, kind="stable")
         order = np.take(order, o2)
         sk = np.take(rs, o2)
         del rs, o2
     new = _starts(sk)
-    last = sk[new]
-    m = last.shape[0]
+    first = order[new]
+    distinct = np.take(words, first, axis=1)
+    m = first.shape[0]
+    del first
     if inverse or w is not None:
         rs = np.cumsum(new, out=sk)
         rs -= 1
@@ -377,7 +379,7 @@ def _reduce_sorted(words: np.ndarray, spans: Sequence[int], w: np.ndarray | None
     else:
         rank = None
         counts = np.diff(np.flatnonzero(new), append=n).astype(np.float64)
-    return _decode(last, steps, k), counts, (rank if inverse else None)
+    return distinct, counts, (rank if inverse else None)
 
 
 def _rank_by_sort(key: np.ndarray, span: int) -> _Rank:
