@@ -25,6 +25,7 @@ Reading rules (the same for every engine, see :mod:`adfit.engines`):
 from __future__ import annotations
 
 import csv
+import functools
 import glob as _glob
 import math
 import shlex
@@ -37,6 +38,7 @@ import pandas as pd
 
 from .errors import DataError
 from .network import Network
+from .rowkeys import KeyLayout, PackedRows, reduce_words
 
 HIDDEN = -1
 UNKNOWN = -2  # transient code of a label that is not a state (never left in a CodedData)
@@ -85,84 +87,31 @@ class CodedData:
 
 
 # ------------------------------------------------------------------ reduction
-def packed_multipliers(bases: Sequence[int]) -> np.ndarray | None:
-    """Multipliers of a mixed-radix int64 key over ``bases`` (last column fastest).
-
-    None when the product of the bases is not below 2**63 (the key would overflow int64).
-    """
-    if math.prod(int(b) for b in bases) >= 2 ** 63:
-        return None
-    mult = np.ones(len(bases), dtype=np.int64)
-    for j in range(len(bases) - 2, -1, -1):
-        mult[j] = mult[j + 1] * int(bases[j + 1])
-    return mult
-
-
-def packed_keys(codes: np.ndarray, mult: np.ndarray) -> np.ndarray:
-    """int64 key ``sum_j (code_j + 1) * mult_j`` of each row, computed column by column."""
-    key = np.zeros(codes.shape[0], dtype=np.int64)
-    for j in range(codes.shape[1]):
-        key += (codes[:, j].astype(np.int64) + 1) * mult[j]
-    return key
-
-
-def unpack_keys(keys: np.ndarray, mult: np.ndarray, bases: Sequence[int]) -> np.ndarray:
-    """Inverse of :func:`packed_keys`: int32 codes ``(len(keys), len(bases))``."""
-    out = np.empty((keys.shape[0], len(bases)), dtype=np.int32)
-    for j, b in enumerate(bases):
-        out[:, j] = (keys // mult[j]) % int(b) - 1
-    return out
-
-
-def key_layout(cards: Sequence[int]) -> tuple[np.ndarray | None, list[int]]:
-    """``(multipliers or None, bases)`` of the packed key of coded rows over nodes of ``cards``."""
-    bases = [int(c) + 1 for c in cards]
-    return packed_multipliers(bases), bases
-
-
-def sum_by_key(keys: np.ndarray, weights: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """``(sorted distinct keys, summed weights, inverse)``: hash the keys, sort only the distinct ones."""
-    first, uniq = pd.factorize(np.asarray(keys, dtype=np.int64), sort=False)
-    uniq = np.asarray(uniq, dtype=np.int64)
-    order = np.argsort(uniq, kind="stable")
-    rank = np.empty(order.shape[0], dtype=np.int64)
-    rank[order] = np.arange(order.shape[0])
-    inverse = rank[first]
-    w = None if weights is None else np.asarray(weights, dtype=np.float64)
-    counts = np.bincount(inverse, weights=w, minlength=order.shape[0]).astype(np.float64)
-    return uniq[order], counts, inverse
-
-
-def reduce_keys(keys: np.ndarray, weights: np.ndarray | None, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """:func:`reduce_rows` for rows given as packed keys (see :func:`packed_keys`)."""
-    mult, bases = key_layout(cards)
-    if mult is None:
-        raise ValueError("the packed key does not fit in int64 for these cardinalities")
-    uniq, counts, inverse = sum_by_key(keys, weights)
-    return unpack_keys(uniq, mult, bases), counts, inverse
+@functools.lru_cache(maxsize=64)
+def key_layout(cards: tuple[int, ...]) -> KeyLayout:
+    """The :class:`~adfit.rowkeys.KeyLayout` (int64 words) of coded rows over nodes of ``cards``."""
+    return KeyLayout(cards)
 
 
 def reduce_rows(codes: np.ndarray, weights: np.ndarray | None, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Reduce coded rows to distinct rows.
 
-    Returns ``(distinct_codes, counts, inverse)``; distinct rows come in ascending order of the
-    packed key ``sum_j (code_j + 1) * prod_{k>j} (card_k + 1)``, which is the lexicographic order
-    of the rows (so the order is the same whichever way the rows were read). Uses the packed
-    int64 key (hashed, then only the distinct keys sorted) when the product of ``(card + 1)`` is
-    below 2**63, else ``np.unique(axis=0)`` (same order).
+    Returns ``(distinct_codes, counts, inverse)``; distinct rows come in the lexicographic order
+    of the coded rows (first column most significant), so the order is the same whichever way
+    the rows were read. Each row is packed into int64 words (one word when the product of
+    ``(card + 1)`` is below 2**63, see :mod:`adfit.rowkeys`) and the word tuples are ranked.
     """
-    codes = np.asarray(codes)
-    w = None if weights is None else np.asarray(weights, dtype=np.float64)
-    codes = codes.reshape(-1, len(cards))
-    if codes.shape[0] == 0:
-        return codes.astype(np.int32), np.zeros(0), np.zeros(0, dtype=np.int64)
-    mult, bases = key_layout(cards)
-    if mult is not None:
-        return reduce_keys(packed_keys(codes, mult), w, cards)
-    distinct, inverse = np.unique(np.ascontiguousarray(codes, dtype=np.int32), axis=0, return_inverse=True)
-    inverse = inverse.reshape(-1)
-    counts = np.bincount(inverse, weights=w, minlength=distinct.shape[0]).astype(np.float64)
-    return distinct.astype(np.int32, copy=False), counts, inverse.astype(np.int64, copy=False)
+    layout = key_layout(tuple(int(c) for c in cards))
+    codes = np.asarray(codes).reshape(-1, len(layout.bases))
+    return reduce_packed(layout.pack(codes), weights, cards)
+
+
+def reduce_packed(rows: PackedRows, weights: np.ndarray | None, cards: Sequence[int], *,
+                  inverse: bool = True) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """:func:`reduce_rows` for rows already packed into words (see :func:`code_columns`)."""
+    layout = key_layout(tuple(int(c) for c in cards))
+    words, counts, inv = reduce_words(rows.words, layout.spans, weights, inverse=inverse)
+    return layout.unpack(words), counts, inv
 
 
 # --------------------------------------------------------------------- coding
@@ -219,6 +168,45 @@ def _factorize(values: Any) -> tuple[np.ndarray, list[Any]]:
     return np.asarray(codes), list(uniques)
 
 
+def _int_column(values: Any) -> tuple[np.ndarray, int, np.ndarray, np.ndarray | None] | None:
+    """A pyarrow integer column as ``(index, base, present, nulls)``: cell value = ``base + index``.
+
+    ``present`` lists the distinct indices that occur, ``nulls`` flags the null cells (their
+    index is that of the smallest value), or is None when there are none. None unless ``values``
+    is a pyarrow integer array whose values span fewer than 65 536 integers: then
+    :meth:`LabelCoder.code` indexes a small table instead of hashing the cells.
+    """
+    try:
+        import pyarrow as pa
+        import pyarrow.compute as pc
+    except ImportError:  # pragma: no cover - pyarrow is a dependency
+        return None
+    if not isinstance(values, (pa.Array, pa.ChunkedArray)) or not pa.types.is_integer(values.type):
+        return None
+    arr = values.combine_chunks() if isinstance(values, pa.ChunkedArray) else values
+    n = len(arr)
+    if arr.null_count == n:
+        return np.zeros(n, dtype=np.intp), 0, np.zeros(0, dtype=np.intp), np.ones(n, dtype=bool)
+    mm = pc.min_max(arr)
+    low, high = int(mm["min"].as_py()), int(mm["max"].as_py())
+    if high - low >= 1 << 16:
+        return None
+    nulls = None
+    if arr.null_count:
+        nulls = arr.is_null().to_numpy(zero_copy_only=False)
+        arr = pc.fill_null(arr, low)
+    vals = arr.to_numpy()
+    if low >= 0 and high < 1 << 16 and vals.dtype.itemsize <= 2:
+        base, index = 0, vals.view(np.dtype(f"u{vals.dtype.itemsize}"))  # the values themselves, no copy
+    else:
+        base, index = low, (vals.astype(np.int64) - low)
+    if high - base < 1 << 12:  # a short range: code every value in it (those absent are never looked up)
+        present = np.arange(high - base + 1)
+    else:
+        present = np.flatnonzero(np.bincount(index, minlength=1))
+    return index, int(base), present, nulls
+
+
 def _value_at(values: Any, i: int) -> Any:
     if hasattr(values, "iloc"):
         return values.iloc[i]
@@ -229,6 +217,31 @@ def _value_at(values: Any, i: int) -> Any:
 def _show(label: Any) -> str:
     s = label if isinstance(label, str) else str(label)
     return repr(s if len(s) <= 60 else s[:57] + "...")
+
+
+@dataclass(frozen=True, eq=False)
+class PreparedColumn:
+    """A coded column not yet materialised: cell ``i`` has code ``table[index[i]]``, or HIDDEN
+    where ``nulls[i]`` (``index`` may be -1: the table's last slot). ``foreign``: the table holds
+    UNKNOWN for a value that may occur (only then is the column scanned for a foreign label)."""
+
+    index: np.ndarray
+    table: np.ndarray
+    nulls: np.ndarray | None
+    foreign: bool
+
+    def codes(self) -> np.ndarray:
+        codes = np.take(self.table, self.index)
+        if self.nulls is not None:
+            np.putmask(codes, self.nulls, HIDDEN)
+        return codes
+
+    def first_foreign(self, codes: np.ndarray | None = None) -> int | None:
+        """Index of the first cell with a foreign label, or None."""
+        if not self.foreign:
+            return None
+        bad = np.flatnonzero((self.codes() if codes is None else codes) == UNKNOWN)
+        return int(bad[0]) if bad.size else None
 
 
 class LabelCoder:
@@ -249,23 +262,47 @@ class LabelCoder:
                     f"node {name!r} has the state {clash[0]!r}, which is also a missing-value marker; "
                     f"choose the markers with --missing (for example --missing '?') so that it is read as a state")
             self._lookup[name] = {s: i for i, s in enumerate(node.states)}
+        # dtype of the codes that code() returns: room for UNKNOWN (-2) .. the largest state index
+        cards = [network.node(n).card for n in network.observed_names]
+        self.dtype = np.dtype(np.int8) if max(cards, default=1) <= 126 else np.dtype(np.int32)
 
     def code(self, name: str, values: Any) -> np.ndarray:
-        """int32 codes of one column: state index, HIDDEN for a gap, UNKNOWN for a foreign label."""
+        """Codes of one column: state index, HIDDEN for a gap, UNKNOWN for a foreign label.
+
+        The dtype is :attr:`dtype` (int8 unless a node has more than 125 states).
+        """
+        return self.prepare(name, values).codes()
+
+    def code_checked(self, name: str, values: Any) -> tuple[np.ndarray, int | None]:
+        """``(codes, index of the first UNKNOWN code or None)``; scans only when a label is foreign."""
+        col = self.prepare(name, values)
+        codes = col.codes()
+        return codes, col.first_foreign(codes)
+
+    def prepare(self, name: str, values: Any) -> "PreparedColumn":
+        """The cells of a column as indices into a table of codes (see :class:`PreparedColumn`)."""
+        fast = _int_column(values)
+        if fast is not None:  # typed integer column: index a table by value, no hashing
+            index, base, present, nulls = fast
+            table = np.full(int(present[-1]) + 1 if present.size else 1, UNKNOWN, dtype=self.dtype)
+            for k in present.tolist():  # the values that may occur
+                table[k] = self._code_of(name, base + k)
+            return PreparedColumn(index, table, nulls, bool(np.any(table[present] == UNKNOWN)))
         fcodes, uniques = _factorize(values)
-        lookup = self._lookup[name]
-        table = np.full(len(uniques) + 1, HIDDEN, dtype=np.int32)  # last slot: the null sentinel
+        table = np.full(len(uniques) + 1, HIDDEN, dtype=self.dtype)  # last slot: the null sentinel (-1)
         for k, v in enumerate(uniques):
-            cands = _candidates(v)
-            if cands is None or any(c in self.missing for c in cands):
-                continue
-            code = UNKNOWN
-            for c in cands:
-                if c in lookup:
-                    code = lookup[c]
-                    break
-            table[k] = code
-        return table[fcodes]  # a null (-1) picks the last slot
+            table[k] = self._code_of(name, v)
+        return PreparedColumn(fcodes, table, None, bool(np.any(table == UNKNOWN)))
+
+    def _code_of(self, name: str, v: Any) -> int:
+        cands = _candidates(v)
+        if cands is None or any(c in self.missing for c in cands):
+            return HIDDEN
+        lookup = self._lookup[name]
+        for c in cands:
+            if c in lookup:
+                return lookup[c]
+        return UNKNOWN
 
     def label_error(self, name: str, label: Any, where: str) -> DataError:
         states = self.network.node(name).states
@@ -339,9 +376,8 @@ def first_error(coder: "LabelCoder", get: Callable[[str], Any], names: Sequence[
     first = _FirstError()
     for name in names:
         col = get(name)
-        bad = np.flatnonzero(coder.code(name, col) == UNKNOWN)
-        if bad.size:
-            i = int(bad[0])
+        i = coder.prepare(name, col).first_foreign()
+        if i is not None:
             first.offer(i, lambda name=name, col=col, i=i: coder.label_error(name, _value_at(col, i),
                                                                             locate(row_offset + i)))
     if count_column is not None:
@@ -402,69 +438,80 @@ def check_columns(network: Network, columns: Sequence[str], *, count_column: str
 
 def code_columns(network: Network, coder: LabelCoder, get: Callable[[str], Any], n: int, *,
                  count_column: str | None, locate: Locate, row_offset: int = 0,
-                 packed: bool = False) -> tuple[np.ndarray, np.ndarray | None]:
+                 packed: bool = False, out: np.ndarray | None = None) -> tuple[np.ndarray | PackedRows, np.ndarray | None]:
     """Code the columns of one table (or chunk) of ``n`` rows; ``get(name)`` returns a column.
 
     Returns ``(rows, weights)`` with one entry per record (weights None without a count column):
-    ``rows`` is the int32 code matrix ``(n, n_nodes)``, or with ``packed=True`` and a key that
-    fits in int64, the packed int64 keys ``(n,)`` (no code matrix is built: less memory).
+    ``rows`` is the int32 code matrix ``(n, n_nodes)``, or with ``packed=True`` the rows packed
+    into int64 words (:class:`~adfit.rowkeys.PackedRows`; no code matrix is built: less memory),
+    written into ``out`` (an int64 ``(k, n)`` array or view) when given.
     Raises DataError for the earliest row holding an unknown label or an invalid count (within a
     row: labels in network order, then the count), naming the row through ``locate(row_offset + i)``.
     """
-    mult, _ = key_layout(network.cards) if packed else (None, None)
-    if mult is not None:
-        rows = np.zeros(n, dtype=np.int64)  # latent and hidden cells add (-1 + 1) * mult = 0
-    else:
-        rows = np.full((n, len(network)), HIDDEN, dtype=np.int32, order="F")  # filled column by column
+    columns: list[PreparedColumn | None] = [None] * len(network)  # latent nodes: every cell hidden
     first = _FirstError()
     for name in network.observed_names:
         col = get(name)
-        c = coder.code(name, col)
-        bad = np.flatnonzero(c == UNKNOWN)
-        if bad.size:
-            i = int(bad[0])
+        c = coder.prepare(name, col)
+        i = c.first_foreign()
+        if i is not None:
             first.offer(i, lambda name=name, col=col, i=i: coder.label_error(name, _value_at(col, i),
                                                                             locate(row_offset + i)))
             continue
-        j = network.index(name)
-        if mult is not None:
-            rows += (c.astype(np.int64) + 1) * mult[j]
-        else:
-            rows[:, j] = c
+        columns[network.index(name)] = c
     weights = None
     if count_column is not None:
         weights, i, what = _count_problem(get(count_column))
         if i is not None:
             first.offer(i, lambda: DataError(f"{locate(row_offset + i)}, column {count_column!r}: {what}"))
     first.raise_if_any()
+    if packed:
+        return key_layout(tuple(network.cards)).pack_prepared(columns, n, out=out), weights
+    rows = np.full((n, len(network)), HIDDEN, dtype=np.int32)
+    for j, c in enumerate(columns):
+        if c is not None:
+            rows[:, j] = c.codes()
     return rows, weights
 
 
-def reduce_any(rows: np.ndarray, weights: np.ndarray | None, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """:func:`reduce_rows` for what :func:`code_columns` returns: a 2-D code matrix, or 1-D packed keys."""
-    rows = np.asarray(rows)
-    if rows.ndim == 1:
-        if rows.shape[0] == 0:
-            return np.zeros((0, len(cards)), np.int32), np.zeros(0), np.zeros(0, dtype=np.int64)
-        return reduce_keys(rows, weights, cards)
+def reduce_any(rows: np.ndarray | PackedRows, weights: np.ndarray | None, cards: Sequence[int], *,
+               inverse: bool = True) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """:func:`reduce_rows` for what :func:`code_columns` returns: a code matrix or packed rows."""
+    if isinstance(rows, PackedRows):
+        return reduce_packed(rows, weights, cards, inverse=inverse)
     return reduce_rows(rows, weights, cards)
 
 
-def coded_from_rows(network: Network, codes: np.ndarray, weights: np.ndarray | None, source: str, *,
+def select_rows(rows: np.ndarray | PackedRows, keep: np.ndarray) -> np.ndarray | PackedRows:
+    """The records of ``rows`` (code matrix or packed rows) where ``keep`` is true."""
+    return PackedRows(rows.words[:, keep]) if isinstance(rows, PackedRows) else rows[keep]
+
+
+def concat_rows(parts: Sequence[np.ndarray | PackedRows]) -> np.ndarray | PackedRows:
+    """The records of several code matrices, or of several packed rows, one after the other."""
+    if len(parts) == 1:
+        return parts[0]
+    if isinstance(parts[0], PackedRows):
+        return PackedRows(np.concatenate([p.words for p in parts], axis=1))
+    return np.concatenate(parts)
+
+
+def coded_from_rows(network: Network, codes: np.ndarray | PackedRows, weights: np.ndarray | None, source: str, *,
                     keep_inverse: bool = True) -> CodedData:
-    """Reduce per-record codes (2-D) or packed keys (1-D), with optional weights, to a :class:`CodedData`.
+    """Reduce per-record codes (a code matrix or packed rows), with optional weights, to a :class:`CodedData`.
 
     Records of weight 0 are dropped (and then no ``inverse`` is kept).
     """
     if weights is not None:
         keep = weights > 0
         if not keep.all():
-            codes, weights = codes[keep], weights[keep]
+            codes, weights = select_rows(codes, keep), weights[keep]
             keep_inverse = False
-    distinct, counts, inverse = reduce_any(codes, weights, network.cards)
+    keep_inverse = keep_inverse and weights is None
+    distinct, counts, inverse = reduce_any(codes, weights, network.cards, inverse=keep_inverse)
     if distinct.shape[0] == 0:
         raise DataError(f"{source}: no records (the table is empty or all counts are 0)")
-    return CodedData(distinct, counts, inverse if keep_inverse and weights is None else None, source)
+    return CodedData(distinct, counts, inverse if keep_inverse else None, source)
 
 
 def frame_rows(source: str) -> Locate:
@@ -752,10 +799,45 @@ def read_table(path: str | Path) -> pd.DataFrame:
 
 
 def _encode_file(network: Network, f: Path, fmt: str, coder: LabelCoder, read: Sequence[str],
-                 count_column: str | None) -> tuple[np.ndarray, np.ndarray | None]:
+                 count_column: str | None) -> tuple[PackedRows, np.ndarray | None]:
     table = read_csv_arrow(f, read) if fmt == "csv" else read_parquet_arrow(f, read)
-    return code_columns(network, coder, table.column, table.num_rows, count_column=count_column,
-                        locate=locator(f, fmt), packed=True)
+    return encode_table(network, coder, table, count_column=count_column, locate=locator(f, fmt))
+
+
+def encode_table(network: Network, coder: LabelCoder, table: Any, *, count_column: str | None, locate: Locate,
+                 batch_rows: int = 1 << 20) -> tuple[PackedRows, np.ndarray | None]:
+    """Code a pyarrow Table of records into packed rows (and weights), piece by piece.
+
+    The table is taken in zero-copy slices of at most ``batch_rows`` rows, each coded straight
+    into its part of one array of words, so no column is copied whole; errors name the earliest
+    bad row of the table, as when coding it at once.
+    """
+    n = table.num_rows
+    layout = key_layout(tuple(network.cards))
+    words = np.empty((layout.k, n), dtype=np.int64)
+    weights = [] if count_column is not None else None
+    offset = 0
+    for batch in table.to_batches(max_chunksize=int(batch_rows)):
+        m = batch.num_rows
+        _, w = code_columns(network, coder, batch.column, m, count_column=count_column, locate=locate,
+                            row_offset=offset, packed=True, out=words[:, offset:offset + m])
+        if weights is not None:
+            weights.append(w)
+        offset += m
+    if offset != n:  # pragma: no cover - to_batches covers every row
+        raise AssertionError("table batches do not cover the table")
+    if weights is not None:
+        weights = np.concatenate(weights) if weights else np.zeros(0)
+    return PackedRows(words), weights
+
+
+def _release_arrow_memory() -> None:
+    """Hand the memory pyarrow keeps for reuse back to the system (the tables read are gone)."""
+    try:
+        import pyarrow as pa
+        pa.default_memory_pool().release_unused()
+    except (ImportError, AttributeError):  # pragma: no cover
+        pass
 
 
 def load_files(network: Network, path: str | Path | Sequence[str | Path], *, missing: Iterable[str] | None = None,
@@ -771,7 +853,8 @@ def load_files(network: Network, path: str | Path | Sequence[str | Path], *, mis
                          source=str(files[0]) if len(files) == 1 else source)
     coder = LabelCoder(network, missing)
     parts = [_encode_file(network, f, fmt, coder, read, count_column) for f in files]
-    codes = np.concatenate([c for c, _ in parts]) if len(parts) > 1 else parts[0][0]
+    _release_arrow_memory()
+    codes = concat_rows([c for c, _ in parts])
     weights = None
     if count_column is not None:
         weights = np.concatenate([w for _, w in parts])

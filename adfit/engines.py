@@ -1,9 +1,10 @@
 """Reduction of large data files to distinct coded rows with counts, by several engines.
 
 Every engine returns the same :class:`~adfit.data.CodedData`: the same codes (the rules of
-:mod:`adfit.data`), the same counts, distinct rows sorted by the packed key (lexicographic
-order of the coded rows), and ``source`` the path as given. Only the ``pandas`` engine keeps the
-per-record ``inverse``; the others set it to None.
+:mod:`adfit.data`), the same counts, distinct rows in the lexicographic order of the coded
+rows (first node most significant; rows are packed into int64 words, :mod:`adfit.rowkeys`),
+and ``source`` the path as given. Only the ``pandas`` engine keeps the per-record ``inverse``;
+the others set it to None.
 
 Engines (``--engine``):
 
@@ -36,10 +37,10 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 import pandas as pd
 
-from .data import (UNKNOWN, CodedData, LabelCoder, _count_problem, _csv_error, check_columns, code_columns,
+from .data import (HIDDEN, UNKNOWN, CodedData, LabelCoder, _count_problem, _csv_error, check_columns, code_columns,
                    common_columns, csv_header, encode_frame, first_error, iter_csv_batches, iter_parquet_batches,
-                   key_layout, load_files, locator, packed_keys, parquet_names, reduce_rows, resolve_inputs,
-                   sum_by_key, unpack_keys)
+                   key_layout, load_files, locator, parquet_names, resolve_inputs)
+from .rowkeys import PackedRows, reduce_words
 from .errors import DataError, OptionError
 from .network import Network
 
@@ -93,68 +94,73 @@ def _batches(plan: ReadPlan, file: str, columns: Sequence[str], row_groups: Sequ
 class Accumulator:
     """Running table of distinct coded rows and summed counts (memory ~ distinct rows).
 
-    Rows are kept as packed int64 keys when the key fits (else as code rows). Reduced pieces wait
-    in a list until they hold as many rows as the table (at least ``merge_rows``), then are merged
-    at once, so the table is not rebuilt for every small piece.
+    Rows are kept packed into int64 words (:mod:`adfit.rowkeys`: 16 bytes a row for two words),
+    sorted. Reduced pieces wait in a list until they hold as many rows as the table (at least
+    ``merge_rows``), then are merged at once (a stable sort of the sorted pieces: linear time),
+    so the table is not rebuilt for every small piece.
     """
 
     merge_rows = 1 << 16
 
     def __init__(self, cards: Sequence[int]):
-        self.cards = tuple(cards)
-        self.mult, self.bases = key_layout(self.cards)
-        self.rows = np.zeros(0, np.int64) if self.mult is not None else np.zeros((0, len(self.cards)), np.int32)
+        self.cards = tuple(int(c) for c in cards)
+        self.layout = key_layout(self.cards)
+        self.words = self.layout.empty().words
         self.counts = np.zeros(0)
         self._pending: list[tuple[np.ndarray, np.ndarray]] = []
         self._pending_rows = 0
 
-    def _reduce(self, rows: np.ndarray, weights: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
-        if self.mult is not None:
-            keys, counts, _ = sum_by_key(rows, weights)
-            return keys, counts
-        d, c, _ = reduce_rows(rows, weights, self.cards)
-        return d, c
-
-    def add(self, rows: np.ndarray, weights: np.ndarray | None = None) -> None:
-        """Add records: a code matrix ``(n, n_nodes)`` or packed keys ``(n,)``, optionally weighted."""
-        rows = np.asarray(rows)
-        if rows.ndim == 2 and self.mult is not None:
-            rows = packed_keys(rows, self.mult)
+    def add(self, rows: "np.ndarray | PackedRows", weights: np.ndarray | None = None) -> None:
+        """Add records: a code matrix ``(n, n_nodes)`` or :class:`PackedRows`, optionally weighted."""
+        if not isinstance(rows, PackedRows):
+            rows = self.layout.pack(np.asarray(rows))
+        words = rows.words
         if weights is not None:
+            weights = np.asarray(weights, dtype=np.float64)
             keep = weights > 0
             if not keep.all():
-                rows, weights = rows[keep], weights[keep]
-        if rows.shape[0] == 0:
+                words, weights = words[:, keep], weights[keep]
+        if words.shape[1] == 0:
             return
-        piece = self._reduce(rows, weights)
-        self._pending.append(piece)
-        self._pending_rows += piece[0].shape[0]
-        if self._pending_rows >= max(self.rows.shape[0], self.merge_rows):
+        d, c, _ = reduce_words(words, self.layout.spans, weights, inverse=False)
+        self._push(d, c)
+
+    def add_partial(self, rows: PackedRows, counts: np.ndarray) -> None:
+        """Add what another Accumulator's :meth:`partial` returned (distinct, sorted, counts > 0)."""
+        if rows.n:
+            self._push(rows.words, np.asarray(counts, dtype=np.float64))
+
+    def _push(self, words: np.ndarray, counts: np.ndarray) -> None:
+        self._pending.append((words, counts))
+        self._pending_rows += words.shape[1]
+        if self._pending_rows >= max(self.words.shape[1], self.merge_rows):
             self._merge()
 
     def _merge(self) -> None:
         if not self._pending:
             return
-        rows = np.concatenate([self.rows] + [r for r, _ in self._pending])
+        if self.words.shape[1] == 0 and len(self._pending) == 1:  # one reduced piece: it is the table
+            (self.words, self.counts), self._pending, self._pending_rows = self._pending[0], [], 0
+            return
+        words = np.concatenate([self.words] + [w for w, _ in self._pending], axis=1)
         counts = np.concatenate([self.counts] + [c for _, c in self._pending])
-        self.rows, self.counts = self._reduce(rows, counts)
         self._pending, self._pending_rows = [], 0
+        self.words = self.counts = None  # let the old table go before the merge allocates
+        self.words, self.counts, _ = reduce_words(words, self.layout.spans, counts, inverse=False, runs=True)
 
     def result(self) -> tuple[np.ndarray, np.ndarray]:
-        """``(distinct code rows, counts)`` in packed-key (lexicographic) order."""
+        """``(distinct code rows int32, counts)`` in lexicographic order."""
         self._merge()
-        if self.mult is not None:
-            return unpack_keys(self.rows, self.mult, self.bases), self.counts
-        return self.rows, self.counts
+        return self.layout.unpack(self.words), self.counts
 
-    def partial(self) -> tuple[np.ndarray, np.ndarray]:
-        """``(distinct keys or code rows, counts)``: what another Accumulator's :meth:`add` takes."""
+    def partial(self) -> tuple[PackedRows, np.ndarray]:
+        """``(distinct rows as words, counts)``: what another Accumulator's :meth:`add_partial` takes."""
         self._merge()
-        return self.rows, self.counts
+        return PackedRows(self.words), self.counts
 
 
 def _finish(plan: ReadPlan, acc: "Accumulator") -> CodedData:
-    codes, counts = acc.result()  # distinct, merged, sorted by the packed key
+    codes, counts = acc.result()  # distinct, merged, in lexicographic order
     if codes.shape[0] == 0:
         raise DataError(f"{plan.source}: no records (the table is empty or all counts are 0)")
     return CodedData(codes, counts, None, plan.source)
@@ -164,7 +170,7 @@ def reduce_piece(plan: ReadPlan, file: str, row_groups: Sequence[int] | None = N
                  row_offset: int = 0) -> tuple[np.ndarray, np.ndarray]:
     """Stream one file (or some row groups of a Parquet file) into distinct rows and counts.
 
-    Returns :meth:`Accumulator.partial` (packed keys when they fit, else code rows).
+    Returns :meth:`Accumulator.partial` (distinct rows packed into words, and their counts).
 
     ``row_offset`` is the number of data rows of the file before the first row group given
     (for messages). Raises DataError naming file, line/row, column and label.
@@ -192,7 +198,7 @@ def _host() -> str:
 def reduce_stream(plan: ReadPlan) -> CodedData:
     acc = Accumulator(plan.network.cards)
     for f in plan.files:
-        acc.add(*reduce_piece(plan, f))
+        acc.add_partial(*reduce_piece(plan, f))
     return _finish(plan, acc)
 
 
@@ -258,7 +264,111 @@ def _duckdb_error(plan: ReadPlan, e: Exception) -> DataError:
     return DataError(f"{plan.source}: DuckDB could not read the data ({first})")
 
 
+_INT_TYPES = {"TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT", "UINTEGER",
+              "UBIGINT", "UHUGEINT"}
+_SQL_KIND = {"VARCHAR": "text", "BOOLEAN": "bool", "FLOAT": "float", "DOUBLE": "float",
+             **{t: "int" for t in _INT_TYPES}}
+_RANGE_MAX = 1 << 12
+DUCKDB_ORDER = True  # DuckDB sorts the groups (in parallel); adfit then merges them in linear time  # an integer column whose values span at most this many is mapped value by value
+
+
+def _sql_literal(kind: str, v: Any) -> str:
+    if kind == "text":
+        return _sql_str(str(v))
+    if kind == "int":
+        return str(int(v))
+    if kind == "bool":
+        return "true" if v else "false"
+    return f"CAST({_sql_str(repr(float(v)))} AS DOUBLE)"
+
+
+@dataclass
+class _ColumnMap:
+    """The SQL mapping of one data column to the term ``(code + 1) * multiplier`` of its word.
+
+    ``values`` maps raw values (as Python values) to codes (HIDDEN included); a value that is not
+    listed, other than a null (or a floating NaN), gives NULL, which marks the row's word as not
+    coded. ``complete``: every value the column can hold is listed (an integer range, booleans,
+    or the distinct values found in the data).
+    """
+
+    name: str
+    kind: str
+    values: dict
+    complete: bool
+
+    def unknown(self) -> bool:
+        return any(c == UNKNOWN for c in self.values.values())
+
+    def sql(self, column: str, mult: int) -> str:
+        by_code: dict[int, list[str]] = {}
+        for v, c in self.values.items():
+            if c != UNKNOWN:
+                by_code.setdefault(int(c), []).append(_sql_literal(self.kind, v))
+        null = f"{column} IS NULL" + (f" OR isnan({column})" if self.kind == "float" else "")
+        low, high = (min(self.values), max(self.values)) if self.kind == "int" and self.values else (0, _RANGE_MAX)
+        shift = int(self.values[low]) - low if high - low < _RANGE_MAX else None
+        if shift is not None and shift + low >= HIDDEN and all(self.values.get(v) == v + shift
+                                                                for v in range(low, high + 1)):
+            # integers that are the codes themselves (up to a shift): arithmetic, the cheapest form
+            term = f"(CAST({column} AS BIGINT) + ({shift + 1})) * CAST({mult} AS BIGINT)"
+            guard = "" if self.complete else f" WHEN {column} BETWEEN {low} AND {high} THEN {term} ELSE NULL"
+            return (f"(CASE WHEN {null} THEN CAST(0 AS BIGINT){guard} ELSE {term} END)" if self.complete
+                    else f"(CASE WHEN {null} THEN CAST(0 AS BIGINT){guard} END)")
+        if high - low < _RANGE_MAX:  # integers: a list indexed by the value (NULL: foreign or absent)
+            codes = [self.values.get(v, UNKNOWN) for v in range(low, high + 1)]
+            terms = ", ".join("NULL" if c == UNKNOWN else str((int(c) + 1) * mult) for c in codes)
+            return (f"(CASE WHEN {null} THEN CAST(0 AS BIGINT) WHEN {column} BETWEEN {low} AND {high} "
+                    f"THEN CAST([{terms}] AS BIGINT[])[{column} - ({low}) + 1] END)")
+        whens = " ".join(f"WHEN {lit} THEN CAST({(c + 1) * mult} AS BIGINT)"
+                         for c in sorted(by_code) for lit in by_code[c])
+        # a value not listed gives NULL (the row's word is then NULL); a null cell gives 0
+        tail = f"ELSE CASE WHEN {null} THEN CAST(0 AS BIGINT) END"
+        return f"(CASE {column} {whens} {tail} END)" if whens else f"(CASE WHEN {null} THEN CAST(0 AS BIGINT) END)"
+
+
+def _expected_map(plan: ReadPlan, name: str, kind: str, low: Any, high: Any) -> _ColumnMap:
+    """The mapping known before reading the cells: every value of a small integer range or of a
+    boolean column, else the spellings that plainly mean a state or a gap (the state labels, the
+    missing markers; for floating columns the numbers the labels spell)."""
+    coder = plan.coder
+    if kind == "bool":
+        return _ColumnMap(name, kind, {True: coder._code_of(name, True), False: coder._code_of(name, False)}, True)
+    if kind == "int" and low is not None and int(high) - int(low) < _RANGE_MAX:
+        return _ColumnMap(name, kind, {v: coder._code_of(name, v) for v in range(int(low), int(high) + 1)}, True)
+    if kind == "int" and low is None:  # every cell is null
+        return _ColumnMap(name, kind, {}, True)
+    values: dict = {}
+    labels = list(plan.network.node(name).states)
+    if kind == "text":
+        for v in labels + sorted(coder.missing):
+            values[v] = coder._code_of(name, v)
+    else:
+        for lab in labels:
+            try:
+                v = int(lab) if kind == "int" else float(lab)
+            except ValueError:
+                continue
+            if kind == "float" and not np.isfinite(v):
+                continue
+            c = coder._code_of(name, v)
+            if c >= 0:
+                values[v] = c
+    return _ColumnMap(name, kind, {v: c for v, c in values.items() if c != UNKNOWN}, False)
+
+
 def reduce_duckdb(plan: ReadPlan, *, memory_limit: str | None = None, threads: int | None = None) -> CodedData:
+    """DuckDB codes the cells in SQL and groups the packed words of the rows.
+
+    Each column's cells are mapped to its term of the row's words by a ``CASE`` over the values
+    known beforehand (:func:`_expected_map`); DuckDB groups the rows by their words (in parallel,
+    spilling under its memory limit) and adfit only ranks the distinct rows. When a cell is not
+    among the known values (spaces around a label, a foreign label, a typed value spelled
+    differently), the distinct values of the columns concerned are read first and coded by the
+    same rules as every engine, and the grouping is run again with the complete mapping (or the
+    earliest bad cell is reported). Columns of other types (dates, decimals, ...) are grouped by
+    their raw values and coded afterwards.
+    """
     try:
         import duckdb
     except ImportError:
@@ -276,29 +386,122 @@ def reduce_duckdb(plan: ReadPlan, *, memory_limit: str | None = None, threads: i
             con = duckdb.connect(":memory:", config=config)
         except duckdb.Error as e:
             raise OptionError(f"DuckDB settings rejected ({str(e).splitlines()[0]}); give the memory limit as, for example, 2GB") from None
-        try:
-            src, where = _duckdb_source(plan)
-            sel = ", ".join(f"{_sql_ident(by_trim[c])} AS {_sql_ident('c' + str(i))}" for i, c in enumerate(plan.read))
-            grp = ", ".join(_sql_ident("c" + str(i)) for i in range(len(plan.read)))
-            q = f"SELECT {sel}, count(*) AS __adfit_n FROM {src}{where} GROUP BY {grp}"
+
+        def sql(q: str):
             try:
-                table = con.sql(q).to_arrow_table()
+                return con.sql(q).to_arrow_table()
             except duckdb.Error as e:
                 raise _duckdb_error(plan, e) from None
+        try:
+            src, where = _duckdb_source(plan)
+            cols = {c: _sql_ident(by_trim[c]) for c in plan.read}
+            names = [c for c in plan.read if c != plan.count_column]
+            try:
+                types = [str(t) for t in con.sql(f"SELECT {', '.join(cols[c] for c in names)} FROM {src}{where} LIMIT 0").types]
+            except duckdb.Error as e:
+                raise _duckdb_error(plan, e) from None
+            kinds = {c: _SQL_KIND.get(t) for c, t in zip(names, types)}
+            if any(k is None for k in kinds.values()):
+                return _reduce_duckdb_raw(plan, sql, src, where, cols)
+            words, weights = _duckdb_groups(plan, sql, src, where, cols, kinds)
         finally:
-            con.close()
+            con.close()  # DuckDB's memory goes before adfit sorts the groups
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
-    return _code_grouped(plan, table)
+    layout = key_layout(tuple(plan.network.cards))
+    keep = weights > 0
+    if not keep.all():
+        words, weights = words[:, keep], weights[keep]
+    words, counts, _ = reduce_words(words, layout.spans, weights, inverse=False, runs=DUCKDB_ORDER)
+    if words.shape[1] == 0:
+        raise DataError(f"{plan.source}: no records (the table is empty or all counts are 0)")
+    return CodedData(layout.unpack(words), counts, None, plan.source)
+
+
+def _duckdb_groups(plan: ReadPlan, sql, src: str, where: str, cols: dict[str, str],
+                   kinds: dict[str, str]) -> tuple[np.ndarray, np.ndarray]:
+    """The groups of rows by their words: ``(words (k, m), weights (m,))`` (sorted when
+    :data:`DUCKDB_ORDER`); raises DataError naming the earliest bad cell."""
+    net = plan.network
+    layout = key_layout(tuple(net.cards))
+    names = list(kinds)
+    ints = [c for c in names if kinds[c] == "int"]
+    bounds: dict[str, tuple[Any, Any]] = {c: (None, None) for c in names}
+    if ints:  # Parquet keeps min and max in its metadata: no scan
+        t = sql("SELECT " + ", ".join(f"min({cols[c]}), max({cols[c]})" for c in ints) + f" FROM {src}{where}")
+        for k, c in enumerate(ints):
+            bounds[c] = (t.column(2 * k)[0].as_py(), t.column(2 * k + 1)[0].as_py())
+    maps = {c: _expected_map(plan, c, kinds[c], *bounds[c]) for c in names}
+    suspects: list[str] = []
+    for attempt in range(2):
+        table, nulls = _group_words(plan, sql, src, where, cols, maps, layout)
+        if not nulls.any():
+            break
+        if attempt:
+            raise DataError(f"{plan.source}: some cells could not be coded; check the columns "
+                            f"{', '.join(c for c in names if maps[c].complete is False)}")
+        # which columns may hold a value outside their mapping: read their distinct values
+        words_hit = set(np.flatnonzero(nulls).tolist())
+        todo = [c for c in names if int(layout.word[net.index(c)]) in words_hit
+                and (not maps[c].complete or maps[c].unknown())]
+        t = sql("SELECT " + ", ".join(f"list(DISTINCT {cols[c]})" for c in todo) + f" FROM {src}{where}")
+        for k, c in enumerate(todo):
+            values = t.column(k)[0].values
+            codes = plan.coder.code(c, values)
+            if np.any(codes == UNKNOWN):
+                suspects.append(c)
+            maps[c] = _ColumnMap(c, kinds[c], {v: int(x) for v, x in zip(values.to_pylist(), codes.tolist())
+                                               if v is not None}, True)
+        if suspects:
+            break
+    weights = table.column("n").to_numpy().astype(np.float64)
+    if plan.count_column is not None:
+        w, bad, _ = _count_problem(table.column("k"))
+        if bad is not None:
+            suspects.append(plan.count_column)
+        weights = weights * w
+    if suspects:
+        _first_bad(plan, [c for c in plan.read if c in suspects])  # raises with the earliest bad cell
+        raise DataError(f"{plan.source}: column(s) {suspects} hold values that cannot be read; check them")
+    words = np.empty((layout.k, table.num_rows), dtype=np.int64)
+    for i in range(layout.k):
+        offset = 0
+        for chunk in table.column(f"w{i}").chunks:  # one copy, chunk by chunk
+            words[i, offset:offset + len(chunk)] = chunk.to_numpy()
+            offset += len(chunk)
+    return words, weights
+
+
+def _group_words(plan: ReadPlan, sql, src: str, where: str, cols: dict[str, str], maps: dict[str, "_ColumnMap"],
+                 layout) -> tuple[Any, np.ndarray]:
+    """DuckDB groups the rows by their words (sorted); returns the table and, per word, whether
+    some row's word is NULL (a cell outside its column's mapping)."""
+    net = plan.network
+    terms: list[list[str]] = [[] for _ in range(layout.k)]
+    for c, m in maps.items():
+        j = net.index(c)
+        terms[int(layout.word[j])].append(m.sql(cols[c], int(layout.mult[j])))
+    words = [(" + ".join(t) if t else "CAST(0 AS BIGINT)") + f" AS w{i}" for i, t in enumerate(terms)]
+    count = f", {cols[plan.count_column]} AS k" if plan.count_column is not None else ""
+    order = " ORDER BY " + ", ".join(f"w{i}" for i in range(layout.k)) if DUCKDB_ORDER else ""
+    q = f"SELECT {', '.join(words)}{count}, count(*) AS n FROM {src}{where} GROUP BY ALL{order}"
+    table = sql(q)
+    nulls = np.array([table.column(f"w{i}").null_count > 0 for i in range(layout.k)])
+    return table, nulls
+
+
+def _reduce_duckdb_raw(plan: ReadPlan, sql, src: str, where: str, cols: dict[str, str]) -> CodedData:
+    """Group the raw values of every column read, then code the distinct raw rows."""
+    sel = ", ".join(f"{cols[c]} AS {_sql_ident('c' + str(i))}" for i, c in enumerate(plan.read))
+    grp = ", ".join(_sql_ident("c" + str(i)) for i in range(len(plan.read)))
+    return _code_grouped(plan, sql(f"SELECT {sel}, count(*) AS __adfit_n FROM {src}{where} GROUP BY {grp}"))
 
 
 def _code_grouped(plan: ReadPlan, table: Any) -> CodedData:
     """Code a table of distinct raw rows (columns c0.. in ``plan.read`` order, then __adfit_n)."""
     net = plan.network
     n = table.num_rows
-    acc = Accumulator(net.cards)
-    # packed keys when they fit (no code matrix of all raw groups), else code rows
-    rows = np.zeros(n, np.int64) if acc.mult is not None else np.full((n, len(net)), -1, dtype=np.int32)
+    columns: list[np.ndarray | None] = [None] * len(net)
     suspects: list[str] = []  # columns holding a bad value somewhere
     for i, name in enumerate(plan.read):
         if name == plan.count_column:
@@ -307,11 +510,7 @@ def _code_grouped(plan: ReadPlan, table: Any) -> CodedData:
         if np.any(c == UNKNOWN):
             suspects.append(name)
             continue
-        j = net.index(name)
-        if acc.mult is not None:
-            rows += (c.astype(np.int64) + 1) * acc.mult[j]
-        else:
-            rows[:, j] = c
+        columns[net.index(name)] = c
     weights = table.column(len(plan.read)).to_numpy().astype(np.float64)
     if plan.count_column is not None:
         w, bad, _ = _count_problem(table.column(len(plan.read) - 1))
@@ -321,7 +520,8 @@ def _code_grouped(plan: ReadPlan, table: Any) -> CodedData:
     if suspects:
         _first_bad(plan, suspects)  # raises with the file and line of the earliest bad cell
         raise DataError(f"{plan.source}: column(s) {suspects} hold values that cannot be read; check them")
-    acc.add(rows, weights)
+    acc = Accumulator(net.cards)
+    acc.add(key_layout(tuple(net.cards)).pack_columns(columns, n), weights)
     return _finish(plan, acc)
 
 
@@ -382,7 +582,7 @@ def reduce_dask(plan: ReadPlan, scheduler: str | None = None) -> CodedData:
             if errors and k > min(errors):
                 continue  # a piece after one that failed: its result no longer matters
             try:
-                acc.add(*fut.result())
+                acc.add_partial(*fut.result())
             except DataError as e:
                 errors[k] = e
                 client.cancel([f for f in futures[k + 1:] if not f.done()])

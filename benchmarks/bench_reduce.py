@@ -1,24 +1,37 @@
 """Reduction to distinct coded rows: pandas vs stream vs DuckDB vs Dask, side by side.
 
-Generates a table of N rows x K small-integer columns (seeded; a hidden 4-state regime that each
-column copies with some noise, and some gaps), writes it once as Parquet (one file, row groups of
-1 M rows) and as partitioned CSV (8 files), then times ``adfit.engines.load_coded`` for each
-engine in a fresh subprocess and prints wall time and peak resident memory.
+Default workload: a table of N rows x K small-integer columns (seeded; a hidden 4-state regime
+that each column copies with some noise, and some gaps), written once as Parquet (one file, row
+groups of 1 M rows) and as partitioned CSV (8 files); ``adfit.engines.load_coded`` is timed for
+each engine in a fresh subprocess, printing wall time and peak resident memory.
 
     python benchmarks/bench_reduce.py                 # 10 M rows x 20 columns (a few minutes)
     python benchmarks/bench_reduce.py --rows 1000000  # quick look
 
-Memory is the peak resident memory of the process during the call (sampled every 5 ms) minus
-the resident memory just before it; for Dask the same figure of the two local worker processes
-(processes=True) is added. Every engine's result is checked against the pandas one.
-Copy the printed table into docs/performance.md ("Reduction").
+``--net37``: the Parquet file of ``bench_scale.py parquet`` instead (the 37-node network, gaps
+in 5 columns, nearly every row distinct: the packed row needs two int64 words), at each row count
+of ``--rows-list`` (default 1 M and 10 M; the files are written once into ``--data-dir`` and
+reused), every engine at each size:
+
+    python benchmarks/bench_reduce.py --net37 [--rows-list 1000000,10000000] [--engines pandas,stream]
+
+Memory: "peak MiB" is the peak resident memory of the process during the call (sampled every
+5 ms) minus the resident memory just before it; for Dask the same figure of the two local worker
+processes (processes=True) is added. "peak RSS GB" is the whole client process's peak (imports,
+data, result; for Dask without the workers). "CPU s": user + system time of the client process
+during the call, all its threads (DuckDB's and pyarrow's included; for Dask not the workers').
+Every engine's codes and counts are compared with
+the pandas engine's (a SHA-256 digest of both arrays). Copy the printed table into
+docs/performance.md ("Reduction").
 """
 
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import os
+import resource
 import platform
 import subprocess
 import sys
@@ -111,15 +124,56 @@ def child(engine: str, path: str, net_file: str, out: str, memory_limit: str | N
         kw["memory_limit"] = memory_limit
     sampler = PeakSampler()
     t = time.perf_counter()
+    cpu = time.process_time()
     cd = load_coded(net, path, engine=engine, **kw)
     wall = time.perf_counter() - t
+    cpu = time.process_time() - cpu
     mem = sampler.stop()
+    maxrss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6
     if engine == "dask":
         extra_mb = sum(client.run(_worker_stop).values())
         client.close()
         cluster.close()
-    np.savez(out, codes=cd.codes, counts=cd.counts)
-    print(json.dumps({"wall": wall, "mem_mb": mem + extra_mb, "distinct": cd.n_distinct, "rows": cd.n_rows}))
+    h = hashlib.sha256()
+    h.update(memoryview(np.ascontiguousarray(cd.codes)).cast("B"))
+    h.update(memoryview(np.ascontiguousarray(cd.counts)).cast("B"))
+    print(json.dumps({"wall": wall, "cpu": cpu, "mem_mb": mem + extra_mb, "distinct": cd.n_distinct, "rows": cd.n_rows,
+                      "digest": h.hexdigest(), "maxrss_gb": maxrss,
+                      "load": " ".join(f"{x:.1f}" for x in os.getloadavg())}))
+
+
+def run_child(engine: str, path: Path, net_file: Path, out: Path, mem: str | None) -> dict | str:
+    r = subprocess.run([sys.executable, __file__, "--child", engine, str(path), str(net_file), str(out), mem or "-"],
+                       capture_output=True, text=True)
+    if r.returncode != 0:
+        return f"failed: {r.stderr.strip().splitlines()[-1] if r.stderr else r.returncode}"
+    return json.loads(r.stdout.strip().splitlines()[-1])
+
+
+def main_net37(a) -> None:
+    sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+    from bench_scale import write_parquet
+    os.makedirs(a.data_dir, exist_ok=True)
+    engines = a.engines.split(",")
+    print(f"# 37-node network (benchmarks/bench_scale.py parquet data), Parquet; "
+          f"{platform.processor() or platform.machine()}, {os.cpu_count()} CPUs, Python {platform.python_version()}; "
+          f"load average at start {' '.join(f'{x:.1f}' for x in os.getloadavg())}")
+    print(f"{'rows':>11} {'engine':<8} {'wall s':>7} {'CPU s':>6} {'peak MiB':>9} {'peak RSS GB':>12} "
+          f"{'distinct rows':>14}  same as pandas  load")
+    for rows in (int(r) for r in a.rows_list.split(",")):
+        path, net_path = write_parquet(a.data_dir, rows)
+        net_file = Path(net_path)
+        ref = None
+        for engine in engines:
+            res = run_child(engine, Path(path), net_file, Path(a.data_dir) / "unused.npz", None)
+            if isinstance(res, str):
+                print(f"{rows:>11,} {engine:<8} {res}")
+                continue
+            if engine == "pandas":
+                ref = res["digest"]
+            same = "-" if ref is None else str(res["digest"] == ref)
+            print(f"{rows:>11,} {engine:<8} {res['wall']:>7.2f} {res['cpu']:>6.2f} {res['mem_mb']:>9.0f} {res['maxrss_gb']:>12.2f} "
+                  f"{res['distinct']:>14,}  {same:<14}  {res['load']}", flush=True)
 
 
 def main() -> None:
@@ -131,11 +185,18 @@ def main() -> None:
     ap.add_argument("--gaps", type=float, default=0.02)
     ap.add_argument("--runs", default="all",
                     help="comma-separated subset, e.g. duckdb-parquet,duckdb300-parquet (default: all)")
+    ap.add_argument("--net37", action="store_true", help="the 37-node Parquet workload of bench_scale.py")
+    ap.add_argument("--rows-list", default="1000000,10000000", help="with --net37: row counts")
+    ap.add_argument("--engines", default="pandas,stream,duckdb,dask", help="with --net37: engines (pandas first)")
+    ap.add_argument("--data-dir", default=os.path.join(tempfile.gettempdir(), "adfit-bench-scale"))
     ap.add_argument("--child", nargs=5, help=argparse.SUPPRESS)
     a = ap.parse_args()
     if a.child:
         engine, path, net_file, out, mem = a.child
         child(engine, path, net_file, out, None if mem == "-" else mem)
+        return
+    if a.net37:
+        main_net37(a)
         return
     with tempfile.TemporaryDirectory(prefix="adfit-bench-") as tmp:
         d = Path(tmp)
@@ -158,18 +219,16 @@ def main() -> None:
         for engine, fmt, mem in runs:
             path = d / "data.parquet" if fmt == "parquet" else d / "csv"
             out = d / f"{engine}-{fmt}-{mem}.npz"
-            r = subprocess.run([sys.executable, __file__, "--child", engine, str(path), str(d / "net.json"),
-                                str(out), mem or "-"], capture_output=True, text=True)
-            if r.returncode != 0:
-                print(f"{engine:<22} {fmt:<8} failed: {r.stderr.strip().splitlines()[-1] if r.stderr else r.returncode}")
+            res = run_child(engine, path, d / "net.json", out, mem)
+            if isinstance(res, str):
+                print(f"{engine:<22} {fmt:<8} {res}")
                 continue
-            res = json.loads(r.stdout.strip().splitlines()[-1])
-            got = np.load(out)
             if ref is None:
-                ref = (got["codes"], got["counts"])
-            ok = np.array_equal(ref[0], got["codes"]) and np.array_equal(ref[1], got["counts"])
+                ref = res["digest"]
+            ok = res["digest"] == ref
             name = engine + (f" (limit {mem})" if mem else "")
-            print(f"{name:<22} {fmt:<8} {res['wall']:>8.2f} {res['mem_mb']:>9.0f} {res['distinct']:>14,}  {ok}")
+            print(f"{name:<22} {fmt:<8} {res['wall']:>8.2f} {res['mem_mb']:>9.0f} {res['distinct']:>14,}  {ok}  "
+                  f"(peak RSS {res['maxrss_gb']:.2f} GB, load {res['load']})", flush=True)
 
 
 if __name__ == "__main__":

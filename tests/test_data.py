@@ -130,7 +130,7 @@ def test_reduce_rows_matches_pandas_groupby_and_lexicographic_order():
 
 def test_reduce_rows_fallback_when_the_packed_key_would_overflow():
     rng = np.random.default_rng(1)
-    cards = (9,) * 20  # 10**20 > 2**63: no packed key
+    cards = (9,) * 20  # 10**20 > 2**63: the packed row needs two int64 words
     codes = rng.integers(-1, 2, (300, 20)).astype(np.int32)
     codes = np.concatenate([codes, codes[:50]])
     d, c, inv = reduce_rows(codes, None, cards)
@@ -413,3 +413,40 @@ def test_subset_and_complete_cases():
     cc = cd.complete_cases(NET)
     assert cc.n_rows == 1 and cc.inverse is None
     assert decode(NET, cc.codes).iloc[0].tolist() == ["low", "none", "1"]
+
+
+@pytest.mark.parametrize("kind,path", [("distinct", "_reduce_sorted"), ("ties", "_reduce_sorted"),
+                                       ("repeated", "_reduce_hashed")])
+def test_reduce_rows_with_three_key_words_matches_numpy_unique(kind, path, monkeypatch):
+    """60 five-state columns: 6**60 needs three int64 words. Rows mostly distinct (sorted), with
+    the columns of word 0 drawn from a pool (ties in word 0 broken by the later words; sorted),
+    or whole rows drawn from a small pool (hashed); numpy's ``unique(axis=0)`` is the reference
+    for the rows, their order and the inverse, ``np.bincount`` over its inverse for the counts."""
+    import adfit.rowkeys as rk
+    used = []
+    real = getattr(rk, path)
+    monkeypatch.setattr(rk, path, lambda *a: used.append(path) or real(*a))
+    rng = np.random.default_rng({"distinct": 0, "repeated": 1, "ties": 2}[kind])
+    cards = (5,) * 60
+    n = 20_000  # above the sample size that chooses hashing or sorting
+    if kind == "repeated":
+        codes = rng.integers(-1, 5, (300, 60))[rng.integers(0, 300, n)]
+    else:
+        codes = rng.integers(-1, 5, (n, 60))
+        if kind == "ties":
+            codes[:, :25] = rng.integers(-1, 5, (8000, 25))[rng.integers(0, 8000, n)]
+            codes[:, 25:] = rng.integers(0, 2, (n, 35))
+    codes = codes.astype(np.int32)
+    w = rng.random(n) + 0.5
+    d, c, inv = reduce_rows(codes, w, cards)
+    ref, ref_inv = np.unique(codes, axis=0, return_inverse=True)
+    ref_inv = ref_inv.reshape(-1)
+    np.testing.assert_array_equal(d, ref)
+    np.testing.assert_array_equal(inv, ref_inv)
+    np.testing.assert_array_equal(c, np.bincount(ref_inv, weights=w))
+    d1, c1, _ = reduce_rows(codes, None, cards)
+    np.testing.assert_array_equal(d1, ref)
+    np.testing.assert_array_equal(c1, np.bincount(ref_inv).astype(float))
+    assert used == [path, path]
+    assert len(np.unique(codes[:, :24], axis=0)) < n / 2 if kind == "ties" else True  # word 0 repeats
+    assert (len(ref) < n / 10) if kind == "repeated" else (len(ref) == n)

@@ -378,3 +378,78 @@ def test_not_utf8_in_every_engine(tmp_path, cluster, engine):
     with pytest.raises(DataError) as e:
         run(NET, p, engine, cluster)
     assert one_line(e) == f"{p}: not UTF-8 text; save the CSV as UTF-8"
+
+
+# ------------------------------------------- keys wider than one int64 word
+WIDE = network_from_dict({f"v{i:02d}": {"states": [str(k) for k in range(4)]} for i in range(40)})  # 5**40 > 2**92
+
+
+@pytest.fixture(scope="module")
+def wide_files(tmp_path_factory):
+    """40 four-state columns (the packed row needs two int64 words), gaps, repeated rows."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+    d = tmp_path_factory.mktemp("wide")
+    rng = np.random.default_rng(17)
+    n = 3000
+    x = rng.integers(0, 4, (n, 40))
+    x[:, :20] = rng.integers(0, 2, (n, 1))  # the first word takes few values: ties in word 0
+    x[rng.random(x.shape) < 0.15] = HIDDEN
+    x[n // 2:n // 2 + 600] = x[:600]        # repeated records
+    names = list(WIDE.names)
+    cols = {nm: pa.array(x[:, j].astype(np.int8), mask=x[:, j] == HIDDEN) for j, nm in enumerate(names)}
+    table = pa.table(cols)
+    pq.write_table(table, d / "w.parquet", row_group_size=700)
+    pd.DataFrame({nm: np.where(x[:, j] == HIDDEN, "", x[:, j].astype(str)) for j, nm in enumerate(names)}) \
+        .to_csv(d / "w.csv", index=False)
+    return d, x
+
+
+@pytest.mark.parametrize("where", ["w.parquet", "w.csv"])
+@pytest.mark.parametrize("engine", ENGINES)
+def test_keys_wider_than_63_bits_every_engine_matches_numpy_unique(wide_files, cluster, engine, where):
+    d, x = wide_files
+    got = run(WIDE, d / where, engine, cluster, chunk_rows=400)
+    # reference: numpy's own lexicographic unique of the code matrix (first column most significant)
+    ref_rows, ref_inv, ref_counts = np.unique(x, axis=0, return_inverse=True, return_counts=True)
+    np.testing.assert_array_equal(got.codes, ref_rows)
+    np.testing.assert_array_equal(got.counts, ref_counts.astype(float))
+    assert got.codes.dtype == np.int32 and got.n_rows == len(x) and got.n_distinct < len(x)
+    if engine == "pandas":
+        np.testing.assert_array_equal(got.inverse, ref_inv.reshape(-1))
+    else:
+        same(got, load_coded(WIDE, d / where))
+
+
+def test_wide_key_label_error_is_the_same_in_every_engine(tmp_path, cluster):
+    rng = np.random.default_rng(4)
+    df = pd.DataFrame(rng.integers(0, 4, (300, 40)).astype(str), columns=list(WIDE.names))
+    df.iloc[217, 33] = "7"
+    df.to_csv(tmp_path / "bad.csv", index=False)
+    df.astype(int).to_parquet(tmp_path / "bad.parquet", index=False, row_group_size=50)
+    for engine in ENGINES:
+        with pytest.raises(DataError) as e:
+            run(WIDE, tmp_path / "bad.csv", engine, cluster, chunk_rows=64)
+        assert one_line(e).startswith(f"{tmp_path / 'bad.csv'}: line 219 (data row 218), column 'v33': label '7' "
+                                      f"is not a state of 'v33'"), (engine, one_line(e))
+        with pytest.raises(DataError) as e:
+            run(WIDE, tmp_path / "bad.parquet", engine, cluster, chunk_rows=64)
+        assert one_line(e).startswith(f"{tmp_path / 'bad.parquet'}: data row 218, column 'v33': label '7'"), engine
+
+
+def test_accumulator_table_holds_only_the_distinct_rows():
+    """The stream engine's memory: the running table never exceeds the distinct rows seen plus
+    the pieces waiting to be merged, however many records pass through."""
+    rng = np.random.default_rng(8)
+    cards = (4,) * 40
+    pool = rng.integers(-1, 4, (50, 40)).astype(np.int32)
+    acc = Accumulator(cards)
+    acc.merge_rows = 16
+    seen = set()
+    for _ in range(40):
+        piece = pool[rng.integers(0, 50, 500)]
+        seen.update(map(tuple, piece))
+        acc.add(piece)
+        assert acc.words.shape[1] <= len(seen) and acc._pending_rows <= max(len(seen), acc.merge_rows) + 50
+    codes, counts = acc.result()
+    assert codes.shape[0] == len(seen) and counts.sum() == 40 * 500
