@@ -41,7 +41,7 @@ import optax
 
 from .data import HIDDEN, CodedData, load_data
 from .errors import ConvergenceWarning, IdentifiabilityWarning, LocalOptimaWarning, OptionError
-from .likelihood import (Likelihood, _value_and_expected_counts, check_possible,
+from .likelihood import (Likelihood, _value_and_flat_expected_counts, check_possible,
                          logits_from_probs, probs_from_logits)
 from .network import Network
 from .priors import describe_rows, prior_only_rows, resolve_pseudo_counts
@@ -137,29 +137,136 @@ def _norm(tree: Mapping[str, np.ndarray]) -> float:
     return math.sqrt(sum(float(np.sum(np.asarray(v) ** 2)) for v in tree.values()))
 
 
+# --------------------------------------------------------------------------- the flat parameter vector
+@dataclass(frozen=True, eq=False)
+class FreeLayout:
+    """The logits of the free nodes as one flat float64 vector: the free nodes in network order,
+    each CPT raveled (C order), at ``offsets``. The optimiser works on such vectors only (its
+    compiled pieces then take one array whatever the number of nodes, and compile once per
+    vector length); CPT-shaped dicts appear at its boundary (:meth:`flatten`, :meth:`unflatten`).
+
+    ``rows`` groups the CPT rows by their number of states: ``(k, idx)`` with ``idx`` the
+    ``(rows, k)`` positions of every row of ``k`` states in the vector (``None`` when the vector
+    is just those rows, in order); ``inverse`` puts the concatenated groups back in vector order
+    (``None`` when they already are). ``full_index`` maps every entry of the likelihood's flat
+    layout (all nodes, :func:`adfit.likelihood.layout_of`) to its position in the free vector
+    followed by the fixed nodes' log-tables (``None`` when no node is fixed).
+    """
+
+    names: tuple[str, ...]
+    shapes: tuple[tuple[int, ...], ...]
+    offsets: tuple[int, ...]
+    size: int
+    n_flat: int
+    rows: tuple[tuple[int, Any], ...]
+    inverse: Any
+    full_index: Any
+
+    def flatten(self, tree: Mapping[str, Any]) -> np.ndarray:
+        """One float64 vector from CPT-shaped arrays of the free nodes (a new array)."""
+        if not self.names:
+            return np.zeros(0)
+        return np.concatenate([np.ravel(np.asarray(tree[k], dtype=np.float64)) for k in self.names])
+
+    def unflatten(self, vec: Any) -> dict[str, np.ndarray]:
+        """CPT-shaped views of a flat vector, by free node."""
+        v = np.asarray(vec)
+        return {k: v[o:o + math.prod(sh)].reshape(sh) for k, sh, o in zip(self.names, self.shapes, self.offsets)}
+
+
+_FREE_LAYOUTS: dict[int, tuple[Network, FreeLayout]] = {}
+
+
+def free_layout(network: Network) -> FreeLayout:
+    """The :class:`FreeLayout` of ``network`` (cached by identity, as the likelihood's layout)."""
+    hit = _FREE_LAYOUTS.get(id(network))
+    if hit is None or hit[0] is not network:
+        hit = _FREE_LAYOUTS[id(network)] = (network, _make_free_layout(network))
+    return hit[1]
+
+
+def _make_free_layout(network: Network) -> FreeLayout:
+    names = tuple(network.free_names)
+    free = set(names)
+    shapes, offsets, by_card = [], [], {}
+    off = 0
+    for name in names:
+        sh = tuple(network.cpt_shape(name))
+        size = math.prod(sh)
+        shapes.append(sh)
+        offsets.append(off)
+        by_card.setdefault(sh[-1], []).append(np.arange(off, off + size, dtype=np.int32))
+        off += size
+    P = off
+    rows, order = [], []
+    for k in sorted(by_card):
+        idx = np.concatenate(by_card[k])
+        order.append(idx)
+        rows.append((k, idx.reshape(-1, k)))
+    perm = np.concatenate(order) if order else np.zeros(0, np.int32)
+    in_order = bool(np.array_equal(perm, np.arange(P)))
+    if in_order and len(rows) == 1:
+        rows = [(rows[0][0], None)]
+    inverse = None if in_order else np.argsort(perm).astype(np.int32)
+    full, fixed_off, n_flat = [], 0, 0
+    for node in network.nodes:
+        size = math.prod(network.cpt_shape(node.name))
+        n_flat += size
+        if node.name in free:
+            o = offsets[names.index(node.name)]
+            full.append(np.arange(o, o + size, dtype=np.int32))
+        else:
+            full.append(np.arange(P + fixed_off, P + fixed_off + size, dtype=np.int32))
+            fixed_off += size
+    full_index = None if fixed_off == 0 else np.concatenate(full)
+    return FreeLayout(names, tuple(shapes), tuple(offsets), P, n_flat, tuple(rows), inverse, full_index)
+
+
+def fixed_log_tables(network: Network) -> np.ndarray:
+    """log of the fixed nodes' tables, in network order, raveled (the tail of
+    ``FreeLayout.full_index``'s source vector)."""
+    parts = []
+    with np.errstate(divide="ignore"):
+        for name in network.fixed_names:
+            parts.append(np.ravel(np.log(np.asarray(network.fixed_table(name), dtype=np.float64))))
+    return np.concatenate(parts) if parts else np.zeros(0)
+
+
 # --------------------------------------------------------------------------- the fast objective
 @partial(jax.jit, static_argnums=(0,))
-def _head(network: Network, z, scale, pseudo, fixed_lc, l2):
-    """Log-CPTs of all nodes and the prior/penalty part of F, from the scaled logits z."""
-    free = network.free_names
-    eta = {k: z[k] * scale[k] for k in free}
-    lcs = tuple(jax.nn.log_softmax(eta[n.name], axis=-1) if n.fixed is None else fixed_lc[n.name]
-                for n in network.nodes)
-    lp = sum(jnp.sum(pseudo[k] * lcs[network.index(k)]) for k in free)
-    pen = sum(jnp.sum((eta[k] - jnp.mean(eta[k], axis=-1, keepdims=True)) ** 2) for k in free)
-    return lcs, lp - l2 * pen
+def _head(network: Network, z, scale, pseudo, fixed_flat, l2):
+    """Log-CPTs of all nodes (one flat vector in the likelihood's layout) and the prior/penalty
+    part of F, from the scaled logits ``z`` (flat, :class:`FreeLayout`). The softmax runs once per
+    number of states over all CPT rows of that size, so the program does not grow with the
+    number of nodes."""
+    lay = free_layout(network)
+    eta = z * scale
+    parts = []
+    pen = jnp.zeros((), jnp.float64)
+    for k, idx in lay.rows:
+        e = eta.reshape(-1, k) if idx is None else eta[idx]
+        parts.append(jax.nn.log_softmax(e, axis=-1).reshape(-1))
+        pen = pen + jnp.sum((e - jnp.mean(e, axis=-1, keepdims=True)) ** 2)
+    lc = parts[0] if len(parts) == 1 else jnp.concatenate(parts)
+    if lay.inverse is not None:
+        lc = lc[lay.inverse]
+    lp = jnp.sum(pseudo * lc)
+    full = lc if lay.full_index is None else jnp.concatenate([lc, fixed_flat])[lay.full_index]
+    return full, lp - l2 * pen
 
 
 @partial(jax.jit, static_argnums=(0,))
-def _head_grad(network: Network, z, scale, pseudo, fixed_lc, l2, counts, n_total):
-    """Gradient of −F/N w.r.t. z, given ∂ log L/∂ log θ = the expected counts."""
-    _, vjp = jax.vjp(lambda zz: _head(network, zz, scale, pseudo, fixed_lc, l2), z)
-    (g,) = vjp((tuple(counts), jnp.ones((), jnp.float64)))
-    return {k: -v / n_total for k, v in g.items()}
+def _head_grad(network: Network, z, scale, pseudo, fixed_flat, l2, counts, n_total):
+    """Gradient of −F/N w.r.t. z, given ∂ log L/∂ log θ = the expected counts (flat, in the
+    likelihood's layout; trailing entries beyond it are ignored)."""
+    n_flat = free_layout(network).n_flat
+    _, vjp = jax.vjp(lambda zz: _head(network, zz, scale, pseudo, fixed_flat, l2), z)
+    (g,) = vjp((counts[:n_flat], jnp.ones((), jnp.float64)))
+    return -g / n_total
 
 
-def _objective_fg(network: Network, groups, z, scale, pseudo, fixed_lc, l2, n_total, codes, weights):
-    """−F/N and its gradient w.r.t. z.
+def _objective_fg(network: Network, groups, z, scale, pseudo, fixed_flat, l2, n_total, codes, weights):
+    """−F/N and its gradient w.r.t. z (flat vectors, :class:`FreeLayout`).
 
     Composed in Python from three compiled pieces, of which only the expected-counts scan is
     large; it is the same compiled program that :meth:`Likelihood.expected_counts` uses, so one
@@ -167,16 +274,26 @@ def _objective_fg(network: Network, groups, z, scale, pseudo, fixed_lc, l2, n_to
     while-loop copies the whole elimination into one XLA computation several times and
     multiplies the compile time.)
     """
-    lcs, rest = _head(network, z, scale, pseudo, fixed_lc, l2)
-    ll, counts = _value_and_expected_counts(network, groups, lcs, codes, weights)
-    g = _head_grad(network, z, scale, pseudo, fixed_lc, l2, counts, n_total)
-    # the optimiser's bookkeeping runs in numpy: eager JAX ops would compile per leaf shape
-    return float(-(ll + rest) / n_total), {k: np.asarray(v) for k, v in g.items()}
+    lc, rest = _head(network, z, scale, pseudo, fixed_flat, l2)
+    ll, counts = _value_and_flat_expected_counts(network, groups, lc, codes, weights)
+    g = _head_grad(network, z, scale, pseudo, fixed_flat, l2, counts, n_total)
+    # the optimiser's bookkeeping runs in numpy on the flat vector
+    return -(float(ll) + float(rest)) / float(n_total), np.asarray(g)
+
+
+@partial(jax.jit, static_argnums=(0,))
+def _lbfgs_init(memory: int, params):
+    return optax.scale_by_lbfgs(memory_size=memory).init(params)
 
 
 @partial(jax.jit, static_argnums=(0,))
 def _lbfgs_direction(memory: int, grad, state, params):
     return optax.scale_by_lbfgs(memory_size=memory).update(grad, state, params)
+
+
+@partial(jax.jit, static_argnums=(0,))
+def _adam_init(learning_rate: float, params):
+    return optax.adam(learning_rate).init(params)
 
 
 @partial(jax.jit, static_argnums=(0,))
@@ -186,10 +303,14 @@ def _adam_update(learning_rate: float, grad, state, params):
 
 
 def _dot(a, b) -> float:
+    if isinstance(a, np.ndarray):
+        return float(np.dot(a, b))
     return float(sum(np.vdot(a[k], b[k]) for k in a))
 
 
 def _axpy(alpha: float, d, x):
+    if isinstance(x, np.ndarray):
+        return x + alpha * d
     return {k: x[k] + alpha * d[k] for k in x}
 
 
@@ -313,18 +434,24 @@ class Fitter:
         self.em_polish_steps = 0
         with np.errstate(divide="ignore"):
             self.fixed_lc = {n: jnp.asarray(np.log(network.fixed_table(n))) for n in network.fixed_names}
+        # the optimiser's flat vectors (FreeLayout): pseudo-counts and the fixed nodes' log-tables
+        self.layout = free_layout(network)
+        self.pseudo_flat = self.layout.flatten(self.pseudo)
+        self.fixed_flat = jnp.asarray(fixed_log_tables(network))
 
     # -- helpers -------------------------------------------------------------------------
     def objective_fg(self, z, scale, pseudo, l2, n_total):
-        """−F/N and its gradient w.r.t. the scaled logits ``z``: every objective evaluation of
-        :meth:`run` goes through here (:mod:`adfit.restarts` overrides it to evaluate the
-        points of several starts in one vmapped call)."""
-        return _objective_fg(self.network, self.lik.plan.groups, z, scale, pseudo, self.fixed_lc,
+        """−F/N and its gradient w.r.t. the scaled logits ``z`` (flat vectors of
+        :attr:`layout`, as ``scale`` and ``pseudo``; the gradient is a flat numpy array): every
+        objective evaluation of :meth:`run` goes through here (:mod:`adfit.restarts` overrides
+        it to evaluate the points of several starts in one vmapped call)."""
+        return _objective_fg(self.network, self.lik.plan.groups, z, scale, pseudo, self.fixed_flat,
                              l2, n_total, self.lik._codes, self.lik._weights)
 
     def lbfgs_direction(self, memory: int, grad, state, params):
-        """optax's L-BFGS direction and memory update for one start (:mod:`adfit.restarts`
-        overrides it to update the memories of several starts in one vmapped call)."""
+        """optax's L-BFGS direction and memory update for one start, on flat vectors
+        (:mod:`adfit.restarts` overrides it to update the memories of several starts in one
+        vmapped call)."""
         return _lbfgs_direction(memory, grad, state, params)
 
     def probs(self, logits: Mapping[str, Any]) -> dict[str, np.ndarray]:
@@ -390,8 +517,8 @@ class Fitter:
         hist_gn = [ev["gradient_norm"]]
         it = 0
         gtol_abs = s.gtol * N
-        codes, weights = self.lik._codes, self.lik._weights
-        pseudo = {k: jnp.asarray(v) for k, v in self.pseudo.items()}
+        lay = self.layout
+        pseudo = jnp.asarray(self.pseudo_flat)
         l2 = jnp.asarray(float(s.l2))
         n_total = jnp.asarray(N)
         stop_reason, converged = "", False
@@ -403,19 +530,19 @@ class Fitter:
             if ev["gradient_norm"] <= gtol_abs:
                 converged, stop_reason = True, "gradient norm below gtol"
                 break
-            scale = self._scale(ev["counts"], ev["probs"])
+            scale = lay.flatten(self._scale(ev["counts"], ev["probs"]))
             phase_len = PHASE_LENGTHS[min(n_phase, len(PHASE_LENGTHS) - 1)] if s.method == "lbfgs" else s.max_iter
             n_phase += 1
 
             def fg(zz):
                 return self.objective_fg(zz, scale, pseudo, l2, n_total)
 
-            z = {k: np.asarray(logits[k]) / np.asarray(scale[k]) for k in self.free}
+            z = lay.flatten(logits) / scale
             f, g = fg(z)
             if s.method == "lbfgs":
-                state = optax.scale_by_lbfgs(memory_size=s.memory).init(z)
+                state = _lbfgs_init(s.memory, z)
             else:
-                state = optax.adam(s.learning_rate).init(z)
+                state = _adam_init(s.learning_rate, z)
             phase_start = it
             prev = f
             flat_count = 0
@@ -423,13 +550,13 @@ class Fitter:
             while it < s.max_iter:
                 if s.method == "lbfgs":
                     d, state = self.lbfgs_direction(s.memory, g, state, z)
-                    d = {k: -np.asarray(d[k]) for k in self.free}
+                    d = -np.asarray(d)
                     alpha, f_new, g_new, _ = wolfe_line_search(fg, z, f, g, d)
                     if alpha is None:
                         # No decrease along the direction: either the objective is flat to
                         # machine precision (converged if the residual is small) or the
                         # quasi-Newton memory is stale (restart the phase).
-                        cand = {k: z[k] * scale[k] for k in self.free}
+                        cand = lay.unflatten(z * scale)
                         ev_c = self.evaluate(cand)
                         if ev_c["residual"] <= s.ptol or ev_c["gradient_norm"] <= gtol_abs:
                             logits, ev = cand, ev_c
@@ -441,11 +568,11 @@ class Fitter:
                             stop_reason = "line search found no better point"
                         stop_phase = True
                         break
-                    z = _axpy(alpha, d, z)
+                    z = z + alpha * d
                     f, g = f_new, g_new
                 else:
                     z, state = _adam_update(s.learning_rate, g, state, z)
-                    z = {k: np.asarray(v) for k, v in z.items()}
+                    z = np.asarray(z)
                     f, g = fg(z)
                 it += 1
                 if not math.isfinite(f):
@@ -453,7 +580,8 @@ class Fitter:
                     stop_phase = True
                     break
                 obj = -f * N
-                gn = _norm({k: -N * g[k] / scale[k] for k in self.free})
+                gv = N * g / scale
+                gn = math.sqrt(float(np.dot(gv, gv)))
                 hist_obj.append(obj)
                 hist_gn.append(gn)
                 if progress is not None:
@@ -462,7 +590,7 @@ class Fitter:
                 prev = f
                 flat_count = flat_count + 1 if rel < s.tol else 0
                 if gn <= gtol_abs or flat_count >= 5:
-                    cand = {k: z[k] * scale[k] for k in self.free}
+                    cand = lay.unflatten(z * scale)
                     ev_c = self.evaluate(cand)
                     if ev_c["gradient_norm"] <= gtol_abs:
                         logits, ev = cand, ev_c
@@ -479,7 +607,7 @@ class Fitter:
                     break  # refresh the preconditioner
             if converged:
                 break
-            cand = {k: z[k] * scale[k] for k in self.free}
+            cand = lay.unflatten(z * scale)
             ev_c = self.evaluate(cand)
             resid_before = ev["residual"]
             if math.isfinite(ev_c["objective"]) and ev_c["objective"] >= ev["objective"]:

@@ -1601,6 +1601,14 @@ def _loglik_logcpt(network: Network, groups: tuple, logcpts: tuple[jax.Array, ..
     return total
 
 
+def _flat_logcpts(logcpts: Sequence[Any]):
+    """The log-CPTs of all nodes in one vector (network order, each CPT raveled), without the two
+    constant slots :func:`_flat` appends: numpy when the inputs are concrete, traced otherwise."""
+    if _traced(tuple(logcpts)):
+        return jnp.concatenate([jnp.ravel(x) for x in logcpts])
+    return np.concatenate([np.ravel(np.asarray(x, dtype=np.float64)) for x in logcpts])
+
+
 def _value_and_expected_counts(network: Network, groups: tuple, logcpts: Sequence[jax.Array],
                                codes, weights):
     """Total log-likelihood and its gradient w.r.t. the log-CPTs (= expected family counts).
@@ -1612,20 +1620,9 @@ def _value_and_expected_counts(network: Network, groups: tuple, logcpts: Sequenc
     arrays here (numpy views when the call is not traced): XLA compiles every sliced output as a
     kernel of its own, which cost 0.5 s of compile time for 37 nodes.
     """
-    logcpts = tuple(logcpts)
-    parts = _parts(codes, weights)
-    if len(parts) > 1 and not _traced((logcpts, codes, weights)):
-        res = _run_parts(lambda cs, ws: _value_and_flat_counts(network, groups, logcpts, cs, ws), parts,
-                         (id(network), groups, "vg"))
-        val = jnp.asarray(sum(float(v) for v, _ in res))
-        g = np.asarray(res[0][1]).copy()
-        for _, gg in res[1:]:
-            g += np.asarray(gg)
-    else:
-        val, g = _value_and_flat_counts(network, groups, logcpts, codes, weights)
-        if isinstance(g, jax.core.Tracer):
-            return val, _unflat(network, g)
-        g = np.asarray(g)
+    val, g = _value_and_flat_expected_counts(network, groups, _flat_logcpts(logcpts), codes, weights)
+    if isinstance(g, jax.core.Tracer):
+        return val, _unflat(network, g)
     out, off = [], 0
     for name in network.names:
         shape = network.cpt_shape(name)
@@ -1635,10 +1632,29 @@ def _value_and_expected_counts(network: Network, groups: tuple, logcpts: Sequenc
     return val, tuple(out)
 
 
+def _value_and_flat_expected_counts(network: Network, groups: tuple, lc_flat, codes, weights):
+    """:func:`_value_and_expected_counts` on the log-CPTs given as one flat vector (the layout of
+    :func:`layout_of`, without the two constant slots); the expected counts come back flat too,
+    with two trailing entries (those of the constant slots log 1 and log 0) to be ignored: a
+    numpy array when the call is not traced."""
+    parts = _parts(codes, weights)
+    if len(parts) > 1 and not _traced((lc_flat, codes, weights)):
+        res = _run_parts(lambda cs, ws: _value_and_flat_counts(network, groups, lc_flat, cs, ws), parts,
+                         (id(network), groups, "vg"))
+        val = jnp.asarray(sum(float(v) for v, _ in res))
+        g = np.asarray(res[0][1]).copy()
+        for _, gg in res[1:]:
+            g += np.asarray(gg)
+        return val, g
+    val, g = _value_and_flat_counts(network, groups, lc_flat, codes, weights)
+    if isinstance(g, jax.core.Tracer):
+        return val, g
+    return val, np.asarray(g)
+
+
 @partial(jax.jit, static_argnums=(0, 1))
-def _value_and_flat_counts(network: Network, groups: tuple, logcpts: tuple[jax.Array, ...],
-                           codes, weights):
-    flat = _flat(logcpts)
+def _value_and_flat_counts(network: Network, groups: tuple, lc_flat: jax.Array, codes, weights):
+    flat = jnp.concatenate([lc_flat, jnp.array([0.0, -jnp.inf], jnp.float64)])
     total = jnp.zeros((), jnp.float64)
     grad = jnp.zeros_like(flat)
     for cs, ws in _parts(codes, weights):
@@ -1846,6 +1862,12 @@ class Likelihood:
     def expected_counts_logcpt(self, logcpts: Sequence[jax.Array]):
         """(log-likelihood, expected family counts N(x,u) per node, CPT-shaped)."""
         return _value_and_expected_counts(self.network, self.plan.groups, tuple(logcpts), self._codes, self._weights)
+
+    def expected_counts_flat(self, lc_flat):
+        """(log-likelihood, expected family counts) with the log-CPTs of all nodes given as one
+        flat vector (network order, each CPT raveled; :func:`layout_of`) and the counts returned
+        the same way, plus two trailing entries to ignore (:func:`_value_and_flat_expected_counts`)."""
+        return _value_and_flat_expected_counts(self.network, self.plan.groups, lc_flat, self._codes, self._weights)
 
     # -- logits level (free nodes) ---------------------------------------------------------
     def value(self, logits: Mapping[str, jax.Array]) -> jax.Array:
