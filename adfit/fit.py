@@ -651,33 +651,93 @@ class Fitter:
 
 # --------------------------------------------------------------------------- starts
 def complete_family_start(network: Network, data: CodedData, rng: np.random.Generator,
-                          pseudo: Mapping[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
+                          pseudo: Mapping[str, np.ndarray] | None = None, *,
+                          observed: tuple[np.ndarray, np.ndarray | None] | None = None) -> dict[str, np.ndarray]:
     """Start from the counts of rows in which a node and all its parents are observed.
 
     Families that include a latent node (never observed together) get a random Dirichlet(1)
     draw, which also breaks the symmetry between latent states. Half a record is added to
     every cell so that no start sits on the boundary.
+
+    ``observed``: those counts already summed over some of the rows, as
+    :meth:`adfit.likelihood.Likelihood.observed_family_counts` gives them (``(flat counts,
+    mask of the rows counted)``); only the other rows are then counted here.
     """
-    codes, w = data.codes, data.counts
+    need = [name for name in network.free_names
+            if not any(network.nodes[j].latent for j in (*map(network.index, network.node(name).parents), network.index(name)))]
+    if observed is not None:
+        from .likelihood import layout_of
+
+        flat, counted = observed
+        offsets = layout_of(network)[0]
+        rest = None if counted is None else ~np.asarray(counted, dtype=bool)
+        extra = complete_family_counts(network, data, need, rows=rest) if rest is not None and rest.any() else {}
+        counts = {}
+        for name in need:
+            shape = network.cpt_shape(name)
+            off = offsets[network.index(name)]
+            c = np.asarray(flat[off:off + math.prod(shape)], dtype=np.float64).reshape(shape)
+            counts[name] = c + extra[name] if name in extra else c
+    else:
+        counts = complete_family_counts(network, data, need)
     out = {}
     for name in network.free_names:
-        i = network.index(name)
         node = network.node(name)
-        fam = [network.index(p) for p in node.parents] + [i]
         shape = network.cpt_shape(name)
-        if any(network.nodes[j].latent for j in fam):
+        if name not in counts:
             out[name] = rng.dirichlet(np.ones(node.card), size=shape[:-1]).reshape(shape)
             continue
-        sub = codes[:, fam]  # one copy of the family's columns (codes[ok] per column copied all rows)
-        ok = np.all(sub != HIDDEN, axis=1)
-        flat = np.ravel_multi_index(tuple(sub[ok].T), shape) if ok.any() else np.zeros(0, int)
-        cnt = np.bincount(flat, weights=w[ok], minlength=int(np.prod(shape))).reshape(shape) + 0.5
+        cnt = counts[name] + 0.5
         if pseudo is not None and name in pseudo:
             cnt = cnt + pseudo[name]
         out[name] = cnt / cnt.sum(axis=-1, keepdims=True)
     for name in network.fixed_names:
         out[name] = network.fixed_table(name)
     return out
+
+
+#: rows of the code matrix handled at a time by :func:`complete_family_counts` (transposed blocks)
+COUNT_BLOCK = 1 << 16
+
+
+def complete_family_counts(network: Network, data: CodedData, names: Iterable[str],
+                           rows: np.ndarray | None = None) -> dict[str, np.ndarray]:
+    """For each node of ``names``: the summed weights of the rows (all, or those of the bool mask
+    ``rows``) in which the node and all its parents are observed, by family configuration
+    (CPT-shaped). The codes are read in blocks of rows, transposed so that each family member
+    is a contiguous column (a row-major column read costs a pass over the whole block)."""
+    codes, w = data.codes, np.asarray(data.counts, dtype=np.float64)
+    names = list(names)
+    fams = {name: [network.index(p) for p in network.node(name).parents] + [network.index(name)] for name in names}
+    shapes = {name: tuple(network.cpt_shape(name)) for name in names}
+    out = {name: np.zeros(math.prod(shapes[name])) for name in names}
+    if not names:
+        return {}
+    sel = None if rows is None else np.flatnonzero(rows)
+    R = len(codes) if sel is None else len(sel)
+    for s0 in range(0, R, COUNT_BLOCK):
+        if sel is None:
+            blk, wb = codes[s0:s0 + COUNT_BLOCK], w[s0:s0 + COUNT_BLOCK]
+        else:
+            ix = sel[s0:s0 + COUNT_BLOCK]
+            blk, wb = codes[ix], w[ix]
+        cT = np.ascontiguousarray(blk.T)
+        hid = cT < 0
+        for name in names:
+            fam, shape = fams[name], shapes[name]
+            bad = np.zeros(cT.shape[1], bool)
+            idx = np.zeros(cT.shape[1], np.intp)
+            stride = 1
+            for u, card in zip(reversed(fam), reversed(shape)):
+                bad |= hid[u]
+                idx += stride * cT[u]
+                stride *= card
+            ok = ~bad
+            if ok.all():
+                out[name] += np.bincount(idx, weights=wb, minlength=stride)
+            else:
+                out[name] += np.bincount(idx[ok], weights=wb[ok], minlength=stride)
+    return {name: out[name].reshape(shapes[name]) for name in names}
 
 
 def random_start(network: Network, rng: np.random.Generator) -> dict[str, np.ndarray]:
@@ -749,7 +809,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     starts = []
     for k in range(restarts):
         if k == 0:
-            p0 = dict(init) if init is not None else complete_family_start(network, coded, rng, fitter.pseudo)
+            p0 = dict(init) if init is not None else complete_family_start(
+                network, coded, rng, fitter.pseudo, observed=fitter.lik.observed_family_counts())
             for name in network.fixed_names:
                 p0[name] = network.fixed_table(name)
         else:

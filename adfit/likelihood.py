@@ -1863,6 +1863,19 @@ class Likelihood:
         """(log-likelihood, expected family counts N(x,u) per node, CPT-shaped)."""
         return _value_and_expected_counts(self.network, self.plan.groups, tuple(logcpts), self._codes, self._weights)
 
+    def observed_family_counts(self):
+        """The data counts of the families with every member observed, as the plan gathered them
+        (no pass over the rows): ``(counts, rows)``, ``counts`` flat in the layout of
+        :func:`layout_of` (for each node, the summed weights of the counted rows in which the node
+        and all its parents are observed, by family configuration) and ``rows`` the bool mask of
+        the distinct rows counted (those of the per-pattern route); ``None`` when the plan has no
+        gathered block (every row in the uniform program)."""
+        for i, blk in enumerate(self.plan.groups):
+            if isinstance(blk, GatheredBlock):
+                w = self._weights.parts[0][i] if isinstance(self._weights, Shards) else self._weights[i]
+                return np.asarray(w)[:layout_size(self.network)], self.plan.observed_rows
+        return None
+
     def expected_counts_flat(self, lc_flat):
         """(log-likelihood, expected family counts) with the log-CPTs of all nodes given as one
         flat vector (network order, each CPT raveled; :func:`layout_of`) and the counts returned

@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from adfit.data import HIDDEN, CodedData, encode_frame
+from adfit.data import HIDDEN, CodedData, encode_frame, reduce_rows
 from adfit.errors import ConvergenceWarning, ImpossibleDataError, OptionError
 from adfit.fit import fit
 from adfit.likelihood import score
@@ -222,3 +222,53 @@ def test_flat_head_matches_per_node_softmax_and_the_closed_form_gradient():
     back = lay.unflatten(lay.flatten(eta))
     for k in lay.names:
         np.testing.assert_array_equal(back[k], eta[k])
+
+
+def test_complete_family_start_counts_and_the_plans_observed_families():
+    # The start's counts are the rows' family counts where a node and its parents are all
+    # observed (checked against pandas groupby); taken from the likelihood plan's gathered
+    # counts, or partly from them and partly counted, they are the same numbers.
+    from adfit.fit import complete_family_counts, complete_family_start
+    from adfit.likelihood import Likelihood, layout_of
+
+    net = network_from_dict({
+        "a": {"states": ["x", "y", "z"]},
+        "b": {"states": ["u", "v"], "parents": ["a"]},
+        "h": {"states": ["h0", "h1"], "parents": ["a"], "latent": True},
+        "c": {"states": ["p", "q", "r"], "parents": ["a", "b"]},
+        "d": {"states": ["e", "f"], "parents": ["h", "c"]},
+    })
+    rng = np.random.default_rng(8)
+    x = np.stack([rng.integers(0, k, 4000) for k in net.cards], axis=1).astype(np.int32)
+    x[rng.random(x.shape) < 0.25] = HIDDEN
+    x[:, net.index("h")] = HIDDEN
+    d, c, _ = reduce_rows(x, None, net.cards)
+    data = CodedData(d, c * 1.0)
+    df = pd.DataFrame(x, columns=net.names)
+    need = ["a", "b", "c"]
+    counts = complete_family_counts(net, data, need)
+    for name in need:
+        fam = list(net.node(name).parents) + [name]
+        sub = df[fam][(df[fam] >= 0).all(axis=1)]
+        want = np.zeros(net.cpt_shape(name))
+        for key, n in sub.groupby(fam).size().items():
+            want[key if isinstance(key, tuple) else (key,)] = n
+        np.testing.assert_array_equal(counts[name], want)
+    ref = complete_family_start(net, data, np.random.default_rng(1))
+    lik = Likelihood(net, data, route="pattern")
+    obs = lik.observed_family_counts()
+    assert obs is not None and obs[1].all()
+    via_plan = complete_family_start(net, data, np.random.default_rng(1), observed=obs)
+    # a part of the rows counted beforehand, the others here
+    part = rng.random(len(d)) < 0.5
+    offsets, _, n_flat = layout_of(net)
+    flat = np.zeros(n_flat)
+    for name, cnt in complete_family_counts(net, data, need, rows=part).items():
+        i = net.index(name)
+        flat[offsets[i]:offsets[i] + cnt.size] = cnt.ravel()
+    mixed = complete_family_start(net, data, np.random.default_rng(1), observed=(flat, part))
+    for name in net.free_names:
+        np.testing.assert_array_equal(via_plan[name], ref[name])
+        np.testing.assert_allclose(mixed[name], ref[name], rtol=1e-15)
+    for name in need:
+        np.testing.assert_allclose(ref[name], (counts[name] + 0.5) / (counts[name] + 0.5).sum(axis=-1, keepdims=True))
