@@ -460,9 +460,10 @@ class Plan:
 def _decompose(network: Network, codes: np.ndarray):
     """Barren pruning and hidden components of a block of rows.
 
-    Returns ``(comp_row, comp_key, pruned_any, observed)``: one entry per component, its row (in
-    the block) and its key, ``(W words of the hidden-node bit set, W words of the family bit
-    set)`` as uint64; ``pruned_any`` marks nodes pruned in at least one row.
+    Returns ``(comp_row, comp_key, pruned_any, hidden_all, hidden_any)``: one entry per
+    component, its row (in the block) and its key, ``(W words of the hidden-node bit set, W
+    words of the family bit set)`` as uint64; ``pruned_any`` marks nodes pruned in at least one
+    row, ``hidden_all`` / ``hidden_any`` nodes hidden in every / some row of the block.
     """
     n = len(network)
     pa, kids = _st(network).parents, _st(network).children
@@ -517,7 +518,7 @@ def _decompose(network: Network, codes: np.ndarray):
         fm[rr, pos[fl[rr]], v // 64] |= np.uint64(1 << (v % 64))
     r, root = np.nonzero(hm.any(axis=2))
     key = np.concatenate([hm[r, root], fm[r, root]], axis=1)
-    return r, key, pruned_any
+    return r, key, pruned_any, hidden.all(axis=0), some
 
 
 def _bits(words: np.ndarray) -> tuple[int, ...]:
@@ -546,7 +547,11 @@ class _Type:
 
 
 def _components(network: Network, codes: np.ndarray):
-    """Component types of every row (blockwise, to bound memory)."""
+    """Component types of every row (blockwise, to bound memory).
+
+    Returns ``(types, pruned, hidden_summary)``; ``hidden_summary`` is the (2, nodes) mask
+    ``[hidden in every row, hidden in some row]``, which gives :func:`_group_plan` the same
+    plan as the whole ``codes < 0`` (it only reads the columns' all and any)."""
     n = len(network)
     W = (n + 63) // 64
     R = codes.shape[0]
@@ -554,11 +559,14 @@ def _components(network: Network, codes: np.ndarray):
     types: dict[bytes, int] = {}
     tlist: list[_Type] = []
     pruned = np.zeros(n, bool)
+    always, some = np.ones(n, bool), np.zeros(n, bool)
     comp_type_parts, comp_row_parts = [], []
     for s in range(0, R, step):
         block = codes[s:s + step]
-        r, key, pr = _decompose(network, block)
+        r, key, pr, blk_all, blk_any = _decompose(network, block)
         pruned |= pr
+        always &= blk_all
+        some |= blk_any
         if not len(r):
             continue
         kv = np.ascontiguousarray(key).view(np.dtype((np.void, key.dtype.itemsize * key.shape[1]))).ravel()
@@ -588,7 +596,7 @@ def _components(network: Network, codes: np.ndarray):
     for typ in tlist:
         hs = set(typ.hidden)
         typ.boundary = tuple(sorted({u for v in typ.families for u in (*pa[v], v)} - hs))
-    return tlist, pruned
+    return tlist, pruned, np.stack([always & some, some])
 
 
 def _distinct_rows(sub: np.ndarray, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray]:
@@ -1077,13 +1085,12 @@ def build_plan(network: Network, data: CodedData, *, route: str = "auto",
     R = len(codes)
     if for_posteriors:
         return _posterior_plan(network, codes, counts, chunk)
-    hidden_rows = codes < 0
     if route == "uniform" or R == 0:
         return _shard(_assemble(network, codes, counts, uniform=np.ones(R, bool), enum_types=[], prog_types=[],
                                 pruned=np.zeros(n, bool), chunk=chunk))
-    tlist, pruned = _components(network, codes)
+    tlist, pruned, hidden_rows = _components(network, codes)
     enum_types, prog_types, to_uniform = _choose_methods(network, codes, counts, tlist, route,
-                                                         min_pattern_rows, max_pattern_groups)
+                                                         min_pattern_rows, max_pattern_groups, hidden_rows)
     uniform = np.zeros(R, bool)
     for t in to_uniform:
         uniform[t.rows] = True
@@ -1200,9 +1207,10 @@ def _split(plan: Plan, arrays: tuple, *, weights: bool) -> Shards:
 
 
 def _choose_methods(network: Network, codes: np.ndarray, counts: np.ndarray, tlist: Sequence[_Type], route: str,
-                    min_pattern_rows: int, max_pattern_groups: int):
+                    min_pattern_rows: int, max_pattern_groups: int, hidden_rows: np.ndarray | None = None):
     """Per component type: enumerate it, give it an elimination program of its own, or send its
-    rows to the uniform program, whichever is cheapest in total (compile time included)."""
+    rows to the uniform program, whichever is cheapest in total (compile time included).
+    ``hidden_rows``: ``codes < 0``, or its two-row summary from :func:`_components`."""
     n = len(network)
     E = PLAN_EVALUATIONS
     always, rest = [], []
@@ -1222,7 +1230,8 @@ def _choose_methods(network: Network, codes: np.ndarray, counts: np.ndarray, tli
         rest.append(t)
     if not rest:
         return list(tlist), [], []
-    uni_gp = _group_plan(network, codes < 0, kind="mixed", n_rows=len(codes), keep_all=True)
+    uni_gp = _group_plan(network, codes < 0 if hidden_rows is None else hidden_rows, kind="mixed",
+                         n_rows=len(codes), keep_all=True)
     per_row_uniform = TAPE_PAD * uni_gp.cost * T_TAPE
     costs = []
     for t in rest:
