@@ -161,6 +161,8 @@ class FreeLayout:
     rows: tuple[tuple[int, Any], ...]
     inverse: Any
     full_index: Any
+    order: Any = None        # the row blocks' entries in vector positions (inverse of ``inverse``)
+    free_index: Any = None   # the free entries' positions in the likelihood's layout (None: all entries)
 
     def flatten(self, tree: Mapping[str, Any]) -> np.ndarray:
         """One float64 vector from CPT-shaped arrays of the free nodes (a new array)."""
@@ -219,7 +221,9 @@ def _make_free_layout(network: Network) -> FreeLayout:
             full.append(np.arange(P + fixed_off, P + fixed_off + size, dtype=np.int32))
             fixed_off += size
     full_index = None if fixed_off == 0 else np.concatenate(full)
-    return FreeLayout(names, tuple(shapes), tuple(offsets), P, n_flat, tuple(rows), inverse, full_index)
+    free_index = None if full_index is None else np.flatnonzero(full_index < P).astype(np.int32)
+    return FreeLayout(names, tuple(shapes), tuple(offsets), P, n_flat, tuple(rows), inverse, full_index,
+                      None if inverse is None else perm.astype(np.int32), free_index)
 
 
 def fixed_log_tables(network: Network) -> np.ndarray:
@@ -265,30 +269,129 @@ def _head_grad(network: Network, z, scale, pseudo, fixed_flat, l2, counts, n_tot
     return -g / n_total
 
 
+def _head_np(lay: FreeLayout, z: np.ndarray, scale: np.ndarray, pseudo: np.ndarray, fixed_flat: np.ndarray,
+             l2: float):
+    """:func:`_head` in numpy, for the single-start optimiser (no compile; a few vector operations
+    per call): ``(log-CPTs in the likelihood's flat layout, prior/penalty part of F, (eta, theta,
+    row blocks) for :func:`_head_grad_np`)``. The same softmax as ``jax.nn.log_softmax`` (row max
+    shifted out); equal to :func:`_head` up to rounding."""
+    eta = z * scale
+    parts, blocks = [], []
+    pen = 0.0
+    for k, idx in lay.rows:
+        e = eta.reshape(-1, k) if idx is None else eta[idx]
+        sh = e - e.max(axis=-1, keepdims=True)
+        ls = sh - np.log(np.sum(np.exp(sh), axis=-1, keepdims=True))
+        parts.append(ls.reshape(-1))
+        blocks.append((e, ls))
+        d = e - e.mean(axis=-1, keepdims=True)
+        pen += float(np.sum(d * d))
+    lc = parts[0] if len(parts) == 1 else np.concatenate(parts)
+    if lay.inverse is not None:
+        lc = lc[lay.inverse]
+    with np.errstate(invalid="ignore"):
+        lp = float(np.dot(pseudo, lc))
+    full = lc if lay.full_index is None else np.concatenate([lc, fixed_flat])[lay.full_index]
+    return full, lp - l2 * pen, blocks
+
+
+def _head_grad_np(lay: FreeLayout, blocks, scale: np.ndarray, pseudo: np.ndarray, l2: float, counts: np.ndarray,
+                  n_total: float) -> np.ndarray:
+    """:func:`_head_grad` in closed form (numpy): with ``a = N(x,u) + c`` per CPT entry, the
+    gradient of F w.r.t. the logits is ``a − θ Σ_x a − 2λ(η − mean η)`` per row (Fisher's
+    identity, the prior, the penalty); times ``scale`` and ``−1/N``."""
+    c = counts[:lay.n_flat] if lay.free_index is None else counts[lay.free_index]
+    a = c + pseudo
+    if lay.inverse is not None:
+        a = a[lay.order]
+    out, off = [], 0
+    for (e, ls), (k, _) in zip(blocks, lay.rows):
+        ab = a[off:off + e.size].reshape(e.shape)
+        off += e.size
+        g = ab - np.exp(ls) * ab.sum(axis=-1, keepdims=True)
+        if l2:
+            g = g - 2.0 * l2 * (e - e.mean(axis=-1, keepdims=True))
+        out.append(g.reshape(-1))
+    g = out[0] if len(out) == 1 else np.concatenate(out)
+    if lay.inverse is not None:
+        g = g[lay.inverse]
+    return -(g * scale) / n_total
+
+
 def _objective_fg(network: Network, groups, z, scale, pseudo, fixed_flat, l2, n_total, codes, weights):
-    """−F/N and its gradient w.r.t. z (flat vectors, :class:`FreeLayout`).
+    """−F/N and its gradient w.r.t. z (flat numpy vectors, :class:`FreeLayout`).
 
-    Composed in Python from three compiled pieces, of which only the expected-counts scan is
-    large; it is the same compiled program that :meth:`Likelihood.expected_counts` uses, so one
-    fit compiles the elimination once. (Tracing the objective inside an optimiser's own
-    while-loop copies the whole elimination into one XLA computation several times and
-    multiplies the compile time.)
+    The likelihood's expected-counts scan is the one compiled piece; it is the same compiled
+    program that :meth:`Likelihood.expected_counts` uses, so one fit compiles the elimination
+    once. (Tracing the objective inside an optimiser's own while-loop copies the whole
+    elimination into one XLA computation several times and multiplies the compile time.) The
+    softmax/prior head around it and its gradient are a few numpy vector operations
+    (:func:`_head_np`); :mod:`adfit.restarts` traces the JAX :func:`_head` into its vmapped
+    program instead.
     """
-    lc, rest = _head(network, z, scale, pseudo, fixed_flat, l2)
+    lay = free_layout(network)
+    z, scale = np.asarray(z, dtype=np.float64), np.asarray(scale, dtype=np.float64)
+    pseudo, fixed_flat = np.asarray(pseudo, dtype=np.float64), np.asarray(fixed_flat, dtype=np.float64)
+    l2, n_total = float(l2), float(n_total)
+    lc, rest, blocks = _head_np(lay, z, scale, pseudo, fixed_flat, l2)
     ll, counts = _value_and_flat_expected_counts(network, groups, lc, codes, weights)
-    g = _head_grad(network, z, scale, pseudo, fixed_flat, l2, counts, n_total)
-    # the optimiser's bookkeeping runs in numpy on the flat vector
-    return -(float(ll) + float(rest)) / float(n_total), np.asarray(g)
+    g = _head_grad_np(lay, blocks, scale, pseudo, l2, np.asarray(counts), n_total)
+    return -(float(ll) + rest) / n_total, g
 
 
-@partial(jax.jit, static_argnums=(0,))
-def _lbfgs_init(memory: int, params):
-    return optax.scale_by_lbfgs(memory_size=memory).init(params)
+class LbfgsState:
+    """The memory of :class:`Lbfgs` (numpy arrays; ``count`` updates so far)."""
+
+    __slots__ = ("count", "params", "updates", "dw", "du", "rho")
+
+    def __init__(self, memory: int, size: int):
+        self.count = 0
+        self.params = np.zeros(size)
+        self.updates = np.zeros(size)
+        self.dw = np.zeros((memory, size))
+        self.du = np.zeros((memory, size))
+        self.rho = np.zeros(memory)
 
 
-@partial(jax.jit, static_argnums=(0,))
-def _lbfgs_direction(memory: int, grad, state, params):
-    return optax.scale_by_lbfgs(memory_size=memory).update(grad, state, params)
+def lbfgs_update(grad: np.ndarray, state: LbfgsState, params: np.ndarray) -> tuple[np.ndarray, LbfgsState]:
+    """The L-BFGS direction ``P_k g_k`` and the memory update, in numpy, step for step as
+    ``optax.scale_by_lbfgs(memory_size=m)`` (optax 0.2: Nocedal & Wright 2006, Algorithms 7.4
+    and 7.5; the memory is updated with the fresh pair first; the initial inverse Hessian is
+    ``γI`` with ``γ = Δuᵀ Δw / Δuᵀ Δu``, at the first step ``min(1, 1/‖g‖)``), so the two give the
+    same directions up to rounding (tests/test_fit.py checks it). ``state`` is updated in place."""
+    m = len(state.rho)
+    mi = state.count % m
+    pi = (state.count - 1) % m
+    if state.count > 0:
+        dw = params - state.params
+        du = grad - state.updates
+        v = float(np.dot(du, dw))
+        state.dw[pi], state.du[pi], state.rho[pi] = dw, du, (0.0 if v == 0.0 else 1.0 / v)
+        den = float(np.dot(du, du))
+        gamma = v / den if den > 0.0 else 1.0
+    else:
+        state.dw[pi], state.du[pi], state.rho[pi] = 0.0, 0.0, 0.0
+        with np.errstate(divide="ignore"):
+            gamma = min(1.0, 1.0 / math.sqrt(float(np.dot(grad, grad))))
+    order = [(mi + j) % m for j in range(m)]
+    vec = np.array(grad, dtype=np.float64)
+    alphas = {}
+    for i in reversed(order):
+        if state.rho[i] == 0.0:  # an empty (or degenerate) pair: alpha = 0, a no-op
+            alphas[i] = 0.0
+            continue
+        alphas[i] = state.rho[i] * float(np.dot(state.dw[i], vec))
+        vec -= alphas[i] * state.du[i]
+    vec *= gamma
+    for i in order:
+        if state.rho[i] == 0.0:
+            continue
+        beta = state.rho[i] * float(np.dot(state.du[i], vec))
+        vec += (alphas[i] - beta) * state.dw[i]
+    state.count += 1
+    state.params = np.array(params, dtype=np.float64)
+    state.updates = np.array(grad, dtype=np.float64)
+    return vec, state
 
 
 @partial(jax.jit, static_argnums=(0,))
@@ -437,7 +540,7 @@ class Fitter:
         # the optimiser's flat vectors (FreeLayout): pseudo-counts and the fixed nodes' log-tables
         self.layout = free_layout(network)
         self.pseudo_flat = self.layout.flatten(self.pseudo)
-        self.fixed_flat = jnp.asarray(fixed_log_tables(network))
+        self.fixed_flat = fixed_log_tables(network)
 
     # -- helpers -------------------------------------------------------------------------
     def objective_fg(self, z, scale, pseudo, l2, n_total):
@@ -449,10 +552,10 @@ class Fitter:
                              l2, n_total, self.lik._codes, self.lik._weights)
 
     def lbfgs_direction(self, memory: int, grad, state, params):
-        """optax's L-BFGS direction and memory update for one start, on flat vectors
-        (:mod:`adfit.restarts` overrides it to update the memories of several starts in one
-        vmapped call)."""
-        return _lbfgs_direction(memory, grad, state, params)
+        """The L-BFGS direction and memory update for one start, on flat vectors
+        (:func:`lbfgs_update`, numpy, as optax's ``scale_by_lbfgs``; :mod:`adfit.restarts`
+        overrides it to update the memories of several starts in one vmapped optax call)."""
+        return lbfgs_update(grad, state, params)
 
     def probs(self, logits: Mapping[str, Any]) -> dict[str, np.ndarray]:
         return probs_from_logits(self.network, logits)
@@ -518,9 +621,9 @@ class Fitter:
         it = 0
         gtol_abs = s.gtol * N
         lay = self.layout
-        pseudo = jnp.asarray(self.pseudo_flat)
-        l2 = jnp.asarray(float(s.l2))
-        n_total = jnp.asarray(N)
+        pseudo = self.pseudo_flat
+        l2 = float(s.l2)
+        n_total = float(N)
         stop_reason, converged = "", False
         if not math.isfinite(ev["objective"]):
             return _Run(logits, ev["objective"], hist_obj, hist_gn, 0, False, "objective not finite at the start")
@@ -540,7 +643,7 @@ class Fitter:
             z = lay.flatten(logits) / scale
             f, g = fg(z)
             if s.method == "lbfgs":
-                state = _lbfgs_init(s.memory, z)
+                state = LbfgsState(s.memory, lay.size)
             else:
                 state = _adam_init(s.learning_rate, z)
             phase_start = it

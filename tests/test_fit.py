@@ -272,3 +272,48 @@ def test_complete_family_start_counts_and_the_plans_observed_families():
         np.testing.assert_allclose(mixed[name], ref[name], rtol=1e-15)
     for name in need:
         np.testing.assert_allclose(ref[name], (counts[name] + 0.5) / (counts[name] + 0.5).sum(axis=-1, keepdims=True))
+
+
+def test_numpy_head_and_lbfgs_equal_the_jax_head_and_optax():
+    # The single-start optimiser's numpy pieces against their references: the head and its
+    # gradient against the JAX head (autodiff through jax.nn.log_softmax), the L-BFGS
+    # directions against optax.scale_by_lbfgs over several steps (random gradients), a fresh
+    # memory included.
+    import jax.numpy as jnp
+    import optax
+
+    from adfit.fit import (LbfgsState, _head, _head_grad, _head_grad_np, _head_np, fixed_log_tables, free_layout,
+                           lbfgs_update)
+
+    net = network_from_dict({
+        "a": {"states": ["x", "y", "z"], "fixed": [0.2, 0.0, 0.8]},
+        "b": {"states": ["u", "v"], "parents": ["a"]},
+        "c": {"states": ["p", "q", "r", "s"], "parents": ["a", "b"]},
+        "d": {"states": ["e", "f", "g"], "parents": ["b"]},
+    })
+    lay = free_layout(net)
+    rng = np.random.default_rng(6)
+    z, scale = rng.normal(size=lay.size), rng.uniform(0.5, 2.0, lay.size)
+    pseudo, fixed = rng.uniform(0, 2, lay.size), fixed_log_tables(net)
+    counts = rng.uniform(0, 10, lay.n_flat + 2)
+    for l2 in (0.0, 0.4):
+        full_j, rest_j = _head(net, jnp.asarray(z), jnp.asarray(scale), jnp.asarray(pseudo), jnp.asarray(fixed), l2)
+        full_n, rest_n, blocks = _head_np(lay, z, scale, pseudo, fixed, l2)
+        np.testing.assert_allclose(full_n, np.asarray(full_j), rtol=1e-14, atol=1e-14)
+        assert rest_n == pytest.approx(float(rest_j), rel=1e-13)
+        g_j = _head_grad(net, jnp.asarray(z), jnp.asarray(scale), jnp.asarray(pseudo), jnp.asarray(fixed), l2,
+                         jnp.asarray(counts), 30.0)
+        g_n = _head_grad_np(lay, blocks, scale, pseudo, l2, counts, 30.0)
+        np.testing.assert_allclose(g_n, np.asarray(g_j), rtol=1e-12, atol=1e-14)
+    memory = 4
+    opt = optax.scale_by_lbfgs(memory_size=memory)
+    x = rng.normal(size=lay.size)
+    ref, mine = opt.init(x), LbfgsState(memory, lay.size)
+    for step in range(9):  # past the memory size: the ring buffer wraps
+        if step == 6:  # a new phase: a fresh memory
+            ref, mine = opt.init(x), LbfgsState(memory, lay.size)
+        g = rng.normal(size=lay.size) + x
+        d_ref, ref = opt.update(g, ref, x)
+        d, mine = lbfgs_update(g, mine, x)
+        np.testing.assert_allclose(d, np.asarray(d_ref), rtol=1e-11, atol=1e-13)
+        x = x - 0.3 * d
