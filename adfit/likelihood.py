@@ -467,58 +467,68 @@ def _decompose(network: Network, codes: np.ndarray):
     """
     n = len(network)
     pa, kids = _st(network).parents, _st(network).children
-    hidden = codes < 0
     R = codes.shape[0]
+    # Only the nodes hidden somewhere in the block (``roots``) take part; their columns are
+    # worked on transposed (one contiguous row per node): a column of the row-major block costs
+    # a pass over the whole block.
+    some = codes.min(axis=0) < 0 if R else np.zeros(n, bool)
+    roots = np.flatnonzero(some)
+    H = len(roots)
+    posh = np.full(n + 1, -1, np.int64)
+    posh[roots] = np.arange(H)
+    hT = np.ascontiguousarray((codes[:, roots] < 0).T)          # (H, rows)
+    always = np.full(n, R == 0)   # (vacuously hidden in every row of an empty block)
+    always[roots] = hT.all(axis=1)
     # Barren nodes (hidden, no observed descendant) sum out to 1, but their expected counts are
     # not 0 (they are the CPT propagated from the posterior of their parents), so they stay in
-    # their components; they are only counted here, for the description.
-    obs_desc = ~hidden
-    some = hidden.any(axis=0)
-    for i in reversed(range(n)):
-        if some[i] and kids[i]:
-            obs_desc[:, i] |= obs_desc[:, list(kids[i])].any(axis=1)
-    pruned_any = (hidden & ~obs_desc).any(axis=0)
-    kept = np.ones_like(hidden)
-    hk = hidden
-    hk_any = hk.any(axis=0)
-    lab = np.where(hk, np.arange(n, dtype=np.int32), np.int32(n))
+    # their components; they are only counted here, for the description. A child never hidden
+    # in the block is an observed descendant in every row.
+    odT = ~hT
+    for p in reversed(range(H)):
+        i = int(roots[p])
+        if not kids[i]:
+            continue
+        if any(not some[c] for c in kids[i]):
+            odT[p] = True
+        else:
+            odT[p] |= odT[posh[list(kids[i])]].any(axis=0)
+    pruned_any = np.zeros(n, bool)
+    pruned_any[roots] = (hT & ~odT).any(axis=1)
+    labT = np.where(hT, roots[:, None].astype(np.int32), np.int32(n))  # (H, rows)
+    fam_h = [posh[[u for u in (*pa[v], v) if some[u]]] for v in range(n)]
     links = []
     for v in range(n):
-        mem = [u for u in (*pa[v], v) if hk_any[u]]
-        if len(mem) < 2:
+        pm = fam_h[v]
+        if len(pm) < 2:
             continue
-        mem_a = np.asarray(mem)
-        rows = np.flatnonzero((hk[:, mem_a].sum(axis=1) >= 2) & kept[:, v])
+        rows = np.flatnonzero(hT[pm].sum(axis=0) >= 2)
         if rows.size:
-            links.append((mem_a, rows))
+            links.append((pm, rows))
     changed = bool(links)
     while changed:  # propagate the smallest node index over shared families until stable
         changed = False
-        for mem_a, rows in links:
-            sub = lab[rows[:, None], mem_a]
-            new = np.where(sub < n, sub.min(axis=1, keepdims=True), np.int32(n))
+        for pm, rows in links:
+            sub = labT[pm[:, None], rows[None, :]]
+            new = np.where(sub < n, sub.min(axis=0, keepdims=True), np.int32(n))
             if not np.array_equal(new, sub):
-                lab[rows[:, None], mem_a] = new
+                labT[pm[:, None], rows[None, :]] = new
                 changed = True
     W = (n + 63) // 64
-    roots = np.flatnonzero(hk_any)             # only nodes hidden somewhere can label a component
-    pos = np.full(n + 1, -1, np.int64)
-    pos[roots] = np.arange(len(roots))
-    hm = np.zeros((R, max(1, len(roots)), W), np.uint64)
-    fm = np.zeros((R, max(1, len(roots)), W), np.uint64)
-    for u in roots:
-        rr = np.flatnonzero(hk[:, u])
-        hm[rr, pos[lab[rr, u]], u // 64] |= np.uint64(1 << (int(u) % 64))
+    hm = np.zeros((R, max(1, H), W), np.uint64)
+    fm = np.zeros((R, max(1, H), W), np.uint64)
+    for p, u in enumerate(roots):
+        rr = np.flatnonzero(hT[p])
+        hm[rr, posh[labT[p, rr]], u // 64] |= np.uint64(1 << (int(u) % 64))
     for v in range(n):
-        mem = [u for u in (*pa[v], v) if hk_any[u]]
-        if not mem:
+        pm = fam_h[v]
+        if not len(pm):
             continue
-        fl = lab[:, mem].min(axis=1)
-        rr = np.flatnonzero((fl < n) & kept[:, v])
-        fm[rr, pos[fl[rr]], v // 64] |= np.uint64(1 << (v % 64))
+        fl = labT[pm].min(axis=0)
+        rr = np.flatnonzero(fl < n)
+        fm[rr, posh[fl[rr]], v // 64] |= np.uint64(1 << (v % 64))
     r, root = np.nonzero(hm.any(axis=2))
     key = np.concatenate([hm[r, root], fm[r, root]], axis=1)
-    return r, key, pruned_any, hidden.all(axis=0), some
+    return r, key, pruned_any, always, some
 
 
 def _bits(words: np.ndarray) -> tuple[int, ...]:
@@ -569,8 +579,7 @@ def _components(network: Network, codes: np.ndarray):
         some |= blk_any
         if not len(r):
             continue
-        kv = np.ascontiguousarray(key).view(np.dtype((np.void, key.dtype.itemsize * key.shape[1]))).ravel()
-        uk, inv = np.unique(kv, return_inverse=True)
+        uk, inv = _unique_keys(key)
         gid = np.empty(len(uk), np.int64)
         for j, k in enumerate(uk):
             b = k.tobytes()
@@ -597,6 +606,36 @@ def _components(network: Network, codes: np.ndarray):
         hs = set(typ.hidden)
         typ.boundary = tuple(sorted({u for v in typ.families for u in (*pa[v], v)} - hs))
     return tlist, pruned, np.stack([always & some, some])
+
+
+def _void_rows(a: np.ndarray) -> np.ndarray:
+    a = np.ascontiguousarray(a)
+    return a.view(np.dtype((np.void, a.dtype.itemsize * a.shape[1]))).ravel()
+
+
+def _unique_keys(key: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``np.unique`` of the rows of a uint64 key matrix (as raw bytes, ``return_inverse``), by a
+    hash table: the keys are many (one per component) and their distinct values few (component
+    types), so sorting them all (``np.unique``) is the slow way. The distinct keys found are
+    checked against every row (a hash collision falls back to ``np.unique``) and sorted as
+    ``np.unique`` sorts them, so the result is the same."""
+    import pandas as pd
+
+    if len(key) == 0:
+        uk, inv = np.unique(_void_rows(key), return_inverse=True)
+        return uk, inv.reshape(-1)
+    h = key[:, 0].copy()
+    for j in range(1, key.shape[1]):
+        h = h * np.uint64(0x9E3779B97F4A7C15) + key[:, j]  # wraps modulo 2^64
+    codes, uniq = pd.factorize(h, sort=False)
+    first = np.empty(len(uniq), np.int64)
+    first[codes[::-1]] = np.arange(len(codes) - 1, -1, -1)
+    distinct = key[first]
+    if not np.array_equal(distinct[codes], key):  # a collision of the 64-bit hash
+        uk, inv = np.unique(_void_rows(key), return_inverse=True)
+        return uk, inv.reshape(-1)
+    uk, rank = np.unique(_void_rows(distinct), return_inverse=True)
+    return uk, rank.reshape(-1)[codes]
 
 
 def _distinct_rows(sub: np.ndarray, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray]:
