@@ -1364,26 +1364,33 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
         for s0 in range(0, R, step):
             cbT = np.ascontiguousarray(codes[s0:s0 + step].T)     # (n, rows): whole columns
             lb = local[s0:s0 + step]
-            hidT = cbT < 0
-            h_any = hidT.any(axis=1)
+            not_local = None if lb.all() else ~lb
+            h_any = cbT.min(axis=1) < 0 if cbT.shape[1] else np.zeros(n, bool)
+            hid: dict[int, np.ndarray] = {}                         # cbT[u] < 0, for nodes hidden here
             idx = np.empty((n, cbT.shape[1]), np.int64)
             for v in range(n):
                 fam = (*pa[v], v)
                 iv = idx[v]
-                iv[:] = offsets[v]
-                bad = None if lb.all() else ~lb
-                for u in fam:
+                np.add(cbT[v], offsets[v], out=iv, dtype=np.int64)  # the node's own stride is 1
+                for u in fam[:-1]:
                     iv += strides[v][u] * cbT[u]
+                bad = not_local
+                for u in fam:
                     if h_any[u]:
-                        bad = hidT[u] if bad is None else (bad | hidT[u])
+                        hu = hid.get(u)
+                        if hu is None:
+                            hu = hid[u] = cbT[u] < 0
+                        bad = hu if bad is None else (bad | hu)
                 if bad is not None:
                     iv[bad] = n_flat + 2                            # a bin of its own, dropped
             cb_w = counts[s0:s0 + step]
             if unit:
-                N += np.bincount(idx.ravel(), minlength=n_flat + 3)[:n_flat + 2]
+                bc = np.bincount(idx.ravel(), minlength=n_flat + 3)
+                N += bc[:n_flat + 2]
+                n_fam += int(bc[:n_flat + 1].sum())                # the entries <= n_flat: every member observed
             else:
                 N += np.bincount(idx.ravel(), weights=np.tile(cb_w, n), minlength=n_flat + 3)[:n_flat + 2]
-            n_fam += int(np.count_nonzero(idx <= n_flat))
+                n_fam += int(np.count_nonzero(idx <= n_flat))
         n_comp = sum(int(local[t.rows].sum()) for t in (*enum_types, *prog_types))
         blocks.append(GatheredBlock(n_local, n_fam, int(pruned.sum()), n_comp))
         arrays.append(np.zeros(0, np.int32))
