@@ -286,7 +286,7 @@ def _head_np(lay: FreeLayout, z: np.ndarray, scale: np.ndarray, pseudo: np.ndarr
         blocks.append((e, ls))
         d = e - e.mean(axis=-1, keepdims=True)
         pen += float(np.sum(d * d))
-    lc = parts[0] if len(parts) == 1 else np.concatenate(parts)
+    lc = parts[0] if len(parts) == 1 else (np.concatenate(parts) if parts else np.zeros(0))
     if lay.inverse is not None:
         lc = lc[lay.inverse]
     with np.errstate(invalid="ignore"):
