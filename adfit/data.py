@@ -875,6 +875,34 @@ def validate_coded(network: Network, data: CodedData) -> CodedData:
         raise DataError(f"{src}: counts has shape {list(counts.shape)}, expected ({codes.shape[0]},)")
     if not np.all(np.isfinite(counts)) or np.any(counts <= 0):
         raise DataError(f"{src}: counts must be finite and > 0")
+    if not _codes_in_range(network, codes):
+        _raise_first_bad_code(network, codes, src)  # a column-by-column search, to name the first bad cell
+    if codes.dtype != np.int32 or counts.dtype != np.float64:
+        return CodedData(codes.astype(np.int32), counts.astype(np.float64), data.inverse, data.source)
+    return data
+
+
+#: cells of the code matrix checked at a time by :func:`_codes_in_range`
+VALIDATE_BLOCK = 1 << 22
+
+
+def _codes_in_range(network: Network, codes: np.ndarray) -> bool:
+    """Whether every code is in ``HIDDEN..card-1`` and every latent column is all ``HIDDEN``:
+    the per-column minima and maxima of blocks of whole rows (a reduction along the rows of a
+    row-major block reads it once; a column of a row-major matrix costs a pass over all of it)."""
+    n = codes.shape[1]
+    if codes.shape[0] == 0 or n == 0:
+        return True
+    hi = np.array([HIDDEN if nd.latent else nd.card - 1 for nd in network.nodes])
+    step = max(1, VALIDATE_BLOCK // n)
+    for s0 in range(0, codes.shape[0], step):
+        blk = codes[s0:s0 + step]
+        if np.any(blk.min(axis=0) < HIDDEN) or np.any(blk.max(axis=0) > hi):
+            return False
+    return True
+
+
+def _raise_first_bad_code(network: Network, codes: np.ndarray, src: str) -> None:
     for j, n in enumerate(network.nodes):
         col = codes[:, j]
         if n.latent and np.any(col != HIDDEN):
@@ -883,9 +911,7 @@ def validate_coded(network: Network, data: CodedData) -> CodedData:
         if bad.size:
             raise DataError(f"{src}: row {int(bad[0]) + 1}, node {n.name!r}: code {int(col[bad[0]])} is outside "
                             f"{HIDDEN}..{n.card - 1}")
-    if codes.dtype != np.int32 or counts.dtype != np.float64:
-        return CodedData(codes.astype(np.int32), counts.astype(np.float64), data.inverse, data.source)
-    return data
+    raise AssertionError("a code out of range was found but not named")  # pragma: no cover
 
 
 def load_data(network: Network, data: "str | Path | pd.DataFrame | CodedData", *,

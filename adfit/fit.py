@@ -41,7 +41,7 @@ import optax
 
 from .data import HIDDEN, CodedData, load_data
 from .errors import ConvergenceWarning, IdentifiabilityWarning, LocalOptimaWarning, OptionError
-from .likelihood import (Likelihood, _value_and_expected_counts, check_possible,
+from .likelihood import (Likelihood, _value_and_flat_expected_counts, check_possible,
                          logits_from_probs, probs_from_logits)
 from .network import Network
 from .priors import describe_rows, prior_only_rows, resolve_pseudo_counts
@@ -137,46 +137,224 @@ def _norm(tree: Mapping[str, np.ndarray]) -> float:
     return math.sqrt(sum(float(np.sum(np.asarray(v) ** 2)) for v in tree.values()))
 
 
+# --------------------------------------------------------------------------- the flat parameter vector
+@dataclass(frozen=True, eq=False)
+class FreeLayout:
+    """The logits of the free nodes as one flat float64 vector: the free nodes in network order,
+    each CPT raveled (C order), at ``offsets``. The optimiser works on such vectors only (its
+    compiled pieces then take one array whatever the number of nodes, and compile once per
+    vector length); CPT-shaped dicts appear at its boundary (:meth:`flatten`, :meth:`unflatten`).
+
+    ``rows`` groups the CPT rows by their number of states: ``(k, idx)`` with ``idx`` the
+    ``(rows, k)`` positions of every row of ``k`` states in the vector (``None`` when the vector
+    is just those rows, in order); ``inverse`` puts the concatenated groups back in vector order
+    (``None`` when they already are). ``full_index`` maps every entry of the likelihood's flat
+    layout (all nodes, :func:`adfit.likelihood.layout_of`) to its position in the free vector
+    followed by the fixed nodes' log-tables (``None`` when no node is fixed).
+    """
+
+    names: tuple[str, ...]
+    shapes: tuple[tuple[int, ...], ...]
+    offsets: tuple[int, ...]
+    size: int
+    n_flat: int
+    rows: tuple[tuple[int, Any], ...]
+    inverse: Any
+    full_index: Any
+    order: Any = None        # the row blocks' entries in vector positions (inverse of ``inverse``)
+    free_index: Any = None   # the free entries' positions in the likelihood's layout (None: all entries)
+
+    def flatten(self, tree: Mapping[str, Any]) -> np.ndarray:
+        """One float64 vector from CPT-shaped arrays of the free nodes (a new array)."""
+        if not self.names:
+            return np.zeros(0)
+        return np.concatenate([np.ravel(np.asarray(tree[k], dtype=np.float64)) for k in self.names])
+
+    def unflatten(self, vec: Any) -> dict[str, np.ndarray]:
+        """CPT-shaped views of a flat vector, by free node."""
+        v = np.asarray(vec)
+        return {k: v[o:o + math.prod(sh)].reshape(sh) for k, sh, o in zip(self.names, self.shapes, self.offsets)}
+
+
+_FREE_LAYOUTS: dict[int, tuple[Network, FreeLayout]] = {}
+
+
+def free_layout(network: Network) -> FreeLayout:
+    """The :class:`FreeLayout` of ``network`` (cached by identity, as the likelihood's layout)."""
+    hit = _FREE_LAYOUTS.get(id(network))
+    if hit is None or hit[0] is not network:
+        hit = _FREE_LAYOUTS[id(network)] = (network, _make_free_layout(network))
+    return hit[1]
+
+
+def _make_free_layout(network: Network) -> FreeLayout:
+    names = tuple(network.free_names)
+    free = set(names)
+    shapes, offsets, by_card = [], [], {}
+    off = 0
+    for name in names:
+        sh = tuple(network.cpt_shape(name))
+        size = math.prod(sh)
+        shapes.append(sh)
+        offsets.append(off)
+        by_card.setdefault(sh[-1], []).append(np.arange(off, off + size, dtype=np.int32))
+        off += size
+    P = off
+    rows, order = [], []
+    for k in sorted(by_card):
+        idx = np.concatenate(by_card[k])
+        order.append(idx)
+        rows.append((k, idx.reshape(-1, k)))
+    perm = np.concatenate(order) if order else np.zeros(0, np.int32)
+    in_order = bool(np.array_equal(perm, np.arange(P)))
+    if in_order and len(rows) == 1:
+        rows = [(rows[0][0], None)]
+    inverse = None if in_order else np.argsort(perm).astype(np.int32)
+    full, fixed_off, n_flat = [], 0, 0
+    for node in network.nodes:
+        size = math.prod(network.cpt_shape(node.name))
+        n_flat += size
+        if node.name in free:
+            o = offsets[names.index(node.name)]
+            full.append(np.arange(o, o + size, dtype=np.int32))
+        else:
+            full.append(np.arange(P + fixed_off, P + fixed_off + size, dtype=np.int32))
+            fixed_off += size
+    full_index = None if fixed_off == 0 else np.concatenate(full)
+    free_index = None if full_index is None else np.flatnonzero(full_index < P).astype(np.int32)
+    return FreeLayout(names, tuple(shapes), tuple(offsets), P, n_flat, tuple(rows), inverse, full_index,
+                      None if inverse is None else perm.astype(np.int32), free_index)
+
+
+def fixed_log_tables(network: Network) -> np.ndarray:
+    """log of the fixed nodes' tables, in network order, raveled (the tail of
+    ``FreeLayout.full_index``'s source vector)."""
+    parts = []
+    with np.errstate(divide="ignore"):
+        for name in network.fixed_names:
+            parts.append(np.ravel(np.log(np.asarray(network.fixed_table(name), dtype=np.float64))))
+    return np.concatenate(parts) if parts else np.zeros(0)
+
+
 # --------------------------------------------------------------------------- the fast objective
 @partial(jax.jit, static_argnums=(0,))
-def _head(network: Network, z, scale, pseudo, fixed_lc, l2):
-    """Log-CPTs of all nodes and the prior/penalty part of F, from the scaled logits z."""
-    free = network.free_names
-    eta = {k: z[k] * scale[k] for k in free}
-    lcs = tuple(jax.nn.log_softmax(eta[n.name], axis=-1) if n.fixed is None else fixed_lc[n.name]
-                for n in network.nodes)
-    lp = sum(jnp.sum(pseudo[k] * lcs[network.index(k)]) for k in free)
-    pen = sum(jnp.sum((eta[k] - jnp.mean(eta[k], axis=-1, keepdims=True)) ** 2) for k in free)
-    return lcs, lp - l2 * pen
+def _head(network: Network, z, scale, pseudo, fixed_flat, l2):
+    """Log-CPTs of all nodes (one flat vector in the likelihood's layout) and the prior/penalty
+    part of F, from the scaled logits ``z`` (flat, :class:`FreeLayout`). The softmax runs once per
+    number of states over all CPT rows of that size, so the program does not grow with the
+    number of nodes."""
+    lay = free_layout(network)
+    eta = z * scale
+    parts = []
+    pen = jnp.zeros((), jnp.float64)
+    for k, idx in lay.rows:
+        e = eta.reshape(-1, k) if idx is None else eta[idx]
+        parts.append(jax.nn.log_softmax(e, axis=-1).reshape(-1))
+        pen = pen + jnp.sum((e - jnp.mean(e, axis=-1, keepdims=True)) ** 2)
+    lc = parts[0] if len(parts) == 1 else jnp.concatenate(parts)
+    if lay.inverse is not None:
+        lc = lc[lay.inverse]
+    lp = jnp.sum(pseudo * lc)
+    full = lc if lay.full_index is None else jnp.concatenate([lc, fixed_flat])[lay.full_index]
+    return full, lp - l2 * pen
 
 
 @partial(jax.jit, static_argnums=(0,))
-def _head_grad(network: Network, z, scale, pseudo, fixed_lc, l2, counts, n_total):
-    """Gradient of −F/N w.r.t. z, given ∂ log L/∂ log θ = the expected counts."""
-    _, vjp = jax.vjp(lambda zz: _head(network, zz, scale, pseudo, fixed_lc, l2), z)
-    (g,) = vjp((tuple(counts), jnp.ones((), jnp.float64)))
-    return {k: -v / n_total for k, v in g.items()}
+def _head_grad(network: Network, z, scale, pseudo, fixed_flat, l2, counts, n_total):
+    """Gradient of −F/N w.r.t. z, given ∂ log L/∂ log θ = the expected counts (flat, in the
+    likelihood's layout; trailing entries beyond it are ignored)."""
+    n_flat = free_layout(network).n_flat
+    _, vjp = jax.vjp(lambda zz: _head(network, zz, scale, pseudo, fixed_flat, l2), z)
+    (g,) = vjp((counts[:n_flat], jnp.ones((), jnp.float64)))
+    return -g / n_total
 
 
-def _objective_fg(network: Network, groups, z, scale, pseudo, fixed_lc, l2, n_total, codes, weights):
-    """−F/N and its gradient w.r.t. z.
+def _head_np(lay: FreeLayout, z: np.ndarray, scale: np.ndarray, pseudo: np.ndarray, fixed_flat: np.ndarray,
+             l2: float):
+    """:func:`_head` in numpy, for the single-start optimiser (no compile; a few vector operations
+    per call): ``(log-CPTs in the likelihood's flat layout, prior/penalty part of F, (eta, theta,
+    row blocks) for :func:`_head_grad_np`)``. The same softmax as ``jax.nn.log_softmax`` (row max
+    shifted out); equal to :func:`_head` up to rounding."""
+    eta = z * scale
+    parts, blocks = [], []
+    pen = 0.0
+    for k, idx in lay.rows:
+        e = eta.reshape(-1, k) if idx is None else eta[idx]
+        sh = e - e.max(axis=-1, keepdims=True)
+        ls = sh - np.log(np.sum(np.exp(sh), axis=-1, keepdims=True))
+        parts.append(ls.reshape(-1))
+        blocks.append((e, ls))
+        d = e - e.mean(axis=-1, keepdims=True)
+        pen += float(np.sum(d * d))
+    lc = parts[0] if len(parts) == 1 else (np.concatenate(parts) if parts else np.zeros(0))
+    if lay.inverse is not None:
+        lc = lc[lay.inverse]
+    with np.errstate(invalid="ignore"):
+        lp = float(np.dot(pseudo, lc))
+    full = lc if lay.full_index is None else np.concatenate([lc, fixed_flat])[lay.full_index]
+    return full, lp - l2 * pen, blocks
 
-    Composed in Python from three compiled pieces, of which only the expected-counts scan is
-    large; it is the same compiled program that :meth:`Likelihood.expected_counts` uses, so one
-    fit compiles the elimination once. (Tracing the objective inside an optimiser's own
-    while-loop copies the whole elimination into one XLA computation several times and
-    multiplies the compile time.)
+
+def _head_grad_np(lay: FreeLayout, blocks, scale: np.ndarray, pseudo: np.ndarray, l2: float, counts: np.ndarray,
+                  n_total: float) -> np.ndarray:
+    """:func:`_head_grad` in closed form (numpy): with ``a = N(x,u) + c`` per CPT entry, the
+    gradient of F w.r.t. the logits is ``a − θ Σ_x a − 2λ(η − mean η)`` per row (Fisher's
+    identity, the prior, the penalty); times ``scale`` and ``−1/N``."""
+    c = counts[:lay.n_flat] if lay.free_index is None else counts[lay.free_index]
+    a = c + pseudo
+    if lay.inverse is not None:
+        a = a[lay.order]
+    out, off = [], 0
+    for (e, ls), (k, _) in zip(blocks, lay.rows):
+        ab = a[off:off + e.size].reshape(e.shape)
+        off += e.size
+        g = ab - np.exp(ls) * ab.sum(axis=-1, keepdims=True)
+        if l2:
+            g = g - 2.0 * l2 * (e - e.mean(axis=-1, keepdims=True))
+        out.append(g.reshape(-1))
+    g = out[0] if len(out) == 1 else np.concatenate(out)
+    if lay.inverse is not None:
+        g = g[lay.inverse]
+    return -(g * scale) / n_total
+
+
+def _objective_fg(network: Network, groups, z, scale, pseudo, fixed_flat, l2, n_total, codes, weights):
+    """−F/N and its gradient w.r.t. z (flat numpy vectors, :class:`FreeLayout`).
+
+    The likelihood's expected-counts scan is the one compiled piece; it is the same compiled
+    program that :meth:`Likelihood.expected_counts` uses, so one fit compiles the elimination
+    once. (Tracing the objective inside an optimiser's own while-loop copies the whole
+    elimination into one XLA computation several times and multiplies the compile time.) The
+    softmax/prior head around it and its gradient are a few numpy vector operations
+    (:func:`_head_np`); :mod:`adfit.restarts` traces the JAX :func:`_head` into its vmapped
+    program instead.
     """
-    lcs, rest = _head(network, z, scale, pseudo, fixed_lc, l2)
-    ll, counts = _value_and_expected_counts(network, groups, lcs, codes, weights)
-    g = _head_grad(network, z, scale, pseudo, fixed_lc, l2, counts, n_total)
-    # the optimiser's bookkeeping runs in numpy: eager JAX ops would compile per leaf shape
-    return float(-(ll + rest) / n_total), {k: np.asarray(v) for k, v in g.items()}
+    lay = free_layout(network)
+    z, scale = np.asarray(z, dtype=np.float64), np.asarray(scale, dtype=np.float64)
+    pseudo, fixed_flat = np.asarray(pseudo, dtype=np.float64), np.asarray(fixed_flat, dtype=np.float64)
+    l2, n_total = float(l2), float(n_total)
+    lc, rest, blocks = _head_np(lay, z, scale, pseudo, fixed_flat, l2)
+    ll, counts = _value_and_flat_expected_counts(network, groups, lc, codes, weights)
+    g = _head_grad_np(lay, blocks, scale, pseudo, l2, np.asarray(counts), n_total)
+    return -(float(ll) + rest) / n_total, g
+
+
+@partial(jax.jit, static_argnums=(0,))
+def _lbfgs_init(memory: int, params):
+    return optax.scale_by_lbfgs(memory_size=memory).init(params)
 
 
 @partial(jax.jit, static_argnums=(0,))
 def _lbfgs_direction(memory: int, grad, state, params):
+    """optax's L-BFGS direction and memory update (Nocedal & Wright 2006, Algorithms 7.4 and
+    7.5) on the one flat vector of the free logits: one small program, compiled once per vector
+    size and memory (kept by the persistent compilation cache of the CLI)."""
     return optax.scale_by_lbfgs(memory_size=memory).update(grad, state, params)
+
+
+@partial(jax.jit, static_argnums=(0,))
+def _adam_init(learning_rate: float, params):
+    return optax.adam(learning_rate).init(params)
 
 
 @partial(jax.jit, static_argnums=(0,))
@@ -186,10 +364,14 @@ def _adam_update(learning_rate: float, grad, state, params):
 
 
 def _dot(a, b) -> float:
+    if isinstance(a, np.ndarray):
+        return float(np.dot(a, b))
     return float(sum(np.vdot(a[k], b[k]) for k in a))
 
 
 def _axpy(alpha: float, d, x):
+    if isinstance(x, np.ndarray):
+        return x + alpha * d
     return {k: x[k] + alpha * d[k] for k in x}
 
 
@@ -313,19 +495,26 @@ class Fitter:
         self.em_polish_steps = 0
         with np.errstate(divide="ignore"):
             self.fixed_lc = {n: jnp.asarray(np.log(network.fixed_table(n))) for n in network.fixed_names}
+        # the optimiser's flat vectors (FreeLayout): pseudo-counts and the fixed nodes' log-tables
+        self.layout = free_layout(network)
+        self.pseudo_flat = self.layout.flatten(self.pseudo)
+        self.fixed_flat = fixed_log_tables(network)
 
     # -- helpers -------------------------------------------------------------------------
     def objective_fg(self, z, scale, pseudo, l2, n_total):
-        """−F/N and its gradient w.r.t. the scaled logits ``z``: every objective evaluation of
-        :meth:`run` goes through here (:mod:`adfit.restarts` overrides it to evaluate the
-        points of several starts in one vmapped call)."""
-        return _objective_fg(self.network, self.lik.plan.groups, z, scale, pseudo, self.fixed_lc,
+        """−F/N and its gradient w.r.t. the scaled logits ``z`` (flat vectors of
+        :attr:`layout`, as ``scale`` and ``pseudo``; the gradient is a flat numpy array): every
+        objective evaluation of :meth:`run` goes through here (:mod:`adfit.restarts` overrides
+        it to evaluate the points of several starts in one vmapped call)."""
+        return _objective_fg(self.network, self.lik.plan.groups, z, scale, pseudo, self.fixed_flat,
                              l2, n_total, self.lik._codes, self.lik._weights)
 
     def lbfgs_direction(self, memory: int, grad, state, params):
-        """optax's L-BFGS direction and memory update for one start (:mod:`adfit.restarts`
-        overrides it to update the memories of several starts in one vmapped call)."""
-        return _lbfgs_direction(memory, grad, state, params)
+        """The L-BFGS direction and memory update for one start, on flat vectors
+        (optax's ``scale_by_lbfgs``; :mod:`adfit.restarts` overrides it to update the memories
+        of several starts in one vmapped optax call)."""
+        d, state = _lbfgs_direction(memory, grad, state, params)
+        return np.asarray(d), state
 
     def probs(self, logits: Mapping[str, Any]) -> dict[str, np.ndarray]:
         return probs_from_logits(self.network, logits)
@@ -390,10 +579,10 @@ class Fitter:
         hist_gn = [ev["gradient_norm"]]
         it = 0
         gtol_abs = s.gtol * N
-        codes, weights = self.lik._codes, self.lik._weights
-        pseudo = {k: jnp.asarray(v) for k, v in self.pseudo.items()}
-        l2 = jnp.asarray(float(s.l2))
-        n_total = jnp.asarray(N)
+        lay = self.layout
+        pseudo = self.pseudo_flat
+        l2 = float(s.l2)
+        n_total = float(N)
         stop_reason, converged = "", False
         if not math.isfinite(ev["objective"]):
             return _Run(logits, ev["objective"], hist_obj, hist_gn, 0, False, "objective not finite at the start")
@@ -403,19 +592,19 @@ class Fitter:
             if ev["gradient_norm"] <= gtol_abs:
                 converged, stop_reason = True, "gradient norm below gtol"
                 break
-            scale = self._scale(ev["counts"], ev["probs"])
+            scale = lay.flatten(self._scale(ev["counts"], ev["probs"]))
             phase_len = PHASE_LENGTHS[min(n_phase, len(PHASE_LENGTHS) - 1)] if s.method == "lbfgs" else s.max_iter
             n_phase += 1
 
             def fg(zz):
                 return self.objective_fg(zz, scale, pseudo, l2, n_total)
 
-            z = {k: np.asarray(logits[k]) / np.asarray(scale[k]) for k in self.free}
+            z = lay.flatten(logits) / scale
             f, g = fg(z)
             if s.method == "lbfgs":
-                state = optax.scale_by_lbfgs(memory_size=s.memory).init(z)
+                state = _lbfgs_init(s.memory, z)
             else:
-                state = optax.adam(s.learning_rate).init(z)
+                state = _adam_init(s.learning_rate, z)
             phase_start = it
             prev = f
             flat_count = 0
@@ -423,18 +612,18 @@ class Fitter:
             while it < s.max_iter:
                 if s.method == "lbfgs":
                     d, state = self.lbfgs_direction(s.memory, g, state, z)
-                    d = {k: -np.asarray(d[k]) for k in self.free}
-                    # First step of a phase (empty memory: optax returns the gradient capped to
+                    d = -np.asarray(d)
+                    # First step of a phase (empty memory: the direction is the gradient capped to
                     # norm 1). Under the preconditioner the complete-data curvature of F in z is
                     # about the identity, that of f = −F/N about I/N: try the step −N·g (the
                     # complete-data Newton step) instead of a unit step N times too short.
-                    a0 = N * math.sqrt(_dot(g, g) / max(_dot(d, d), 1e-300)) if it == phase_start else 1.0
+                    a0 = N * math.sqrt(float(np.dot(g, g)) / max(float(np.dot(d, d)), 1e-300)) if it == phase_start else 1.0
                     alpha, f_new, g_new, _ = wolfe_line_search(fg, z, f, g, d, alpha0=a0)
                     if alpha is None:
                         # No decrease along the direction: either the objective is flat to
                         # machine precision (converged if the residual is small) or the
                         # quasi-Newton memory is stale (restart the phase).
-                        cand = {k: z[k] * scale[k] for k in self.free}
+                        cand = lay.unflatten(z * scale)
                         ev_c = self.evaluate(cand)
                         if ev_c["residual"] <= s.ptol or ev_c["gradient_norm"] <= gtol_abs:
                             logits, ev = cand, ev_c
@@ -446,11 +635,11 @@ class Fitter:
                             stop_reason = "line search found no better point"
                         stop_phase = True
                         break
-                    z = _axpy(alpha, d, z)
+                    z = z + alpha * d
                     f, g = f_new, g_new
                 else:
                     z, state = _adam_update(s.learning_rate, g, state, z)
-                    z = {k: np.asarray(v) for k, v in z.items()}
+                    z = np.asarray(z)
                     f, g = fg(z)
                 it += 1
                 if not math.isfinite(f):
@@ -458,7 +647,8 @@ class Fitter:
                     stop_phase = True
                     break
                 obj = -f * N
-                gn = _norm({k: -N * g[k] / scale[k] for k in self.free})
+                gv = N * g / scale
+                gn = math.sqrt(float(np.dot(gv, gv)))
                 hist_obj.append(obj)
                 hist_gn.append(gn)
                 if progress is not None:
@@ -467,7 +657,7 @@ class Fitter:
                 prev = f
                 flat_count = flat_count + 1 if rel < s.tol else 0
                 if gn <= gtol_abs or flat_count >= 5:
-                    cand = {k: z[k] * scale[k] for k in self.free}
+                    cand = lay.unflatten(z * scale)
                     ev_c = self.evaluate(cand)
                     if ev_c["gradient_norm"] <= gtol_abs:
                         logits, ev = cand, ev_c
@@ -484,7 +674,7 @@ class Fitter:
                     break  # refresh the preconditioner
             if converged:
                 break
-            cand = {k: z[k] * scale[k] for k in self.free}
+            cand = lay.unflatten(z * scale)
             ev_c = self.evaluate(cand)
             resid_before = ev["residual"]
             if math.isfinite(ev_c["objective"]) and ev_c["objective"] >= ev["objective"]:
@@ -528,33 +718,93 @@ class Fitter:
 
 # --------------------------------------------------------------------------- starts
 def complete_family_start(network: Network, data: CodedData, rng: np.random.Generator,
-                          pseudo: Mapping[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
+                          pseudo: Mapping[str, np.ndarray] | None = None, *,
+                          observed: tuple[np.ndarray, np.ndarray | None] | None = None) -> dict[str, np.ndarray]:
     """Start from the counts of rows in which a node and all its parents are observed.
 
     Families that include a latent node (never observed together) get a random Dirichlet(1)
     draw, which also breaks the symmetry between latent states. Half a record is added to
     every cell so that no start sits on the boundary.
+
+    ``observed``: those counts already summed over some of the rows, as
+    :meth:`adfit.likelihood.Likelihood.observed_family_counts` gives them (``(flat counts,
+    mask of the rows counted)``); only the other rows are then counted here.
     """
-    codes, w = data.codes, data.counts
+    need = [name for name in network.free_names
+            if not any(network.nodes[j].latent for j in (*map(network.index, network.node(name).parents), network.index(name)))]
+    if observed is not None:
+        from .likelihood import layout_of
+
+        flat, counted = observed
+        offsets = layout_of(network)[0]
+        rest = None if counted is None else ~np.asarray(counted, dtype=bool)
+        extra = complete_family_counts(network, data, need, rows=rest) if rest is not None and rest.any() else {}
+        counts = {}
+        for name in need:
+            shape = network.cpt_shape(name)
+            off = offsets[network.index(name)]
+            c = np.asarray(flat[off:off + math.prod(shape)], dtype=np.float64).reshape(shape)
+            counts[name] = c + extra[name] if name in extra else c
+    else:
+        counts = complete_family_counts(network, data, need)
     out = {}
     for name in network.free_names:
-        i = network.index(name)
         node = network.node(name)
-        fam = [network.index(p) for p in node.parents] + [i]
         shape = network.cpt_shape(name)
-        if any(network.nodes[j].latent for j in fam):
+        if name not in counts:
             out[name] = rng.dirichlet(np.ones(node.card), size=shape[:-1]).reshape(shape)
             continue
-        sub = codes[:, fam]  # one copy of the family's columns (codes[ok] per column copied all rows)
-        ok = np.all(sub != HIDDEN, axis=1)
-        flat = np.ravel_multi_index(tuple(sub[ok].T), shape) if ok.any() else np.zeros(0, int)
-        cnt = np.bincount(flat, weights=w[ok], minlength=int(np.prod(shape))).reshape(shape) + 0.5
+        cnt = counts[name] + 0.5
         if pseudo is not None and name in pseudo:
             cnt = cnt + pseudo[name]
         out[name] = cnt / cnt.sum(axis=-1, keepdims=True)
     for name in network.fixed_names:
         out[name] = network.fixed_table(name)
     return out
+
+
+#: rows of the code matrix handled at a time by :func:`complete_family_counts` (transposed blocks)
+COUNT_BLOCK = 1 << 16
+
+
+def complete_family_counts(network: Network, data: CodedData, names: Iterable[str],
+                           rows: np.ndarray | None = None) -> dict[str, np.ndarray]:
+    """For each node of ``names``: the summed weights of the rows (all, or those of the bool mask
+    ``rows``) in which the node and all its parents are observed, by family configuration
+    (CPT-shaped). The codes are read in blocks of rows, transposed so that each family member
+    is a contiguous column (a row-major column read costs a pass over the whole block)."""
+    codes, w = data.codes, np.asarray(data.counts, dtype=np.float64)
+    names = list(names)
+    fams = {name: [network.index(p) for p in network.node(name).parents] + [network.index(name)] for name in names}
+    shapes = {name: tuple(network.cpt_shape(name)) for name in names}
+    out = {name: np.zeros(math.prod(shapes[name])) for name in names}
+    if not names:
+        return {}
+    sel = None if rows is None else np.flatnonzero(rows)
+    R = len(codes) if sel is None else len(sel)
+    for s0 in range(0, R, COUNT_BLOCK):
+        if sel is None:
+            blk, wb = codes[s0:s0 + COUNT_BLOCK], w[s0:s0 + COUNT_BLOCK]
+        else:
+            ix = sel[s0:s0 + COUNT_BLOCK]
+            blk, wb = codes[ix], w[ix]
+        cT = np.ascontiguousarray(blk.T)
+        hid = cT < 0
+        for name in names:
+            fam, shape = fams[name], shapes[name]
+            bad = np.zeros(cT.shape[1], bool)
+            idx = np.zeros(cT.shape[1], np.intp)
+            stride = 1
+            for u, card in zip(reversed(fam), reversed(shape)):
+                bad |= hid[u]
+                idx += stride * cT[u]
+                stride *= card
+            ok = ~bad
+            if ok.all():
+                out[name] += np.bincount(idx, weights=wb, minlength=stride)
+            else:
+                out[name] += np.bincount(idx[ok], weights=wb[ok], minlength=stride)
+    return {name: out[name].reshape(shapes[name]) for name in names}
 
 
 def random_start(network: Network, rng: np.random.Generator) -> dict[str, np.ndarray]:
@@ -626,7 +876,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     starts = []
     for k in range(restarts):
         if k == 0:
-            p0 = dict(init) if init is not None else complete_family_start(network, coded, rng, fitter.pseudo)
+            p0 = dict(init) if init is not None else complete_family_start(
+                network, coded, rng, fitter.pseudo, observed=fitter.lik.observed_family_counts())
             for name in network.fixed_names:
                 p0[name] = network.fixed_table(name)
         else:

@@ -460,64 +460,75 @@ class Plan:
 def _decompose(network: Network, codes: np.ndarray):
     """Barren pruning and hidden components of a block of rows.
 
-    Returns ``(comp_row, comp_key, pruned_any, observed)``: one entry per component, its row (in
-    the block) and its key, ``(W words of the hidden-node bit set, W words of the family bit
-    set)`` as uint64; ``pruned_any`` marks nodes pruned in at least one row.
+    Returns ``(comp_row, comp_key, pruned_any, hidden_all, hidden_any)``: one entry per
+    component, its row (in the block) and its key, ``(W words of the hidden-node bit set, W
+    words of the family bit set)`` as uint64; ``pruned_any`` marks nodes pruned in at least one
+    row, ``hidden_all`` / ``hidden_any`` nodes hidden in every / some row of the block.
     """
     n = len(network)
     pa, kids = _st(network).parents, _st(network).children
-    hidden = codes < 0
     R = codes.shape[0]
+    # Only the nodes hidden somewhere in the block (``roots``) take part; their columns are
+    # worked on transposed (one contiguous row per node): a column of the row-major block costs
+    # a pass over the whole block.
+    some = codes.min(axis=0) < 0 if R else np.zeros(n, bool)
+    roots = np.flatnonzero(some)
+    H = len(roots)
+    posh = np.full(n + 1, -1, np.int64)
+    posh[roots] = np.arange(H)
+    hT = np.ascontiguousarray((codes[:, roots] < 0).T)          # (H, rows)
+    always = np.full(n, R == 0)   # (vacuously hidden in every row of an empty block)
+    always[roots] = hT.all(axis=1)
     # Barren nodes (hidden, no observed descendant) sum out to 1, but their expected counts are
     # not 0 (they are the CPT propagated from the posterior of their parents), so they stay in
-    # their components; they are only counted here, for the description.
-    obs_desc = ~hidden
-    some = hidden.any(axis=0)
-    for i in reversed(range(n)):
-        if some[i] and kids[i]:
-            obs_desc[:, i] |= obs_desc[:, list(kids[i])].any(axis=1)
-    pruned_any = (hidden & ~obs_desc).any(axis=0)
-    kept = np.ones_like(hidden)
-    hk = hidden
-    hk_any = hk.any(axis=0)
-    lab = np.where(hk, np.arange(n, dtype=np.int32), np.int32(n))
+    # their components; they are only counted here, for the description. A child never hidden
+    # in the block is an observed descendant in every row.
+    odT = ~hT
+    for p in reversed(range(H)):
+        i = int(roots[p])
+        if not kids[i]:
+            continue
+        if any(not some[c] for c in kids[i]):
+            odT[p] = True
+        else:
+            odT[p] |= odT[posh[list(kids[i])]].any(axis=0)
+    pruned_any = np.zeros(n, bool)
+    pruned_any[roots] = (hT & ~odT).any(axis=1)
+    labT = np.where(hT, roots[:, None].astype(np.int32), np.int32(n))  # (H, rows)
+    fam_h = [posh[[u for u in (*pa[v], v) if some[u]]] for v in range(n)]
     links = []
     for v in range(n):
-        mem = [u for u in (*pa[v], v) if hk_any[u]]
-        if len(mem) < 2:
+        pm = fam_h[v]
+        if len(pm) < 2:
             continue
-        mem_a = np.asarray(mem)
-        rows = np.flatnonzero((hk[:, mem_a].sum(axis=1) >= 2) & kept[:, v])
+        rows = np.flatnonzero(hT[pm].sum(axis=0) >= 2)
         if rows.size:
-            links.append((mem_a, rows))
+            links.append((pm, rows))
     changed = bool(links)
     while changed:  # propagate the smallest node index over shared families until stable
         changed = False
-        for mem_a, rows in links:
-            sub = lab[rows[:, None], mem_a]
-            new = np.where(sub < n, sub.min(axis=1, keepdims=True), np.int32(n))
+        for pm, rows in links:
+            sub = labT[pm[:, None], rows[None, :]]
+            new = np.where(sub < n, sub.min(axis=0, keepdims=True), np.int32(n))
             if not np.array_equal(new, sub):
-                lab[rows[:, None], mem_a] = new
+                labT[pm[:, None], rows[None, :]] = new
                 changed = True
     W = (n + 63) // 64
-    roots = np.flatnonzero(hk_any)             # only nodes hidden somewhere can label a component
-    pos = np.full(n + 1, -1, np.int64)
-    pos[roots] = np.arange(len(roots))
-    hm = np.zeros((R, max(1, len(roots)), W), np.uint64)
-    fm = np.zeros((R, max(1, len(roots)), W), np.uint64)
-    for u in roots:
-        rr = np.flatnonzero(hk[:, u])
-        hm[rr, pos[lab[rr, u]], u // 64] |= np.uint64(1 << (int(u) % 64))
+    hm = np.zeros((R, max(1, H), W), np.uint64)
+    fm = np.zeros((R, max(1, H), W), np.uint64)
+    for p, u in enumerate(roots):
+        rr = np.flatnonzero(hT[p])
+        hm[rr, posh[labT[p, rr]], u // 64] |= np.uint64(1 << (int(u) % 64))
     for v in range(n):
-        mem = [u for u in (*pa[v], v) if hk_any[u]]
-        if not mem:
+        pm = fam_h[v]
+        if not len(pm):
             continue
-        fl = lab[:, mem].min(axis=1)
-        rr = np.flatnonzero((fl < n) & kept[:, v])
-        fm[rr, pos[fl[rr]], v // 64] |= np.uint64(1 << (v % 64))
+        fl = labT[pm].min(axis=0)
+        rr = np.flatnonzero(fl < n)
+        fm[rr, posh[fl[rr]], v // 64] |= np.uint64(1 << (v % 64))
     r, root = np.nonzero(hm.any(axis=2))
     key = np.concatenate([hm[r, root], fm[r, root]], axis=1)
-    return r, key, pruned_any
+    return r, key, pruned_any, always, some
 
 
 def _bits(words: np.ndarray) -> tuple[int, ...]:
@@ -546,7 +557,11 @@ class _Type:
 
 
 def _components(network: Network, codes: np.ndarray):
-    """Component types of every row (blockwise, to bound memory)."""
+    """Component types of every row (blockwise, to bound memory).
+
+    Returns ``(types, pruned, hidden_summary)``; ``hidden_summary`` is the (2, nodes) mask
+    ``[hidden in every row, hidden in some row]``, which gives :func:`_group_plan` the same
+    plan as the whole ``codes < 0`` (it only reads the columns' all and any)."""
     n = len(network)
     W = (n + 63) // 64
     R = codes.shape[0]
@@ -554,15 +569,17 @@ def _components(network: Network, codes: np.ndarray):
     types: dict[bytes, int] = {}
     tlist: list[_Type] = []
     pruned = np.zeros(n, bool)
+    always, some = np.ones(n, bool), np.zeros(n, bool)
     comp_type_parts, comp_row_parts = [], []
     for s in range(0, R, step):
         block = codes[s:s + step]
-        r, key, pr = _decompose(network, block)
+        r, key, pr, blk_all, blk_any = _decompose(network, block)
         pruned |= pr
+        always &= blk_all
+        some |= blk_any
         if not len(r):
             continue
-        kv = np.ascontiguousarray(key).view(np.dtype((np.void, key.dtype.itemsize * key.shape[1]))).ravel()
-        uk, inv = np.unique(kv, return_inverse=True)
+        uk, inv = _unique_keys(key)
         gid = np.empty(len(uk), np.int64)
         for j, k in enumerate(uk):
             b = k.tobytes()
@@ -588,7 +605,37 @@ def _components(network: Network, codes: np.ndarray):
     for typ in tlist:
         hs = set(typ.hidden)
         typ.boundary = tuple(sorted({u for v in typ.families for u in (*pa[v], v)} - hs))
-    return tlist, pruned
+    return tlist, pruned, np.stack([always & some, some])
+
+
+def _void_rows(a: np.ndarray) -> np.ndarray:
+    a = np.ascontiguousarray(a)
+    return a.view(np.dtype((np.void, a.dtype.itemsize * a.shape[1]))).ravel()
+
+
+def _unique_keys(key: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``np.unique`` of the rows of a uint64 key matrix (as raw bytes, ``return_inverse``), by a
+    hash table: the keys are many (one per component) and their distinct values few (component
+    types), so sorting them all (``np.unique``) is the slow way. The distinct keys found are
+    checked against every row (a hash collision falls back to ``np.unique``) and sorted as
+    ``np.unique`` sorts them, so the result is the same."""
+    import pandas as pd
+
+    if len(key) == 0:
+        uk, inv = np.unique(_void_rows(key), return_inverse=True)
+        return uk, inv.reshape(-1)
+    h = key[:, 0].copy()
+    for j in range(1, key.shape[1]):
+        h = h * np.uint64(0x9E3779B97F4A7C15) + key[:, j]  # wraps modulo 2^64
+    codes, uniq = pd.factorize(h, sort=False)
+    first = np.empty(len(uniq), np.int64)
+    first[codes[::-1]] = np.arange(len(codes) - 1, -1, -1)
+    distinct = key[first]
+    if not np.array_equal(distinct[codes], key):  # a collision of the 64-bit hash
+        uk, inv = np.unique(_void_rows(key), return_inverse=True)
+        return uk, inv.reshape(-1)
+    uk, rank = np.unique(_void_rows(distinct), return_inverse=True)
+    return uk, rank.reshape(-1)[codes]
 
 
 def _distinct_rows(sub: np.ndarray, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray]:
@@ -1077,13 +1124,12 @@ def build_plan(network: Network, data: CodedData, *, route: str = "auto",
     R = len(codes)
     if for_posteriors:
         return _posterior_plan(network, codes, counts, chunk)
-    hidden_rows = codes < 0
     if route == "uniform" or R == 0:
         return _shard(_assemble(network, codes, counts, uniform=np.ones(R, bool), enum_types=[], prog_types=[],
                                 pruned=np.zeros(n, bool), chunk=chunk))
-    tlist, pruned = _components(network, codes)
+    tlist, pruned, hidden_rows = _components(network, codes)
     enum_types, prog_types, to_uniform = _choose_methods(network, codes, counts, tlist, route,
-                                                         min_pattern_rows, max_pattern_groups)
+                                                         min_pattern_rows, max_pattern_groups, hidden_rows)
     uniform = np.zeros(R, bool)
     for t in to_uniform:
         uniform[t.rows] = True
@@ -1200,9 +1246,10 @@ def _split(plan: Plan, arrays: tuple, *, weights: bool) -> Shards:
 
 
 def _choose_methods(network: Network, codes: np.ndarray, counts: np.ndarray, tlist: Sequence[_Type], route: str,
-                    min_pattern_rows: int, max_pattern_groups: int):
+                    min_pattern_rows: int, max_pattern_groups: int, hidden_rows: np.ndarray | None = None):
     """Per component type: enumerate it, give it an elimination program of its own, or send its
-    rows to the uniform program, whichever is cheapest in total (compile time included)."""
+    rows to the uniform program, whichever is cheapest in total (compile time included).
+    ``hidden_rows``: ``codes < 0``, or its two-row summary from :func:`_components`."""
     n = len(network)
     E = PLAN_EVALUATIONS
     always, rest = [], []
@@ -1222,7 +1269,8 @@ def _choose_methods(network: Network, codes: np.ndarray, counts: np.ndarray, tli
         rest.append(t)
     if not rest:
         return list(tlist), [], []
-    uni_gp = _group_plan(network, codes < 0, kind="mixed", n_rows=len(codes), keep_all=True)
+    uni_gp = _group_plan(network, codes < 0 if hidden_rows is None else hidden_rows, kind="mixed",
+                         n_rows=len(codes), keep_all=True)
     per_row_uniform = TAPE_PAD * uni_gp.cost * T_TAPE
     costs = []
     for t in rest:
@@ -1316,26 +1364,33 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
         for s0 in range(0, R, step):
             cbT = np.ascontiguousarray(codes[s0:s0 + step].T)     # (n, rows): whole columns
             lb = local[s0:s0 + step]
-            hidT = cbT < 0
-            h_any = hidT.any(axis=1)
+            not_local = None if lb.all() else ~lb
+            h_any = cbT.min(axis=1) < 0 if cbT.shape[1] else np.zeros(n, bool)
+            hid: dict[int, np.ndarray] = {}                         # cbT[u] < 0, for nodes hidden here
             idx = np.empty((n, cbT.shape[1]), np.int64)
             for v in range(n):
                 fam = (*pa[v], v)
                 iv = idx[v]
-                iv[:] = offsets[v]
-                bad = None if lb.all() else ~lb
-                for u in fam:
+                np.add(cbT[v], offsets[v], out=iv, dtype=np.int64)  # the node's own stride is 1
+                for u in fam[:-1]:
                     iv += strides[v][u] * cbT[u]
+                bad = not_local
+                for u in fam:
                     if h_any[u]:
-                        bad = hidT[u] if bad is None else (bad | hidT[u])
+                        hu = hid.get(u)
+                        if hu is None:
+                            hu = hid[u] = cbT[u] < 0
+                        bad = hu if bad is None else (bad | hu)
                 if bad is not None:
                     iv[bad] = n_flat + 2                            # a bin of its own, dropped
             cb_w = counts[s0:s0 + step]
             if unit:
-                N += np.bincount(idx.ravel(), minlength=n_flat + 3)[:n_flat + 2]
+                bc = np.bincount(idx.ravel(), minlength=n_flat + 3)
+                N += bc[:n_flat + 2]
+                n_fam += int(bc[:n_flat + 1].sum())                # the entries <= n_flat: every member observed
             else:
                 N += np.bincount(idx.ravel(), weights=np.tile(cb_w, n), minlength=n_flat + 3)[:n_flat + 2]
-            n_fam += int(np.count_nonzero(idx <= n_flat))
+                n_fam += int(np.count_nonzero(idx <= n_flat))
         n_comp = sum(int(local[t.rows].sum()) for t in (*enum_types, *prog_types))
         blocks.append(GatheredBlock(n_local, n_fam, int(pruned.sum()), n_comp))
         arrays.append(np.zeros(0, np.int32))
@@ -1601,6 +1656,14 @@ def _loglik_logcpt(network: Network, groups: tuple, logcpts: tuple[jax.Array, ..
     return total
 
 
+def _flat_logcpts(logcpts: Sequence[Any]):
+    """The log-CPTs of all nodes in one vector (network order, each CPT raveled), without the two
+    constant slots :func:`_flat` appends: numpy when the inputs are concrete, traced otherwise."""
+    if _traced(tuple(logcpts)):
+        return jnp.concatenate([jnp.ravel(x) for x in logcpts])
+    return np.concatenate([np.ravel(np.asarray(x, dtype=np.float64)) for x in logcpts])
+
+
 def _value_and_expected_counts(network: Network, groups: tuple, logcpts: Sequence[jax.Array],
                                codes, weights):
     """Total log-likelihood and its gradient w.r.t. the log-CPTs (= expected family counts).
@@ -1612,20 +1675,9 @@ def _value_and_expected_counts(network: Network, groups: tuple, logcpts: Sequenc
     arrays here (numpy views when the call is not traced): XLA compiles every sliced output as a
     kernel of its own, which cost 0.5 s of compile time for 37 nodes.
     """
-    logcpts = tuple(logcpts)
-    parts = _parts(codes, weights)
-    if len(parts) > 1 and not _traced((logcpts, codes, weights)):
-        res = _run_parts(lambda cs, ws: _value_and_flat_counts(network, groups, logcpts, cs, ws), parts,
-                         (id(network), groups, "vg"))
-        val = jnp.asarray(sum(float(v) for v, _ in res))
-        g = np.asarray(res[0][1]).copy()
-        for _, gg in res[1:]:
-            g += np.asarray(gg)
-    else:
-        val, g = _value_and_flat_counts(network, groups, logcpts, codes, weights)
-        if isinstance(g, jax.core.Tracer):
-            return val, _unflat(network, g)
-        g = np.asarray(g)
+    val, g = _value_and_flat_expected_counts(network, groups, _flat_logcpts(logcpts), codes, weights)
+    if isinstance(g, jax.core.Tracer):
+        return val, _unflat(network, g)
     out, off = [], 0
     for name in network.names:
         shape = network.cpt_shape(name)
@@ -1635,10 +1687,29 @@ def _value_and_expected_counts(network: Network, groups: tuple, logcpts: Sequenc
     return val, tuple(out)
 
 
+def _value_and_flat_expected_counts(network: Network, groups: tuple, lc_flat, codes, weights):
+    """:func:`_value_and_expected_counts` on the log-CPTs given as one flat vector (the layout of
+    :func:`layout_of`, without the two constant slots); the expected counts come back flat too,
+    with two trailing entries (those of the constant slots log 1 and log 0) to be ignored: a
+    numpy array when the call is not traced."""
+    parts = _parts(codes, weights)
+    if len(parts) > 1 and not _traced((lc_flat, codes, weights)):
+        res = _run_parts(lambda cs, ws: _value_and_flat_counts(network, groups, lc_flat, cs, ws), parts,
+                         (id(network), groups, "vg"))
+        val = jnp.asarray(sum(float(v) for v, _ in res))
+        g = np.asarray(res[0][1]).copy()
+        for _, gg in res[1:]:
+            g += np.asarray(gg)
+        return val, g
+    val, g = _value_and_flat_counts(network, groups, lc_flat, codes, weights)
+    if isinstance(g, jax.core.Tracer):
+        return val, g
+    return val, np.asarray(g)
+
+
 @partial(jax.jit, static_argnums=(0, 1))
-def _value_and_flat_counts(network: Network, groups: tuple, logcpts: tuple[jax.Array, ...],
-                           codes, weights):
-    flat = _flat(logcpts)
+def _value_and_flat_counts(network: Network, groups: tuple, lc_flat: jax.Array, codes, weights):
+    flat = jnp.concatenate([lc_flat, jnp.array([0.0, -jnp.inf], jnp.float64)])
     total = jnp.zeros((), jnp.float64)
     grad = jnp.zeros_like(flat)
     for cs, ws in _parts(codes, weights):
@@ -1846,6 +1917,25 @@ class Likelihood:
     def expected_counts_logcpt(self, logcpts: Sequence[jax.Array]):
         """(log-likelihood, expected family counts N(x,u) per node, CPT-shaped)."""
         return _value_and_expected_counts(self.network, self.plan.groups, tuple(logcpts), self._codes, self._weights)
+
+    def observed_family_counts(self):
+        """The data counts of the families with every member observed, as the plan gathered them
+        (no pass over the rows): ``(counts, rows)``, ``counts`` flat in the layout of
+        :func:`layout_of` (for each node, the summed weights of the counted rows in which the node
+        and all its parents are observed, by family configuration) and ``rows`` the bool mask of
+        the distinct rows counted (those of the per-pattern route); ``None`` when the plan has no
+        gathered block (every row in the uniform program)."""
+        for i, blk in enumerate(self.plan.groups):
+            if isinstance(blk, GatheredBlock):
+                w = self._weights.parts[0][i] if isinstance(self._weights, Shards) else self._weights[i]
+                return np.asarray(w)[:layout_size(self.network)], self.plan.observed_rows
+        return None
+
+    def expected_counts_flat(self, lc_flat):
+        """(log-likelihood, expected family counts) with the log-CPTs of all nodes given as one
+        flat vector (network order, each CPT raveled; :func:`layout_of`) and the counts returned
+        the same way, plus two trailing entries to ignore (:func:`_value_and_flat_expected_counts`)."""
+        return _value_and_flat_expected_counts(self.network, self.plan.groups, lc_flat, self._codes, self._weights)
 
     # -- logits level (free nodes) ---------------------------------------------------------
     def value(self, logits: Mapping[str, jax.Array]) -> jax.Array:

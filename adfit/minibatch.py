@@ -57,10 +57,10 @@ def run_minibatch(fitter, logits0: Mapping[str, np.ndarray], *, batch_size: int,
     p = data.counts / data.counts.sum()
     N = fitter.n_total
     B = n_chunks * gp.chunk
-    free = network.free_names
-    z = {k: np.asarray(logits0[k], dtype=np.float64) for k in free}
-    ones = {k: np.ones(network.cpt_shape(k)) for k in free}
-    pseudo = {k: jnp.asarray(v) for k, v in fitter.pseudo.items()}
+    lay = fitter.layout  # the optimiser works on one flat vector (adfit.fit.FreeLayout)
+    z = lay.flatten(logits0)
+    ones = np.ones(lay.size)
+    pseudo = jnp.asarray(fitter.pseudo_flat)
     # the step size decays (cosine, to 1 % of the start) so that the noise of the minibatch
     # gradients averages out towards the end of the run
     opt = optax.adam(optax.cosine_decay_schedule(learning_rate, max_iter, alpha=0.01))
@@ -77,13 +77,13 @@ def run_minibatch(fitter, logits0: Mapping[str, np.ndarray], *, batch_size: int,
             w = np.concatenate([w, np.zeros(B - batch_size)])
         c = jnp.asarray(codes.reshape(n_chunks, gp.chunk, -1))
         ww = jnp.asarray(w.reshape(n_chunks, gp.chunk))
-        f, g = _objective_fg(network, groups, z, ones, pseudo, fitter.fixed_lc, l2, n_total, (c,), (ww,))
+        f, g = _objective_fg(network, groups, z, ones, pseudo, fitter.fixed_flat, l2, n_total, (c,), (ww,))
         updates, state = opt.update(g, state, z)
-        z = {k: np.asarray(v) for k, v in optax.apply_updates(z, updates).items()}
+        z = np.asarray(optax.apply_updates(z, updates))
         obj = -f * N
-        gn = math.sqrt(sum(float(np.sum((N * g[k]) ** 2)) for k in free))
+        gn = math.sqrt(float(np.dot(N * g, N * g)))
         hist_obj.append(obj)
         hist_gn.append(gn)
         if progress is not None:
             progress(it, obj, gn)
-    return z, hist_obj, hist_gn
+    return lay.unflatten(z), hist_obj, hist_gn

@@ -48,6 +48,7 @@ from __future__ import annotations
 
 import copy
 import dataclasses
+import math
 import threading
 import types
 from functools import partial
@@ -59,8 +60,8 @@ import numpy as np
 import optax
 
 from .crosscheck import LL_RTOL, THETA_ATOL, align_latent_states, relabel
-from .fit import _head, _head_grad
-from .likelihood import Plan, _value_and_expected_counts
+from .fit import _head, _head_grad, free_layout
+from .likelihood import Plan, _value_and_flat_expected_counts
 from .network import Network
 
 __all__ = ["run_starts", "BatchedObjective", "BatchedDirections", "summarise_optima", "restarts_report", "local_optima_message",
@@ -76,21 +77,24 @@ MIN_BATCH_CHUNK = 64
 
 # --------------------------------------------------------------------------- the batched objective
 @partial(jax.jit, static_argnums=(0, 1))
-def _batched_objective(network: Network, groups, z, scale, lc_given, use_given, pseudo, fixed_lc, l2, n_total,
+def _batched_objective(network: Network, groups, z, scale, lc_given, use_given, pseudo, fixed_flat, l2, n_total,
                        codes, weights):
     """For K points at once: log-likelihood, −F/N, expected counts and ∂(−F/N)/∂z.
 
-    Slot ``i`` is evaluated at the log-CPTs given in ``lc_given`` where ``use_given[i]`` (the
-    exact evaluation of :meth:`Fitter.evaluate`), else at ``softmax(z·scale)`` (a point of the
-    optimiser, :func:`adfit.fit._objective_fg`).
+    Every parameter array is flat (:class:`adfit.fit.FreeLayout`), stacked on axis 0. Slot ``i``
+    is evaluated at the log-CPTs of the free nodes given in ``lc_given`` where ``use_given[i]``
+    (the exact evaluation of :meth:`Fitter.evaluate`), else at ``softmax(z·scale)`` (a point of
+    the optimiser, :func:`adfit.fit._objective_fg`). The expected counts come back flat, in the
+    likelihood's layout (two trailing entries to ignore).
     """
-    free = network.free_names
+    lay = free_layout(network)
 
     def one(zi, si, lci, use):
-        lcs, rest = _head(network, zi, si, pseudo, fixed_lc, l2)
-        lcs = tuple(jnp.where(use, lci[n.name], a) if n.name in free else a for n, a in zip(network.nodes, lcs))
-        ll, counts = _value_and_expected_counts(network, groups, lcs, codes, weights)
-        g = _head_grad(network, zi, si, pseudo, fixed_lc, l2, counts, n_total)
+        lc, rest = _head(network, zi, si, pseudo, fixed_flat, l2)
+        given = lci if lay.full_index is None else jnp.concatenate([lci, fixed_flat])[lay.full_index]
+        lc = jnp.where(use, given, lc)
+        ll, counts = _value_and_flat_expected_counts(network, groups, lc, codes, weights)
+        g = _head_grad(network, zi, si, pseudo, fixed_flat, l2, counts, n_total)
         return ll, -(ll + rest) / n_total, counts, g
 
     return jax.vmap(one)(z, scale, lc_given, use_given)
@@ -129,41 +133,35 @@ class _Memory:
 
 class BatchedDirections:
     """L-BFGS directions of up to ``width`` starts in one vmapped call, each start with its own
-    memory (kept here, stacked; the starts hold a :class:`_Memory` handle)."""
+    memory (kept here, stacked; the starts hold a :class:`_Memory` handle). Parameters,
+    gradients and directions are flat vectors of the length of ``template``
+    (:class:`adfit.fit.FreeLayout`)."""
 
-    def __init__(self, width: int, memory: int, template: Mapping[str, np.ndarray]):
+    def __init__(self, width: int, memory: int, template: np.ndarray):
         self.width = int(width)
         self.memory = int(memory)
-        self.free = tuple(template)
-        self._zero = {k: np.zeros(np.shape(v)) for k, v in template.items()}
-        stacked = {k: np.zeros((self.width,) + v.shape) for k, v in self._zero.items()}
-        self.states = jax.vmap(optax.scale_by_lbfgs(memory_size=self.memory).init)(stacked)
+        self.size = int(np.size(template))
+        self.states = jax.vmap(optax.scale_by_lbfgs(memory_size=self.memory).init)(np.zeros((self.width, self.size)))
         self.calls = 0
 
     def __call__(self, requests: Mapping[int, tuple]) -> dict[int, tuple]:
         """``{slot: ("dir", memory, grad, state, params)}`` -> ``{slot: (direction, handle)}``."""
         K = self.width
-        g = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
-        z = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
+        g = np.zeros((K, self.size))
+        z = np.zeros((K, self.size))
         active = np.zeros(K, dtype=bool)
         reset = np.zeros(K, dtype=bool)
-        for i in range(K):
-            req = requests.get(i)
-            if req is None:
-                for k in self.free:
-                    g[k][i] = z[k][i] = self._zero[k]
-                continue
+        for i, req in requests.items():
             _, memory, gi, st, zi = req
             if memory != self.memory:  # pragma: no cover - one fitter, one memory size
                 raise ValueError(f"L-BFGS memory {memory} != {self.memory}")
             active[i] = True
             reset[i] = not isinstance(st, _Memory)
-            for k in self.free:
-                g[k][i], z[k][i] = gi[k], zi[k]
+            g[i], z[i] = gi, zi
         d, self.states = _batched_lbfgs(self.memory, g, z, self.states, active, reset)
         self.calls += 1
-        d = {k: np.asarray(v) for k, v in d.items()}
-        return {i: ({k: v[i] for k, v in d.items()}, _Memory(i)) for i in requests}
+        d = np.asarray(d)
+        return {i: (d[i], _Memory(i)) for i in requests}
 
 
 def can_rechunk(plan: Any) -> bool:
@@ -204,8 +202,9 @@ def rechunk(plan: Plan, width: int) -> Plan:
 class BatchedObjective:
     """Evaluates the objective of one fitter at up to ``width`` points in one compiled call.
 
-    Requests are ``("fg", z, scale)`` (a point of the optimiser, scaled logits) answered with
-    ``(−F/N, ∂(−F/N)/∂z)`` as :meth:`Fitter.objective_fg` does, or ``("counts", log_theta)``
+    Requests are ``("fg", z, scale)`` (a point of the optimiser: scaled logits, flat vectors of
+    :attr:`Fitter.layout`) answered with ``(−F/N, ∂(−F/N)/∂z)`` as :meth:`Fitter.objective_fg`
+    does, or ``("counts", log_theta)``
     (log-CPTs of the free nodes, by name) answered with ``(log-likelihood, expected counts per
     node)`` as :meth:`Likelihood.expected_counts` does.
     """
@@ -226,13 +225,11 @@ class BatchedObjective:
             self.weights = jax.tree_util.tree_map(jnp.asarray, plan.weights)
         else:  # another layout of the core: its own chunks (K times the memory of one start)
             self.groups, self.codes, self.weights = lik.plan.groups, lik._codes, lik._weights
-        self.pseudo = {k: jnp.asarray(v) for k, v in fitter.pseudo.items()}
-        self.fixed_lc = fitter.fixed_lc
+        self.layout = fitter.layout
+        self.pseudo = jnp.asarray(fitter.pseudo_flat)
+        self.fixed_flat = fitter.fixed_flat
         self.l2 = jnp.asarray(float(fitter.settings.l2))
         self.n_total = jnp.asarray(float(fitter.n_total))
-        shapes = {k: self.network.cpt_shape(k) for k in self.free}
-        self._zero = {k: np.zeros(s) for k, s in shapes.items()}
-        self._one = {k: np.ones(s) for k, s in shapes.items()}
         self.calls = 0
         self.slots_used = 0
         self.single_calls = 0
@@ -256,36 +253,35 @@ class BatchedObjective:
         if self.single_tail and len(requests) == 1 and K > 1:
             (slot, req), = requests.items()
             return self._single(slot, req)
-        z = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
-        scale = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
-        lcg = {k: np.empty((K,) + v.shape) for k, v in self._zero.items()}
+        P = self.layout.size
+        z = np.zeros((K, P))
+        scale = np.ones((K, P))
+        lcg = np.zeros((K, P))
         use = np.zeros(K, dtype=bool)
-        for i in range(K):
-            req = requests.get(i)
-            if req is not None and req[0] == "counts":
+        for i, req in requests.items():
+            if req[0] == "counts":
                 use[i] = True
-                for k in self.free:
-                    z[k][i], scale[k][i] = self._zero[k], self._one[k]
-                    lcg[k][i] = req[1][k]
+                lcg[i] = self.layout.flatten(req[1])
             else:
-                zi, si = (req[1], req[2]) if req is not None else (self._zero, self._one)
-                for k in self.free:
-                    z[k][i], scale[k][i], lcg[k][i] = zi[k], si[k], self._zero[k]
+                z[i], scale[i] = req[1], req[2]
         ll, f, counts, g = _batched_objective(self.network, self.groups, z, scale, lcg, use, self.pseudo,
-                                              self.fixed_lc, self.l2, self.n_total, self.codes, self.weights)
+                                              self.fixed_flat, self.l2, self.n_total, self.codes, self.weights)
         self.calls += 1
         self.slots_used += len(requests)
         ll, f = np.asarray(ll), np.asarray(f)
         out: dict[int, tuple] = {}
         if use.any():
-            counts = {n: np.asarray(c) for n, c in zip(self.network.names, counts)}
+            counts = np.asarray(counts)
+            shapes = [self.network.cpt_shape(n) for n in self.network.names]
+            bounds = np.cumsum([0] + [math.prod(sh) for sh in shapes])
         if not use.all():
-            g = {k: np.asarray(v) for k, v in g.items()}
+            g = np.asarray(g)
         for i, req in requests.items():
             if req[0] == "counts":
-                out[i] = (float(ll[i]), {n: c[i] for n, c in counts.items()})
+                out[i] = (float(ll[i]), {n: counts[i, bounds[j]:bounds[j + 1]].reshape(sh)
+                                         for j, (n, sh) in enumerate(zip(self.network.names, shapes))})
             else:
-                out[i] = (float(f[i]), {k: v[i] for k, v in g.items()})
+                out[i] = (float(f[i]), g[i])
         return out
 
 
@@ -433,7 +429,7 @@ def run_starts(fitter: Any, starts: Sequence[Mapping[str, Any]], *,
         return runs, finals
 
     objective = BatchedObjective(fitter, K)
-    directions = BatchedDirections(K, fitter.settings.memory, starts[0])
+    directions = BatchedDirections(K, fitter.settings.memory, fitter.layout.flatten(starts[0]))
     exchange = _Exchange(K)
     workers = [_slot_fitter(fitter, exchange, k) for k in range(K)]
     out: list[Any] = [None] * K

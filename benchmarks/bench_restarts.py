@@ -92,14 +92,14 @@ def main() -> None:
                 # compile: one evaluation of each program (the single-start and the K-wide one)
                 t = time.perf_counter()
                 fitter.evaluate(starts[0])
-                fitter.objective_fg(starts[0], {n: np.ones_like(v) for n, v in starts[0].items()},
-                                    *_consts(fitter))
+                lay = fitter.layout  # the optimiser's flat vectors
+                ones = np.ones(lay.size)
+                fitter.objective_fg(lay.flatten(starts[0]), ones, *_consts(fitter))
                 c_single = time.perf_counter() - t
                 from adfit.restarts import BatchedObjective
 
                 t = time.perf_counter()
-                ones = {n: np.ones_like(v) for n, v in starts[0].items()}
-                BatchedObjective(fitter, k)({i: ("fg", starts[i], ones) for i in range(k)})
+                BatchedObjective(fitter, k)({i: ("fg", lay.flatten(starts[i]), ones) for i in range(k)})
                 c_batch = time.perf_counter() - t
                 seq_t, bat_t, stats = [], [], {}
                 for _ in range(args.repeats):
@@ -118,7 +118,7 @@ def main() -> None:
 def _consts(fitter):
     import jax.numpy as jnp
 
-    return ({k: jnp.asarray(v) for k, v in fitter.pseudo.items()}, jnp.asarray(float(fitter.settings.l2)),
+    return (jnp.asarray(fitter.pseudo_flat), jnp.asarray(float(fitter.settings.l2)),
             jnp.asarray(fitter.n_total))
 
 

@@ -14,7 +14,10 @@ networks and CPTs (benchmarks/workloads.py): they measure speed and memory, not 
             read and reduce with adfit.engines.load_coded (DuckDB), then fit to convergence,
             each phase timed. The file is written once into --data-dir and reused.
 
-Usage:  python benchmarks/bench_scale.py [rows] [net200] [parquet] [--data-dir DIR]
+  parquet-fit  the fit alone on the rows of that file read straight into codes (no reduction),
+            each phase of the fit timed (also run by "parquet").
+
+Usage:  python benchmarks/bench_scale.py [rows] [net200] [parquet] [parquet-fit] [--data-dir DIR]
                                          [--rows-small 100000] [--rows-large 1000000]
                                          [--rows-net200 100000] [--rows-parquet 10000000]
 """
@@ -103,31 +106,72 @@ def child_net200(rows: int) -> None:
     del lik
     import gc
     gc.collect()
+    import adfit.fit as fit_module
+    spent = _timed_phases(fit_module)
     marks = []
     t0 = time.perf_counter()
     res = fit(net, data, warn=False, progress=lambda k, it, o, g: marks.append(time.perf_counter() - t0))
     t_fit = time.perf_counter() - t0
     print(json.dumps({"rows": data.n_distinct, "plan_s": t_plan, "first_call_s": t_first, "value_grad_s": t_vg,
                       "describe": describe, "rss_likelihood_gb": rss_lik, "fit_s": t_fit,
+                      "phases": _phase_fields(spent, t_fit, marks[0] if marks else None),
                       "first_iteration_s": marks[0] if marks else None, "iterations": res.iterations,
                       "converged": res.converged, "stop_reason": res.stop_reason, "gradient_norm": res.gradient_norm,
                       "max_residual": res.settings.get("max_residual"), "peak_rss_gb": peak_rss_gb(), "load": load()}))
 
 
-def _timed_phases(module, names):
-    """Wrap functions of ``module`` to add up their wall time (phases of a fit, for the print)."""
-    spent = {}
+#: the phases of a fit, as the functions adfit.fit calls for them
+FIT_PHASES = (("load_data", "check the data"), ("Likelihood", "plan"), ("complete_family_start", "complete-family start"),
+              ("check_possible", "first evaluation (compile included)"))
+
+
+def _timed_phases(module, names=tuple(n for n, _ in FIT_PHASES)):
+    """Wrap functions of ``module`` to add up their wall time and the XLA compile time spent
+    inside them (phases of a fit, for the print). ``spent["compile"]`` is the compile time of the
+    whole process, by compiled function in ``spent["compiled"]``."""
+    import jax
+
+    spent = {"compile": 0.0, "compiled": {}}
+
+    def on_event(event, duration, **kw):
+        if event == "/jax/core/compile/backend_compile_duration":
+            spent["compile"] += duration
+            name = str(kw.get("fun_name", "?"))
+            n, t = spent["compiled"].get(name, (0, 0.0))
+            spent["compiled"][name] = (n + 1, t + duration)
+    jax.monitoring.register_event_duration_secs_listener(on_event)
     for name in names:
         fn = getattr(module, name)
 
         def wrapper(*a, _fn=fn, _name=name, **k):
-            t = time.perf_counter()
+            t, c = time.perf_counter(), spent["compile"]
             try:
                 return _fn(*a, **k)
             finally:
                 spent[_name] = spent.get(_name, 0.0) + time.perf_counter() - t
+                spent[_name + ":compile"] = spent.get(_name + ":compile", 0.0) + spent["compile"] - c
         setattr(module, name, wrapper)
     return spent
+
+
+def _phase_fields(spent, t_fit, first_iteration=None):
+    """JSON fields of a fit's phases: the wrapped ones, and the optimiser (the rest: its
+    compiles, iterations and the final evaluation) with the compile time inside it."""
+    out = {name: spent.get(name, 0.0) for name, _ in FIT_PHASES}
+    inside = sum(spent.get(name + ":compile", 0.0) for name, _ in FIT_PHASES)
+    out["optimiser"] = t_fit - sum(out.values())
+    out["optimiser_compile"] = spent["compile"] - inside
+    out["compiled_top"] = sorted(((k, n, t) for k, (n, t) in spent["compiled"].items()), key=lambda x: -x[2])[:6]
+    out["first_iteration"] = first_iteration
+    return out
+
+
+def _print_phases(ph, indent="  "):
+    parts = [f"{label} {ph[name]:.1f} s" for name, label in FIT_PHASES]
+    print(f"{indent}phases: " + ", ".join(parts) + f", optimiser (compiles, iterations, final evaluation) "
+          f"{ph['optimiser']:.1f} s of which XLA compile {ph['optimiser_compile']:.1f} s"
+          + (f"; first iteration after {ph['first_iteration']:.1f} s" if ph.get("first_iteration") else ""))
+    print(f"{indent}largest compiles: " + ", ".join(f"{k} x{n} {t:.2f} s" for k, n, t in ph["compiled_top"]))
 
 
 def child_parquet(path: str, net_path: str, engine: str) -> None:
@@ -135,7 +179,7 @@ def child_parquet(path: str, net_path: str, engine: str) -> None:
     from adfit.engines import load_coded
     from adfit.fit import fit
     from adfit.network import network_from_dict
-    spent = _timed_phases(fit_module, ["Likelihood", "complete_family_start", "check_possible"])
+    spent = _timed_phases(fit_module)
     net = network_from_dict(json.loads(open(net_path).read()))
     t0 = time.perf_counter()
     data = load_coded(net, path, engine=engine)
@@ -150,8 +194,7 @@ def child_parquet(path: str, net_path: str, engine: str) -> None:
                       "fit_until_first_iteration_s": marks[0] if marks else None,
                       "iterations": res.iterations, "converged": res.converged, "stop_reason": res.stop_reason,
                       "route": res.settings.get("route"), "end_to_end_s": time.perf_counter() - t0,
-                      "plan_s": spent.get("Likelihood"), "start_s": spent.get("complete_family_start"),
-                      "first_evaluation_s": spent.get("check_possible"),
+                      "phases": _phase_fields(spent, t_fit, marks[0] if marks else None),
                       "peak_rss_gb": peak_rss_gb(), "load": load()}))
 
 
@@ -166,7 +209,7 @@ def child_parquet_fit_only(path: str, net_path: str) -> None:
     from adfit.fit import fit
     from adfit.network import network_from_dict
     net = network_from_dict(json.loads(open(net_path).read()))
-    spent = _timed_phases(fit_module, ["Likelihood", "complete_family_start", "check_possible"])
+    spent = _timed_phases(fit_module)
     pf = pq.ParquetFile(path)
     codes = np.empty((pf.metadata.num_rows, len(net)), np.int32)
     r = 0
@@ -177,12 +220,13 @@ def child_parquet_fit_only(path: str, net_path: str) -> None:
         r += len(b)
     data = CodedData(codes, np.ones(len(codes)), None, path)
     rss_data = peak_rss_gb()
+    marks = []
     t1 = time.perf_counter()
-    res = fit(net, data, warn=False)
+    res = fit(net, data, warn=False, progress=lambda k, it, o, g: marks.append(time.perf_counter() - t1))
     t_fit = time.perf_counter() - t1
     print(json.dumps({"rows": len(codes), "rss_data_gb": rss_data, "fit_s": t_fit, "iterations": res.iterations,
-                      "converged": res.converged, "plan_s": spent.get("Likelihood"),
-                      "start_s": spent.get("complete_family_start"), "first_evaluation_s": spent.get("check_possible"),
+                      "converged": res.converged, "log_likelihood": res.log_likelihood,
+                      "phases": _phase_fields(spent, t_fit, marks[0] if marks else None),
                       "peak_rss_gb": peak_rss_gb(), "load": load()}))
 
 
@@ -280,6 +324,7 @@ def main() -> None:
               f"{r['iterations']} iterations, converged={r['converged']} ({r['stop_reason']}), gradient norm "
               f"{r['gradient_norm']:.2e}, largest residual {r['max_residual']:.1e}; peak RSS {r['peak_rss_gb']:.2f} GB  "
               f"(load {r['load']})")
+        _print_phases(r["phases"])
     if "parquet" in args.what:
         os.makedirs(args.data_dir, exist_ok=True)
         t = time.perf_counter()
@@ -291,15 +336,17 @@ def main() -> None:
               f"(RSS {r['rss_after_read_gb']:.2f} GB)")
         print(f"fit: {r['fit_s']:.1f} s ({r['fit_until_first_iteration_s']:.1f} s until the first iteration), "
               f"{r['iterations']} iterations, converged={r['converged']} ({r['stop_reason']}), route {r['route']}")
-        print(f"  of which: plan {r['plan_s']:.1f} s, complete-family start {r['start_s']:.1f} s, first evaluation "
-              f"(compile included) {r['first_evaluation_s']:.1f} s, the rest (optimiser: its compiles and "
-              f"iterations) {r['fit_s'] - r['plan_s'] - r['start_s'] - r['first_evaluation_s']:.1f} s")
+        _print_phases(r["phases"])
         print(f"end to end {r['end_to_end_s']:.1f} s; peak RSS {r['peak_rss_gb']:.2f} GB  (load {r['load']})")
+    if "parquet" in args.what or "parquet-fit" in args.what:
+        os.makedirs(args.data_dir, exist_ok=True)
+        path, net_path = write_parquet(args.data_dir, args.rows_parquet)
         r = run_child(["parquet-fit", path, net_path])
-        print(f"the fit alone (rows read into codes without reduction, count 1 each): {r['fit_s']:.1f} s "
-              f"(plan {r['plan_s']:.1f} s, complete-family start {r['start_s']:.1f} s, first evaluation "
-              f"{r['first_evaluation_s']:.1f} s), {r['iterations']} iterations, converged={r['converged']}; "
-              f"peak RSS {r['peak_rss_gb']:.2f} GB (the codes alone {r['rss_data_gb']:.2f} GB)  (load {r['load']})")
+        print(f"\n== the fit alone on {args.rows_parquet:,} rows (read into codes without reduction, count 1 each): "
+              f"{r['fit_s']:.1f} s, {r['iterations']} iterations, converged={r['converged']}, log-likelihood "
+              f"{r['log_likelihood']:.6f}; peak RSS {r['peak_rss_gb']:.2f} GB (the codes alone {r['rss_data_gb']:.2f} GB)  "
+              f"(load {r['load']})")
+        _print_phases(r["phases"])
 
 
 if __name__ == "__main__":

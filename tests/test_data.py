@@ -450,3 +450,27 @@ def test_reduce_rows_with_three_key_words_matches_numpy_unique(kind, path, monke
     assert used == [path, path]
     assert len(np.unique(codes[:, :24], axis=0)) < n / 2 if kind == "ties" else True  # word 0 repeats
     assert (len(ref) < n / 10) if kind == "repeated" else (len(ref) == n)
+
+
+def test_ready_made_codes_are_checked_blockwise_and_the_first_bad_cell_is_named(monkeypatch):
+    # validate_coded finds a bad code by per-column minima and maxima of row blocks; the message
+    # names the first bad cell in column order (row, node, code), as a plain numpy search does.
+    import adfit.data as data_mod
+
+    net = network_from_dict({"a": {"states": ["x", "y", "z"]}, "h": {"states": ["p", "q"], "latent": True},
+                             "b": {"states": ["u", "v"], "parents": ["a", "h"]}})
+    monkeypatch.setattr(data_mod, "VALIDATE_BLOCK", 3 * 7)  # blocks of 7 rows: bad cells in later blocks too
+    rng = np.random.default_rng(0)
+    good = np.stack([rng.integers(-1, 3, 50), np.full(50, HIDDEN), rng.integers(-1, 2, 50)], axis=1).astype(np.int32)
+    assert load_data(net, CodedData(good, np.ones(50))).codes is good
+    for j, row, code in [(0, 31, 3), (2, 44, -2), (2, 7, 2), (0, 49, -5)]:
+        bad = good.copy()
+        bad[row, j] = code
+        col = bad[:, j]
+        first = int(np.flatnonzero((col < HIDDEN) | (col >= net.cards[j]))[0])  # numpy, column by column
+        with pytest.raises(DataError, match=rf"row {first + 1}, node '{net.names[j]}': code {code} is outside"):
+            load_data(net, CodedData(bad, np.ones(50)))
+    lat = good.copy()
+    lat[20, 1] = 0
+    with pytest.raises(DataError, match="latent node; its codes must all be -1"):
+        load_data(net, CodedData(lat, np.ones(50)))

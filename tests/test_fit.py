@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from adfit.data import HIDDEN, CodedData, encode_frame
+from adfit.data import HIDDEN, CodedData, encode_frame, reduce_rows
 from adfit.errors import ConvergenceWarning, ImpossibleDataError, OptionError
 from adfit.fit import fit
 from adfit.likelihood import score
@@ -165,3 +165,140 @@ def test_api_em_check_flag():
     assert res.extras["em_check"]["verdict"] == "agree"
     with pytest.raises(OptionError, match="L2"):
         fit(net, df, count_column="count", em_check=True, l2=0.1)
+
+
+def test_flat_head_matches_per_node_softmax_and_the_closed_form_gradient():
+    # The optimiser's head works on one flat vector of the free logits (rows grouped by their
+    # number of states; fixed nodes spliced in). Against scipy's log_softmax node by node, and
+    # its gradient against the closed form (Fisher's identity plus the prior and the penalty):
+    # d/d eta [sum (n + c) log theta - l2 sum (eta - mean eta)^2] = (n + c) - theta sum(n + c)
+    #                                                              - 2 l2 (eta - mean eta).
+    import jax.numpy as jnp
+    from scipy.special import log_softmax
+
+    from adfit.fit import _head, _head_grad, fixed_log_tables, free_layout
+    from adfit.likelihood import layout_of
+
+    net = network_from_dict({
+        "a": {"states": ["x", "y", "z"], "fixed": [0.2, 0.0, 0.8]},
+        "b": {"states": ["u", "v"], "parents": ["a"]},
+        "c": {"states": ["p", "q", "r", "s"], "parents": ["a", "b"]},
+        "d": {"states": ["e", "f", "g"], "parents": ["b"]},
+    })
+    lay = free_layout(net)
+    assert lay.names == ("b", "c", "d") and lay.size == 3 * 2 + 6 * 4 + 2 * 3
+    offsets, _, n_flat = layout_of(net)
+    assert lay.n_flat == n_flat
+    rng = np.random.default_rng(4)
+    eta = {k: rng.normal(size=net.cpt_shape(k)) for k in lay.names}
+    scale = rng.uniform(0.5, 2.0, lay.size)
+    pseudo = {k: rng.uniform(0, 2, net.cpt_shape(k)) for k in lay.names}
+    z = lay.flatten(eta) / scale
+    l2, N = 0.3, 50.0
+    full, rest = _head(net, jnp.asarray(z), jnp.asarray(scale), jnp.asarray(lay.flatten(pseudo)),
+                       jnp.asarray(fixed_log_tables(net)), l2)
+    full = np.asarray(full)
+    for i, node in enumerate(net.nodes):
+        size = int(np.prod(net.cpt_shape(node.name)))
+        got = full[offsets[i]:offsets[i] + size].reshape(net.cpt_shape(node.name))
+        with np.errstate(divide="ignore"):
+            want = np.log(net.fixed_table(node.name)) if node.fixed is not None else log_softmax(eta[node.name], axis=-1)
+        np.testing.assert_allclose(got, want, rtol=1e-14, atol=1e-14)
+    pen = sum(np.sum((e - e.mean(axis=-1, keepdims=True)) ** 2) for e in eta.values())
+    lp = sum(np.sum(pseudo[k] * log_softmax(eta[k], axis=-1)) for k in lay.names)
+    assert float(rest) == pytest.approx(lp - l2 * pen, rel=1e-13)
+    counts = rng.uniform(0, 10, n_flat + 2)  # any expected counts; the two trailing entries are ignored
+    g = np.asarray(_head_grad(net, jnp.asarray(z), jnp.asarray(scale), jnp.asarray(lay.flatten(pseudo)),
+                              jnp.asarray(fixed_log_tables(net)), l2, jnp.asarray(counts), N))
+    want = {}
+    for k in lay.names:
+        i = net.index(k)
+        size = int(np.prod(net.cpt_shape(k)))
+        nc = counts[offsets[i]:offsets[i] + size].reshape(net.cpt_shape(k)) + pseudo[k]
+        th = np.exp(log_softmax(eta[k], axis=-1))
+        e = eta[k]
+        want[k] = nc - th * nc.sum(axis=-1, keepdims=True) - 2 * l2 * (e - e.mean(axis=-1, keepdims=True))
+    np.testing.assert_allclose(g, -lay.flatten(want) * scale / N, rtol=1e-12, atol=1e-14)
+    back = lay.unflatten(lay.flatten(eta))
+    for k in lay.names:
+        np.testing.assert_array_equal(back[k], eta[k])
+
+
+def test_complete_family_start_counts_and_the_plans_observed_families():
+    # The start's counts are the rows' family counts where a node and its parents are all
+    # observed (checked against pandas groupby); taken from the likelihood plan's gathered
+    # counts, or partly from them and partly counted, they are the same numbers.
+    from adfit.fit import complete_family_counts, complete_family_start
+    from adfit.likelihood import Likelihood, layout_of
+
+    net = network_from_dict({
+        "a": {"states": ["x", "y", "z"]},
+        "b": {"states": ["u", "v"], "parents": ["a"]},
+        "h": {"states": ["h0", "h1"], "parents": ["a"], "latent": True},
+        "c": {"states": ["p", "q", "r"], "parents": ["a", "b"]},
+        "d": {"states": ["e", "f"], "parents": ["h", "c"]},
+    })
+    rng = np.random.default_rng(8)
+    x = np.stack([rng.integers(0, k, 4000) for k in net.cards], axis=1).astype(np.int32)
+    x[rng.random(x.shape) < 0.25] = HIDDEN
+    x[:, net.index("h")] = HIDDEN
+    d, c, _ = reduce_rows(x, None, net.cards)
+    data = CodedData(d, c * 1.0)
+    df = pd.DataFrame(x, columns=net.names)
+    need = ["a", "b", "c"]
+    counts = complete_family_counts(net, data, need)
+    for name in need:
+        fam = list(net.node(name).parents) + [name]
+        sub = df[fam][(df[fam] >= 0).all(axis=1)]
+        want = np.zeros(net.cpt_shape(name))
+        for key, n in sub.groupby(fam).size().items():
+            want[key if isinstance(key, tuple) else (key,)] = n
+        np.testing.assert_array_equal(counts[name], want)
+    ref = complete_family_start(net, data, np.random.default_rng(1))
+    lik = Likelihood(net, data, route="pattern")
+    obs = lik.observed_family_counts()
+    assert obs is not None and obs[1].all()
+    via_plan = complete_family_start(net, data, np.random.default_rng(1), observed=obs)
+    # a part of the rows counted beforehand, the others here
+    part = rng.random(len(d)) < 0.5
+    offsets, _, n_flat = layout_of(net)
+    flat = np.zeros(n_flat)
+    for name, cnt in complete_family_counts(net, data, need, rows=part).items():
+        i = net.index(name)
+        flat[offsets[i]:offsets[i] + cnt.size] = cnt.ravel()
+    mixed = complete_family_start(net, data, np.random.default_rng(1), observed=(flat, part))
+    for name in net.free_names:
+        np.testing.assert_array_equal(via_plan[name], ref[name])
+        np.testing.assert_allclose(mixed[name], ref[name], rtol=1e-15)
+    for name in need:
+        np.testing.assert_allclose(ref[name], (counts[name] + 0.5) / (counts[name] + 0.5).sum(axis=-1, keepdims=True))
+
+
+def test_numpy_head_equals_the_jax_head():
+    # The single-start optimiser's numpy head (softmax per CPT row, prior, penalty) and its
+    # closed-form gradient against the JAX head differentiated by autodiff through
+    # jax.nn.log_softmax (the batched starts use the JAX head).
+    import jax.numpy as jnp
+
+    from adfit.fit import _head, _head_grad, _head_grad_np, _head_np, fixed_log_tables, free_layout
+
+    net = network_from_dict({
+        "a": {"states": ["x", "y", "z"], "fixed": [0.2, 0.0, 0.8]},
+        "b": {"states": ["u", "v"], "parents": ["a"]},
+        "c": {"states": ["p", "q", "r", "s"], "parents": ["a", "b"]},
+        "d": {"states": ["e", "f", "g"], "parents": ["b"]},
+    })
+    lay = free_layout(net)
+    rng = np.random.default_rng(6)
+    z, scale = rng.normal(size=lay.size), rng.uniform(0.5, 2.0, lay.size)
+    pseudo, fixed = rng.uniform(0, 2, lay.size), fixed_log_tables(net)
+    counts = rng.uniform(0, 10, lay.n_flat + 2)
+    for l2 in (0.0, 0.4):
+        full_j, rest_j = _head(net, jnp.asarray(z), jnp.asarray(scale), jnp.asarray(pseudo), jnp.asarray(fixed), l2)
+        full_n, rest_n, blocks = _head_np(lay, z, scale, pseudo, fixed, l2)
+        np.testing.assert_allclose(full_n, np.asarray(full_j), rtol=1e-14, atol=1e-14)
+        assert rest_n == pytest.approx(float(rest_j), rel=1e-13)
+        g_j = _head_grad(net, jnp.asarray(z), jnp.asarray(scale), jnp.asarray(pseudo), jnp.asarray(fixed), l2,
+                         jnp.asarray(counts), 30.0)
+        g_n = _head_grad_np(lay, blocks, scale, pseudo, l2, counts, 30.0)
+        np.testing.assert_allclose(g_n, np.asarray(g_j), rtol=1e-12, atol=1e-14)

@@ -217,3 +217,21 @@ def test_score_gradient_norm_is_zero_at_complete_data_mle():
     s = score(net, CodedData(codes, counts), probs)
     assert s["gradient_norm"] < 1e-12
     assert s["log_likelihood"] == pytest.approx(float(counts @ np.log([3 / 4 * 4 / 12, 1 / 4 * 4 / 12, 2 / 8 * 8 / 12, 6 / 8 * 8 / 12])))
+
+
+def test_unique_keys_by_hash_equal_numpy_unique():
+    # The plan's component-type keys are deduplicated by a hash table; the result must be
+    # numpy's np.unique of the raw rows (same order, same inverse), also when two keys collide.
+    from adfit.likelihood import _unique_keys, _void_rows
+
+    rng = np.random.default_rng(2)
+    c = np.uint64(0x9E3779B97F4A7C15)
+    cases = [rng.integers(0, 5, size=(5000, 2)).astype(np.uint64) << np.uint64(33),
+             rng.integers(0, 3, size=(700, 4)).astype(np.uint64),
+             np.array([[0, c], [1, 0], [0, c], [1, 0]], np.uint64),  # equal hashes h = 0*c + c = 1*c + 0
+             np.zeros((0, 2), np.uint64)]
+    for key in cases:
+        uk, inv = _unique_keys(key)
+        want_uk, want_inv = np.unique(_void_rows(key), return_inverse=True)
+        assert uk.tobytes() == want_uk.tobytes()
+        np.testing.assert_array_equal(inv, want_inv.reshape(-1))

@@ -136,23 +136,25 @@ def test_batched_map_with_l2_equals_separate_fits(st2):
 def test_batched_objective_answers_each_slot_as_the_single_start_code(st2):
     # One round with mixed requests (optimiser points, exact evaluations, an empty slot): each
     # answer equals the single-start code's (Fitter.objective_fg, Likelihood.expected_counts).
+    # The optimiser's points and gradients are flat vectors (fitter.layout).
     net, data, fitter, starts = st2
+    lay = fitter.layout
     obj = BatchedObjective(fitter, 4)
     rng = np.random.default_rng(5)
     probs = [random_start(net, rng) for _ in range(3)]
-    scale = {k: rng.uniform(0.5, 2.0, net.cpt_shape(k)) for k in net.free_names}
-    z0 = {k: np.asarray(v) / scale[k] for k, v in logits_from_probs(net, probs[0]).items()}
-    z2 = {k: np.asarray(v) / scale[k] for k, v in logits_from_probs(net, probs[2]).items()}
+    scale = rng.uniform(0.5, 2.0, lay.size)
+    z0 = lay.flatten(logits_from_probs(net, probs[0])) / scale
+    z2 = lay.flatten(logits_from_probs(net, probs[2])) / scale
     lc1 = {k: np.log(probs[1][k]) for k in net.free_names}
     out = obj({0: ("fg", z0, scale), 1: ("counts", lc1), 3: ("fg", z2, scale)})
     assert sorted(out) == [0, 1, 3]
-    pseudo = {k: jax.numpy.asarray(v) for k, v in fitter.pseudo.items()}
+    pseudo = jax.numpy.asarray(fitter.pseudo_flat)
     l2, n = jax.numpy.asarray(0.0), jax.numpy.asarray(fitter.n_total)
     for slot, z in ((0, z0), (3, z2)):
         f_ref, g_ref = fitter.objective_fg(z, scale, pseudo, l2, n)
         assert out[slot][0] == pytest.approx(f_ref, rel=1e-13)
-        for k in net.free_names:
-            np.testing.assert_allclose(out[slot][1][k], g_ref[k], rtol=1e-10, atol=1e-13)
+        assert out[slot][1].shape == (lay.size,)
+        np.testing.assert_allclose(out[slot][1], g_ref, rtol=1e-10, atol=1e-13)
     ll_ref, counts_ref = fitter.lik.expected_counts(probs[1])
     assert out[1][0] == pytest.approx(ll_ref, rel=1e-13)
     assert out[1][0] == pytest.approx(lcm_loglik(probs[1], 2), rel=1e-12)  # closed form
@@ -170,25 +172,26 @@ def test_batched_lbfgs_memories_equal_separate_optax_updates(st2):
 
     from adfit.restarts import BatchedDirections
 
+    # The optimiser's vectors are flat (fitter.layout).
     net, data, fitter, starts = st2
     rng = np.random.default_rng(11)
     memory = fitter.settings.memory
     opt = optax.scale_by_lbfgs(memory_size=memory)
-    dirs = BatchedDirections(3, memory, starts[0])
-    ref_state = {0: opt.init(starts[0]), 2: opt.init(starts[1])}
+    flat = [fitter.layout.flatten(s) for s in starts]
+    dirs = BatchedDirections(3, memory, flat[0])
+    ref_state = {0: opt.init(flat[0]), 2: opt.init(flat[1])}
     handle = dict(ref_state)
-    z = {0: starts[0], 2: starts[1]}
+    z = {0: flat[0], 2: flat[1]}
     for step in range(6):
         if step == 3:  # slot 2 starts a new phase
             ref_state[2] = handle[2] = opt.init(z[2])
-        g = {i: {k: rng.standard_normal(v.shape) for k, v in z[i].items()} for i in z}
+        g = {i: rng.standard_normal(z[i].shape) for i in z}
         out = dirs({i: ("dir", memory, g[i], handle[i], z[i]) for i in z})
         for i in z:
             d_ref, ref_state[i] = opt.update(g[i], ref_state[i], z[i])
-            for k in net.free_names:
-                np.testing.assert_allclose(out[i][0][k], np.asarray(d_ref[k]), rtol=1e-12, atol=1e-14)
+            np.testing.assert_allclose(out[i][0], np.asarray(d_ref), rtol=1e-12, atol=1e-14)
             handle[i] = out[i][1]
-            z[i] = {k: v - 0.1 * np.asarray(d_ref[k]) for k, v in z[i].items()}
+            z[i] = z[i] - 0.1 * np.asarray(d_ref)
 
 
 def test_rechunked_plan_has_the_same_rows_and_likelihood():
