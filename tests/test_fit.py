@@ -167,6 +167,16 @@ def test_api_em_check_flag():
         fit(net, df, count_column="count", em_check=True, l2=0.1)
 
 
+def _head_test_network():
+    """Four nodes, one of them fixed (with a zero entry), rows of 2, 3 and 4 states."""
+    return network_from_dict({
+        "a": {"states": ["x", "y", "z"], "fixed": [0.2, 0.0, 0.8]},
+        "b": {"states": ["u", "v"], "parents": ["a"]},
+        "c": {"states": ["p", "q", "r", "s"], "parents": ["a", "b"]},
+        "d": {"states": ["e", "f", "g"], "parents": ["b"]},
+    })
+
+
 def test_flat_head_matches_per_node_softmax_and_the_closed_form_gradient():
     # The optimiser's head works on one flat vector of the free logits (rows grouped by their
     # number of states; fixed nodes spliced in). Against scipy's log_softmax node by node, and
@@ -179,12 +189,7 @@ def test_flat_head_matches_per_node_softmax_and_the_closed_form_gradient():
     from adfit.fit import _head, _head_grad, fixed_log_tables, free_layout
     from adfit.likelihood import layout_of
 
-    net = network_from_dict({
-        "a": {"states": ["x", "y", "z"], "fixed": [0.2, 0.0, 0.8]},
-        "b": {"states": ["u", "v"], "parents": ["a"]},
-        "c": {"states": ["p", "q", "r", "s"], "parents": ["a", "b"]},
-        "d": {"states": ["e", "f", "g"], "parents": ["b"]},
-    })
+    net = _head_test_network()
     lay = free_layout(net)
     assert lay.names == ("b", "c", "d") and lay.size == 3 * 2 + 6 * 4 + 2 * 3
     offsets, _, n_flat = layout_of(net)
@@ -282,12 +287,7 @@ def test_numpy_head_equals_the_jax_head():
 
     from adfit.fit import _head, _head_grad, _head_grad_np, _head_np, fixed_log_tables, free_layout
 
-    net = network_from_dict({
-        "a": {"states": ["x", "y", "z"], "fixed": [0.2, 0.0, 0.8]},
-        "b": {"states": ["u", "v"], "parents": ["a"]},
-        "c": {"states": ["p", "q", "r", "s"], "parents": ["a", "b"]},
-        "d": {"states": ["e", "f", "g"], "parents": ["b"]},
-    })
+    net = _head_test_network()
     lay = free_layout(net)
     rng = np.random.default_rng(6)
     z, scale = rng.normal(size=lay.size), rng.uniform(0.5, 2.0, lay.size)
