@@ -18,14 +18,12 @@ import jax
 import numpy as np
 import pytest
 
-from adfit.data import HIDDEN, CodedData, encode_frame, reduce_rows
+from adfit.data import encode_frame
 from adfit.em import em_fit
 from adfit.errors import LocalOptimaWarning
 from adfit.fit import Fitter, FitSettings, complete_family_start, fit, random_start
-from adfit.likelihood import _value_and_expected_counts, build_plan, logcpts_from_probs, logits_from_probs
-from adfit.network import network_from_dict
-from adfit.restarts import (BatchedObjective, can_rechunk, local_optima_message, rechunk, run_starts,
-                            summarise_optima)
+from adfit.likelihood import logits_from_probs
+from adfit.restarts import BatchedObjective, local_optima_message, run_starts, summarise_optima
 from adfit.result import result_from_dict
 
 from published import (STOUFFER_TOBY_CLASS_SIZES, STOUFFER_TOBY_COUNTS, STOUFFER_TOBY_ITEMS,
@@ -192,35 +190,6 @@ def test_batched_lbfgs_memories_equal_separate_optax_updates(st2):
             np.testing.assert_allclose(out[i][0], np.asarray(d_ref), rtol=1e-12, atol=1e-14)
             handle[i] = out[i][1]
             z[i] = z[i] - 0.1 * np.asarray(d_ref)
-
-
-def test_rechunked_plan_has_the_same_rows_and_likelihood():
-    # Smaller chunks for the batched plan: the same weighted rows, the same log-likelihood and
-    # expected counts (the total weight is the number of records, counted with numpy).
-    rng = np.random.default_rng(3)
-    net = network_from_dict({f"v{i}": {"states": ["a", "b", "c"], "parents": [f"v{j}" for j in range(max(0, i - 2), i)]}
-                             for i in range(6)})
-    x = rng.integers(0, 3, size=(900, 6)).astype(np.int32)
-    x[rng.random(x.shape) < 0.3] = HIDDEN
-    d, c, _ = reduce_rows(x, None, net.cards)
-    data = CodedData(d, c)
-    plan = build_plan(net, data, chunk=256)
-    if not can_rechunk(plan):
-        pytest.skip("the likelihood plan is not made of equal row chunks: used as it is")
-    small = rechunk(plan, 3)
-    assert [g.chunk for g in small.groups] == [85] * len(plan.groups)
-    for a_c, a_w, b_c, b_w in zip(plan.codes, plan.weights, small.codes, small.weights):
-        ka, kb = a_c.reshape(-1, 6)[a_w.reshape(-1) > 0], b_c.reshape(-1, 6)[b_w.reshape(-1) > 0]
-        np.testing.assert_array_equal(ka, kb)
-        np.testing.assert_array_equal(a_w.reshape(-1)[a_w.reshape(-1) > 0], b_w.reshape(-1)[b_w.reshape(-1) > 0])
-    assert sum(w.sum() for w in small.weights) == pytest.approx(len(x))
-    probs = {n.name: rng.dirichlet(np.ones(3), size=net.cpt_shape(n.name)[:-1]) for n in net.nodes}
-    lc = logcpts_from_probs(net, probs)
-    va, ga = _value_and_expected_counts(net, plan.groups, lc, tuple(plan.codes), tuple(plan.weights))
-    vb, gb = _value_and_expected_counts(net, small.groups, lc, tuple(small.codes), tuple(small.weights))
-    assert float(vb) == pytest.approx(float(va), rel=1e-13)
-    for a, b in zip(ga, gb):
-        np.testing.assert_allclose(np.asarray(b), np.asarray(a), rtol=1e-12, atol=1e-12)
 
 
 def test_an_error_in_one_start_is_raised_and_no_thread_is_left(st2):
