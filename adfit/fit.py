@@ -600,7 +600,10 @@ class Fitter:
                 return self.objective_fg(zz, scale, pseudo, l2, n_total)
 
             z = lay.flatten(logits) / scale
-            f, g = fg(z)
+            # ``ev`` holds the value and expected counts at this very point: −F/N and its
+            # gradient in z (∂F/∂η times the scale) follow without another evaluation
+            f = -ev["objective"] / N
+            g = -lay.flatten(ev["grad"]) * scale / N
             if s.method == "lbfgs":
                 state = _lbfgs_init(s.memory, z)
             else:
