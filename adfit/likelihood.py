@@ -313,7 +313,9 @@ def _flat(logcpts: Sequence[jax.Array]) -> jax.Array:
     return jnp.concatenate([jnp.ravel(x) for x in logcpts] + [jnp.array([0.0, -jnp.inf], jnp.float64)])
 
 
-def _unflat(network: Network, g: jax.Array) -> tuple[jax.Array, ...]:
+def _unflat(network: Network, g) -> tuple:
+    """CPT-shaped pieces of a flat vector in the layout of :func:`layout_of` (views of a numpy
+    array, slices of a traced one); trailing entries beyond the CPTs are ignored."""
     out, off = [], 0
     for name in network.names:
         shape = network.cpt_shape(name)
@@ -1676,15 +1678,7 @@ def _value_and_expected_counts(network: Network, groups: tuple, logcpts: Sequenc
     kernel of its own, which cost 0.5 s of compile time for 37 nodes.
     """
     val, g = _value_and_flat_expected_counts(network, groups, _flat_logcpts(logcpts), codes, weights)
-    if isinstance(g, jax.core.Tracer):
-        return val, _unflat(network, g)
-    out, off = [], 0
-    for name in network.names:
-        shape = network.cpt_shape(name)
-        size = math.prod(shape)
-        out.append(g[off:off + size].reshape(shape))
-        off += size
-    return val, tuple(out)
+    return val, _unflat(network, g)
 
 
 def _value_and_flat_expected_counts(network: Network, groups: tuple, lc_flat, codes, weights):
