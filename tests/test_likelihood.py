@@ -15,27 +15,7 @@ from adfit.errors import ImpossibleDataError
 from adfit.likelihood import (Likelihood, build_plan, check_possible, logits_from_probs,
                               posterior_marginals, score)
 from adfit.network import network_from_dict
-
-
-def random_network(rng, n, max_parents=3, p_latent=0.25):
-    d = {}
-    for i in range(n):
-        k = int(rng.integers(2, 4))
-        pa = [f"v{j}" for j in range(i) if rng.random() < 0.45][:max_parents]
-        d[f"v{i}"] = {"states": [f"s{t}" for t in range(k)], "parents": pa,
-                      "latent": bool(rng.random() < p_latent)}
-    return network_from_dict(d)
-
-
-def random_probs(net, rng):
-    return {n.name: rng.dirichlet(np.ones(n.card), size=net.cpt_shape(n.name)[:-1]) for n in net.nodes}
-
-
-def random_rows(net, rng, n_rows, p_missing):
-    x = np.array([[int(rng.integers(0, c)) if not net.nodes[i].latent and rng.random() > p_missing else HIDDEN
-                   for i, c in enumerate(net.cards)] for _ in range(n_rows)], dtype=np.int32)
-    d, c, _ = reduce_rows(x, rng.integers(1, 4, n_rows).astype(float), net.cards)
-    return CodedData(d, c)
+from randomnets import random_network, random_probs, random_rows
 
 
 def brute_force_row(net, probs, row):

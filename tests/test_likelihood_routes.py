@@ -13,29 +13,10 @@ import numpy as np
 import pytest
 
 import adfit.likelihood as lk
-from adfit.data import HIDDEN, CodedData, reduce_rows
+from adfit.data import HIDDEN, CodedData
 from adfit.likelihood import Likelihood, build_plan, logcpts_from_probs
 from adfit.network import network_from_dict
-
-
-def random_network(rng, n, max_parents=3, p_latent=0.2):
-    d = {}
-    for i in range(n):
-        k = int(rng.integers(2, 4))
-        pa = [f"v{j}" for j in range(i) if rng.random() < 0.5][:max_parents]
-        d[f"v{i}"] = {"states": [f"s{t}" for t in range(k)], "parents": pa, "latent": bool(rng.random() < p_latent)}
-    return network_from_dict(d)
-
-
-def random_probs(net, rng):
-    return {n.name: rng.dirichlet(np.ones(n.card), size=net.cpt_shape(n.name)[:-1]) for n in net.nodes}
-
-
-def random_data(net, rng, n_rows, p_missing):
-    x = np.array([[int(rng.integers(0, c)) if not net.nodes[i].latent and rng.random() > p_missing else HIDDEN
-                   for i, c in enumerate(net.cards)] for _ in range(n_rows)], dtype=np.int32)
-    d, c, _ = reduce_rows(x, rng.integers(1, 4, n_rows).astype(float), net.cards)
-    return CodedData(d, c)
+from randomnets import random_network, random_probs, random_rows
 
 
 def oracle(net, probs, data):
@@ -76,9 +57,9 @@ def test_every_route_gives_enumeration_values_and_expected_counts(seed):
     # Expected counts include families of barren nodes (hidden with no observed descendant) and
     # of latent nodes: the brute-force posterior puts mass there even though they sum out to 1.
     rng = np.random.default_rng(100 + seed)
-    net = random_network(rng, 7)
+    net = random_network(rng, 7, p_latent=0.2, p_edge=0.5)
     probs = random_probs(net, rng)
-    data = random_data(net, rng, 90, p_missing=0.45)
+    data = random_rows(net, rng, 90, p_missing=0.45)
     routes = set()
     for route in ("auto", "pattern", "uniform"):
         routes.add(check_against_oracle(net, probs, data, route=route).plan.route)
@@ -90,9 +71,9 @@ def test_components_by_elimination_tape_and_hybrid(monkeypatch):
     # own (route "pattern") and to the uniform program for whole rows (hybrid): every kind of
     # block is then checked against the oracle.
     rng = np.random.default_rng(7)
-    net = random_network(rng, 7, p_latent=0.3)
+    net = random_network(rng, 7, p_latent=0.3, p_edge=0.5)
     probs = random_probs(net, rng)
-    data = random_data(net, rng, 80, p_missing=0.5)
+    data = random_rows(net, rng, 80, p_missing=0.5)
     monkeypatch.setattr(lk, "ENUM_ALWAYS", 1)
     monkeypatch.setattr(lk, "T_ENUM", 1.0)
     lik = check_against_oracle(net, probs, data, route="pattern")
@@ -176,9 +157,9 @@ def test_forward_mode_and_reverse_mode_agree_with_finite_differences():
     # products as jvp of grad); check a directional derivative both ways, and the Hessian-vector
     # product against central differences of the gradient, on a plan with every block kind.
     rng = np.random.default_rng(21)
-    net = random_network(rng, 6, p_latent=0.3)
+    net = random_network(rng, 6, p_latent=0.3, p_edge=0.5)
     probs = random_probs(net, rng)
-    data = random_data(net, rng, 60, p_missing=0.5)
+    data = random_rows(net, rng, 60, p_missing=0.5)
     lik = Likelihood(net, data, route="pattern")
     lc = tuple(jnp.asarray(x) for x in logcpts_from_probs(net, probs))
     free = [i for i, node in enumerate(net.nodes)]
@@ -229,9 +210,9 @@ def test_chunks_split_over_threads_give_the_same_results(monkeypatch):
     monkeypatch.setattr(lk, "SHARD_MIN_S", 0.0)
     monkeypatch.setenv("ADFIT_THREADS", "3")
     rng = np.random.default_rng(31)
-    net = random_network(rng, 6, p_latent=0.3)
+    net = random_network(rng, 6, p_latent=0.3, p_edge=0.5)
     probs = random_probs(net, rng)
-    data = random_data(net, rng, 70, p_missing=0.45)
+    data = random_rows(net, rng, 70, p_missing=0.45)
     lik = check_against_oracle(net, probs, data, route="pattern")
     assert lik.plan.n_shards == 3 and len(lik._codes.parts) == 3
     lc = tuple(jnp.asarray(x) for x in logcpts_from_probs(net, probs))
