@@ -363,16 +363,12 @@ def _adam_update(learning_rate: float, grad, state, params):
     return optax.apply_updates(params, updates), state
 
 
-def _dot(a, b) -> float:
-    if isinstance(a, np.ndarray):
-        return float(np.dot(a, b))
-    return float(sum(np.vdot(a[k], b[k]) for k in a))
+def _dot(a: np.ndarray, b: np.ndarray) -> float:
+    return float(np.dot(a, b))
 
 
-def _axpy(alpha: float, d, x):
-    if isinstance(x, np.ndarray):
-        return x + alpha * d
-    return {k: x[k] + alpha * d[k] for k in x}
+def _axpy(alpha: float, d: np.ndarray, x: np.ndarray) -> np.ndarray:
+    return x + alpha * d
 
 
 def wolfe_line_search(fg: Callable, x, f0: float, g0, d, *, c1: float = 1e-4, c2: float = 0.9,
@@ -620,7 +616,7 @@ class Fitter:
                     # norm 1). Under the preconditioner the complete-data curvature of F in z is
                     # about the identity, that of f = −F/N about I/N: try the step −N·g (the
                     # complete-data Newton step) instead of a unit step N times too short.
-                    a0 = N * math.sqrt(float(np.dot(g, g)) / max(float(np.dot(d, d)), 1e-300)) if it == phase_start else 1.0
+                    a0 = N * math.sqrt(_dot(g, g) / max(_dot(d, d), 1e-300)) if it == phase_start else 1.0
                     alpha, f_new, g_new, _ = wolfe_line_search(fg, z, f, g, d, alpha0=a0)
                     if alpha is None:
                         # No decrease along the direction: either the objective is flat to
