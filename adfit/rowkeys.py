@@ -392,12 +392,3 @@ def _rank_by_sort(key: np.ndarray, span: int) -> _Rank:
     rank = np.empty(key.shape[0], dtype=np.int64)
     rank[order] = rs
     return _Rank(rank, uniq, None)
-
-
-def reduce_codes(codes: np.ndarray, weights: np.ndarray | None, cards: Sequence[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """``(distinct codes int32, counts, inverse)`` of a code matrix, rows in lexicographic order."""
-    layout = KeyLayout(cards)
-    codes = np.asarray(codes).reshape(-1, len(layout.bases))
-    words = layout.pack(codes).words
-    d, counts, inv = reduce_words(words, layout.spans, weights)
-    return layout.unpack(d), counts, inv
