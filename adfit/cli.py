@@ -383,8 +383,9 @@ def _progress(quiet: bool):
 def score_command(
     network: NetworkArg,
     data: DataArg,
-    params: Annotated[Path, typer.Option("--params", help="Result file whose CPTs are scored (from fit or em).",
-                                         exists=True, dir_okay=False, readable=True)],
+    params: Annotated[Optional[Path], typer.Option(
+        "--params", help="Result file whose CPTs are scored (from fit or em); not needed when every CPT of the network is fixed.",
+        exists=True, dir_okay=False, readable=True)] = None,
     missing: MissingOpt = None,
     count_column: CountOpt = None,
     ignore_columns: IgnoreOpt = None,
@@ -407,9 +408,9 @@ def score_command(
     with user_errors():
         net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
                                  ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
-        res = load_result(params, net)
-        check_possible(Likelihood(net, coded), res.probs)
-        s = score(net, coded, res.probs)
+        probs = cpts_of(net, params)
+        check_possible(Likelihood(net, coded), probs)
+        s = score(net, coded, probs)
         out = {"log_likelihood": s["log_likelihood"], "gradient_norm": s["gradient_norm"],
                "n_rows": coded.n_rows, "n_distinct": coded.n_distinct,
                "log_likelihood_per_record": s["log_likelihood"] / coded.n_rows}
@@ -418,7 +419,46 @@ def score_command(
         else:
             typer.echo(f"marginal log-likelihood {out['log_likelihood']:.6f} over {coded.n_rows:g} records "
                        f"({out['log_likelihood_per_record']:.6f} per record)")
-            typer.echo(f"gradient norm {out['gradient_norm']:.3e} (records, w.r.t. the free logits)")
+            if net.free_names:
+                typer.echo(f"gradient norm {out['gradient_norm']:.3e} (records, w.r.t. the free logits)")
+            else:
+                typer.echo("every CPT is fixed: no gradient to report")
+
+
+# ------------------------------------------------------------------ show (print / export the CPTs)
+@app.command("show")
+def show_command(
+    result: Annotated[Path, typer.Argument(help="Result file (JSON, format adfit-result/1) from fit or em.",
+                                           exists=True, dir_okay=False, readable=True)],
+    node: Annotated[Optional[list[str]], typer.Option("--node", help="Node to show (repeat; default: all).")] = None,
+    fmt: Annotated[str, typer.Option("--format", help="text, csv, markdown or toml (a network file with every CPT fixed at the estimates).")] = "text",
+    out: Annotated[Optional[Path], typer.Option("--out", help="File to write (default: print).")] = None,
+    digits: Annotated[int, typer.Option("--digits", help="Decimals of text and markdown (csv and toml are exact).", min=1, max=17)] = 3,
+) -> None:
+    """The fitted CPTs: estimate, standard error and interval of every cell.
+
+    The toml format writes a network file whose CPTs are fixed at the estimates; every command
+    reads it (for example `adfit query` without --params).
+
+    Caution: the estimates rest on the network and on MAR; a fixed network hands them on without
+    their uncertainty.
+
+    Example: adfit show fit.json --node failure --format csv --out failure.csv
+    """
+    from .io import atomic_write
+    from .result import load_result
+    from .show import render
+
+    with user_errors():
+        res = load_result(result)
+        text = render(res, fmt, node or None, digits=digits, title=f"CPTs fixed at the estimates of {result.name}")
+        if out is None:
+            typer.echo(text.rstrip("\n"))
+        else:
+            check_output_path(out)
+            with atomic_write(out) as fh:
+                fh.write(text)
+            typer.echo(f"wrote {out}")
 
 
 # ------------------------------------------------------------------ impute / query (posteriors)
@@ -469,10 +509,29 @@ def impute_command(
         typer.echo(CAUTION)
 
 
+OptParamsOpt = Annotated[Optional[Path], typer.Option(
+    "--params", help="Result file whose CPTs are used (from fit or em); not needed when every CPT of the network is fixed.",
+    exists=True, dir_okay=False, readable=True)]
+
+
+def cpts_of(net, params):
+    """The CPTs of --params, or those of a network whose CPTs are all fixed."""
+    from .errors import OptionError
+    from .result import load_result
+
+    if params is not None:
+        return load_result(params, net).probs
+    free = net.free_names
+    if free:
+        raise OptionError(f"the network has CPTs to estimate ({', '.join(free[:5])}{', ...' if len(free) > 5 else ''}); "
+                          f"give --params FIT.json (from adfit fit or em), or fix every CPT in the network file")
+    return {n: net.fixed_table(n) for n in net.names}
+
+
 @app.command("query")
 def query_command(
     network: NetworkArg,
-    params: ParamsOpt,
+    params: OptParamsOpt = None,
     given: Annotated[Optional[list[str]], typer.Option(
         "--given", help="Evidence NODE=STATE (repeat for several).")] = None,
     target: Annotated[Optional[list[str]], typer.Option(
@@ -481,7 +540,11 @@ def query_command(
 ) -> None:
     """Posterior of chosen nodes given evidence, and the probability of the evidence.
 
-    Exact (variable elimination) under the CPTs of --params.
+    Exact (variable elimination) under the CPTs of --params, or under the network's own CPTs
+    when every one is fixed (an expert model, or one written by `adfit show --format toml`).
+
+    Caution: the answer is only as good as the CPTs and the network; it supports, and does not
+    replace, engineering or clinical judgement.
 
     Example: adfit query gearbox.toml --params fit.json --given wear=heavy --given load=high --target failure
     """
@@ -493,8 +556,7 @@ def query_command(
 
     with user_errors():
         net = load_network(network)
-        res = load_result(params, net)
-        q = query(net, res.probs, parse_assignments(given or []), target or None)
+        q = query(net, cpts_of(net, params), parse_assignments(given or []), target or None)
         if as_json:
             typer.echo(json.dumps(q.to_dict(), indent=2))
         else:

@@ -100,6 +100,42 @@ class FitResult:
     def cpts(self) -> dict[str, pd.DataFrame]:
         return {n: self.cpt(n) for n in self.network.names}
 
+    def table(self, name: str) -> pd.DataFrame:
+        """The CPT of ``name`` in long form, one row per cell: estimate, se, lower, upper.
+
+        The index holds the parent states (one level per parent) and the node's state. ``se`` and
+        ``lower``/``upper`` come from the result's error bars (NaN where the result has none, as for
+        fixed nodes or a fit run without error bars).
+
+        >>> res.table("failure").loc[("heavy", "yes")]   # doctest: +SKIP
+        """
+        net = self.network
+        if name not in net:
+            raise ResultError(f"table({name!r}): not a node of the network; nodes are {', '.join(net.names)}")
+        node = net.node(name)
+        est = np.asarray(self.probs[name], dtype=np.float64).reshape(-1, node.card)
+        sec = (self.extras.get("nodes") or {}).get(name) or {}
+
+        def grid(value: Any) -> np.ndarray:
+            try:
+                a = np.array([[_float(v) for v in row] for row in value], dtype=np.float64).reshape(est.shape)
+            except (TypeError, ValueError):
+                a = np.full(est.shape, np.nan)
+            return a
+
+        se = grid(sec["se"]) if sec.get("se") is not None else np.full(est.shape, np.nan)
+        iv = sec.get("interval")
+        if isinstance(iv, (list, tuple)) and len(iv) == 2:  # layout [lower_table, upper_table]
+            lo, hi = grid(iv[0]), grid(iv[1])
+        else:
+            lo, hi = np.full(est.shape, np.nan), np.full(est.shape, np.nan)
+        labels = net.parent_config_labels(name)
+        tuples = [lab + (s,) for lab in labels for s in node.states]
+        index = pd.MultiIndex.from_tuples(tuples, names=list(node.parents) + ["state"]) if node.parents \
+            else pd.Index(list(node.states), name="state")
+        return pd.DataFrame({"estimate": est.ravel(), "se": se.ravel(), "lower": lo.ravel(), "upper": hi.ravel()},
+                            index=index)
+
     # ------------------------------------------------------------------ serialisation
     def to_dict(self) -> dict[str, Any]:
         net = self.network
