@@ -536,9 +536,15 @@ def query_command(
         "--given", help="Evidence NODE=STATE (repeat for several).")] = None,
     target: Annotated[Optional[list[str]], typer.Option(
         "--target", help="Node whose posterior is wanted (repeat; default: every node not given).")] = None,
+    explain: Annotated[bool, typer.Option(
+        "--explain", help="Also give the most probable joint state of every node not given, with its probability.")] = False,
     as_json: Annotated[bool, typer.Option("--json", help="Print the result as JSON (format adfit-query/1).")] = False,
 ) -> None:
     """Posterior of chosen nodes given evidence, and the probability of the evidence.
+
+    Several --target nodes also give their joint distribution. --explain adds the most probable
+    explanation: the single most probable joint state of every node not given (by enumeration;
+    refused when the hidden nodes have too many joint states).
 
     Exact (variable elimination) under the CPTs of --params, or under the network's own CPTs
     when every one is fixed (an expert model, or one written by `adfit show --format toml`).
@@ -556,11 +562,23 @@ def query_command(
 
     with user_errors():
         net = load_network(network)
-        q = query(net, cpts_of(net, params), parse_assignments(given or []), target or None)
+        from .explain import format_explanation, format_joint, joint_posterior, most_probable
+
+        probs = cpts_of(net, params)
+        ev = parse_assignments(given or [])
+        q = query(net, probs, ev, target or None)
+        doc = q.to_dict()
+        texts = [q.format_text()]
+        if target and len(q.posteriors) > 1:
+            doc["joint"] = joint_posterior(net, probs, ev, list(q.posteriors))
+            texts.append(format_joint(doc["joint"], ev))
+        if explain:
+            doc["explanation"] = most_probable(net, probs, ev)
+            texts.append(format_explanation(doc["explanation"], ev))
         if as_json:
-            typer.echo(json.dumps(q.to_dict(), indent=2))
+            typer.echo(json.dumps(doc, indent=2))
         else:
-            typer.echo(q.format_text())
+            typer.echo("\n\n".join(texts))
             typer.echo("")
             typer.echo(CAUTION)
 
