@@ -54,8 +54,11 @@ def fail(message: str) -> None:
 @contextmanager
 def user_errors():
     """Wrap a command body: an AdfitError becomes one line on stderr and exit code 1."""
+    from .errors import cli_terms
+
     try:
-        yield
+        with cli_terms():  # messages name options as --ignore-columns, not ignore_columns=
+            yield
     except AdfitError as e:
         fail(str(e))
 
@@ -65,7 +68,9 @@ def main() -> None:
     from .likelihood import enable_compilation_cache
     enable_compilation_cache()  # compiled programs kept on disk between runs (ADFIT_COMPILE_CACHE=0: off)
     try:
-        rc = app(standalone_mode=False)
+        from .errors import cli_terms
+        with cli_terms():
+            rc = app(standalone_mode=False)
         if isinstance(rc, int) and rc:  # without standalone mode, click returns a typer.Exit's code
             sys.exit(rc)
     except AdfitError as e:

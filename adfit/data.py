@@ -28,7 +28,6 @@ import csv
 import functools
 import glob as _glob
 import math
-import shlex
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, Iterable, Iterator, Sequence
@@ -36,7 +35,7 @@ from typing import Any, Callable, Iterable, Iterator, Sequence
 import numpy as np
 import pandas as pd
 
-from .errors import DataError
+from .errors import DataError, option
 from .network import Network
 from .rowkeys import KeyLayout, PackedRows, reduce_words
 
@@ -260,7 +259,7 @@ class LabelCoder:
             if clash:
                 raise DataError(
                     f"node {name!r} has the state {clash[0]!r}, which is also a missing-value marker; "
-                    f"choose the markers with --missing (for example --missing '?') so that it is read as a state")
+                    f"choose the markers with {option('missing')} (for example {option('missing', '?', many=True)}) so that it is read as a state")
             self._lookup[name] = {s: i for i, s in enumerate(node.states)}
         # dtype of the codes that code() returns: room for UNKNOWN (-2) .. the largest state index
         cards = [network.node(n).card for n in network.observed_names]
@@ -307,10 +306,12 @@ class LabelCoder:
     def label_error(self, name: str, label: Any, where: str) -> DataError:
         states = self.network.node(name).states
         text = label if isinstance(label, str) else (_candidates(label) or ("",))[0]
-        hint = (f", or pass --missing {shlex.quote(text.strip())} if it marks a gap"
+        near = similar_label(text.strip(), states)
+        mean = f"did you mean {near!r}? " if near is not None else ""
+        hint = (f", or pass {option('missing', text.strip(), many=True)} if it marks a gap"
                 if text.strip() and text.isprintable() else "")
         return DataError(f"{where}, column {name!r}: label {_show(text)} is not a state of {name!r} "
-                         f"(states: {', '.join(states)}); fix the value{hint}")
+                         f"(states: {', '.join(states)}); {mean}fix the value{hint}")
 
     def check(self, name: str, codes: np.ndarray, values: Any, locate: Locate, row_offset: int = 0) -> None:
         """Raise the label error of the first UNKNOWN code of a column (rows counted from ``row_offset``)."""
@@ -318,6 +319,28 @@ class LabelCoder:
         if bad.size:
             i = int(bad[0])
             raise self.label_error(name, _value_at(values, i), locate(row_offset + i))
+
+
+def similar_label(text: str, states: Sequence[str]) -> str | None:
+    """The one state that ``text`` resembles: the same but for case, or one character added,
+    removed or changed (edit distance 1); None when there is no such state or more than one."""
+    if not text:
+        return None
+    same_case = [s for s in states if s.lower() == text.lower()]
+    if len(same_case) == 1:
+        return same_case[0]
+
+    def one_edit(a: str, b: str) -> bool:
+        if abs(len(a) - len(b)) > 1 or a == b:
+            return False
+        if len(a) == len(b):
+            return sum(x != y for x, y in zip(a, b)) == 1
+        if len(a) > len(b):
+            a, b = b, a
+        return any(b[:i] + b[i + 1:] == a for i in range(len(b)))
+
+    near = [s for s in states if one_edit(text.lower(), s.lower())]
+    return near[0] if len(near) == 1 else None
 
 
 def _count_problem(values: Any) -> tuple[np.ndarray, int | None, str]:
@@ -403,13 +426,13 @@ def check_columns(network: Network, columns: Sequence[str], *, count_column: str
         raise DataError(f"{source}: column(s) {dup} appear more than once; rename or remove the duplicates")
     for c in ignore:
         if c not in cols:
-            raise DataError(f"{source}: --ignore-columns names {c!r}, which is not a column of the data "
+            raise DataError(f"{source}: {option('ignore_columns')} names {c!r}, which is not a column of the data "
                             f"(columns: {', '.join(cols)})")
         if c in network and not network.node(c).latent:
-            raise DataError(f"{source}: --ignore-columns names {c!r}, which is an observed node of the network; "
+            raise DataError(f"{source}: {option('ignore_columns')} names {c!r}, which is an observed node of the network; "
                             f"an observed node needs its column (declare it latent = true to leave it out)")
         if c == count_column:
-            raise DataError(f"{source}: {c!r} is both the count column and in --ignore-columns; choose one")
+            raise DataError(f"{source}: {c!r} is both the count column and in {option('ignore_columns')}; choose one")
     if count_column is not None:
         if count_column in network:
             raise DataError(f"{source}: count column {count_column!r} is also a node of the network; "
@@ -419,7 +442,7 @@ def check_columns(network: Network, columns: Sequence[str], *, count_column: str
     for c in network.latent_names:
         if c in cols and c not in ignore:
             raise DataError(f"{source}: column {c!r} is a latent node, which is never observed; "
-                            f"drop the column, list it in --ignore-columns, or declare the node latent = false")
+                            f"drop the column, list it in {option('ignore_columns')}, or declare the node latent = false")
     expected = set(network.observed_names)
     extra = [c for c in cols if c not in expected and c not in ignore and c != count_column
              and c not in network.latent_names]
@@ -432,7 +455,7 @@ def check_columns(network: Network, columns: Sequence[str], *, count_column: str
                         f"(declare a node latent = true if it is never observed)")
     if extra:
         raise DataError(f"{source}: column(s) {extra} are not nodes of the network; "
-                        f"remove them or pass --ignore-columns {','.join(extra)}")
+                        f"remove them or pass {option('ignore_columns', ','.join(extra), many=True)}")
     return list(network.observed_names) + ([count_column] if count_column is not None else [])
 
 

@@ -45,3 +45,39 @@ class IdentifiabilityWarning(UserWarning):
 
 class LocalOptimaWarning(UserWarning):
     """Of several starts, only one reached the best objective: a higher optimum may exist."""
+
+
+# ------------------------------------------------------------------ how a message names an option
+# One mechanism for both audiences: messages name an option through :func:`option`, which spells
+# it as the command line does (``--ignore-columns id``) inside a CLI command and as the Python
+# keyword does (``ignore_columns=['id']``) everywhere else. The CLI turns the first on with
+# :func:`cli_terms` around each command body.
+import contextlib as _contextlib
+import contextvars as _contextvars
+import shlex as _shlex
+
+_CLI_TERMS: _contextvars.ContextVar[bool] = _contextvars.ContextVar("adfit_cli_terms", default=False)
+
+
+@_contextlib.contextmanager
+def cli_terms():
+    """Within this block, :func:`option` spells options as the command line does."""
+    token = _CLI_TERMS.set(True)
+    try:
+        yield
+    finally:
+        _CLI_TERMS.reset(token)
+
+
+def option(keyword: str, value: str | None = None, *, many: bool = False) -> str:
+    """``option("ignore_columns", "id", many=True)``: ``--ignore-columns id`` (CLI) or ``ignore_columns=['id']`` (Python).
+
+    ``many``: the Python keyword takes a list (values given comma-separated on the command line
+    become list items).
+    """
+    if _CLI_TERMS.get():
+        flag = "--" + keyword.replace("_", "-")
+        return flag if value is None else f"{flag} {_shlex.quote(value)}"
+    if value is None:
+        return f"{keyword}="
+    return f"{keyword}={[v for v in value.split(',')] if many else value!r}"

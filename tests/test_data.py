@@ -192,7 +192,8 @@ def test_label_error_points_at_the_right_line(tmp_path):
         load_data(NET, p, ignore_columns=["note"])
     msg = one_line(e)
     assert f"{p}: line 9 (data row 4), column 'wear': label 'hevy' is not a state of 'wear'" in msg
-    assert "--missing hevy" in msg
+    # from Python the fix is spelled as the keyword; "hevy" is one letter from "heavy"
+    assert "did you mean 'heavy'?" in msg and "missing=['hevy']" in msg and "--missing" not in msg
     with pytest.raises(DataError) as e:
         load_data(NET, pd.read_csv(p, dtype=str, keep_default_na=False), ignore_columns=["note"])
     assert "<DataFrame>: data row 4, column 'wear'" in one_line(e)
@@ -217,11 +218,11 @@ def test_parquet_label_error_names_the_data_row(tmp_path):
     ("load,wear,wear,temp\nlow,none,none,1\n", ["['wear'] appear more than once"]),
     ("load,wear\nlow,none\n", ["['temp'] are missing"]),
     ("load,wear,Temp\nlow,none,1\n", ["['temp'] are missing", "'Temp' for 'temp'"]),
-    ("load,wear,temp,note\nlow,none,1,x\n", ["['note'] are not nodes", "--ignore-columns note"]),
+    ("load,wear,temp,note\nlow,none,1,x\n", ["['note'] are not nodes", "ignore_columns=['note']"]),
     ("load,wear,temp,fault\nlow,none,1,no\n", ["'fault' is a latent node"]),
     ("load,wear,temp\nlow,none,01\n", ["line 2 (data row 1), column 'temp': label '01'"]),
     ("load,wear,temp\nlow,none,1.0\n", ["label '1.0'"]),
-    ("load,wear,temp\nlow,none,n/a\n", ["label 'n/a'", "--missing n/a"]),
+    ("load,wear,temp\nlow,none,n/a\n", ["label 'n/a'", "missing=['n/a']"]),
 ])
 def test_csv_errors(tmp_path, text, needles):
     p = write(tmp_path, text)
@@ -284,7 +285,7 @@ def test_a_state_that_is_also_a_missing_marker_is_an_error():
     net = network_from_dict({"answer": {"states": ["yes", "no", "NA"]}})
     with pytest.raises(DataError) as e:
         encode_frame(net, pd.DataFrame({"answer": ["yes", "NA"]}))
-    assert "'NA'" in one_line(e) and "--missing" in one_line(e)
+    assert "'NA'" in one_line(e) and "missing=['?']" in one_line(e)
     cd = encode_frame(net, pd.DataFrame({"answer": ["yes", "NA", "?"]}), missing=["?"])
     assert cd.codes[:, 0].tolist() == [HIDDEN, 0, 2]
 
@@ -474,3 +475,31 @@ def test_ready_made_codes_are_checked_blockwise_and_the_first_bad_cell_is_named(
     lat[20, 1] = 0
     with pytest.raises(DataError, match="latent node; its codes must all be -1"):
         load_data(net, CodedData(lat, np.ones(50)))
+
+
+def test_label_errors_suggest_the_state_they_resemble_and_speak_the_callers_terms(tmp_path):
+    """Case-only and one-character differences get a "did you mean"; the CLI names --missing and
+    --ignore-columns, Python names missing= and ignore_columns= (same message otherwise)."""
+    from typer.testing import CliRunner
+
+    from adfit.cli import app
+    from adfit.data import similar_label
+
+    assert similar_label("Heavy", ["none", "light", "heavy"]) == "heavy"
+    assert similar_label("hevy", ["none", "light", "heavy"]) == "heavy"
+    assert similar_label("heavyy", ["none", "light", "heavy"]) == "heavy"
+    assert similar_label("of", ["on", "off"]) is None          # two candidates: no guess
+    assert similar_label("broken", ["none", "light", "heavy"]) is None
+    net = network_from_dict({"wear": {"states": ["none", "light", "heavy"]}})
+    (tmp_path / "n.toml").write_text('[nodes.wear]\nstates = ["none", "light", "heavy"]\n')
+    (tmp_path / "d.csv").write_text("wear,pump_id\nnone,1\nHeavy,2\n")
+    with pytest.raises(DataError) as e:
+        load_data(net, tmp_path / "d.csv", ignore_columns=["pump_id"])
+    assert "did you mean 'heavy'?" in one_line(e) and "missing=['Heavy']" in one_line(e)
+    with pytest.raises(DataError) as e:
+        load_data(net, tmp_path / "d.csv")
+    assert "ignore_columns=['pump_id']" in one_line(e)
+    r = CliRunner().invoke(app, ["gaps", str(tmp_path / "n.toml"), str(tmp_path / "d.csv")])
+    assert r.exit_code == 1 and "--ignore-columns pump_id" in r.output and "ignore_columns=" not in r.output
+    r = CliRunner().invoke(app, ["gaps", str(tmp_path / "n.toml"), str(tmp_path / "d.csv"), "--ignore-columns", "pump_id"])
+    assert r.exit_code == 1 and "did you mean 'heavy'?" in r.output and "--missing Heavy" in r.output
