@@ -29,16 +29,26 @@ app = typer.Typer(
     rich_markup_mode="markdown",
 )
 
+DATA_PANEL = "Reading the records"
+OPT_PANEL = "Optimiser"
+CHECK_PANEL = "Checks and error bars"
+
+
+def Flag(*names: str, **kw):  # noqa: N802 (a declaration, like typer.Option)
+    """An on/off option: shown in --help as a flag (no value column), used as --name / --no-name."""
+    return typer.Option(*names, metavar="", **kw)
+
+
 # Shared option declarations (reuse these in every command that reads data).
 NetworkArg = Annotated[Path, typer.Argument(help="Network file (TOML): [nodes.NAME] tables with states, parents, latent, fixed.",
                                             exists=True, dir_okay=False, readable=True)]
 DataArg = Annotated[Path, typer.Argument(help="Records: a CSV or Parquet file (or a folder or glob pattern of such files), one column per non-latent node.")]
 MissingOpt = Annotated[Optional[list[str]], typer.Option(
-    "--missing", help="A label that means 'not recorded' (repeat for several). Default: empty, NA, NaN, ?.")]
+    "--missing", rich_help_panel=DATA_PANEL, help="A label that means 'not recorded' (repeat for several). Default: empty, NA, NaN, ?.")]
 CountOpt = Annotated[Optional[str], typer.Option(
-    "--count-column", help="Column holding the number of records each row stands for (pre-aggregated tables).")]
+    "--count-column", rich_help_panel=DATA_PANEL, help="Column holding the number of records each row stands for (pre-aggregated tables).")]
 IgnoreOpt = Annotated[Optional[str], typer.Option(
-    "--ignore-columns", help="Comma-separated data columns to ignore.")]
+    "--ignore-columns", rich_help_panel=DATA_PANEL, help="Comma-separated data columns to ignore.")]
 
 
 def split_list(value: Optional[str]) -> tuple[str, ...]:
@@ -96,7 +106,7 @@ def gaps_command(
     missing: MissingOpt = None,
     count_column: CountOpt = None,
     ignore_columns: IgnoreOpt = None,
-    as_json: Annotated[bool, typer.Option(
+    as_json: Annotated[bool, Flag(
         "--json", help="Print the overview as JSON (format adfit-gaps/1) instead of text.")] = False,
     top: Annotated[int, typer.Option(
         "--top", help="How many of the most frequent missingness patterns to list.")] = 10,
@@ -173,6 +183,9 @@ def em_command(
     convergence (ratio of successive parameter changes: the largest fraction of missing
     information), the stationarity residual, the rows not informed by the data, the trace.
 
+    Caution: estimates rest on the network structure and on MAR; they support, and do not
+    replace, engineering or clinical judgement.
+
     Example: adfit em gearbox.toml inspections.csv --out em.json --seed 3
     """
     from .data import load_data
@@ -206,10 +219,10 @@ def em_command(
 
 # ------------------------------------------------------------------ fit / score (the core job)
 EngineOpt = Annotated[str, typer.Option(
-    "--engine", help="How the records are read and reduced to distinct rows: pandas (default), stream "
+    "--engine", rich_help_panel=DATA_PANEL, help="How the records are read and reduced to distinct rows: pandas (default), stream "
                      "(chunked, memory bounded by the distinct rows), duckdb (out of core), dask (a cluster).")]
 SchedulerOpt = Annotated[Optional[str], typer.Option(
-    "--scheduler", help="With --engine dask: address of the Dask scheduler (default: a local cluster).")]
+    "--scheduler", rich_help_panel=DATA_PANEL, help="With --engine dask: address of the Dask scheduler (default: a local cluster).")]
 
 
 def read_inputs(network: Path, data: Path, *, missing, count_column, ignore_columns, engine: str = "pandas",
@@ -254,15 +267,15 @@ def fit_command(
     network: NetworkArg,
     data: DataArg,
     out: Annotated[Path, typer.Option("--out", help="Result file to write (JSON, format adfit-result/1).")],
-    method: Annotated[str, typer.Option("--method", help="Optimiser: lbfgs (default) or adam.")] = "lbfgs",
-    seed: Annotated[int, typer.Option("--seed", help="Seed of the random starts (results are reproducible).")] = 0,
-    restarts: Annotated[int, typer.Option("--restarts", help="Number of starts: complete-family counts, then random Dirichlet draws; the best is kept.")] = 1,
-    tol: Annotated[float, typer.Option("--tol", help="Relative change of the objective that counts as flat (with a residual below sqrt(tol)).")] = 1e-10,
-    gtol: Annotated[float, typer.Option("--gtol", help="Stop when the gradient norm (records) is below gtol x number of records.")] = 1e-9,
-    max_iter: Annotated[int, typer.Option("--max-iter", help="Most iterations per start.")] = 1000,
-    learning_rate: Annotated[float, typer.Option("--learning-rate", help="Step size of Adam (with --method adam).")] = 0.05,
+    method: Annotated[str, typer.Option("--method", rich_help_panel=OPT_PANEL, help="Optimiser: lbfgs (default) or adam.")] = "lbfgs",
+    seed: Annotated[int, typer.Option("--seed", rich_help_panel=OPT_PANEL, help="Seed of the random starts (results are reproducible).")] = 0,
+    restarts: Annotated[int, typer.Option("--restarts", rich_help_panel=OPT_PANEL, help="Number of starts: complete-family counts, then random Dirichlet draws; the best is kept.")] = 1,
+    tol: Annotated[float, typer.Option("--tol", rich_help_panel=OPT_PANEL, help="Relative change of the objective that counts as flat (with a residual below sqrt(tol)).")] = 1e-10,
+    gtol: Annotated[float, typer.Option("--gtol", rich_help_panel=OPT_PANEL, help="Stop when the gradient norm (records) is below gtol x number of records.")] = 1e-9,
+    max_iter: Annotated[int, typer.Option("--max-iter", rich_help_panel=OPT_PANEL, help="Most iterations per start.")] = 1000,
+    learning_rate: Annotated[float, typer.Option("--learning-rate", rich_help_panel=OPT_PANEL, help="Step size of Adam (with --method adam).")] = 0.05,
     batch_size: Annotated[Optional[int], typer.Option(
-        "--batch-size", help="With --method adam: minibatch gradients from this many sampled distinct rows per step (very large data); the full-data gradient norm is reported at the end.")] = None,
+        "--batch-size", rich_help_panel=OPT_PANEL, help="With --method adam: minibatch gradients from this many sampled distinct rows per step (very large data); the full-data gradient norm is reported at the end.")] = None,
     prior: Annotated[Optional[Path], typer.Option(
         "--prior", help="Prior file (TOML): Dirichlet pseudo-counts, BDeu equivalent sample size or expert tables; gives MAP estimates.",
         exists=True, dir_okay=False, readable=True)] = None,
@@ -272,14 +285,14 @@ def fit_command(
     ignore_columns: IgnoreOpt = None,
     engine: EngineOpt = "pandas",
     scheduler: SchedulerOpt = None,
-    em_check: Annotated[bool, typer.Option("--em-check", help="Cross-check the fit with the independent EM reference.")] = False,
-    compare_complete_case: Annotated[bool, typer.Option(
-        "--compare-complete-case", help="Also fit on the complete rows only and compare every CPT entry.")] = False,
-    folds: Annotated[int, typer.Option("--folds", help="K-fold cross-validation of the held-out marginal log-likelihood (0: off).")] = 0,
-    errors: Annotated[Optional[bool], typer.Option(
-        "--errors/--no-errors", help="Standard errors, intervals and identifiability flags for every CPT entry "
+    em_check: Annotated[bool, Flag("--em-check", rich_help_panel=CHECK_PANEL, help="Cross-check the fit with the independent EM reference.")] = False,
+    compare_complete_case: Annotated[bool, Flag(
+        "--compare-complete-case", rich_help_panel=CHECK_PANEL, help="Also fit on the complete rows only and compare every CPT entry.")] = False,
+    folds: Annotated[int, typer.Option("--folds", rich_help_panel=CHECK_PANEL, help="K-fold cross-validation of the held-out marginal log-likelihood (0: off).")] = 0,
+    errors: Annotated[Optional[bool], Flag(
+        "--errors/--no-errors", rich_help_panel=CHECK_PANEL, help="Standard errors, intervals and identifiability flags for every CPT entry "
                                      "(default: on up to 1000 free parameters and about 2 minutes estimated).")] = None,
-    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print only the file written and warnings.")] = False,
+    quiet: Annotated[bool, Flag("--quiet", "-q", help="Print only the file written and warnings.")] = False,
 ) -> None:
     """Fit the free CPTs by maximising the exact marginal likelihood of the observed cells.
 
@@ -396,12 +409,15 @@ def score_command(
     ignore_columns: IgnoreOpt = None,
     engine: EngineOpt = "pandas",
     scheduler: SchedulerOpt = None,
-    as_json: Annotated[bool, typer.Option("--json", help="Print the figures as JSON.")] = False,
+    as_json: Annotated[bool, Flag("--json", help="Print the figures as JSON.")] = False,
 ) -> None:
     """Marginal log-likelihood and gradient norm of given CPTs on a data set.
 
     The gradient norm is that of the log-likelihood with respect to the free logits, in records
     (it is the stationarity residual of the expected counts): near 0 at a maximum for this data.
+
+    Caution: a log-likelihood compares CPTs on the same records and network; it does not by itself
+    say that the CPTs are right.
 
     Example: adfit score gearbox.toml new_records.csv --params fit.json
     """
@@ -541,9 +557,9 @@ def query_command(
         "--given", help="Evidence NODE=STATE (repeat for several).")] = None,
     target: Annotated[Optional[list[str]], typer.Option(
         "--target", help="Node whose posterior is wanted (repeat; default: every node not given).")] = None,
-    explain: Annotated[bool, typer.Option(
+    explain: Annotated[bool, Flag(
         "--explain", help="Also give the most probable joint state of every node not given, with its probability.")] = False,
-    as_json: Annotated[bool, typer.Option("--json", help="Print the result as JSON (format adfit-query/1).")] = False,
+    as_json: Annotated[bool, Flag("--json", help="Print the result as JSON (format adfit-query/1).")] = False,
 ) -> None:
     """Posterior of chosen nodes given evidence, and the probability of the evidence.
 
@@ -594,8 +610,8 @@ def demo_command(
     out: Annotated[Path, typer.Option("--out", help="Folder to write the demo's files into (created if needed).")] = Path("adfit-demo"),
     restarts: Annotated[int, typer.Option("--restarts", help="Starts of the fit (the best is kept).")] = 4,
     seed: Annotated[int, typer.Option("--seed", help="Seed of the random starts and of EM's own start.")] = 0,
-    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="No progress bars; print only the files written and warnings.")] = False,
-    as_json: Annotated[bool, typer.Option("--json", help="Print the summary as JSON (format adfit-demo/1) instead of text.")] = False,
+    quiet: Annotated[bool, Flag("--quiet", "-q", help="No progress bars; print only the files written and warnings.")] = False,
+    as_json: Annotated[bool, Flag("--json", help="Print the summary as JSON (format adfit-demo/1) instead of text.")] = False,
 ) -> None:
     """Run the whole job on the embedded wind-turbine gearbox scenario (simulated records).
 
