@@ -53,6 +53,26 @@ SCALE_EPS = 0.1
 PHASE_LENGTHS = (10, 20, 40, 80, 160)
 # EM steps (from the same expected counts) tried when a quasi-Newton phase stalls
 EM_POLISH_STEPS = 5
+# KKT check on the simplex (module docstring): default tolerance on the ratio, the smallest
+# expected parent-configuration weight N(u) + Σc (records) for which a row is checked, the
+# probabilities below which a cell is re-evaluated at a floor (its expected count underflows)
+KKT_TOL = 1e-3
+KKT_MIN_WEIGHT = 1e-6
+KKT_TINY = 1e-250
+KKT_FLOOR = 1e-200
+# boundary escapes: at most this many per start; the absolute levels a violating cell is raised to
+MAX_BOUNDARY_ESCAPES = 20
+ESCAPE_LEVELS = (0.25, 0.05, 1e-2, 1e-3, 1e-4, 1e-6)
+# curvature check at a converged point (Fitter.curvature_check): Lanczos steps, the relative
+# finite-difference step, the gate on the smallest Ritz value (relative to the largest), the
+# predicted gains (log-likelihood units) of the trial moves, the most saddle escapes per start
+LANCZOS_STEPS = 24
+HVP_STEP = 1e-3
+SADDLE_GATE = 1e-4
+SADDLE_GAINS = (1e-3, 1e-1, 10.0)
+MAX_SADDLE_ESCAPES = 3
+# stop reasons of a stalled (not converged) quasi-Newton run, after which a boundary escape is tried
+STALL_REASONS = ("line search found no better point", "no further progress after rescaling")
 
 
 @dataclass(frozen=True)
@@ -66,6 +86,7 @@ class FitSettings:
     memory: int = 20
     l2: float = 0.0
     batch_size: int | None = None
+    kkt_tol: float = KKT_TOL
 
     def validate(self) -> None:
         if self.batch_size is not None:
@@ -81,6 +102,8 @@ class FitSettings:
             raise OptionError(f"--ptol must be > 0, got {self.ptol}")
         if not (self.gtol > 0):
             raise OptionError(f"--gtol must be > 0, got {self.gtol}")
+        if not (0 < self.kkt_tol < 1):
+            raise OptionError(f"--kkt-tol must be > 0 and < 1, got {self.kkt_tol}")
         if self.max_iter < 1:
             raise OptionError(f"--max-iter must be >= 1, got {self.max_iter}")
         if not (self.l2 >= 0) or not math.isfinite(self.l2):
@@ -131,6 +154,50 @@ def objective_gradient(network: Network, probs: Mapping[str, np.ndarray], counts
             gi = gi - 2 * l2 * (e - e.mean(axis=-1, keepdims=True))
         g[name] = gi
     return g
+
+
+def kkt_ratios(network: Network, probs: Mapping[str, np.ndarray], counts: Mapping[str, np.ndarray],
+               pseudo: Mapping[str, np.ndarray], *, min_weight: float = KKT_MIN_WEIGHT) -> dict[str, np.ndarray]:
+    """The simplex KKT ratio of every free cell, ``(N(x,u) + c) / (θ(x|u)·(N(u) + Σc))``.
+
+    On the simplex of a CPT row, F = log L + Σ c log θ has the Lagrangian stationarity
+    condition ∂F/∂θ(x|u) = μ(u) wherever θ(x|u) > 0 and ∂F/∂θ(x|u) ≤ μ(u) where θ(x|u) = 0
+    (Boyd & Vandenberghe 2004, Convex Optimization, §5.5.3). With ∂F/∂θ = (N + c)/θ (Fisher's
+    identity) and μ(u) = N(u) + Σc, the ratio above is ∂F/∂θ / μ: at a maximum it is 1 in the
+    interior and ≤ 1 on the boundary. A ratio above 1 on a cell near 0 means F rises steeply if
+    the cell grows — a point a stopping rule in logits cannot see, since there the logit
+    gradient N − θN(u) is θ·(ratio − 1)·N(u) ≈ 0. It is also EM's multiplicative factor for the
+    cell (Dempster, Laird & Rubin 1977).
+
+    The likelihood is linear in each CPT (one entry per row's term), so N(x,u)/θ(x|u) does not
+    depend on θ(x|u) and is finite at θ → 0; cells whose θ underflows are NaN here (see
+    :meth:`Fitter.evaluate`). Rows with N(u) + Σc below ``min_weight`` records are not checked
+    (NaN): no record informs them.
+    """
+    out = {}
+    for name in network.free_names:
+        th = np.asarray(probs[name], dtype=np.float64)
+        a = np.asarray(counts[name], dtype=np.float64) + pseudo[name]
+        mu = a.sum(axis=-1, keepdims=True)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = a / (th * mu)
+        ok = (mu >= min_weight) & (th > KKT_TINY) & np.isfinite(r)
+        out[name] = np.where(ok, r, np.nan)
+    return out
+
+
+def _cell_label(network: Network, name: str, flat: int) -> str:
+    """``"node=state | parent=state, ..."`` for entry ``flat`` of the raveled CPT of ``name``."""
+    node = network.node(name)
+    row, col = divmod(int(flat), node.card)
+    cfg = network.parent_config_labels(name)[row]
+    given = ", ".join(f"{p}={v}" for p, v in zip(node.parents, cfg))
+    return f"{name}={node.states[col]}" + (f" | {given}" if given else "")
+
+
+def _max_finite(tree: Mapping[str, np.ndarray]) -> float:
+    vals = [float(np.nanmax(v)) for v in tree.values() if np.size(v) and np.isfinite(v).any()]
+    return max(vals) if vals else float("nan")
 
 
 def _norm(tree: Mapping[str, np.ndarray]) -> float:
@@ -489,6 +556,12 @@ class Fitter:
         self.n_total = float(data.n_rows)
         self.free = network.free_names
         self.em_polish_steps = 0
+        self.boundary_escapes = 0
+        self.saddle_escapes = 0
+        self.saddle_check = True
+        # a saddle needs hidden cells: with every cell observed the log-likelihood is concave in
+        # the logits (a sum of linear terms minus log-sum-exps)
+        self.has_hidden = bool(np.any(np.asarray(data.codes) < 0))
         with np.errstate(divide="ignore"):
             self.fixed_lc = {n: jnp.asarray(np.log(network.fixed_table(n))) for n in network.fixed_names}
         # the optimiser's flat vectors (FreeLayout): pseudo-counts and the fixed nodes' log-tables
@@ -527,9 +600,40 @@ class Fitter:
             resid = max(resid, float(r.max(initial=0.0)))
         lp = log_prior_value(probs, self.pseudo)
         pen = penalty_value(logits, self.settings.l2)
+        kkt = self.kkt(probs, counts) if self.settings.l2 == 0 else None
         return {"probs": probs, "log_likelihood": ll, "log_prior": lp, "penalty": pen,
                 "objective": ll + lp - pen, "grad": g, "gradient_norm": _norm(g),
-                "residual": resid, "counts": counts}
+                "residual": resid, "counts": counts, "kkt": kkt,
+                "kkt_ratio": _max_finite(kkt) if kkt is not None else None}
+
+    def kkt(self, probs: Mapping[str, np.ndarray], counts: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+        """:func:`kkt_ratios` at ``probs``. Cells whose probability underflowed (≤ KKT_TINY, where
+        the expected count is lost too) in informed rows get their ratio from one more
+        evaluation with those cells raised to KKT_FLOOR: the ratio N(x,u)/θ(x|u) does not depend
+        on θ(x|u) (the likelihood is linear in each CPT), and the floor changes nothing else by
+        more than about 1e-200."""
+        r = kkt_ratios(self.network, probs, counts, self.pseudo)
+        tiny = {}
+        for name in self.free:
+            th = np.asarray(probs[name])
+            mu = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
+            t = (th <= KKT_TINY) & (mu >= KKT_MIN_WEIGHT)
+            if t.any():
+                tiny[name] = t
+        if tiny:
+            floored = dict(probs)
+            for name, t in tiny.items():
+                floored[name] = np.where(t, KKT_FLOOR, probs[name])
+            _, c2 = self.lik.expected_counts(floored)
+            r2 = kkt_ratios(self.network, floored, c2, self.pseudo)
+            for name, t in tiny.items():
+                r[name] = np.where(t, r2[name], r[name])
+        return r
+
+    def kkt_holds(self, ev: Mapping[str, Any]) -> bool:
+        """The simplex KKT condition at an evaluated point: every checked cell's ratio ≤ 1 + kkt_tol
+        (always true with an L2 penalty, whose maximum is interior: the logit rule covers it)."""
+        return ev.get("kkt_ratio") is None or not (ev["kkt_ratio"] > 1.0 + self.settings.kkt_tol)
 
     def _scale(self, counts: Mapping[str, np.ndarray], probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
         """Diagonal preconditioner: 1/sqrt(N(u)·θ(x|u) + ε) per logit.
@@ -563,11 +667,216 @@ class Fitter:
                     [ev0["gradient_norm"]] + h_gn[:-1] + [ev["gradient_norm"]], s.max_iter, converged, reason)
 
     def run(self, logits0: Mapping[str, Any], *, progress: Callable[[int, float, float], None] | None = None) -> _Run:
-        """One start. The per-iteration value and gradient are those the optimiser computed
-        anyway; the exact residual is evaluated only when a stopping rule fires."""
+        """One start: the optimiser's phases, then the simplex KKT check (:func:`kkt_ratios`).
+
+        Where the logit rule stopped (converged, or stalled) at a point whose KKT ratio exceeds
+        1 + ``kkt_tol`` on some cell, the point is a false boundary: the cell is (near) 0 while
+        the objective rises if it grows. :meth:`escape` moves probability mass onto those cells
+        and the optimiser carries on from there, at most ``MAX_BOUNDARY_ESCAPES`` times. A run
+        whose last point still violates the condition is not converged, whatever the logit rule
+        said."""
         s = self.settings
         if s.batch_size is not None:
-            return self._run_minibatch(logits0, progress=progress)
+            r = self._run_minibatch(logits0, progress=progress)
+            ev = self.evaluate(r.logits)
+            if r.converged and not self.kkt_holds(ev):
+                r.converged, r.stop_reason = False, self._kkt_reason(ev, "after the minibatch run")
+            return r
+        r = self._run_phases(logits0, max_iter=s.max_iter, progress=progress)
+        escapes = saddles = 0
+        while True:
+            ev = self.evaluate(r.logits)
+            if not math.isfinite(ev["objective"]):
+                break
+            stalled = r.stop_reason in STALL_REASONS
+            if self.kkt_holds(ev):
+                if not (r.converged and self.saddle_check and self.has_hidden):
+                    break
+                found = self.curvature_check(r.logits, ev)
+                if found is None:
+                    break
+                if saddles >= MAX_SADDLE_ESCAPES or r.iterations >= s.max_iter:
+                    r.converged = False
+                    r.stop_reason = (f"a direction of negative curvature remains after {saddles} move(s) off "
+                                     f"stationary points that are not maxima (saddles)")
+                    break
+                saddles += 1
+                self.saddle_escapes += 1
+                logits, ev_m = found
+            else:
+                if not (r.converged or stalled):
+                    break  # e.g. the iteration limit: the run reports not converged anyway
+                if escapes >= MAX_BOUNDARY_ESCAPES or r.iterations >= s.max_iter:
+                    r.converged, r.stop_reason = False, self._kkt_reason(ev, f"after {escapes} boundary escape(s)")
+                    break
+                moved = self.escape(ev)
+                if moved is None:
+                    r.converged, r.stop_reason = False, self._kkt_reason(
+                        ev, "and no move onto those cells raised the objective")
+                    break
+                escapes += 1
+                self.boundary_escapes += 1
+                logits, ev_m = moved
+            it0 = r.iterations
+            cb = None if progress is None else (lambda it, o, g, it0=it0: progress(it0 + it, o, g))
+            r2 = self._run_phases(logits, max_iter=s.max_iter - it0, progress=cb)
+            r = _Run(r2.logits, r2.value, r.history_obj + [ev_m["objective"]] + r2.history_obj[1:],
+                     r.history_gn + [ev_m["gradient_norm"]] + r2.history_gn[1:], it0 + r2.iterations,
+                     r2.converged, r2.stop_reason)
+        if not r.converged and r.stop_reason.startswith("iteration limit"):
+            r.stop_reason = f"iteration limit {s.max_iter} reached"
+        return r
+
+    def curvature_check(self, logits: Mapping[str, Any], ev: Mapping[str, Any]):
+        """Is the stationary point ``logits`` a saddle? Returns ``(logits, evaluation)`` of a
+        strictly better point found along a direction of negative curvature, or None.
+
+        Lanczos iterations (Golub & Van Loan 2013, Matrix Computations, §10.1; full
+        re-orthogonalisation) on the Hessian of −F/N in the preconditioned coordinates z, with
+        Hessian-vector products by forward differences of the exact gradient, estimate its
+        smallest eigenvalue. Where it is below −SADDLE_GATE times the largest, the point is moved
+        along the Ritz vector, both ways, by the steps whose quadratic model gains SADDLE_GAINS
+        log-likelihood units; the point is called a saddle only if one of those moves raises the
+        objective beyond rounding (so a flat direction the data cannot identify, with curvature
+        about zero, is never called one)."""
+        lay = self.layout
+        scale = lay.flatten(self._scale(ev["counts"], ev["probs"]))
+        pseudo, l2, N = self.pseudo_flat, float(self.settings.l2), float(self.n_total)
+        z0 = lay.flatten(logits) / scale
+        f0 = -ev["objective"] / N
+        g0 = -lay.flatten(ev["grad"]) * scale / N
+        n = z0.size
+        if n < 2:
+            return None
+        h = HVP_STEP
+
+        def hvp(v):
+            _, g = self.objective_fg(z0 + h * v, scale, pseudo, l2, N)
+            return (np.asarray(g) - g0) / h
+
+        rng = np.random.default_rng(12345)
+        q = rng.standard_normal(n)
+        q /= np.linalg.norm(q)
+        Q, alpha, beta = [], [], []
+        lam_min = lam_max = 0.0
+        vec = None
+        for j in range(min(LANCZOS_STEPS, n)):
+            w = hvp(q)
+            if not np.all(np.isfinite(w)):
+                return None
+            a = float(np.dot(q, w))
+            Q.append(q)
+            alpha.append(a)
+            Qm = np.asarray(Q)
+            w = w - Qm.T @ (Qm @ w)
+            w = w - Qm.T @ (Qm @ w)
+            T = np.diag(alpha) + np.diag(beta, 1) + np.diag(beta, -1)
+            vals, vecs = np.linalg.eigh(T)
+            lam_min, lam_max = float(vals[0]), float(vals[-1])
+            b = float(np.linalg.norm(w))
+            vec = vecs[:, 0]
+            # the Ritz value's residual |b·y_last| bounds its distance to an eigenvalue
+            if b < 1e-12 * max(abs(lam_max), 1e-300) or (j >= 4 and abs(b * vec[-1]) < 1e-3 * abs(lam_min)):
+                break
+            beta.append(b)
+            q = w / b
+        if not (lam_max > 0 and lam_min < -SADDLE_GATE * lam_max):
+            return None
+        v = np.asarray(Q).T @ vec
+        v /= np.linalg.norm(v)
+        best = None
+        for gain in SADDLE_GAINS:
+            t = math.sqrt(2.0 * gain / (abs(lam_min) * N))
+            for sign in (1.0, -1.0):
+                cand = lay.unflatten((z0 + sign * t * v) * scale)
+                cand = {k: np.array(x) for k, x in cand.items()}
+                ev_c = self.evaluate(cand)
+                if math.isfinite(ev_c["objective"]) and (best is None or ev_c["objective"] > best[1]["objective"]):
+                    best = (cand, ev_c)
+        if best is not None and best[1]["objective"] > ev["objective"] + 1e-9 * max(1.0, abs(ev["objective"])):
+            return best
+        return None
+
+    def _kkt_reason(self, ev: Mapping[str, Any], tail: str) -> str:
+        name, label, ratio = self.worst_kkt_cell(ev)
+        return (f"KKT condition violated: cell {label} has ratio {ratio:.4g} > 1 + {self.settings.kkt_tol:g} "
+                f"(the objective rises if it grows) {tail}")
+
+    def worst_kkt_cell(self, ev: Mapping[str, Any]) -> tuple[str | None, str, float]:
+        """(node, readable cell label, ratio) of the largest KKT ratio at an evaluated point."""
+        best = (None, "", float("nan"))
+        for name, r in (ev.get("kkt") or {}).items():
+            if not np.isfinite(r).any():
+                continue
+            flat = int(np.nanargmax(r))
+            val = float(r.ravel()[flat])
+            if best[0] is None or val > best[2]:
+                best = (name, _cell_label(self.network, name, flat), val)
+        return best
+
+    def escape(self, ev: Mapping[str, Any]):
+        """Leave a false boundary: raise every cell whose KKT ratio exceeds 1 + kkt_tol to one of
+        the levels ``ESCAPE_LEVELS`` (never lower; the other cells of its row scaled down, the
+        raised cells of a row together at most 0.5), and keep the level with the best objective
+        if it beats the current point. Along such a move the objective's slope is
+        (ratio − 1)·(N(u) + Σc) per unit of probability moved, so a small enough level always
+        gains; when none of the levels does, a few EM steps (never lowering the objective;
+        Dempster, Laird & Rubin 1977) are tried instead. Returns ``(logits, evaluation)`` of the
+        new point, or None when nothing raised the objective."""
+        tol = self.settings.kkt_tol
+        probs, ratios = ev["probs"], ev["kkt"]
+        best = None
+        for level in ESCAPE_LEVELS:
+            new = dict(probs)
+            changed = False
+            for name in self.free:
+                th = np.asarray(probs[name], dtype=np.float64)
+                viol = np.nan_to_num(ratios[name], nan=0.0) > 1.0 + tol
+                if not viol.any():
+                    continue
+                t = np.where(viol, np.maximum(th, level), 0.0)
+                st = t.sum(axis=-1, keepdims=True)
+                t = np.where(st > 0.5, t * (0.5 / np.maximum(st, 1e-300)), t)
+                st = t.sum(axis=-1, keepdims=True)
+                rest = np.where(viol, 0.0, th)
+                sr = rest.sum(axis=-1, keepdims=True)
+                row = viol.any(axis=-1, keepdims=True)
+                moved = t + rest * ((1.0 - st) / np.where(sr > 0, sr, 1.0))
+                new[name] = np.where(row & (sr > 0), moved, th)
+                changed = True
+            if not changed:
+                return None
+            cand = logits_from_probs(self.network, new)
+            ev_c = self.evaluate(cand)
+            if math.isfinite(ev_c["objective"]) and (best is None or ev_c["objective"] > best[1]["objective"]):
+                best = (cand, ev_c)
+        if best is not None and best[1]["objective"] > ev["objective"]:
+            return best
+        cur, logits = ev, None
+        for _ in range(10 * EM_POLISH_STEPS):
+            new_probs = {}
+            for name in self.free:
+                num = cur["counts"][name] + self.pseudo[name]
+                den = num.sum(axis=-1, keepdims=True)
+                new_probs[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), cur["probs"][name])
+            cand = logits_from_probs(self.network, new_probs)
+            ev_c = self.evaluate(cand)
+            if not (math.isfinite(ev_c["objective"]) and ev_c["objective"] >= cur["objective"]):
+                break
+            cur, logits = ev_c, cand
+            if self.kkt_holds(cur):
+                break
+        if logits is not None and cur["objective"] > ev["objective"]:
+            return logits, cur
+        return None
+
+    def _run_phases(self, logits0: Mapping[str, Any], *, max_iter: int,
+                    progress: Callable[[int, float, float], None] | None = None) -> _Run:
+        """The preconditioned quasi-Newton (or Adam) phases of one start, up to ``max_iter``
+        iterations, with the stopping rule in logits. The per-iteration value and gradient are
+        those the optimiser computed anyway; the exact residual is evaluated only when a
+        stopping rule fires. :meth:`run` adds the KKT check and the boundary escapes."""
+        s = self.settings
         N = self.n_total
         logits = {k: np.asarray(logits0[k], dtype=np.float64) for k in self.free}
         ev = self.evaluate(logits)
@@ -584,12 +893,12 @@ class Fitter:
             return _Run(logits, ev["objective"], hist_obj, hist_gn, 0, False, "objective not finite at the start")
         stalled_phases = 0
         n_phase = 0
-        while it < s.max_iter and not converged:
+        while it < max_iter and not converged:
             if ev["gradient_norm"] <= gtol_abs:
                 converged, stop_reason = True, "gradient norm below gtol"
                 break
             scale = lay.flatten(self._scale(ev["counts"], ev["probs"]))
-            phase_len = PHASE_LENGTHS[min(n_phase, len(PHASE_LENGTHS) - 1)] if s.method == "lbfgs" else s.max_iter
+            phase_len = PHASE_LENGTHS[min(n_phase, len(PHASE_LENGTHS) - 1)] if s.method == "lbfgs" else max_iter
             n_phase += 1
 
             def fg(zz):
@@ -608,7 +917,7 @@ class Fitter:
             prev = f
             flat_count = 0
             stop_phase = False
-            while it < s.max_iter:
+            while it < max_iter:
                 if s.method == "lbfgs":
                     d, state = self.lbfgs_direction(s.memory, g, state, z)
                     d = -np.asarray(d)
@@ -711,7 +1020,7 @@ class Fitter:
                 stop_reason = stop_reason or "no further progress after rescaling"
                 break
         if not converged and not stop_reason:
-            stop_reason = f"iteration limit {s.max_iter} reached"
+            stop_reason = f"iteration limit {max_iter} reached"
         return _Run(logits, ev["objective"], hist_obj, hist_gn, it, converged, stop_reason)
 
 
@@ -816,6 +1125,23 @@ def random_start(network: Network, rng: np.random.Generator) -> dict[str, np.nda
     return out
 
 
+def stationarity_section(fitter: Fitter, ev: Mapping[str, Any]) -> dict[str, Any]:
+    """The result's ``"stationarity"`` section at the returned point: the largest simplex KKT
+    ratio (``kkt_ratio``; None with an L2 penalty, where the logit rule is the whole condition),
+    the cell where it is reached, how many cells exceed 1 + kkt_tol, the largest per-row
+    residual in probability units, and the number of boundary escapes the fit made."""
+    tol = fitter.settings.kkt_tol
+    name, label, ratio = fitter.worst_kkt_cell(ev) if ev.get("kkt") is not None else (None, "", float("nan"))
+    over = 0
+    if ev.get("kkt") is not None:
+        over = int(sum(int(np.sum(np.nan_to_num(r, nan=0.0) > 1.0 + tol)) for r in ev["kkt"].values()))
+    return {"kkt_ratio": None if name is None else ratio, "kkt_tol": tol,
+            "kkt_worst_cell": label or None, "cells_over_tolerance": over,
+            "max_residual": ev["residual"], "boundary_escapes": int(fitter.boundary_escapes),
+            "saddle_escapes": int(fitter.saddle_escapes),
+            "holds": bool(fitter.kkt_holds(ev))}
+
+
 # --------------------------------------------------------------------------- the public API
 def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, restarts: int = 1,
         tol: float = 1e-10, gtol: float = 1e-9, ptol: float = 1e-8, max_iter: int = 1000, prior: Any = None,
@@ -823,7 +1149,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         init: Mapping[str, np.ndarray] | None = None, learning_rate: float = 0.05,
         missing: Iterable[str] | None = None, count_column: str | None = None,
         ignore_columns: Iterable[str] = (), route: str = "auto", batch_size: int | None = None,
-        em_check: bool = False, progress: Callable[[int, int, float, float], None] | None = None, warn: bool = True) -> FitResult:
+        em_check: bool = False, progress: Callable[[int, int, float, float], None] | None = None, warn: bool = True,
+        kkt_tol: float = KKT_TOL) -> FitResult:
     """Fit the free CPTs of ``network`` to ``data`` by maximising the marginal likelihood.
 
     Args:
@@ -835,6 +1162,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
             random Dirichlet draws. The best objective is kept; all are listed in
             ``result.extras["restarts"]``.
         tol, gtol, ptol, max_iter: stopping rule (module docstring).
+        kkt_tol: tolerance of the simplex KKT check (:func:`kkt_ratios`): a result is converged
+            only if no cell's ratio exceeds 1 + kkt_tol.
         prior: an :class:`adfit.priors.Prior` (or anything with ``pseudo_counts(network)``).
         pseudo_counts: explicit pseudo-counts per free node (alternative to ``prior``).
         l2: strength λ of the penalty λ Σ (η − row mean η)².
@@ -852,7 +1181,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         the stopping rule did not hold.
     """
     settings = FitSettings(method=method, tol=tol, gtol=gtol, ptol=ptol, max_iter=max_iter,
-                           learning_rate=learning_rate, l2=l2, batch_size=batch_size)
+                           learning_rate=learning_rate, l2=l2, batch_size=batch_size, kkt_tol=kkt_tol)
     settings.validate()
     if restarts < 1:
         raise OptionError(f"--restarts must be >= 1, got {restarts}")
@@ -903,6 +1232,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
                      "gradient_norm": r.history_gn[-1]} for k, r in enumerate(runs)]
     from .restarts import local_optima_message, restarts_report
 
+    stationarity = stationarity_section(fitter, ev)
     restarts_section = restarts_report(network, restart_rows, finals if finals is not None else [ev], best=best_k,
                                        gtol_abs=gtol * coded.n_rows, ptol=ptol, batch_width=restart_stats.get("width", 1))
     result = FitResult(
@@ -913,10 +1243,11 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         n_rows=coded.n_rows, n_distinct=coded.n_distinct, seed=seed,
         settings={"tol": tol, "gtol": gtol, "ptol": ptol, "max_iter": max_iter, "l2": l2, "restarts": restarts,
                   "route": fitter.lik.plan.route, "elapsed_s": elapsed, "max_residual": ev["residual"],
-                  "em_polish_steps": fitter.em_polish_steps,
+                  "em_polish_steps": fitter.em_polish_steps, "kkt_tol": kkt_tol,
                   **({"learning_rate": learning_rate} if method == "adam" else {}),
                   **({"batch_size": batch_size} if batch_size else {})},
-        extras={"restarts": restarts_section, "best_start": best_k, **({"prior": prior_desc} if prior_desc else {})},
+        extras={"restarts": restarts_section, "best_start": best_k, "stationarity": stationarity,
+                **({"prior": prior_desc} if prior_desc else {})},
     )
     if is_map:
         parent_weight = {n: ev["counts"][n].sum(axis=-1) for n in network.free_names}

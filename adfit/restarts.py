@@ -343,6 +343,8 @@ def _slot_fitter(fitter: Any, exchange: _Exchange, slot: int) -> Any:
     f.lbfgs_direction = types.MethodType(lbfgs_direction, f)
     if hasattr(f, "em_polish_steps"):
         f.em_polish_steps = 0
+    if hasattr(f, "boundary_escapes"):
+        f.boundary_escapes = f.saddle_escapes = 0
     return f
 
 
@@ -431,6 +433,9 @@ def run_starts(fitter: Any, starts: Sequence[Mapping[str, Any]], *,
             raise e
     if hasattr(fitter, "em_polish_steps"):
         fitter.em_polish_steps += sum(w.em_polish_steps for w in workers)
+    if hasattr(fitter, "boundary_escapes"):
+        fitter.boundary_escapes += sum(w.boundary_escapes for w in workers)
+        fitter.saddle_escapes += sum(w.saddle_escapes for w in workers)
     if stats is not None:
         stats.update(rounds=objective.calls, width=K, single_rounds=objective.single_calls,
                      direction_rounds=directions.calls,

@@ -33,7 +33,9 @@ from published import (STOUFFER_TOBY_CLASS_SIZES, STOUFFER_TOBY_COUNTS, STOUFFER
 # best (-503.3011), the others at lower local maxima (-503.506 and -503.541); the best is reached
 # by one start only. Found by a scan of seeds 0-24 on this code (which starts reach which optimum
 # depends on the optimiser's path: re-scan when the line search or the preconditioner changes).
-ST3_SEED, ST3_STARTS = 15, 3
+# seed 21: three starts end at three different local maxima, one of them at the best (seed 15 did so
+# until boundary escapes in Fitter.run lifted one of its starts to the best)
+ST3_SEED, ST3_STARTS = 21, 3
 
 
 def fit_starts(net, data, fitter, seed, k):
