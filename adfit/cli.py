@@ -273,6 +273,7 @@ def fit_command(
     tol: Annotated[float, typer.Option("--tol", rich_help_panel=OPT_PANEL, help="Relative change of the objective that counts as flat (with a residual below sqrt(tol)).")] = 1e-10,
     gtol: Annotated[float, typer.Option("--gtol", rich_help_panel=OPT_PANEL, help="Stop when the gradient norm (records) is below gtol x number of records.")] = 1e-9,
     max_iter: Annotated[int, typer.Option("--max-iter", rich_help_panel=OPT_PANEL, help="Most iterations per start.")] = 1000,
+    kkt_tol: Annotated[float, typer.Option("--kkt-tol", rich_help_panel=OPT_PANEL, help="A maximum needs every cell's KKT ratio (N+c)/(p(N(u)+sum c)) <= 1 + this; a cell above it near 0 is a false boundary the fit moves off.")] = 1e-3,
     learning_rate: Annotated[float, typer.Option("--learning-rate", rich_help_panel=OPT_PANEL, help="Step size of Adam (with --method adam).")] = 0.05,
     batch_size: Annotated[Optional[int], typer.Option(
         "--batch-size", rich_help_panel=OPT_PANEL, help="With --method adam: minibatch gradients from this many sampled distinct rows per step (very large data); the full-data gradient norm is reported at the end.")] = None,
@@ -324,13 +325,13 @@ def fit_command(
         if em_check:
             em_check_options(l2)
         fit_kwargs = dict(method=method, tol=tol, gtol=gtol, max_iter=max_iter, prior=pri, l2=l2,
-                          learning_rate=learning_rate, batch_size=batch_size)
+                          learning_rate=learning_rate, batch_size=batch_size, kkt_tol=kkt_tol)
         pseudo = None if pri is None else pri.pseudo_counts(net)
         # refuse bad options and an impossible output path before any work is done
         from .fit import FitSettings
 
         FitSettings(method=method, tol=tol, gtol=gtol, max_iter=max_iter, learning_rate=learning_rate,
-                    l2=l2, batch_size=batch_size).validate()
+                    l2=l2, batch_size=batch_size, kkt_tol=kkt_tol).validate()
         check_output_path(out)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")

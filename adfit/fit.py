@@ -186,6 +186,41 @@ def kkt_ratios(network: Network, probs: Mapping[str, np.ndarray], counts: Mappin
     return out
 
 
+def lanczos_extremes(matvec: Callable[[np.ndarray], np.ndarray], n: int, *, steps: int = LANCZOS_STEPS,
+                     seed: int = 0) -> tuple[float, float, np.ndarray] | None:
+    """Smallest and largest eigenvalue estimates of a symmetric operator of size ``n`` given by
+    ``matvec``, and the unit Ritz vector of the smallest: the Lanczos iteration with full
+    re-orthogonalisation (Golub & Van Loan 2013, Matrix Computations, 4th ed., §10.1), at most
+    ``steps`` products, stopped early once the smallest Ritz value's residual bound
+    ``|β_j·y_j|`` is below 1e-3 of its size. None if a product is not finite."""
+    rng = np.random.default_rng(seed)
+    q = rng.standard_normal(n)
+    q /= np.linalg.norm(q)
+    Q, alpha, beta = [], [], []
+    lam_min = lam_max = 0.0
+    vec = np.ones(1)
+    for j in range(min(steps, n)):
+        w = np.asarray(matvec(q), dtype=np.float64)
+        if not np.all(np.isfinite(w)):
+            return None
+        Q.append(q)
+        alpha.append(float(np.dot(q, w)))
+        Qm = np.asarray(Q)
+        w = w - Qm.T @ (Qm @ w)
+        w = w - Qm.T @ (Qm @ w)
+        T = np.diag(alpha) + np.diag(beta, 1) + np.diag(beta, -1)
+        vals, vecs = np.linalg.eigh(T)
+        lam_min, lam_max, vec = float(vals[0]), float(vals[-1]), vecs[:, 0]
+        b = float(np.linalg.norm(w))
+        scale = max(abs(lam_min), abs(lam_max), 1e-300)
+        if b < 1e-12 * scale or (j >= 4 and abs(b * vec[-1]) < 1e-3 * max(abs(lam_min), 1e-12 * scale)):
+            break
+        beta.append(b)
+        q = w / b
+    v = np.asarray(Q).T @ vec
+    return lam_min, lam_max, v / np.linalg.norm(v)
+
+
 def _cell_label(network: Network, name: str, flat: int) -> str:
     """``"node=state | parent=state, ..."`` for entry ``flat`` of the raveled CPT of ``name``."""
     node = network.node(name)
@@ -754,36 +789,12 @@ class Fitter:
             _, g = self.objective_fg(z0 + h * v, scale, pseudo, l2, N)
             return (np.asarray(g) - g0) / h
 
-        rng = np.random.default_rng(12345)
-        q = rng.standard_normal(n)
-        q /= np.linalg.norm(q)
-        Q, alpha, beta = [], [], []
-        lam_min = lam_max = 0.0
-        vec = None
-        for j in range(min(LANCZOS_STEPS, n)):
-            w = hvp(q)
-            if not np.all(np.isfinite(w)):
-                return None
-            a = float(np.dot(q, w))
-            Q.append(q)
-            alpha.append(a)
-            Qm = np.asarray(Q)
-            w = w - Qm.T @ (Qm @ w)
-            w = w - Qm.T @ (Qm @ w)
-            T = np.diag(alpha) + np.diag(beta, 1) + np.diag(beta, -1)
-            vals, vecs = np.linalg.eigh(T)
-            lam_min, lam_max = float(vals[0]), float(vals[-1])
-            b = float(np.linalg.norm(w))
-            vec = vecs[:, 0]
-            # the Ritz value's residual |b·y_last| bounds its distance to an eigenvalue
-            if b < 1e-12 * max(abs(lam_max), 1e-300) or (j >= 4 and abs(b * vec[-1]) < 1e-3 * abs(lam_min)):
-                break
-            beta.append(b)
-            q = w / b
+        found = lanczos_extremes(hvp, n, steps=LANCZOS_STEPS, seed=12345)
+        if found is None:
+            return None
+        lam_min, lam_max, v = found
         if not (lam_max > 0 and lam_min < -SADDLE_GATE * lam_max):
             return None
-        v = np.asarray(Q).T @ vec
-        v /= np.linalg.norm(v)
         best = None
         for gain in SADDLE_GAINS:
             t = math.sqrt(2.0 * gain / (abs(lam_min) * N))
@@ -1115,6 +1126,22 @@ def complete_family_counts(network: Network, data: CodedData, names: Iterable[st
     return {name: out[name].reshape(shapes[name]) for name in names}
 
 
+def em_burn_in(fitter: "Fitter", probs: Mapping[str, np.ndarray], steps: int) -> dict[str, np.ndarray]:
+    """``steps`` EM steps θ ← (N + c)/(N(u) + Σc) from ``probs`` with the fitter's expected
+    counts (the exact E-step of the likelihood core; Dempster, Laird & Rubin 1977): the
+    burn-in that latent-class practice runs from random starts before a faster optimiser
+    (each step never lowers the objective; from a random point the first steps climb most).
+    Rows no record informs keep their values. Fixed nodes are left as they are."""
+    out = {k: np.asarray(v, dtype=np.float64) for k, v in probs.items()}
+    for _ in range(int(steps)):
+        _, counts = fitter.lik.expected_counts(out)
+        for name in fitter.free:
+            num = counts[name] + fitter.pseudo[name]
+            den = num.sum(axis=-1, keepdims=True)
+            out[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), out[name])
+    return out
+
+
 def random_start(network: Network, rng: np.random.Generator) -> dict[str, np.ndarray]:
     out = {}
     for name in network.free_names:
@@ -1150,7 +1177,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         missing: Iterable[str] | None = None, count_column: str | None = None,
         ignore_columns: Iterable[str] = (), route: str = "auto", batch_size: int | None = None,
         em_check: bool = False, progress: Callable[[int, int, float, float], None] | None = None, warn: bool = True,
-        kkt_tol: float = KKT_TOL) -> FitResult:
+        kkt_tol: float = KKT_TOL, saddle_check: bool = True) -> FitResult:
     """Fit the free CPTs of ``network`` to ``data`` by maximising the marginal likelihood.
 
     Args:
@@ -1164,6 +1191,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         tol, gtol, ptol, max_iter: stopping rule (module docstring).
         kkt_tol: tolerance of the simplex KKT check (:func:`kkt_ratios`): a result is converged
             only if no cell's ratio exceeds 1 + kkt_tol.
+        saddle_check: at a converged point of data with hidden cells, look for a direction of
+            negative curvature (:meth:`Fitter.curvature_check`) and move off it (default True).
         prior: an :class:`adfit.priors.Prior` (or anything with ``pseudo_counts(network)``).
         pseudo_counts: explicit pseudo-counts per free node (alternative to ``prior``).
         l2: strength λ of the penalty λ Σ (η − row mean η)².
@@ -1200,6 +1229,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         raise OptionError("every CPT of the network is fixed; nothing to estimate (use `adfit score` instead)")
     t0 = time.perf_counter()
     fitter = Fitter(network, coded, settings=settings, pseudo_counts=pseudo_counts, route=route)
+    fitter.saddle_check = bool(saddle_check)
     rng = np.random.default_rng(seed)
     starts = []
     for k in range(restarts):

@@ -717,6 +717,20 @@ def _section_fitted(doc: Mapping[str, Any], res: FitResult, gaps: Mapping[str, A
     summary += [
         ("objective value", fmt_loglik(doc.get("objective_value", doc.get("log_likelihood")))),
         ("gradient norm (records)", fmt_sci(doc.get("gradient_norm"))),
+    ]
+    st = doc.get("stationarity") if isinstance(doc.get("stationarity"), dict) else {}
+    if st.get("kkt_ratio") is not None:
+        ratio = _f(st.get("kkt_ratio"))
+        tol = _f(st.get("kkt_tol"))
+        ok = math.isfinite(ratio) and math.isfinite(tol) and ratio <= 1 + tol
+        summary.append(("largest KKT ratio", f"{ratio:.6f} ({'within' if ok else 'ABOVE'} 1 + {tol:g}; "
+                                             f"worst cell {st.get('kkt_worst_cell')})"))
+        moves = [f"{int(_f(st.get(k)))} {what}" for k, what in (("boundary_escapes", "off a false boundary"),
+                                                                 ("saddle_escapes", "off a saddle"))
+                 if math.isfinite(_f(st.get(k))) and _f(st.get(k)) > 0]
+        if moves:
+            summary.append(("moves the optimiser made", ", ".join(moves)))
+    summary += [
         ("iterations", _fmt_any(doc.get("iterations"))),
         ("stopping rule", ("held" if conv else "did NOT hold") + (f": {doc['stop_reason']}" if doc.get("stop_reason") else "")),
         ("seed", _fmt_any(doc.get("seed"))),

@@ -186,6 +186,15 @@ class FitResult:
             f"gradient norm {self.gradient_norm:.3e} (records), iterations {self.iterations}, "
             + ("converged" if self.converged else f"NOT converged ({self.stop_reason})"),
         ]
+        st = self.extras.get("stationarity") or {}
+        if st.get("kkt_ratio") is not None:
+            moves = []
+            if st.get("boundary_escapes"):
+                moves.append(f"{st['boundary_escapes']} move(s) off a false boundary")
+            if st.get("saddle_escapes"):
+                moves.append(f"{st['saddle_escapes']} move(s) off a saddle")
+            lines.append(f"largest KKT ratio {st['kkt_ratio']:.6f} (a maximum needs <= 1 + {st.get('kkt_tol', 0):g} "
+                         f"on every cell; worst: {st.get('kkt_worst_cell')})" + (f"; {', '.join(moves)}" if moves else ""))
         return "\n".join(lines)
 
 

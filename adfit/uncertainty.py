@@ -46,6 +46,8 @@ default only up to :data:`AUTO_MAX_PARAMETERS` free parameters and :data:`AUTO_M
 
 from __future__ import annotations
 
+import dataclasses
+
 import math
 import time
 import warnings
@@ -947,7 +949,15 @@ def with_uncertainty(result: Any, unc: Uncertainty) -> Any:
     nodes = {k: dict(v) for k, v in (result.extras or {}).get("nodes", {}).items()}
     for name, sec in unc.node_sections().items():
         nodes.setdefault(name, {}).update(sec)
-    return result.with_extras(nodes=nodes, uncertainty=unc.summary())
+    out = result.with_extras(nodes=nodes, uncertainty=unc.summary())
+    rho = np.asarray(unc.relative_eigenvalues)
+    if result.converged and rho.size and np.any(rho < -FLAT_TOL):
+        # negative curvature of the objective at the estimate: a stationary point that is not a
+        # maximum is not converged, whatever the stopping rule said
+        out = dataclasses.replace(out, converged=False,
+                                  stop_reason="the error-bar step found negative curvature: the estimate is not "
+                                              "a local maximum (a saddle); refit with more --restarts")
+    return out
 
 
 # --------------------------------------------------------------------------- reading it back
@@ -1074,6 +1084,8 @@ def cli_errors(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray
             return result
     out = attach_uncertainty(result, data, pseudo_counts=pseudo_counts, l2=l2, likelihood=lik)
     summary = out.extras["uncertainty"]
+    if result.converged and not out.converged:
+        echo(f"adfit: warning: not converged: {out.stop_reason}", err=True)
     if not quiet:
         echo("")
         echo(format_uncertainty(summary, {n: out.extras["nodes"][n] for n in result.network.free_names},
