@@ -73,8 +73,22 @@ def user_errors():
         fail(str(e))
 
 
+def exit_on_sigterm() -> None:
+    """SIGTERM ends the process as SystemExit(143): finally blocks run, temporary files are removed."""
+    import signal
+
+    def _terminate(signum, frame):
+        raise SystemExit(128 + signum)
+
+    try:
+        signal.signal(signal.SIGTERM, _terminate)
+    except ValueError:  # not the main thread
+        pass
+
+
 def main() -> None:
     """Console-script entry point: run the app, turning AdfitError into one line and exit 1."""
+    exit_on_sigterm()
     from .likelihood import enable_compilation_cache
     enable_compilation_cache()  # compiled programs kept on disk between runs (ADFIT_COMPILE_CACHE=0: off)
     try:
@@ -88,9 +102,9 @@ def main() -> None:
         sys.exit(1)
     except typer.Exit as e:
         sys.exit(e.exit_code)
-    except typer.Abort:
-        typer.echo("adfit: aborted", err=True)
-        sys.exit(1)
+    except (typer.Abort, KeyboardInterrupt):  # click turns Ctrl-C into Abort
+        typer.echo("adfit: interrupted; a file being written was left as it was", err=True)
+        sys.exit(130)
     except Exception as e:  # usage errors of the click layer (typer may ship its own copy)
         if hasattr(e, "show") and hasattr(e, "exit_code"):
             e.show()
@@ -146,12 +160,15 @@ def em_check_options(l2: float) -> None:
                           f"(--l2 {l2:g}); drop --em-check or use --l2 0")
 
 
-def with_em_check(result, coded, *, pseudo_counts=None, seed: int = 0):
-    """For ``fit --em-check``: run the EM cross-check, print its summary, return the result with
-    the ``"em_check"`` section added (one call in the fit command, before writing the result)."""
-    from .crosscheck import attach_em_check, format_em_check
+def with_em_check(result, coded, *, pseudo_counts=None, seed: int = 0, max_iter: Optional[int] = None):
+    """For ``fit --em-check``: run the EM cross-check (each EM run capped at ``max_iter``
+    iterations, default :data:`adfit.crosscheck.EM_MAX_ITER`), print its summary, return the
+    result with the ``"em_check"`` section added (one call in the fit command, before writing
+    the result)."""
+    from .crosscheck import EM_MAX_ITER, attach_em_check, format_em_check
 
-    checked = attach_em_check(result, coded, pseudo_counts=pseudo_counts, seed=seed)
+    checked = attach_em_check(result, coded, pseudo_counts=pseudo_counts, seed=seed,
+                              max_iter=EM_MAX_ITER if max_iter is None else max_iter)
     typer.echo(format_em_check(checked.extras["em_check"]))
     return checked
 
@@ -194,6 +211,10 @@ def em_command(
     from .result import load_result, write_result
 
     with user_errors():
+        from .io import check_output_paths
+
+        check_output_paths({"out": out}, {"network file": network, "data file": data, "prior file": prior,
+                                          "init file": init})
         net = load_network(network)
         coded = load_data(net, data, missing=missing, count_column=count_column,
                           ignore_columns=split_list(ignore_columns))
@@ -237,17 +258,6 @@ def read_inputs(network: Path, data: Path, *, missing, count_column, ignore_colu
     return net, coded
 
 
-def check_output_path(path: Path) -> None:
-    """Fail before the work, not after it, when an output cannot be written."""
-    from .errors import AdfitError
-
-    parent = path.parent if str(path.parent) else Path(".")
-    if not parent.is_dir():
-        raise AdfitError(f"{path}: output folder {parent} does not exist; create it first")
-    if path.is_dir():
-        raise AdfitError(f"{path}: is a folder; give a file name for the output")
-
-
 def format_cpts(result, *, digits: int = 3, names=None) -> str:
     """The CPTs as plain text tables (rows: parent configurations, columns: states)."""
     import pandas as pd
@@ -287,6 +297,7 @@ def fit_command(
     engine: EngineOpt = "pandas",
     scheduler: SchedulerOpt = None,
     em_check: Annotated[bool, Flag("--em-check", rich_help_panel=CHECK_PANEL, help="Cross-check the fit with the independent EM reference.")] = False,
+    em_max_iter: Annotated[int, typer.Option("--em-max-iter", rich_help_panel=CHECK_PANEL, help="With --em-check: most iterations of each EM run (from the fit's answer, from its own start).")] = 5000,
     compare_complete_case: Annotated[bool, Flag(
         "--compare-complete-case", rich_help_panel=CHECK_PANEL, help="Also fit on the complete rows only and compare every CPT entry.")] = False,
     folds: Annotated[int, typer.Option("--folds", rich_help_panel=CHECK_PANEL, help="K-fold cross-validation of the held-out marginal log-likelihood (0: off).")] = 0,
@@ -315,6 +326,9 @@ def fit_command(
     from .result import write_result
 
     with user_errors():
+        from .io import check_output_paths
+
+        check_output_paths({"out": out}, {"network file": network, "data file": data, "prior file": prior})
         net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
                                  ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
         pri = None
@@ -324,6 +338,9 @@ def fit_command(
             pri = load_prior(prior, net)
         if em_check:
             em_check_options(l2)
+        from .crosscheck import check_em_max_iter
+
+        check_em_max_iter(em_max_iter)
         fit_kwargs = dict(method=method, tol=tol, gtol=gtol, max_iter=max_iter, prior=pri, l2=l2,
                           learning_rate=learning_rate, batch_size=batch_size, kkt_tol=kkt_tol)
         pseudo = None if pri is None else pri.pseudo_counts(net)
@@ -332,10 +349,9 @@ def fit_command(
 
         FitSettings(method=method, tol=tol, gtol=gtol, max_iter=max_iter, learning_rate=learning_rate,
                     l2=l2, batch_size=batch_size, kkt_tol=kkt_tol).validate()
-        check_output_path(out)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            with _progress(quiet) as (callback, reporter):
+            with _progress(quiet, restarts) as (callback, reporter):
                 result = fit(net, coded, restarts=restarts, seed=seed, progress=callback, **fit_kwargs)
         for w in caught:
             if issubclass(w.category, UserWarning):
@@ -343,20 +359,26 @@ def fit_command(
         if not quiet:
             typer.echo(result.summary())
             typer.echo(f"elimination route: {result.settings.get('route')}")
-            if restarts > 1:
+            section = result.extras.get("restarts")
+            if isinstance(section, dict) and section.get("n_starts", 1) > 1:  # however many fit() ran
                 from .restarts import format_optima
 
-                typer.echo(format_optima(result.extras["restarts"]))
+                typer.echo(format_optima(section))
         # error bars first: the complete-case comparison reports differences in their units
         from .uncertainty import cli_errors
 
-        result = cli_errors(result, coded, pseudo_counts=pseudo, l2=l2, errors=errors, quiet=quiet, echo=typer.echo)
+        if errors is not False:
+            with _phase(quiet, "error bars"):
+                result = cli_errors(result, coded, pseudo_counts=pseudo, l2=l2, errors=errors, quiet=quiet,
+                                    echo=typer.echo)
         if em_check:
-            result = with_em_check(result, coded, pseudo_counts=pseudo, seed=seed)
+            with _phase(quiet, "EM check (from the fit's answer and from its own start)"):
+                result = with_em_check(result, coded, pseudo_counts=pseudo, seed=seed, max_iter=em_max_iter)
         if compare_complete_case:
             from .gaps import compare_complete_case as ccc
 
-            cmp = ccc(net, coded, full=result, seed=seed, **fit_kwargs)
+            with _phase(quiet, "complete-case fit"):
+                cmp = ccc(net, coded, full=result, seed=seed, **fit_kwargs)
             result = result.with_extras(complete_case=cmp.to_dict())
             if not quiet:
                 typer.echo(cmp.format_text())
@@ -367,7 +389,8 @@ def fit_command(
         if folds:
             from .assess import cross_validate
 
-            cv = cross_validate(net, coded, folds=folds, seed=seed, **fit_kwargs)
+            with _phase(quiet, f"cross-validation ({folds} folds)"):
+                cv = cross_validate(net, coded, folds=folds, seed=seed, **fit_kwargs)
             result = result.with_extras(cross_validation=cv.to_dict())
             if not quiet:
                 typer.echo(cv.format_text())
@@ -381,21 +404,57 @@ def fit_command(
             typer.echo(CAUTION)
 
 
-@contextmanager
-def _progress(quiet: bool):
-    """Progress bars on stderr for the starts and iterations of a fit (none with -q)."""
-    from .demo import Reporter, RichReporter, fit_progress
+def _reporter(quiet: bool):
+    """Where the progress of a command goes: nothing with -q; live bars on stderr when it is a
+    terminal; otherwise plain lines on stderr (a log file, a pipe), one per start and phase."""
+    from .demo import LineReporter, Reporter, RichReporter
 
-    reporter = Reporter() if quiet else RichReporter()
+    if quiet:
+        return Reporter()
+    from rich.console import Console
+
+    if Console(stderr=True).is_terminal:
+        return RichReporter()
+    return LineReporter(lambda line: typer.echo(line, err=True))
+
+
+@contextmanager
+def _running(reporter):
+    """``reporter.running()``; a plain-line reporter falls silent when the body fails (the error
+    is then the one line on stderr)."""
+    try:
+        with reporter.running():
+            yield reporter
+    except BaseException:
+        reporter.silent = True
+        raise
+
+
+@contextmanager
+def _progress(quiet: bool, restarts: Optional[int] = None):
+    """Progress on stderr for the starts and iterations of a fit (none with -q): one line per
+    start, named by the start's own index out of ``restarts``."""
+    from .demo import fit_progress
+
+    reporter = _reporter(quiet)
     if quiet:
         yield None, reporter
         return
-    with reporter.running():
-        callback, close = fit_progress(reporter, "fit", 1)
+    with _running(reporter):
+        callback, close = fit_progress(reporter, "fit", restarts)
         try:
             yield callback, reporter
         finally:
             close()
+
+
+@contextmanager
+def _phase(quiet: bool, description: str):
+    """A later phase of a command (error bars, EM check, complete-case fit, cross-validation) as
+    one progress line on stderr (none with -q)."""
+    reporter = _reporter(quiet)
+    with _running(reporter), reporter.stage(description):
+        yield
 
 
 @app.command("score")
@@ -472,12 +531,14 @@ def show_command(
     from .show import render
 
     with user_errors():
+        from .io import check_output_paths
+
+        check_output_paths({"out": out}, {"result file": result})
         res = load_result(result)
         text = render(res, fmt, node or None, digits=digits, title=f"CPTs fixed at the estimates of {result.name}")
         if out is None:
             typer.echo(text.rstrip("\n"))
         else:
-            check_output_path(out)
             with atomic_write(out) as fh:
                 fh.write(text)
             typer.echo(f"wrote {out}")
@@ -521,6 +582,9 @@ def impute_command(
     from .result import load_result
 
     with user_errors():
+        from .io import check_output_paths
+
+        check_output_paths({"out": out}, {"network file": network, "data file": data, "params file": params})
         net = load_network(network)
         res = load_result(params, net)
         imp, _ = impute_file(net, res.probs, data, out, draws=draws, seed=seed,
@@ -627,6 +691,10 @@ def demo_command(
     from .demo import Reporter, RichReporter, run_demo
 
     with user_errors():
+        from .demo import DATA_FILE, FIT_FILE, IMPUTED_FILE, NETWORK_FILE, PRIOR_FILE, REPORT_FILE
+        from .io import check_output_folder
+
+        check_output_folder("out", out, [NETWORK_FILE, PRIOR_FILE, DATA_FILE, FIT_FILE, IMPUTED_FILE, REPORT_FILE])
         reporter = Reporter() if (quiet or as_json) else RichReporter()
         outcome = run_demo(out, restarts=restarts, seed=seed, reporter=reporter)
         for w in outcome.warnings:
@@ -670,6 +738,9 @@ def report_command(
     from .report import write_report
 
     with user_errors():
+        from .io import check_output_paths
+
+        check_output_paths({"out": out}, {"result file": result, "data file": data})
         write_report(out, result, data=data, missing=missing, count_column=count_column,
                      ignore_columns=split_list(ignore_columns), engine=engine, scheduler=scheduler, title=title)
         typer.echo(f"wrote {out}")
