@@ -279,7 +279,7 @@ def fit_command(
     out: Annotated[Path, typer.Option("--out", help="Result file to write (JSON, format adfit-result/1).")],
     method: Annotated[str, typer.Option("--method", rich_help_panel=OPT_PANEL, help="Optimiser: lbfgs (default) or adam.")] = "lbfgs",
     seed: Annotated[int, typer.Option("--seed", rich_help_panel=OPT_PANEL, help="Seed of the random starts (results are reproducible).")] = 0,
-    restarts: Annotated[int, typer.Option("--restarts", rich_help_panel=OPT_PANEL, help="Number of starts: complete-family counts, then random Dirichlet draws; the best is kept.")] = 1,
+    restarts: Annotated[Optional[int], typer.Option("--restarts", rich_help_panel=OPT_PANEL, help="Number of starts: complete-family counts, then random Dirichlet draws (with latent nodes after 10 EM steps); the best is kept. Default: 1, or 4 when the network has latent nodes.")] = None,
     tol: Annotated[float, typer.Option("--tol", rich_help_panel=OPT_PANEL, help="Relative change of the objective that counts as flat (with a residual below sqrt(tol)).")] = 1e-10,
     gtol: Annotated[float, typer.Option("--gtol", rich_help_panel=OPT_PANEL, help="Stop when the gradient norm (records) is below gtol x number of records.")] = 1e-9,
     max_iter: Annotated[int, typer.Option("--max-iter", rich_help_panel=OPT_PANEL, help="Most iterations per start.")] = 1000,

@@ -71,6 +71,13 @@ HVP_STEP = 1e-3
 SADDLE_GATE = 1e-4
 SADDLE_GAINS = (1e-3, 1e-1, 10.0)
 MAX_SADDLE_ESCAPES = 3
+# default starts (fit(restarts=None)): with latent nodes, this many starts, the random ones after
+# BURN_IN_STEPS EM steps; fewer when LATENT_STARTS × EVALS_PER_START evaluations would take more
+# than AUTO_STARTS_SECONDS
+LATENT_STARTS = 4
+BURN_IN_STEPS = 10
+EVALS_PER_START = 150
+AUTO_STARTS_SECONDS = 60.0
 # stop reasons of a stalled (not converged) quasi-Newton run, after which a boundary escape is tried
 STALL_REASONS = ("line search found no better point", "no further progress after rescaling")
 
@@ -1126,6 +1133,27 @@ def complete_family_counts(network: Network, data: CodedData, names: Iterable[st
     return {name: out[name].reshape(shapes[name]) for name in names}
 
 
+def default_starts(network: Network, fitter: "Fitter", start: Mapping[str, np.ndarray]) -> tuple[int, str | None]:
+    """The number of starts when the user gave none: 1 for a network without latent nodes (its
+    likelihood may still have several maxima, but complete-family counts start near the
+    complete-data answer), ``LATENT_STARTS`` with latent nodes (latent-class practice runs
+    several starts; measured in docs/performance.md), fewer when one objective evaluation is so
+    slow that the starts, at about ``EVALS_PER_START`` evaluations each, would take more than
+    ``AUTO_STARTS_SECONDS``. Returns ``(starts, note)``, the note saying why fewer were run."""
+    if not any(n.latent for n in network.nodes):
+        return 1, None
+    t = time.perf_counter()
+    fitter.lik.expected_counts(start)
+    per_eval = time.perf_counter() - t
+    k = LATENT_STARTS
+    while k > 1 and k * EVALS_PER_START * per_eval > AUTO_STARTS_SECONDS:
+        k -= 1
+    if k < LATENT_STARTS:
+        return k, (f"{k} start(s) instead of {LATENT_STARTS}: one evaluation takes {per_eval:.2g} s, "
+                   f"{LATENT_STARTS} starts would take about {LATENT_STARTS * EVALS_PER_START * per_eval:.0f} s")
+    return k, None
+
+
 def em_burn_in(fitter: "Fitter", probs: Mapping[str, np.ndarray], steps: int) -> dict[str, np.ndarray]:
     """``steps`` EM steps θ ← (N + c)/(N(u) + Σc) from ``probs`` with the fitter's expected
     counts (the exact E-step of the likelihood core; Dempster, Laird & Rubin 1977): the
@@ -1170,7 +1198,7 @@ def stationarity_section(fitter: Fitter, ev: Mapping[str, Any]) -> dict[str, Any
 
 
 # --------------------------------------------------------------------------- the public API
-def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, restarts: int = 1,
+def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, restarts: int | None = None,
         tol: float = 1e-10, gtol: float = 1e-9, ptol: float = 1e-8, max_iter: int = 1000, prior: Any = None,
         pseudo_counts: Mapping[str, np.ndarray] | None = None, l2: float = 0.0,
         init: Mapping[str, np.ndarray] | None = None, learning_rate: float = 0.05,
@@ -1187,7 +1215,10 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         method: ``"lbfgs"`` (default) or ``"adam"``.
         seed: seed of every random start (results are deterministic given the seed).
         restarts: number of starts; the first is from complete-family counts, the others are
-            random Dirichlet draws. The best objective is kept; all are listed in
+            random Dirichlet draws (each followed by ``BURN_IN_STEPS`` EM steps when the network
+            has latent nodes). None (default): :func:`default_starts` — one start, or
+            ``LATENT_STARTS`` when the network has latent nodes (fewer when one evaluation is so
+            slow that they would take more than ``AUTO_STARTS_SECONDS``). The best objective is kept; all are listed in
             ``result.extras["restarts"]``.
         tol, gtol, ptol, max_iter: stopping rule (module docstring).
         kkt_tol: tolerance of the simplex KKT check (:func:`kkt_ratios`): a result is converged
@@ -1215,7 +1246,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     settings = FitSettings(method=method, tol=tol, gtol=gtol, ptol=ptol, max_iter=max_iter,
                            learning_rate=learning_rate, l2=l2, batch_size=batch_size, kkt_tol=kkt_tol)
     settings.validate()
-    if restarts < 1:
+    if restarts is not None and restarts < 1:
         raise OptionError(f"--restarts must be >= 1, got {restarts}")
     if em_check and l2:
         raise OptionError("em_check covers the likelihood and Dirichlet priors, not the L2 penalty; use l2=0")
@@ -1238,17 +1269,21 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     fitter = Fitter(network, coded, settings=settings, pseudo_counts=pseudo_counts, route=route)
     fitter.saddle_check = bool(saddle_check)
     rng = np.random.default_rng(seed)
-    starts = []
-    for k in range(restarts):
-        if k == 0:
-            p0 = dict(init) if init is not None else complete_family_start(
-                network, coded, rng, fitter.pseudo, observed=fitter.lik.observed_family_counts())
-            for name in network.fixed_names:
-                p0[name] = network.fixed_table(name)
-        else:
-            p0 = random_start(network, rng)
-        starts.append(p0)
-    check_possible(fitter.lik, starts[0])
+    p0 = dict(init) if init is not None else complete_family_start(
+        network, coded, rng, fitter.pseudo, observed=fitter.lik.observed_family_counts())
+    for name in network.fixed_names:
+        p0[name] = network.fixed_table(name)
+    check_possible(fitter.lik, p0)
+    auto_starts = restarts is None
+    latent = any(n.latent for n in network.nodes)
+    if auto_starts:
+        restarts, starts_note = default_starts(network, fitter, p0)
+    else:
+        starts_note = None
+    starts = [p0]
+    for k in range(1, restarts):
+        pk = random_start(network, rng)
+        starts.append(em_burn_in(fitter, pk, BURN_IN_STEPS) if latent else pk)
     finals, restart_stats = None, {}
     if restarts == 1:
         cb = None if progress is None else (lambda it, o, g: progress(0, it, o, g))
@@ -1279,6 +1314,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         iterations=best.iterations, history={"objective": tuple(best.history_obj), "gradient_norm": tuple(best.history_gn)},
         n_rows=coded.n_rows, n_distinct=coded.n_distinct, seed=seed,
         settings={"tol": tol, "gtol": gtol, "ptol": ptol, "max_iter": max_iter, "l2": l2, "restarts": restarts,
+                  "restarts_chosen_by": "default" if auto_starts else "user",
+                  **({"burn_in_em_steps": BURN_IN_STEPS} if latent and restarts > 1 else {}),
                   "route": fitter.lik.plan.route, "elapsed_s": elapsed, "max_residual": ev["residual"],
                   "em_polish_steps": fitter.em_polish_steps, "kkt_tol": kkt_tol,
                   **({"learning_rate": learning_rate} if method == "adam" else {}),
@@ -1298,6 +1335,12 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
                 warnings.warn(f"{len(labels)} CPT row(s) are informed by the prior only (no records): "
                               f"{'; '.join(labels[:5])}{' ...' if len(labels) > 5 else ''}",
                               IdentifiabilityWarning, stacklevel=2)
+    if latent and restarts == 1:
+        one = (starts_note or "the fit ran one start") + (
+            ": with latent nodes local optima are likely; run --restarts 4 (or more) and compare the optima")
+        result = result.with_extras(starts_note=one)
+        if warn:
+            warnings.warn(one, LocalOptimaWarning, stacklevel=2)
     if warn and (msg := local_optima_message(restarts_section)):
         warnings.warn(msg, LocalOptimaWarning, stacklevel=2)
     if em_check:

@@ -21,7 +21,7 @@ import pytest
 from adfit.data import encode_frame
 from adfit.em import em_fit
 from adfit.errors import LocalOptimaWarning
-from adfit.fit import Fitter, FitSettings, complete_family_start, fit, random_start
+from adfit.fit import BURN_IN_STEPS, Fitter, FitSettings, complete_family_start, em_burn_in, fit, random_start
 from adfit.likelihood import logits_from_probs
 from adfit.restarts import BatchedObjective, local_optima_message, run_starts, summarise_optima
 from adfit.result import result_from_dict
@@ -33,17 +33,21 @@ from published import (STOUFFER_TOBY_CLASS_SIZES, STOUFFER_TOBY_COUNTS, STOUFFER
 # best (-503.3011), the others at lower local maxima (-503.506 and -503.541); the best is reached
 # by one start only. Found by a scan of seeds 0-24 on this code (which starts reach which optimum
 # depends on the optimiser's path: re-scan when the line search or the preconditioner changes).
-# seed 21: three starts end at three different local maxima, one of them at the best (seed 15 did so
-# until boundary escapes in Fitter.run lifted one of its starts to the best)
-ST3_SEED, ST3_STARTS = 21, 3
+# seed 37: the complete-family start ends at a lower local maximum, the two random starts (after
+# EM burn-in) at the best. (Before the burn-in and the boundary escapes, seed 15 had only one of
+# three starts at the best; no seed in 0-39 does now: the warning for that case is tested on
+# summaries built by hand below.)
+ST3_SEED, ST3_STARTS = 37, 3
 
 
 def fit_starts(net, data, fitter, seed, k):
-    """The starts fit() draws for ``seed``: complete-family counts, then random Dirichlet."""
+    """The starts fit() draws for ``seed``: complete-family counts, then random Dirichlet draws
+    followed by EM burn-in steps (the network is latent)."""
     rng = np.random.default_rng(seed)
     out = []
     for i in range(k):
-        p0 = complete_family_start(net, data, rng, fitter.pseudo) if i == 0 else random_start(net, rng)
+        p0 = complete_family_start(net, data, rng, fitter.pseudo) if i == 0 else \
+            em_burn_in(fitter, random_start(net, rng), BURN_IN_STEPS)
         out.append(logits_from_probs(net, p0))
     return out
 
@@ -229,10 +233,9 @@ def test_fit_lists_several_optima_and_keeps_the_best(st3, st3_fit):
         assert o["count"] == len(o["starts"]) and all(sec["starts"][s]["optimum"] == o["optimum"] for s in o["starts"])
     # fit() ran the same starts as the fixture's batched run
     np.testing.assert_allclose(sorted(objectives), sorted(r.value for r in runs), rtol=1e-9)
-    # the best was reached by one start only: the warning says so
-    assert sec["starts_at_best_objective"] == 1
-    msgs = [str(w.message) for w in caught if issubclass(w.category, LocalOptimaWarning)]
-    assert len(msgs) == 1 and f"only 1 of {ST3_STARTS} starts" in msgs[0]
+    # the best was reached by two starts: no warning about local optima
+    assert sec["starts_at_best_objective"] == 2
+    assert not [w for w in caught if issubclass(w.category, LocalOptimaWarning)]
     # JSON-ready, and read back
     doc = json.loads(json.dumps(res.to_dict()))
     back = result_from_dict(doc)
@@ -319,7 +322,7 @@ def test_cli_fit_restarts_prints_the_optima(tmp_path, st3):
     assert f"{len(opt)} distinct optima" in r.output
     for o in opt:
         assert f"{o['objective']:18.8f}" in r.output
-    assert "only 1 of 3 starts" in r.output  # the warning line
+    assert "only 1 of" not in r.output  # two starts reached the best: no warning
     assert max(x.value for x in runs) == pytest.approx(doc["objective_value"], rel=1e-9)
 
 
