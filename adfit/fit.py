@@ -78,6 +78,8 @@ LATENT_STARTS = 4
 BURN_IN_STEPS = 10
 EVALS_PER_START = 150
 AUTO_STARTS_SECONDS = 60.0
+# default starts run side by side only when one evaluation takes at least this long
+BATCH_MIN_EVAL_SECONDS = 0.01
 # stop reasons of a stalled (not converged) quasi-Newton run, after which a boundary escape is tried
 STALL_REASONS = ("line search found no better point", "no further progress after rescaling")
 
@@ -1133,15 +1135,16 @@ def complete_family_counts(network: Network, data: CodedData, names: Iterable[st
     return {name: out[name].reshape(shapes[name]) for name in names}
 
 
-def default_starts(network: Network, fitter: "Fitter", start: Mapping[str, np.ndarray]) -> tuple[int, str | None]:
+def default_starts(network: Network, fitter: "Fitter", start: Mapping[str, np.ndarray]) -> tuple[int, str | None, float]:
     """The number of starts when the user gave none: 1 for a network without latent nodes (its
     likelihood may still have several maxima, but complete-family counts start near the
     complete-data answer), ``LATENT_STARTS`` with latent nodes (latent-class practice runs
     several starts; measured in docs/performance.md), fewer when one objective evaluation is so
     slow that the starts, at about ``EVALS_PER_START`` evaluations each, would take more than
-    ``AUTO_STARTS_SECONDS``. Returns ``(starts, note)``, the note saying why fewer were run."""
+    ``AUTO_STARTS_SECONDS``. Returns ``(starts, note, seconds per evaluation)``, the note saying
+    why fewer were run (seconds: NaN when not measured)."""
     if not any(n.latent for n in network.nodes):
-        return 1, None
+        return 1, None, float("nan")
     t = time.perf_counter()
     fitter.lik.expected_counts(start)
     per_eval = time.perf_counter() - t
@@ -1150,8 +1153,8 @@ def default_starts(network: Network, fitter: "Fitter", start: Mapping[str, np.nd
         k -= 1
     if k < LATENT_STARTS:
         return k, (f"{k} start(s) instead of {LATENT_STARTS}: one evaluation takes {per_eval:.2g} s, "
-                   f"{LATENT_STARTS} starts would take about {LATENT_STARTS * EVALS_PER_START * per_eval:.0f} s")
-    return k, None
+                   f"{LATENT_STARTS} starts would take about {LATENT_STARTS * EVALS_PER_START * per_eval:.0f} s"), per_eval
+    return k, None, per_eval
 
 
 def em_burn_in(fitter: "Fitter", probs: Mapping[str, np.ndarray], steps: int) -> dict[str, np.ndarray]:
@@ -1276,8 +1279,12 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     check_possible(fitter.lik, p0)
     auto_starts = restarts is None
     latent = any(n.latent for n in network.nodes)
+    batched = True
     if auto_starts:
-        restarts, starts_note = default_starts(network, fitter, p0)
+        restarts, starts_note, per_eval = default_starts(network, fitter, p0)
+        # side by side (one vmapped program, compiled once: about a second or more) only where
+        # the evaluations are slow enough for that to pay; otherwise one after the other
+        batched = not (per_eval < BATCH_MIN_EVAL_SECONDS)
     else:
         starts_note = None
     starts = [p0]
@@ -1293,7 +1300,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         from .restarts import run_starts
 
         runs, finals = run_starts(fitter, [logits_from_probs(network, p0) for p0 in starts], progress=progress,
-                                  stats=restart_stats)
+                                  stats=restart_stats, batched=batched)
     best_k = int(np.nanargmax([r.value if math.isfinite(r.value) else -np.inf for r in runs]))
     best = runs[best_k]
     ev = fitter.evaluate(best.logits)

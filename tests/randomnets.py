@@ -35,3 +35,44 @@ def random_rows(net, rng, n_rows, p_missing):
                    for i, c in enumerate(net.cards)] for _ in range(n_rows)], dtype=np.int32)
     d, c, _ = reduce_rows(x, rng.integers(1, 4, n_rows).astype(float), net.cards)
     return CodedData(d, c)
+
+
+def latent_case(seed: int):
+    """A random small network with at least one latent node and one observed node (3-5 nodes,
+    2-3 states, random CPTs) and 60-160 records drawn from it: cells missing completely at random
+    (even seeds) or at random given the first observed node, which is always recorded (odd seeds)."""
+    rng = np.random.default_rng(seed)
+    while True:
+        net = random_network(rng, int(rng.integers(3, 6)), p_latent=0.3)
+        if any(n.latent for n in net.nodes) and net.free_names and not all(n.latent for n in net.nodes):
+            break
+    n_rows = int(rng.integers(60, 160))
+    p = float(rng.uniform(0.05, 0.3))
+    # records drawn from the network itself, with random CPTs (ancestral sampling)
+    probs = random_probs(net, rng)
+    x = np.zeros((n_rows, len(net.nodes)), dtype=np.int32)
+    for i, node in enumerate(net.nodes):
+        pa = [net.index(q) for q in node.parents]
+        table = probs[node.name].reshape(-1, node.card)
+        row = np.zeros(n_rows, dtype=np.int64)
+        for j in pa:
+            row = row * net.cards[j] + x[:, j]
+        u = rng.random(n_rows)
+        x[:, i] = np.minimum((u[:, None] > np.cumsum(table[row], axis=1)).sum(1), node.card - 1)
+    obs = [i for i, n in enumerate(net.nodes) if not n.latent]
+    first = obs[0]
+    hidden = np.zeros_like(x, dtype=bool)
+    for i, n in enumerate(net.nodes):
+        if n.latent:
+            hidden[:, i] = True
+        elif seed % 2 == 0 or i == first:
+            hidden[:, i] = rng.random(n_rows) < p                      # MCAR
+        else:
+            # MAR: the chance depends on the first observed node's (recorded) value
+            pm = np.where(x[:, first] == 0, p / 2, min(0.9, 2 * p))
+            hidden[:, i] = rng.random(n_rows) < pm
+    if seed % 2 == 1:
+        hidden[:, first] = False
+    x[hidden] = HIDDEN
+    d, c, _ = reduce_rows(x, rng.integers(1, 4, n_rows).astype(float), net.cards)
+    return net, CodedData(d, c)

@@ -243,3 +243,44 @@ def test_lanczos_extremes_match_numpy_eigvalsh():
     assert lo == pytest.approx(ref[0], abs=1e-8) and hi == pytest.approx(ref[-1], rel=1e-3)
     # the Ritz vector is the eigenvector of the smallest eigenvalue (up to sign)
     assert abs(float(v @ Q[:, 0])) == pytest.approx(1.0, abs=1e-6)
+
+
+# ============================================================================ property
+# Seeded random small networks with latent nodes and MCAR/MAR gaps (tests/randomnets.latent_case).
+# The full run over 200 networks is benchmarks/property_latent.py (figures in
+# docs/performance.md); the suite runs the first PROPERTY_NETWORKS of them to stay fast.
+PROPERTY_NETWORKS = 6
+
+
+def test_property_converged_means_kkt_holds_em_does_not_climb_and_the_best_is_reached():
+    from randomnets import latent_case
+
+    reached = 0
+    for seed in range(PROPERTY_NETWORKS):
+        net, data = latent_case(seed)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            r = fit(net, data, seed=seed)        # the default starts (4 with latent nodes)
+        assert r.settings["restarts"] == 4 and r.settings["restarts_chosen_by"] == "default"
+        st = r.extras["stationarity"]
+        ll = r.log_likelihood
+        if r.converged:
+            # KKT on every cell, recomputed here from the independent EM reference's E-step
+            from adfit.em import expected_counts as em_counts
+
+            counts, _ = em_counts(net, r.probs, data)
+            for name in net.free_names:
+                a = counts[name]
+                mu = a.sum(axis=-1, keepdims=True)
+                th = r.probs[name]
+                ok = (mu >= 1e-6) & (th > 1e-250)
+                ratio = np.where(ok, a / np.where(ok, th * mu, 1.0), 0.0)
+                assert ratio.max() <= 1 + st["kkt_tol"] + 1e-9, (seed, name)
+            # EM from the answer, a fixed number of steps, does not climb (DLR 1977, Theorem 1)
+            climb = em_fit(net, data, init=r.probs, max_iter=100, tol=0.0, gtol=0.0).log_likelihood - ll
+            assert climb <= 1e-6 * abs(ll), (seed, climb)
+        best = max(em_fit(net, data, seed=s, max_iter=1000).log_likelihood for s in range(2))
+        reached += ll >= best - 1e-6 * abs(best)
+    # the benchmark's figure over 200 networks is the one the issue asks for (>= 95 %); on these
+    # six every fit reaches the best of two EM starts
+    assert reached == PROPERTY_NETWORKS
