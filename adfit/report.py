@@ -99,7 +99,7 @@ _KNOWN_TOP = {"format", "method", "objective", "log_likelihood", "log_prior", "p
               "gradient_norm", "converged", "stop_reason", "iterations", "n_rows", "n_distinct", "seed",
               "settings", "history", "nodes", "network", "restarts", "best_start", "optima", "em_check",
               "complete_case", "information_criteria", "cross_validation", "prior", "gaps", "em",
-              "uncertainty", "identifiability"}
+              "uncertainty", "identifiability", "stationarity", "starts_note"}
 _KNOWN_NODE = {"states", "parents", "latent", "fixed", "table", "se", "interval", "se_status",
                "missing_information"}
 
@@ -730,6 +730,8 @@ def _section_fitted(doc: Mapping[str, Any], res: FitResult, gaps: Mapping[str, A
                  if math.isfinite(_f(st.get(k))) and _f(st.get(k)) > 0]
         if moves:
             summary.append(("moves the optimiser made", ", ".join(moves)))
+    if isinstance(doc.get("starts_note"), str):
+        summary.append(("starts", doc["starts_note"]))
     summary += [
         ("iterations", _fmt_any(doc.get("iterations"))),
         ("stopping rule", ("held" if conv else "did NOT hold") + (f": {doc['stop_reason']}" if doc.get("stop_reason") else "")),
