@@ -75,12 +75,14 @@ def user_errors():
 
 def main() -> None:
     """Console-script entry point: run the app, turning AdfitError into one line and exit 1."""
-    from .likelihood import enable_compilation_cache
-    enable_compilation_cache()  # compiled programs kept on disk between runs (ADFIT_COMPILE_CACHE=0: off)
+    from ._compile_cache import request_compilation_cache
+    # compiled programs kept on disk between runs (ADFIT_COMPILE_CACHE=0: off); switched on when
+    # a command imports JAX (adfit/_jax.py), so that --help does not pay for importing it
+    request_compilation_cache()
     try:
         from .errors import cli_terms
         with cli_terms():
-            rc = app(standalone_mode=False)
+            rc = app(standalone_mode=False, prog_name="adfit")
         if isinstance(rc, int) and rc:  # without standalone mode, click returns a typer.Exit's code
             sys.exit(rc)
     except AdfitError as e:
@@ -672,3 +674,7 @@ def report_command(
         write_report(out, result, data=data, missing=missing, count_column=count_column,
                      ignore_columns=split_list(ignore_columns), engine=engine, scheduler=scheduler, title=title)
         typer.echo(f"wrote {out}")
+
+
+if __name__ == "__main__":  # python -m adfit.cli
+    main()
