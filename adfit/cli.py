@@ -148,12 +148,15 @@ def em_check_options(l2: float) -> None:
                           f"(--l2 {l2:g}); drop --em-check or use --l2 0")
 
 
-def with_em_check(result, coded, *, pseudo_counts=None, seed: int = 0):
-    """For ``fit --em-check``: run the EM cross-check, print its summary, return the result with
-    the ``"em_check"`` section added (one call in the fit command, before writing the result)."""
-    from .crosscheck import attach_em_check, format_em_check
+def with_em_check(result, coded, *, pseudo_counts=None, seed: int = 0, max_iter: Optional[int] = None):
+    """For ``fit --em-check``: run the EM cross-check (each EM run capped at ``max_iter``
+    iterations, default :data:`adfit.crosscheck.EM_MAX_ITER`), print its summary, return the
+    result with the ``"em_check"`` section added (one call in the fit command, before writing
+    the result)."""
+    from .crosscheck import EM_MAX_ITER, attach_em_check, format_em_check
 
-    checked = attach_em_check(result, coded, pseudo_counts=pseudo_counts, seed=seed)
+    checked = attach_em_check(result, coded, pseudo_counts=pseudo_counts, seed=seed,
+                              max_iter=EM_MAX_ITER if max_iter is None else max_iter)
     typer.echo(format_em_check(checked.extras["em_check"]))
     return checked
 
@@ -288,6 +291,7 @@ def fit_command(
     engine: EngineOpt = "pandas",
     scheduler: SchedulerOpt = None,
     em_check: Annotated[bool, Flag("--em-check", rich_help_panel=CHECK_PANEL, help="Cross-check the fit with the independent EM reference.")] = False,
+    em_max_iter: Annotated[int, typer.Option("--em-max-iter", rich_help_panel=CHECK_PANEL, help="With --em-check: most iterations of each EM run (from the fit's answer, from its own start).")] = 5000,
     compare_complete_case: Annotated[bool, Flag(
         "--compare-complete-case", rich_help_panel=CHECK_PANEL, help="Also fit on the complete rows only and compare every CPT entry.")] = False,
     folds: Annotated[int, typer.Option("--folds", rich_help_panel=CHECK_PANEL, help="K-fold cross-validation of the held-out marginal log-likelihood (0: off).")] = 0,
@@ -325,6 +329,9 @@ def fit_command(
             pri = load_prior(prior, net)
         if em_check:
             em_check_options(l2)
+        from .crosscheck import check_em_max_iter
+
+        check_em_max_iter(em_max_iter)
         fit_kwargs = dict(method=method, tol=tol, gtol=gtol, max_iter=max_iter, prior=pri, l2=l2,
                           learning_rate=learning_rate, batch_size=batch_size)
         pseudo = None if pri is None else pri.pseudo_counts(net)
@@ -336,7 +343,7 @@ def fit_command(
         check_output_path(out)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            with _progress(quiet) as (callback, reporter):
+            with _progress(quiet, restarts) as (callback, reporter):
                 result = fit(net, coded, restarts=restarts, seed=seed, progress=callback, **fit_kwargs)
         for w in caught:
             if issubclass(w.category, UserWarning):
@@ -351,13 +358,18 @@ def fit_command(
         # error bars first: the complete-case comparison reports differences in their units
         from .uncertainty import cli_errors
 
-        result = cli_errors(result, coded, pseudo_counts=pseudo, l2=l2, errors=errors, quiet=quiet, echo=typer.echo)
+        if errors is not False:
+            with _phase(quiet, "error bars"):
+                result = cli_errors(result, coded, pseudo_counts=pseudo, l2=l2, errors=errors, quiet=quiet,
+                                    echo=typer.echo)
         if em_check:
-            result = with_em_check(result, coded, pseudo_counts=pseudo, seed=seed)
+            with _phase(quiet, "EM check (from the fit's answer and from its own start)"):
+                result = with_em_check(result, coded, pseudo_counts=pseudo, seed=seed, max_iter=em_max_iter)
         if compare_complete_case:
             from .gaps import compare_complete_case as ccc
 
-            cmp = ccc(net, coded, full=result, seed=seed, **fit_kwargs)
+            with _phase(quiet, "complete-case fit"):
+                cmp = ccc(net, coded, full=result, seed=seed, **fit_kwargs)
             result = result.with_extras(complete_case=cmp.to_dict())
             if not quiet:
                 typer.echo(cmp.format_text())
@@ -368,7 +380,8 @@ def fit_command(
         if folds:
             from .assess import cross_validate
 
-            cv = cross_validate(net, coded, folds=folds, seed=seed, **fit_kwargs)
+            with _phase(quiet, f"cross-validation ({folds} folds)"):
+                cv = cross_validate(net, coded, folds=folds, seed=seed, **fit_kwargs)
             result = result.with_extras(cross_validation=cv.to_dict())
             if not quiet:
                 typer.echo(cv.format_text())
@@ -382,21 +395,57 @@ def fit_command(
             typer.echo(CAUTION)
 
 
-@contextmanager
-def _progress(quiet: bool):
-    """Progress bars on stderr for the starts and iterations of a fit (none with -q)."""
-    from .demo import Reporter, RichReporter, fit_progress
+def _reporter(quiet: bool):
+    """Where the progress of a command goes: nothing with -q; live bars on stderr when it is a
+    terminal; otherwise plain lines on stderr (a log file, a pipe), one per start and phase."""
+    from .demo import LineReporter, Reporter, RichReporter
 
-    reporter = Reporter() if quiet else RichReporter()
+    if quiet:
+        return Reporter()
+    from rich.console import Console
+
+    if Console(stderr=True).is_terminal:
+        return RichReporter()
+    return LineReporter(lambda line: typer.echo(line, err=True))
+
+
+@contextmanager
+def _running(reporter):
+    """``reporter.running()``; a plain-line reporter falls silent when the body fails (the error
+    is then the one line on stderr)."""
+    try:
+        with reporter.running():
+            yield reporter
+    except BaseException:
+        reporter.silent = True
+        raise
+
+
+@contextmanager
+def _progress(quiet: bool, restarts: Optional[int] = None):
+    """Progress on stderr for the starts and iterations of a fit (none with -q): one line per
+    start, named by the start's own index out of ``restarts``."""
+    from .demo import fit_progress
+
+    reporter = _reporter(quiet)
     if quiet:
         yield None, reporter
         return
-    with reporter.running():
-        callback, close = fit_progress(reporter, "fit", 1)
+    with _running(reporter):
+        callback, close = fit_progress(reporter, "fit", restarts)
         try:
             yield callback, reporter
         finally:
             close()
+
+
+@contextmanager
+def _phase(quiet: bool, description: str):
+    """A later phase of a command (error bars, EM check, complete-case fit, cross-validation) as
+    one progress line on stderr (none with -q)."""
+    reporter = _reporter(quiet)
+    with _running(reporter), reporter.stage(description):
+        yield
 
 
 @app.command("score")

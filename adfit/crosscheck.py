@@ -19,17 +19,36 @@ fixed CPT is not relabelled (its labels are pinned by that table).
 CPT rows whose parent configuration has expected count 0 (not informed by the data) are left
 out of ``max |Δθ|`` and listed.
 
-Verdicts (``"verdict"``):
+Verdicts (``"verdict"``, in the order they are tested; the first that applies is given, and
+``"runs_not_converged"`` lists every run whose stopping rule did not hold). The tolerance on the
+objective is ``tol_obj = ll_rtol · max(1, |objective of the fit|)`` (``ll_rtol`` = 1e-6 by
+default); EM *climbs* from the fit's answer when its objective ends more than ``tol_obj`` above
+the fit's.
 
-* ``"agree"``: the fit and EM from its own start reach the same optimum: objectives within
-  ``ll_rtol · max(1, |objective|)`` and every informed CPT entry within ``theta_atol``;
-* ``"disagree-different-optima"``: all runs stationary, objectives differ by more than the tolerance (the
-  likelihood is multimodal); ``"higher"`` says which is higher;
-* ``"disagree-different-parameters"``: all runs stationary, the same objective within tolerance, but CPT
-  entries differ by more than ``theta_atol``: a flat ridge (parameters not identified by the
-  data) or equally high optima;
-* ``"not-converged"``: the fit or an EM run did not meet its stopping rule, or EM started from
-  the fit's answer climbed above it (the fit stopped short of a maximum).
+* ``"fit-not-converged"``: the fit itself says that its stopping rule did not hold (the detail
+  adds whether EM from its answer climbed, and by how much);
+* ``"fit-not-at-maximum"``: the fit says it converged, but EM started from its answer climbed by
+  more than ``tol_obj``: the fit stopped short of a maximum (for example on a boundary cell
+  whose logit gradient is tiny while the likelihood still rises). The only verdict besides the
+  first that blames the fit;
+* ``"em-from-fit-not-converged"``: EM started from the fit's answer hit its iteration cap
+  (``max_iter``) without climbing by more than ``tol_obj``: nothing speaks against the fit, but
+  the check is incomplete (raise ``max_iter``, ``fit --em-max-iter``);
+* ``"em-own-start-not-converged"``: EM from the fit's answer agreed (it converged without
+  climbing) but EM from its own random start hit its iteration cap, so the search for another
+  optimum is incomplete: the fit is at a stationary point; raise ``max_iter`` to finish the check;
+* ``"disagree-different-optima"``: every run converged, the objectives of the fit and of EM from
+  its own start differ by more than ``tol_obj`` (the likelihood is multimodal); ``"higher"``
+  says which is higher (``"em"``: the fit is at a lower local maximum, try more starts;
+  ``"fit"``: EM's own start found a lower one);
+* ``"disagree-different-parameters"``: every run converged to the same objective within
+  ``tol_obj``, but some informed CPT entry differs by more than ``theta_atol`` after relabelling:
+  a flat ridge (parameters the data do not identify) or equally high optima;
+* ``"agree"``: every run converged; the fit and EM from its own start reach the same optimum
+  (objectives within ``tol_obj``, every informed CPT entry within ``theta_atol``).
+
+Results written before these verdicts were named may carry ``"not-converged"`` (any run that
+did not converge, or a climb from the fit's answer); :data:`LEGACY_VERDICTS` keeps its meaning.
 """
 
 from __future__ import annotations
@@ -43,17 +62,50 @@ from scipy.optimize import linear_sum_assignment
 
 from .data import CodedData, load_data
 from .em import EMResult, em_fit
-from .errors import OptionError
+from .errors import OptionError, option
 from .network import Network
 
 __all__ = ["em_check", "attach_em_check", "format_em_check", "align_latent_states", "VERDICTS",
-           "LL_RTOL", "THETA_ATOL"]
+           "VERDICT_MEANING", "LEGACY_VERDICTS", "LL_RTOL", "THETA_ATOL", "EM_MAX_ITER", "check_em_max_iter"]
 
-VERDICTS = ("agree", "disagree-different-optima", "disagree-different-parameters", "not-converged")
+#: every verdict, in the order they are tested (module docstring)
+VERDICTS = ("fit-not-converged", "fit-not-at-maximum", "em-from-fit-not-converged", "em-own-start-not-converged",
+            "disagree-different-optima", "disagree-different-parameters", "agree")
+#: one sentence per verdict (terminal summary, report, demo)
+VERDICT_MEANING = {
+    "fit-not-converged": "the fit's stopping rule did not hold: its answer may not be a maximum",
+    "fit-not-at-maximum": "the fit said it converged, but EM started from its answer climbed above it: "
+                          "the fit stopped short of a maximum",
+    "em-from-fit-not-converged": "EM started from the fit's answer hit its iteration cap without climbing: "
+                                 "nothing speaks against the fit, but the check is incomplete (raise the EM iteration cap)",
+    "em-own-start-not-converged": "EM from the fit's answer agreed (the fit is at a stationary point), but EM from "
+                                  "its own start hit its iteration cap: the search for another optimum is incomplete "
+                                  "(raise the EM iteration cap)",
+    "disagree-different-optima": "every run converged, to different objective values: the likelihood has several "
+                                 "maxima (try more starts)",
+    "disagree-different-parameters": "same objective, different CPTs: some parameters are not pinned down by the data "
+                                     "(a flat ridge), or there are equally high optima",
+    "agree": "the fit and an independent EM run from its own start reach the same optimum",
+}
+#: verdicts of results written by earlier versions, with their meaning
+LEGACY_VERDICTS = {
+    "not-converged": "a run did not meet its stopping rule, or EM from the fit's answer climbed above it "
+                     "(written by an earlier version, which did not say which run)",
+}
+#: default iteration cap of both EM runs (``fit --em-max-iter``)
+EM_MAX_ITER = 5000
 #: default tolerance on the objective: relative to max(1, |objective|)
 LL_RTOL = 1e-6
 #: default tolerance on CPT entries (probabilities)
 THETA_ATOL = 1e-3
+
+
+def check_em_max_iter(value: Any) -> int:
+    """The iteration cap of the EM runs (``fit --em-max-iter``), validated: an integer >= 1."""
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < 1:
+        raise OptionError(f"the EM cross-check's iteration cap must be an integer >= 1, got {value!r}; "
+                          f"give {option('em_max_iter', str(EM_MAX_ITER))} (the default) or another count >= 1")
+    return int(value)
 
 
 # ------------------------------------------------------------------------------- relabelling
@@ -160,7 +212,7 @@ def _pseudo_for(result: Any, pseudo_counts: Mapping[str, np.ndarray] | None) -> 
 
 
 def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] | None = None, seed: int = 0,
-             tol: float = 1e-10, gtol: float = 1e-9, max_iter: int = 5000, ll_rtol: float = LL_RTOL,
+             tol: float = 1e-10, gtol: float = 1e-9, max_iter: int = EM_MAX_ITER, ll_rtol: float = LL_RTOL,
              theta_atol: float = THETA_ATOL, missing: Iterable[str] | None = None,
              count_column: str | None = None, ignore_columns: Iterable[str] = ()) -> dict[str, Any]:
     """Cross-check a fit (an :class:`adfit.result.FitResult`) against EM; JSON-ready dict.
@@ -171,7 +223,8 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
         pseudo_counts: the prior's pseudo-counts of a MAP fit (default: rebuilt from the prior
             recorded in ``result.extras["prior"]``; none for an MLE fit).
         seed: seed of EM's own random start.
-        tol, gtol, max_iter: EM's stopping rule (:func:`adfit.em.em_fit`).
+        tol, gtol, max_iter: EM's stopping rule (:func:`adfit.em.em_fit`); ``max_iter`` caps
+            each of the two EM runs (``fit --em-max-iter``).
         ll_rtol, theta_atol: the tolerances of the verdict (module docstring).
 
     Raises:
@@ -185,6 +238,7 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
                           f"(l2 = {l2:g}); refit with --l2 0 to cross-check")
     if not (ll_rtol >= 0 and theta_atol >= 0):
         raise OptionError(f"cross-check tolerances must be >= 0 (ll_rtol={ll_rtol}, theta_atol={theta_atol})")
+    check_em_max_iter(max_iter)
     coded = load_data(net, data, missing=missing, count_column=count_column, ignore_columns=ignore_columns)
     pseudo = _pseudo_for(result, pseudo_counts)
     fit_probs = {k: np.asarray(v, dtype=np.float64) for k, v in result.probs.items()}
@@ -210,21 +264,33 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
     tol_obj = ll_rtol * scale
 
     fit_converged = bool(getattr(result, "converged", False))
-    higher = None
-    problems = []
-    if not fit_converged:
-        problems.append("the fit did not meet its stopping rule")
-    if not em_fit_start.converged:
-        problems.append(f"EM from the fit's answer did not converge in {em_fit_start.iterations} iterations")
-    if not em_own.converged:
-        problems.append(f"EM from its own start did not converge in {em_own.iterations} iterations")
-    if em_fit_start.objective_value - obj_fit > tol_obj:
-        problems.append(f"EM from the fit's answer climbed {em_fit_start.objective_value - obj_fit:.3g} above it "
-                        f"(the fit stopped short of a maximum)")
+    climb = em_fit_start.objective_value - obj_fit
+    climbed = climb > tol_obj
     diff = em_own.objective_value - obj_fit
-    if problems:
-        verdict = "not-converged"
-        detail = "; ".join(problems)
+    not_converged = [name for name, ok in (("fit", fit_converged), ("em_from_fit", em_fit_start.converged),
+                                           ("em_own_start", em_own.converged)) if not ok]
+    cap = f"(cap {max_iter}; raise it with {option('em_max_iter', str(max(2 * max_iter, EM_MAX_ITER)))})"
+    higher = None
+    if not fit_converged:
+        verdict = "fit-not-converged"
+        detail = ("the fit did not meet its stopping rule"
+                  + (f"; EM from its answer climbed {climb:.3g} above it" if climbed
+                     else f"; EM from its answer did not climb above it by more than {tol_obj:.3g}"))
+    elif climbed:
+        verdict = "fit-not-at-maximum"
+        detail = (f"the fit met its stopping rule, but EM from its answer climbed {climb:.3g} above it "
+                  f"(more than {tol_obj:.3g}) in {em_fit_start.iterations} iterations: the fit stopped short "
+                  f"of a maximum")
+    elif not em_fit_start.converged:
+        verdict = "em-from-fit-not-converged"
+        detail = (f"EM from the fit's answer did not converge in {em_fit_start.iterations} iterations {cap}, "
+                  f"climbing only {max(climb, 0.0):.3g} (tolerance {tol_obj:.3g}): nothing speaks against the fit, "
+                  f"but the check is incomplete")
+    elif not em_own.converged:
+        verdict = "em-own-start-not-converged"
+        detail = (f"EM from the fit's answer agreed (converged in {em_fit_start.iterations} iteration{'' if em_fit_start.iterations == 1 else 's'}, climbing "
+                  f"{max(climb, 0.0):.3g} <= {tol_obj:.3g}); EM from its own start did not converge in "
+                  f"{em_own.iterations} iterations {cap}, so the search for another optimum is incomplete")
     elif abs(diff) > tol_obj:
         verdict = "disagree-different-optima"
         higher = "em" if diff > 0 else "fit"
@@ -239,13 +305,22 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
         verdict = "agree"
         higher = "equal"
         detail = f"same optimum: objectives within {tol_obj:.3g}, CPT entries within {theta_atol:g}"
+    others = [f"{_RUN_NAMES[n]} did not converge" for n in not_converged
+              if not (n == "fit" and verdict == "fit-not-converged")
+              and not (n == "em_from_fit" and verdict == "em-from-fit-not-converged")
+              and not (n == "em_own_start" and verdict == "em-own-start-not-converged")]
+    if others:
+        detail += "; also: " + ", ".join(others)
 
     perm_out = {name: {net.node(name).states[a]: net.node(name).states[int(b)] for a, b in enumerate(p)}
                 for name, p in perms.items()}
     return {
         "verdict": verdict,
+        "meaning": VERDICT_MEANING[verdict],
         "detail": detail,
         "higher": higher,
+        "runs_not_converged": not_converged,
+        "climb_from_fit": climb,
         "objective": "map" if pseudo and any(np.any(c > 0) for c in pseudo.values()) else "mle",
         "tolerances": {"objective_rtol": ll_rtol, "objective_abs": tol_obj, "theta_atol": theta_atol,
                        "em_tol": tol, "em_gtol": gtol, "em_max_iter": max_iter},
@@ -262,6 +337,9 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
     }
 
 
+_RUN_NAMES = {"fit": "the fit", "em_from_fit": "EM from the fit's answer", "em_own_start": "EM from its own start"}
+
+
 def attach_em_check(result: Any, data: Any, **kwargs: Any) -> Any:
     """Run :func:`em_check` and return ``result`` with the section ``"em_check"`` added."""
     return result.with_extras(em_check=em_check(result, data, **kwargs))
@@ -274,15 +352,21 @@ def format_em_check(check: Mapping[str, Any]) -> str:
     def g(x: Any) -> str:
         return "n/a" if x is None else f"{x:.3e}"
 
+    meaning = check.get("meaning") or VERDICT_MEANING.get(check["verdict"]) or LEGACY_VERDICTS.get(check["verdict"], "")
+
+    def yn(x: Any) -> str:
+        return "yes" if x else "no"
+
     lines = [
-        f"EM check: {check['verdict']} ({check['detail']})",
-        f"  {'':18s} {'objective':>18s} {'gradient norm':>14s} {'max |dtheta|':>13s} {'iterations':>10s}",
+        f"EM check: {check['verdict']}: {meaning}",
+        f"  {check['detail']}",
+        f"  {'':18s} {'objective':>18s} {'gradient norm':>14s} {'max |dtheta|':>13s} {'iterations':>10s} {'converged':>9s}",
         f"  {'fit (' + str(f['method']) + ')':18s} {f['objective_value']:18.8f} {g(f['gradient_norm']):>14s} "
-        f"{'':>13s} {'':>10s}",
+        f"{'':>13s} {'':>10s} {yn(f.get('converged')):>9s}",
         f"  {'EM from the fit':18s} {a['objective_value']:18.8f} {g(a['gradient_norm']):>14s} "
-        f"{g(a['max_abs_delta_theta']):>13s} {a['iterations']:>10d}",
+        f"{g(a['max_abs_delta_theta']):>13s} {a['iterations']:>10d} {yn(a.get('converged')):>9s}",
         f"  {'EM own start':18s} {b['objective_value']:18.8f} {g(b['gradient_norm']):>14s} "
-        f"{g(b['max_abs_delta_theta']):>13s} {b['iterations']:>10d}",
+        f"{g(b['max_abs_delta_theta']):>13s} {b['iterations']:>10d} {yn(b.get('converged')):>9s}",
     ]
     moved = {k: v for k, v in check["latent_permutation"].items() if any(s != t for s, t in v.items())}
     if moved:

@@ -822,7 +822,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         init: Mapping[str, np.ndarray] | None = None, learning_rate: float = 0.05,
         missing: Iterable[str] | None = None, count_column: str | None = None,
         ignore_columns: Iterable[str] = (), route: str = "auto", batch_size: int | None = None,
-        em_check: bool = False, progress: Callable[[int, int, float, float], None] | None = None, warn: bool = True) -> FitResult:
+        em_check: bool = False, em_max_iter: int | None = None,
+        progress: Callable[[int, int, float, float], None] | None = None, warn: bool = True) -> FitResult:
     """Fit the free CPTs of ``network`` to ``data`` by maximising the marginal likelihood.
 
     Args:
@@ -844,6 +845,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
             the end and decides ``converged``.
         em_check: also run the independent EM reference from the answer and from its own start
             (:func:`adfit.crosscheck.em_check`); its verdict goes to ``result.extras["em_check"]``.
+        em_max_iter: with ``em_check``, the iteration cap of each EM run (default
+            :data:`adfit.crosscheck.EM_MAX_ITER`).
         progress: called as ``progress(start, iteration, objective, gradient_norm)``.
 
     Returns:
@@ -857,6 +860,10 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         raise OptionError(f"--restarts must be >= 1, got {restarts}")
     if em_check and l2:
         raise OptionError("em_check covers the likelihood and Dirichlet priors, not the L2 penalty; use l2=0")
+    if em_max_iter is not None:
+        from .crosscheck import check_em_max_iter
+
+        check_em_max_iter(em_max_iter)
     coded = load_data(network, data, missing=missing, count_column=count_column, ignore_columns=ignore_columns)
     prior_desc = None
     if prior is not None:
@@ -936,7 +943,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
             raise OptionError("em_check covers the likelihood and Dirichlet priors, not the L2 penalty; use l2=0")
         from .crosscheck import attach_em_check
 
-        result = attach_em_check(result, coded, pseudo_counts=fitter.pseudo if is_map else None, seed=seed)
+        result = attach_em_check(result, coded, pseudo_counts=fitter.pseudo if is_map else None, seed=seed,
+                                 **({} if em_max_iter is None else {"max_iter": em_max_iter}))
     if warn and not best.converged:
         warnings.warn(f"the fit did not converge ({best.stop_reason}); gradient norm {ev['gradient_norm']:.3g}. "
                       f"Raise --max-iter or check the model", ConvergenceWarning, stacklevel=2)

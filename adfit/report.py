@@ -806,7 +806,9 @@ def _section_convergence(doc: Mapping[str, Any]) -> str:
                          esc(_fmt_any(s.get("iterations"))),
                          esc("yes" if s.get("converged") else "no") if "converged" in s else "",
                          esc(fmt_sci(s.get("gradient_norm")))]
-                        + ([esc(_fmt_any(s["optimum"] + 1)) if isinstance(s.get("optimum"), int) else ""] if has_opt else [])
+                        + ([esc(_fmt_any(s["optimum"] + 1)) if isinstance(s.get("optimum"), int)
+                            else (esc("none (did not converge)") if s.get("converged") is False else "")]
+                           if has_opt else [])
                         + [_render_inline(s.get(x)) for x in extra])
         parts.append("<h3>Starts</h3>")
         parts.append(_table(["start", "kind", "final objective", "iterations", "stopping rule held",
@@ -853,9 +855,20 @@ def _optima(optima: Any, section: Any) -> str:
     sec = section if isinstance(section, Mapping) else {}
     n = sec.get("n_starts")
     at_best = sec.get("starts_at_best_objective")
+    n_conv = sec.get("n_converged")
     if n is not None and at_best is not None:
-        parts.append(f"<p>{len(optima)} distinct optim{'um' if len(optima) == 1 else 'a'} from {esc(_fmt_any(n))} "
-                     f"starts; {esc(_fmt_any(at_best))} reached the best objective.</p>")
+        if n_conv is None:  # a result written before non-converged starts were set apart
+            parts.append(f"<p>{len(optima)} distinct optim{'um' if len(optima) == 1 else 'a'} from {esc(_fmt_any(n))} "
+                         f"starts; {esc(_fmt_any(at_best))} reached the best objective.</p>")
+        else:
+            tol_abs = sec.get("best_objective_tolerance")
+            parts.append(f"<p>{esc(_fmt_any(n_conv))} of {esc(_fmt_any(n))} starts converged (their stopping rule "
+                         f"held); they reached {len(optima)} distinct optim{'um' if len(optima) == 1 else 'a'}, and "
+                         f"{esc(_fmt_any(at_best))} of them the best objective"
+                         + (f" (within {esc(fmt_sci(tol_abs))})" if tol_abs is not None else "")
+                         + ". A start that did not converge is not counted as an optimum.</p>")
+    if not optima:
+        parts.append(_note("No start converged: no optimum was confirmed. Raise --max-iter or run more starts."))
     rows = []
     for i, o in enumerate(optima):
         k = o.get("optimum", i)
@@ -875,6 +888,12 @@ def _optima(optima: Any, section: Any) -> str:
         parts.append(_note(f"Two starts reach the same optimum when their objectives agree within "
                            f"{fmt_sci(tol.get('objective_rtol'))} x max(1, |objective|) and every CPT entry within "
                            f"{fmt_sci(tol.get('theta_atol'))} after the latent states are relabelled."))
+    unconv = [u for u in (sec.get("not_converged") or []) if isinstance(u, Mapping)]
+    if unconv:
+        parts.append(_note("Did not converge (not counted as optima): " + "; ".join(
+            f"start {_fmt_any(u.get('start'))} at objective {fmt_loglik(u.get('objective'))}, gradient norm "
+            f"{fmt_sci(u.get('gradient_norm'))}" + (" (above the best converged objective)" if u.get("above_best") else "")
+            for u in unconv) + "."))
     if sec.get("n_failed"):
         parts.append(_note(f"{_fmt_any(sec['n_failed'])} start(s) ended with a non-finite objective."))
     return "".join(parts)
@@ -1092,15 +1111,12 @@ def _cpt_block(net: Network, name: str, sec: Mapping[str, Any], excluded: set[in
     return "".join(out)
 
 
-_VERDICT_TEXT = {
-    "agree": "The fit and an independent EM run from its own start reach the same optimum.",
-    "disagree-different-optima": "Both are stationary but reach different objective values: the likelihood has several "
-                        "maxima. Try more restarts.",
-    "disagree-different-parameters": "Same objective, different CPTs: some parameters are not pinned down by the data "
-                            "(a flat ridge), or there are equally high optima.",
-    "not-converged": "A run did not meet its stopping rule, or EM from the fit's answer climbed above it: "
-                     "the fit may have stopped short of a maximum.",
-}
+def _verdict_text(verdict: str) -> str:
+    """One sentence per EM verdict (adfit.crosscheck.VERDICT_MEANING; older results' verdicts too)."""
+    from .crosscheck import LEGACY_VERDICTS, VERDICT_MEANING
+
+    text = VERDICT_MEANING.get(verdict) or LEGACY_VERDICTS.get(verdict, "")
+    return (text[:1].upper() + text[1:] + ".") if text else ""
 
 
 def _section_em_check(doc: Mapping[str, Any]) -> str:
@@ -1108,7 +1124,7 @@ def _section_em_check(doc: Mapping[str, Any]) -> str:
     if not isinstance(c, Mapping):
         return _sec("em-check", _absent("No EM cross-check was run: use adfit fit --em-check."))
     verdict = str(c.get("verdict", "?"))
-    parts = [f'<p class="verdict">Verdict: <strong>{esc(verdict)}</strong>. {esc(_VERDICT_TEXT.get(verdict, ""))}</p>']
+    parts = [f'<p class="verdict">Verdict: <strong>{esc(verdict)}</strong>. {esc(_verdict_text(verdict))}</p>']
     if c.get("detail"):
         parts.append(_note(str(c["detail"])))
     rows = []

@@ -27,21 +27,33 @@ likelihood's chunks are small (sized for the cache), so this adds little: on the
 workload with 100 000 distinct rows the peak resident memory of a fit is 0.89 GB with one
 start, 1.01 GB with 4 and 1.10 GB with 8 side by side (docs/performance.md, "Restarts").
 
-**The optima.** After the starts stop, their end points are grouped: two starts reached the
-*same optimum* when their objectives agree within ``objective_rtol · max(1, |objective|)`` and,
-after the latent states are relabelled to match (:func:`adfit.crosscheck.align_latent_states`),
-every CPT entry agrees within ``theta_atol``. CPT rows whose parent configuration has an
-expected count below ``count_floor`` records at both points (not informed by the data) are
-left out of that comparison. Each optimum is reported with its objective, log-likelihood, the
-starts that reached it, the largest |Δθ| to the best optimum (relabelled), and whether it is
-*stationary*: the gradient norm (records) is at most ``gtol`` × records, or the largest
-per-row residual in probability units is at most ``ptol`` (the two thresholds of the stopping
-rule, :mod:`adfit.fit`). Optima of the same objective as the best but different CPTs point to
+**The optima.** After the starts stop, the end points of the starts that *converged* (their
+stopping rule held, ``converged`` in the per-start rows) are grouped; a start that did not
+converge is not an optimum: it is listed apart (``"not_converged"``: its objective, gradient norm
+and residual, and whether it ended above the best converged objective) and counts in neither
+the distinct optima nor the starts at the best objective. Two converged starts reached the
+*same optimum* when their objectives agree within ``objective_rtol · max(1, |objective|)``
+(``objective_rtol`` = 1e-6, :data:`adfit.crosscheck.LL_RTOL`: far above the rounding of a
+converged objective, whose relative change is below ``tol`` = 1e-10, and far below the gaps
+between the local maxima of latent models, which are whole log-likelihood units) and, after the
+latent states are relabelled to match (:func:`adfit.crosscheck.align_latent_states`), every CPT
+entry agrees within ``theta_atol``. CPT rows whose parent configuration has an expected count
+below ``count_floor`` records at both points (not informed by the data) are left out of that
+comparison. Each optimum is reported with its objective, log-likelihood, the starts that reached
+it, the largest |Δθ| to the best optimum (relabelled), and whether it is *stationary*: the
+gradient norm (records) is at most ``gtol`` × records, or the largest per-row residual in
+probability units is at most ``ptol`` (the two thresholds of the stopping rule,
+:mod:`adfit.fit`). Optima of the same objective as the best but different CPTs point to
 parameters that the data do not identify (a flat ridge, e.g. three latent classes on four
 binary items) or to equally high optima.
 
-A :class:`adfit.errors.LocalOptimaWarning` is due when, of two or more starts, only one
-reached the best objective: a higher optimum may then have been missed.
+``"starts_at_best_objective"`` counts the converged starts whose objective is within
+``objective_rtol · max(1, |best|)`` of the best converged objective (``"best_objective"``; the
+absolute tolerance is ``"best_objective_tolerance"``), whatever their CPTs.
+
+A :class:`adfit.errors.LocalOptimaWarning` is due when, of two or more starts, at most one
+converged start reached the best objective: a higher optimum may then have been missed (or, with
+none, no optimum was confirmed at all).
 """
 
 from __future__ import annotations
@@ -477,9 +489,11 @@ def summarise_optima(network: Network, finals: Sequence[Mapping[str, Any]], *, g
         tolerances.
     """
     K = len(finals)
-    conv = list(converged) if converged is not None else [None] * K
+    conv = [True] * K if converged is None else [bool(c) for c in converged]
     obj = np.array([float(f["objective"]) for f in finals])
-    order = [int(k) for k in np.argsort(-np.where(np.isfinite(obj), obj, -np.inf), kind="stable") if np.isfinite(obj[k])]
+    finite = np.isfinite(obj)
+    # only converged starts with a finite objective are optima (module docstring)
+    order = [int(k) for k in np.argsort(-np.where(finite, obj, -np.inf), kind="stable") if finite[k] and conv[k]]
     if best is not None and best in order:
         order.remove(best)
         order.insert(0, best)
@@ -509,15 +523,17 @@ def summarise_optima(network: Network, finals: Sequence[Mapping[str, Any]], *, g
             start_opt[k] = len(reps) - 1
 
     optima = []
-    best = reps[0] if reps else None
+    top = reps[0] if reps else None
+    best_obj = float(obj[top]) if top is not None else None
+    best_tol = tol_of(best_obj) if best_obj is not None else None
     for j, (r, ms) in enumerate(zip(reps, members)):
         fr = finals[r]
         if j == 0:
             d, where = 0.0, None
         else:
-            perms = align_latent_states(network, fr["probs"], finals[best]["probs"])
-            d, where = _max_delta(network, relabel(network, fr["probs"], perms), finals[best]["probs"],
-                                  relabel(network, fr["counts"], perms), finals[best]["counts"], count_floor)
+            perms = align_latent_states(network, fr["probs"], finals[top]["probs"])
+            d, where = _max_delta(network, relabel(network, fr["probs"], perms), finals[top]["probs"],
+                                  relabel(network, fr["counts"], perms), finals[top]["counts"], count_floor)
         gn, res = float(fr["gradient_norm"]), float(fr["residual"])
         optima.append({
             "optimum": j,
@@ -528,19 +544,33 @@ def summarise_optima(network: Network, finals: Sequence[Mapping[str, Any]], *, g
             "best_start": int(r),
             "max_abs_delta_theta": d,
             "largest_delta_at": where,
-            "same_objective_as_best": bool(abs(fr["objective"] - finals[best]["objective"]) <= tol_of(finals[best]["objective"])),
+            "same_objective_as_best": bool(abs(fr["objective"] - best_obj) <= best_tol),
             "stationary": bool(gn <= gtol_abs or res <= ptol),
             "gradient_norm": gn,
             "residual": res,
             "converged": [bool(conv[m]) for m in ms] if converged is not None else None,
         })
+    not_conv = []
+    for k in range(K):
+        if conv[k] or not finite[k]:
+            continue
+        fk = finals[k]
+        not_conv.append({"start": k, "objective": float(obj[k]), "log_likelihood": float(fk["log_likelihood"]),
+                         "gradient_norm": float(fk["gradient_norm"]), "residual": float(fk["residual"]),
+                         "above_best": bool(best_obj is not None and obj[k] > best_obj + best_tol)})
     at_best = sum(o["count"] for o in optima if o["same_objective_as_best"])
     return {
         "optima": optima,
         "start_optimum": start_opt,
         "starts_at_best_objective": int(at_best),
+        "best_objective": best_obj,
+        "best_objective_tolerance": best_tol,
         "n_starts": K,
-        "n_failed": int(K - len(order)),
+        "n_converged": int(sum(1 for k in range(K) if conv[k] and finite[k])),
+        "not_converged": not_conv,
+        "n_failed": int(K - int(finite.sum())),
+        "kept_start": None if best is None else int(best),
+        "kept_start_is_optimum": bool(best is not None and start_opt[best] is not None) if best is not None else None,
         "tolerances": {"objective_rtol": objective_rtol, "theta_atol": theta_atol, "count_floor": count_floor,
                        "stationary_gradient_norm": gtol_abs, "stationary_residual": ptol},
     }
@@ -558,15 +588,29 @@ def restarts_report(network: Network, rows: list[dict[str, Any]], finals: Sequen
 
 
 def local_optima_message(summary: Mapping[str, Any]) -> str | None:
-    """The text of the LocalOptimaWarning, or None when it is not due."""
+    """The text of the LocalOptimaWarning, or None when it is not due (module docstring)."""
     K = summary["n_starts"]
-    if K < 2 or not summary["optima"] or summary["starts_at_best_objective"] > 1:
+    at_best = summary["starts_at_best_objective"]
+    if K < 2 or at_best > 1:
         return None
+    n_conv = summary.get("n_converged", K - summary.get("n_failed", 0))
+    unconv = summary.get("not_converged") or []
+    tail = []
+    if unconv:
+        above = sum(1 for u in unconv if u.get("above_best"))
+        tail.append(f"{len(unconv)} did not converge" + (f", {above} of them stopped above it" if above else ""))
+    if summary.get("n_failed"):
+        tail.append(f"{summary['n_failed']} failed")
+    if not summary["optima"] or at_best == 0:
+        return (f"none of the {K} starts converged, so no optimum was confirmed"
+                + (f" ({'; '.join(tail)})" if tail else "")
+                + ": raise --max-iter or run more starts (--restarts)")
     best = summary["optima"][0]
     others = len(summary["optima"]) - 1
+    parts = [f"the others reached {others} other optim{'um' if others == 1 else 'a'}"] if others else []
     return (f"the best objective {best['objective']:.6f} was reached by only 1 of {K} starts "
-            f"(the others reached {others} other optim{'um' if others == 1 else 'a'}"
-            + (f", {summary['n_failed']} failed" if summary["n_failed"] else "")
+            f"({n_conv} converged"
+            + "".join(f"; {p}" for p in parts + tail)
             + "); a higher optimum may exist: run more starts (--restarts)")
 
 
@@ -574,13 +618,20 @@ def format_optima(section: Mapping[str, Any]) -> str:
     """A short plain-text table of the optima (for ``adfit fit --restarts K``)."""
     opt = section["optima"]
     tol = section["tolerances"]
-    lines = [f"starts: {section['n_starts']}"
+    K = section["n_starts"]
+    n_conv = section.get("n_converged", K)
+    lines = [f"starts: {K}"
              + (f" ({section['batch_width']} evaluated together)" if section.get("batch_width", 1) > 1 else "")
-             + f"; {len(opt)} distinct optim{'um' if len(opt) == 1 else 'a'} (objectives within "
-             f"{tol['objective_rtol']:g} x max(1, |objective|), CPT entries within {tol['theta_atol']:g} "
-             f"after relabelling latent states)",
-             f"  {'#':>3s} {'objective':>18s} {'log-likelihood':>18s} {'starts':>6s} {'max |dtheta|':>12s} "
-             f"{'stationary':>10s} {'gradient norm':>13s}"]
+             + f"; {n_conv} converged; {len(opt)} distinct optim{'um' if len(opt) == 1 else 'a'} among them (objectives "
+             f"within {tol['objective_rtol']:g} x max(1, |objective|), CPT entries within {tol['theta_atol']:g} "
+             f"after relabelling latent states)"]
+    if opt:
+        lines.append(f"  {section['starts_at_best_objective']} of the {n_conv} converged starts reached the best "
+                     f"objective {opt[0]['objective']:.8f}"
+                     + (f" (within {section['best_objective_tolerance']:.3g})"
+                        if section.get("best_objective_tolerance") is not None else ""))
+        lines.append(f"  {'#':>3s} {'objective':>18s} {'log-likelihood':>18s} {'starts':>6s} {'max |dtheta|':>12s} "
+                     f"{'stationary':>10s} {'gradient norm':>13s}")
     for o in opt:
         dt = "best" if o["optimum"] == 0 else f"{o['max_abs_delta_theta']:.3g}"
         lines.append(f"  {o['optimum'] + 1:>3d} {o['objective']:18.8f} {o['log_likelihood']:18.8f} {o['count']:>6d} "
@@ -589,6 +640,9 @@ def format_optima(section: Mapping[str, Any]) -> str:
     if ties:
         lines.append(f"  {len(ties)} other optim{'um has' if len(ties) == 1 else 'a have'} the best objective with "
                      f"different CPTs: parameters not identified by the data (a flat ridge) or equally high optima")
+    for u in section.get("not_converged") or []:
+        lines.append(f"  start {u['start'] + 1} did not converge (not an optimum): objective {u['objective']:.8f}, "
+                     f"gradient norm {u['gradient_norm']:.3e}" + ("; above the best converged objective" if u.get("above_best") else ""))
     if section.get("n_failed"):
         lines.append(f"  {section['n_failed']} start(s) ended with a non-finite objective")
     return "\n".join(lines)

@@ -116,20 +116,135 @@ def test_saddle_point_gives_different_optima(st_case):
     assert chk["fit"]["gradient_norm"] < 1e-9
 
 
-def test_not_converged_verdicts():
+def test_fit_not_converged_names_the_fit():
+    # the fit's own flag, at the closed-form MLE (linkage data: DLR 1977, Rao 1973; EM from it
+    # does not climb) and at a point far from it (EM climbs: the detail says so)
     net, df = linkage_one_parameter()
     data = encode_frame(net, df, count_column="count")
-    far = {"g": np.array([0.3, 0.7])}
-    # the fit says it did not converge
-    chk = em_check(_as_fit(net, data, far, converged=False), data)
-    assert chk["verdict"] == "not-converged" and "the fit did not meet" in chk["detail"]
-    # the fit claims convergence at a point that is not a maximum: EM from it climbs
-    chk = em_check(_as_fit(net, data, far, converged=True), data)
-    assert chk["verdict"] == "not-converged" and "climbed" in chk["detail"]
-    # EM given too few iterations
+    pi = linkage_mle()
+    chk = em_check(_as_fit(net, data, {"g": np.array([pi, 1 - pi])}, converged=False), data)
+    assert chk["verdict"] == "fit-not-converged", format_em_check(chk)
+    assert chk["runs_not_converged"] == ["fit"] and "did not climb" in chk["detail"]
+    assert abs(chk["climb_from_fit"]) <= chk["tolerances"]["objective_abs"]
+    chk = em_check(_as_fit(net, data, {"g": np.array([0.3, 0.7])}, converged=False), data)
+    assert chk["verdict"] == "fit-not-converged" and "climbed" in chk["detail"], format_em_check(chk)
+    assert chk["climb_from_fit"] > 1.0
+
+
+def test_fit_not_at_maximum_when_em_from_the_answer_climbs():
+    # the fit claims convergence at a point that is not a maximum (π = 0.3 against the closed-form
+    # π* = 0.6268: Rao 1973 via DLR 1977): EM from it climbs to the closed-form log-likelihood
+    net, df = linkage_one_parameter()
+    data = encode_frame(net, df, count_column="count")
+    far = _as_fit(net, data, {"g": np.array([0.3, 0.7])}, converged=True)
+    chk = em_check(far, data)
+    assert chk["verdict"] == "fit-not-at-maximum", format_em_check(chk)
+    assert chk["runs_not_converged"] == [] and "stopped short" in chk["detail"]
+    pi = linkage_mle()
+    ll_star = 125 * np.log((2 + pi) / 4) + 38 * np.log((1 - pi) / 4) + 34 * np.log(pi / 4)  # DLR's multinomial
+    assert chk["em_from_fit"]["log_likelihood"] == pytest.approx(ll_star, rel=1e-9)
+    assert chk["climb_from_fit"] == pytest.approx(ll_star - far.log_likelihood, rel=1e-9)
+
+
+def test_boundary_trap_is_blamed_on_the_fit(st_case):
+    # Goodman's two-class optimum (Stouffer-Toby) with P(item1 = + | k1) pushed to 1e-13: in logits
+    # that cell's gradient N - θN(u) is ~1e-11, but the likelihood rises if it grows (EM's ratio
+    # N/(θ N(u)) > 1: the simplex KKT condition fails, Boyd & Vandenberghe 2004 §5.5.3). EM from
+    # that point multiplies the cell up and climbs back to the optimum.
+    net, data, res = st_case
+    probs = {k: v.copy() for k, v in res.probs.items()}
+    k = int(np.argmax(probs["item1"][:, 0]))  # the class where item1 = + is likely
+    probs["item1"][k] = [1e-13, 1 - 1e-13]
+    trap = _as_fit(net, data, probs, converged=True)
+    chk = em_check(trap, data, seed=3)
+    assert chk["verdict"] == "fit-not-at-maximum", format_em_check(chk)
+    assert chk["em_from_fit"]["objective_value"] == pytest.approx(res.log_likelihood, rel=1e-8)
+
+
+def test_em_from_fit_not_converged_does_not_blame_the_fit():
+    # a point 1e-5 from the closed-form MLE: the objective is within the tolerance (the climb is
+    # about I_obs·δ²/2 ~ 1e-7 with I_obs from the closed form), but one EM step cannot meet EM's
+    # stopping rule (it needs three objective values to project the remaining rise)
+    net, df = linkage_one_parameter()
+    data = encode_frame(net, df, count_column="count")
+    pi = linkage_mle() + 1e-5
+    chk = em_check(_as_fit(net, data, {"g": np.array([pi, 1 - pi])}), data, max_iter=1)
+    assert chk["verdict"] == "em-from-fit-not-converged", format_em_check(chk)
+    assert chk["runs_not_converged"] == ["em_from_fit", "em_own_start"]
+    assert 0 <= chk["climb_from_fit"] <= chk["tolerances"]["objective_abs"]
+    assert "nothing speaks against the fit" in chk["detail"] and "also: EM from its own start" in chk["detail"]
+    assert chk["tolerances"]["em_max_iter"] == 1
+
+
+def test_em_own_start_not_converged_when_only_its_cap_is_hit():
+    # the issue's case: EM from the fit's answer (the closed-form MLE) agrees at once, EM from its
+    # own random start hits a cap of 2 iterations; the verdict names EM's own start, not the fit
+    net, df = linkage_one_parameter()
+    data = encode_frame(net, df, count_column="count")
     pi = linkage_mle()
     chk = em_check(_as_fit(net, data, {"g": np.array([pi, 1 - pi])}), data, max_iter=2)
-    assert chk["verdict"] == "not-converged" and "own start did not converge" in chk["detail"]
+    assert chk["verdict"] == "em-own-start-not-converged", format_em_check(chk)
+    assert chk["runs_not_converged"] == ["em_own_start"] and chk["em_from_fit"]["converged"]
+    assert "own start did not converge in 2 iterations" in chk["detail"]
+    # the same check with the default cap agrees
+    assert em_check(_as_fit(net, data, {"g": np.array([pi, 1 - pi])}), data)["verdict"] == "agree"
+    with pytest.raises(OptionError, match="iteration cap"):
+        em_check(_as_fit(net, data, {"g": np.array([pi, 1 - pi])}), data, max_iter=0)
+
+
+def test_every_verdict_is_documented():
+    # each verdict is listed and explained in the user guide and in the method notes
+    from pathlib import Path
+
+    from adfit.crosscheck import VERDICT_MEANING, VERDICTS
+
+    docs = Path(__file__).resolve().parents[1] / "docs"
+    guide, method = (docs / "user-guide.md").read_text(), (docs / "method.md").read_text()
+    assert set(VERDICTS) == set(VERDICT_MEANING)
+    for v in VERDICTS:
+        assert f"`{v}`" in guide, v
+        assert f"`{v}`" in method, v
+
+
+def _tiny_missing_parent(tmp_path):
+    """x -> y, both binary; x missing in 7 of 27 records (EM converges linearly, not in 3 steps)."""
+    (tmp_path / "net.toml").write_text('[nodes.x]\nstates = ["no", "yes"]\n[nodes.y]\nstates = ["lo", "hi"]\n'
+                                       'parents = ["x"]\n')
+    rows = ["x,y"] + ["no,lo"] * 7 + ["no,hi"] * 3 + ["yes,hi"] * 6 + [",hi"] * 4 + [",lo"] * 3 + ["yes,lo"] * 2 + ["no,"] * 2
+    (tmp_path / "d.csv").write_text("\n".join(rows) + "\n")
+    return tmp_path / "net.toml", tmp_path / "d.csv"
+
+
+def test_cli_em_max_iter_names_the_run_that_hit_the_cap(tmp_path):
+    from typer.testing import CliRunner
+
+    from adfit.cli import app
+
+    net, csv = _tiny_missing_parent(tmp_path)
+    out = tmp_path / "f.json"
+    args = ["fit", str(net), str(csv), "--out", str(out), "--em-check", "--no-errors", "-q"]
+    r = CliRunner().invoke(app, args + ["--em-max-iter", "3"])
+    assert r.exit_code == 0, r.output
+    chk = json.loads(out.read_text())["em_check"]
+    # EM converges linearly (DLR 1977 §3): from a random start, 3 steps are too few for a
+    # projected rise below 1e-10 relative; from the converged fit one step suffices
+    assert chk["verdict"] == "em-own-start-not-converged", chk["detail"]
+    assert chk["tolerances"]["em_max_iter"] == 3 and chk["em_own_start"]["iterations"] == 3
+    assert chk["em_from_fit"]["converged"]
+    r = CliRunner().invoke(app, args)
+    assert r.exit_code == 0, r.output
+    chk = json.loads(out.read_text())["em_check"]
+    assert chk["verdict"] == "agree" and chk["tolerances"]["em_max_iter"] == 5000, chk["detail"]
+    r = CliRunner().invoke(app, args + ["--em-max-iter", "0"])
+    assert r.exit_code == 1 and len(r.stderr.strip().splitlines()) == 1 and "--em-max-iter" in r.stderr, r.output
+    # the same cap through the Python API (fit -> attach_em_check)
+    from adfit.network import load_network
+
+    n = load_network(net)
+    res = fit(n, pd.read_csv(csv, dtype=str, keep_default_na=False), em_check=True, em_max_iter=3)
+    assert res.extras["em_check"]["verdict"] == "em-own-start-not-converged"
+    with pytest.raises(OptionError, match="em_max_iter="):
+        fit(n, pd.read_csv(csv, dtype=str, keep_default_na=False), em_check=True, em_max_iter=0)
 
 
 def test_flat_row_gives_different_parameters():

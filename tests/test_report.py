@@ -617,3 +617,33 @@ def test_renders_in_headless_chromium(case, tmp_path):
         assert im.size == (1200, 2000)
         px = np.asarray(im.convert("L"), dtype=float)
     assert (px < 128).mean() > 0.01  # text and figures drawn, not a blank page
+
+
+def test_report_sets_unconverged_starts_apart_and_explains_the_new_verdicts(case):
+    # one start marked as not converged, rebuilt by adfit.restarts.summarise_optima's rule: the
+    # report says how many converged, lists the other apart, and gives each verdict's meaning
+    from adfit.crosscheck import VERDICT_MEANING
+
+    doc = copy.deepcopy(case["doc"])
+    sec = doc["restarts"]
+    sec["starts"][1]["converged"] = False
+    sec["starts"][1]["optimum"] = None
+    sec.update(n_converged=1, not_converged=[{"start": 1, "objective": sec["starts"][1]["objective"],
+                                              "gradient_norm": 3.0, "residual": 0.1, "above_best": False}],
+               starts_at_best_objective=1, best_objective_tolerance=5e-4)
+    for o in sec["optima"]:
+        o["starts"] = [s for s in o["starts"] if s != 1]
+    sec["optima"] = [o for o in sec["optima"] if o["starts"]]
+    doc["em_check"]["verdict"] = "em-own-start-not-converged"
+    conv = section(parse(render_report(doc)), "convergence")
+    text = conv.text()
+    assert "1 of 2 starts converged" in text and "Did not converge (not counted as optima): start 1" in text
+    cells = [td.text() for td in conv.find("table", cls="starts").find("tbody").find_all("tr")[1].find_all("td")]
+    assert "none (did not converge)" in cells
+    for verdict, meaning in VERDICT_MEANING.items():
+        doc["em_check"]["verdict"] = verdict
+        p = section(parse(render_report(doc)), "em-check").find("p", cls="verdict").text()
+        assert verdict in p and meaning[1:40] in p
+    doc["em_check"]["verdict"] = "not-converged"  # a result of an earlier version
+    p = section(parse(render_report(doc)), "em-check").find("p", cls="verdict").text()
+    assert "earlier version" in p

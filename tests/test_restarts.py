@@ -319,3 +319,51 @@ def test_cli_fit_restarts_prints_the_optima(tmp_path, st3):
         assert f"{o['objective']:18.8f}" in r.output
     assert "only 1 of 3 starts" in r.output  # the warning line
     assert max(x.value for x in runs) == pytest.approx(doc["objective_value"], rel=1e-9)
+
+
+# ============================================================================ honest summaries
+def test_distinct_optima_exclude_starts_that_did_not_converge(st2):
+    # End points built by hand at Goodman's two-class optimum (Goodman 1974, Stouffer-Toby; the
+    # batched starts reach it): the optimum as found, the classes swapped (the same optimum), and
+    # one P(+ | class) moved to 1/2 (not a maximum). Whether a start converged is the caller's
+    # word (its stopping rule); a start that did not is not an optimum.
+    net, data, fitter, starts = st2
+    rb, fb = run_starts(fitter, starts)
+    p = fb[0]["probs"]
+    swapped = {name: arr[::-1].copy() for name, arr in p.items()}
+    moved = {name: arr.copy() for name, arr in p.items()}
+    moved["item4"][0] = [0.5, 0.5]
+    finals = [fitter.evaluate(logits_from_probs(net, q)) for q in (p, moved, swapped)]
+    kw = dict(gtol_abs=1e-9 * data.n_rows, ptol=1e-8)
+    everything = summarise_optima(net, finals, **kw)  # no convergence given: every end point counts
+    assert len(everything["optima"]) == 2 and everything["starts_at_best_objective"] == 2
+    s = summarise_optima(net, finals, converged=[True, False, True], **kw)
+    assert len(s["optima"]) == 1 and s["optima"][0]["starts"] == [0, 2]
+    assert s["start_optimum"] == [0, None, 0] and s["n_converged"] == 2
+    assert [u["start"] for u in s["not_converged"]] == [1] and not s["not_converged"][0]["above_best"]
+    assert s["starts_at_best_objective"] == 2 and local_optima_message(s) is None
+    # the tolerance on "the best objective": 1e-6 x max(1, |F|) (module docstring)
+    best = float(finals[0]["objective"])
+    assert s["best_objective"] == pytest.approx(best, rel=1e-13)
+    assert s["best_objective_tolerance"] == pytest.approx(1e-6 * abs(best), rel=1e-12)
+    # only one converged start at the best (the other stopped short): the warning is due, and
+    # says how many did not converge
+    s = summarise_optima(net, finals, converged=[True, False, False], **kw)
+    assert s["starts_at_best_objective"] == 1 and s["n_converged"] == 1
+    msg = local_optima_message(s)
+    assert msg is not None and "only 1 of 3 starts" in msg and "2 did not converge" in msg
+    # the optimum itself unconverged, the moved point converged: the unconverged start ended
+    # above the best converged objective, and the kept start is not an optimum
+    s = summarise_optima(net, finals, converged=[False, True, False], best=0, **kw)
+    assert [o["starts"] for o in s["optima"]] == [[1]] and s["kept_start_is_optimum"] is False
+    assert all(u["above_best"] for u in s["not_converged"])
+    assert "stopped above it" in local_optima_message(s)
+    # objectives within the tolerance of the best count as reaching it; beyond it they do not
+    near = [dict(finals[0], objective=best - 0.4e-6 * abs(best)),
+            dict(finals[0], objective=best - 3e-6 * abs(best)), finals[0]]
+    s = summarise_optima(net, near, converged=[True, True, True], **kw)
+    assert s["starts_at_best_objective"] == 2 and len(s["optima"]) == 2
+    # none converged: no optimum, and the warning says so
+    s = summarise_optima(net, finals, converged=[False, False, False], **kw)
+    assert s["optima"] == [] and s["starts_at_best_objective"] == 0
+    assert "none of the 3 starts converged" in local_optima_message(s)

@@ -220,33 +220,95 @@ class RichReporter(Reporter):
         self._progress.remove_task(task)
 
 
-def fit_progress(reporter: Reporter, label: str, restarts: int) -> tuple[Callable, Callable]:
+class LineReporter(Reporter):
+    """Progress as plain lines (stderr that is not a terminal: a log file, a pipe, a test).
+
+    A line is written when a task that received updates ends (a start of the fit: its last
+    description and its iterations) and when a stage ends (its description and its duration);
+    nothing is written for a task that never moved, nor, once :attr:`silent` is set (a command
+    that fails), at all, so that an error stays a single line.
+    """
+
+    def __init__(self, write: Callable[[str], None]):
+        self._write = write
+        self._tasks: dict[int, dict[str, Any]] = {}
+        self._next = 0
+        self.silent = False
+
+    def begin(self, description: str, total: float | None = None) -> int:
+        self._next += 1
+        self._tasks[self._next] = {"description": description, "completed": None, "updated": False}
+        return self._next
+
+    def update(self, task: int, *, advance: float | None = None, completed: float | None = None,
+               total: float | None = None, description: str | None = None) -> None:
+        t = self._tasks.get(task)
+        if t is None:
+            return
+        t["updated"] = True
+        if description is not None:
+            t["description"] = description
+        if completed is not None:
+            t["completed"] = completed
+        elif advance is not None:
+            t["completed"] = (t["completed"] or 0) + advance
+
+    def end(self, task: int) -> None:
+        t = self._tasks.pop(task, None)
+        if t is None or not t["updated"] or self.silent:
+            return
+        n = t["completed"]
+        self._write(t["description"] + ("" if n is None else f", {n:g} iteration{'' if n == 1 else 's'}"))
+
+    @contextmanager
+    def stage(self, description: str) -> Iterator[int]:
+        import time
+
+        t0 = time.perf_counter()
+        task = self.begin(description)
+        try:
+            yield task
+        finally:
+            self._tasks.pop(task, None)
+        if not self.silent:
+            self._write(f"{description} ({time.perf_counter() - t0:.1f} s)")
+
+
+def fit_progress(reporter: Reporter, label: str, restarts: int | None) -> tuple[Callable, Callable]:
     """``(callback for fit(progress=...), close)``: one line per start with its iterations.
 
     The starts may run side by side (the callback is then called from several threads, in any
-    order), so each start gets its own line, made at its first iteration.
+    order), so each start gets its own line, made at its first iteration and named by the
+    start's own index (``start 3 of 4``); ``close`` ends the lines in the order of the starts.
+    ``restarts`` is the number of starts (None when not known in advance: the lines then say
+    ``start 3``); a start index beyond it is shown without the total rather than as
+    ``start 5 of 4``.
     """
     import threading
 
     lock = threading.Lock()
     lines: dict[int, int] = {}
-    waiting = reporter.begin(f"{label}: preparing {restarts} start{'s' if restarts > 1 else ''}", total=None)
+    n = f"{restarts} start{'s' if restarts != 1 else ''}" if restarts else "the starts"
+    waiting = reporter.begin(f"{label}: preparing {n}", total=None)
+
+    def name(start: int) -> str:
+        return f"{label}: start {start + 1}" + (f" of {restarts}" if restarts and start < restarts else "")
 
     def callback(start: int, iteration: int, objective: float, gradient_norm: float) -> None:
         with lock:
             if start not in lines:
-                lines[start] = reporter.begin(f"{label}: start {start + 1} of {restarts}", total=None)
+                lines[start] = reporter.begin(name(start), total=None)
                 if len(lines) == 1:
                     reporter.end(waiting)
             reporter.update(lines[start], completed=iteration,
-                            description=f"{label}: start {start + 1} of {restarts}, objective {objective:,.2f}")
+                            description=f"{name(start)}, objective {objective:,.2f}")
 
     def close() -> None:
         with lock:
             if not lines:
                 reporter.end(waiting)
-            for task in lines.values():
-                reporter.end(task)
+            for start in sorted(lines):
+                reporter.end(lines[start])
             lines.clear()
 
     return callback, close
@@ -455,11 +517,14 @@ def run_demo(out_dir: str | Path = DEFAULT_OUT, *, restarts: int = DEFAULT_RESTA
         if isinstance(rows, Mapping):  # the restarts section: {"starts": [...], "optima": [...], ...}
             rows = rows.get("starts", [])
         best = result.objective_value
-        same = sum(1 for r in rows if r.get("objective") is not None
-                   and abs(r["objective"] - best) <= 1e-6 * max(1.0, abs(best)))
-        others = sorted({round(r["objective"], 2) for r in rows if r.get("objective") is not None
-                         and abs(r["objective"] - best) > 1e-6 * max(1.0, abs(best))}, reverse=True)
-        note = (f"MAP with the expert table on {EXPERT_NODE}; {len(rows)} starts, {same} of them reached the best "
+        # converged starts only: one that stopped short is not an optimum (adfit.restarts)
+        conv_rows = [r for r in rows if r.get("objective") is not None and r.get("converged", True)]
+        same = sum(1 for r in conv_rows if abs(r["objective"] - best) <= 1e-6 * max(1.0, abs(best)))
+        others = sorted({round(r["objective"], 2) for r in conv_rows
+                         if abs(r["objective"] - best) > 1e-6 * max(1.0, abs(best))}, reverse=True)
+        n_unconv = len(rows) - len(conv_rows)
+        note = (f"MAP with the expert table on {EXPERT_NODE}; {len(rows)} starts"
+                + (f" ({n_unconv} did not converge)" if n_unconv else "") + f", {same} of them reached the best "
                 f"objective {best:,.2f}" + (f" (the others stopped at {', '.join(f'{o:,.2f}' for o in others)}: "
                                             f"local optima, which is why several starts are made)" if others else "")
                 + ("; converged" if result.converged else f"; NOT converged ({result.stop_reason})"))
@@ -475,10 +540,9 @@ def run_demo(out_dir: str | Path = DEFAULT_OUT, *, restarts: int = DEFAULT_RESTA
         with rep.stage("EM cross-check (independent numpy EM)"):
             result = attach_em_check(result, coded, pseudo_counts=pseudo, seed=seed)
         chk = result.extras["em_check"]
-        meaning = {"agree": "the independent EM reaches the same optimum",
-                   "disagree-different-optima": "EM found a different optimum; more starts are needed",
-                   "disagree-different-parameters": "same objective, different CPTs: some parameters are not pinned down",
-                   "not-converged": "a run did not converge"}[chk["verdict"]]
+        from ..crosscheck import VERDICT_MEANING
+
+        meaning = VERDICT_MEANING[chk["verdict"]]
         outcome.numbers["em_check"] = {"verdict": chk["verdict"], "max_abs_delta_theta": chk["max_abs_delta_theta"]}
         timed("em_check", "done", f"{chk['verdict']}: {meaning} (largest CPT difference {chk['max_abs_delta_theta']:.1e})", t0)
 
