@@ -73,8 +73,22 @@ def user_errors():
         fail(str(e))
 
 
+def exit_on_sigterm() -> None:
+    """SIGTERM ends the process as SystemExit(143): finally blocks run, temporary files are removed."""
+    import signal
+
+    def _terminate(signum, frame):
+        raise SystemExit(128 + signum)
+
+    try:
+        signal.signal(signal.SIGTERM, _terminate)
+    except ValueError:  # not the main thread
+        pass
+
+
 def main() -> None:
     """Console-script entry point: run the app, turning AdfitError into one line and exit 1."""
+    exit_on_sigterm()
     from ._compile_cache import request_compilation_cache
     # compiled programs kept on disk between runs (ADFIT_COMPILE_CACHE=0: off); switched on when
     # a command imports JAX (adfit/_jax.py), so that --help does not pay for importing it
@@ -90,9 +104,9 @@ def main() -> None:
         sys.exit(1)
     except typer.Exit as e:
         sys.exit(e.exit_code)
-    except typer.Abort:
-        typer.echo("adfit: aborted", err=True)
-        sys.exit(1)
+    except (typer.Abort, KeyboardInterrupt):  # click turns Ctrl-C into Abort
+        typer.echo("adfit: interrupted; a file being written was left as it was", err=True)
+        sys.exit(130)
     except Exception as e:  # usage errors of the click layer (typer may ship its own copy)
         if hasattr(e, "show") and hasattr(e, "exit_code"):
             e.show()
@@ -199,6 +213,10 @@ def em_command(
     from .result import load_result, write_result
 
     with user_errors():
+        from .io import check_output_paths
+
+        check_output_paths({"out": out}, {"network file": network, "data file": data, "prior file": prior,
+                                          "init file": init})
         net = load_network(network)
         coded = load_data(net, data, missing=missing, count_column=count_column,
                           ignore_columns=split_list(ignore_columns))
@@ -240,17 +258,6 @@ def read_inputs(network: Path, data: Path, *, missing, count_column, ignore_colu
     coded = load_coded(net, data, engine=engine, scheduler=scheduler, missing=missing,
                        count_column=count_column, ignore_columns=split_list(ignore_columns))
     return net, coded
-
-
-def check_output_path(path: Path) -> None:
-    """Fail before the work, not after it, when an output cannot be written."""
-    from .errors import AdfitError
-
-    parent = path.parent if str(path.parent) else Path(".")
-    if not parent.is_dir():
-        raise AdfitError(f"{path}: output folder {parent} does not exist; create it first")
-    if path.is_dir():
-        raise AdfitError(f"{path}: is a folder; give a file name for the output")
 
 
 def format_cpts(result, *, digits: int = 3, names=None) -> str:
@@ -320,6 +327,9 @@ def fit_command(
     from .result import write_result
 
     with user_errors():
+        from .io import check_output_paths
+
+        check_output_paths({"out": out}, {"network file": network, "data file": data, "prior file": prior})
         net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
                                  ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
         pri = None
@@ -340,7 +350,6 @@ def fit_command(
 
         FitSettings(method=method, tol=tol, gtol=gtol, max_iter=max_iter, learning_rate=learning_rate,
                     l2=l2, batch_size=batch_size).validate()
-        check_output_path(out)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             with _progress(quiet, restarts) as (callback, reporter):
@@ -351,10 +360,11 @@ def fit_command(
         if not quiet:
             typer.echo(result.summary())
             typer.echo(f"elimination route: {result.settings.get('route')}")
-            if restarts > 1:
+            section = result.extras.get("restarts")
+            if isinstance(section, dict) and section.get("n_starts", 1) > 1:  # however many fit() ran
                 from .restarts import format_optima
 
-                typer.echo(format_optima(result.extras["restarts"]))
+                typer.echo(format_optima(section))
         # error bars first: the complete-case comparison reports differences in their units
         from .uncertainty import cli_errors
 
@@ -522,12 +532,14 @@ def show_command(
     from .show import render
 
     with user_errors():
+        from .io import check_output_paths
+
+        check_output_paths({"out": out}, {"result file": result})
         res = load_result(result)
         text = render(res, fmt, node or None, digits=digits, title=f"CPTs fixed at the estimates of {result.name}")
         if out is None:
             typer.echo(text.rstrip("\n"))
         else:
-            check_output_path(out)
             with atomic_write(out) as fh:
                 fh.write(text)
             typer.echo(f"wrote {out}")
@@ -571,6 +583,9 @@ def impute_command(
     from .result import load_result
 
     with user_errors():
+        from .io import check_output_paths
+
+        check_output_paths({"out": out}, {"network file": network, "data file": data, "params file": params})
         net = load_network(network)
         res = load_result(params, net)
         imp, _ = impute_file(net, res.probs, data, out, draws=draws, seed=seed,
@@ -677,6 +692,10 @@ def demo_command(
     from .demo import Reporter, RichReporter, run_demo
 
     with user_errors():
+        from .demo import DATA_FILE, FIT_FILE, IMPUTED_FILE, NETWORK_FILE, PRIOR_FILE, REPORT_FILE
+        from .io import check_output_folder
+
+        check_output_folder("out", out, [NETWORK_FILE, PRIOR_FILE, DATA_FILE, FIT_FILE, IMPUTED_FILE, REPORT_FILE])
         reporter = Reporter() if (quiet or as_json) else RichReporter()
         outcome = run_demo(out, restarts=restarts, seed=seed, reporter=reporter)
         for w in outcome.warnings:
@@ -720,6 +739,9 @@ def report_command(
     from .report import write_report
 
     with user_errors():
+        from .io import check_output_paths
+
+        check_output_paths({"out": out}, {"result file": result, "data file": data})
         write_report(out, result, data=data, missing=missing, count_column=count_column,
                      ignore_columns=split_list(ignore_columns), engine=engine, scheduler=scheduler, title=title)
         typer.echo(f"wrote {out}")

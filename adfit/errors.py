@@ -35,6 +35,11 @@ class OptionError(AdfitError):
     """An option value is out of range or inconsistent with another option."""
 
 
+class OutputError(OptionError):
+    """An output path cannot be written safely: it is an input, lies inside a data folder that is
+    read, is a folder, link, device or pipe, or its folder is missing or not writable."""
+
+
 class ConvergenceWarning(UserWarning):
     """The optimiser stopped before its stopping rule held; the estimate may not be a maximum."""
 

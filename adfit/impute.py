@@ -334,11 +334,10 @@ def impute_file(network: Network, probs: Mapping[str, np.ndarray], data: str | P
         ``(imputation, the written table)``.
     """
     from .data import load_files, read_table, resolve_inputs
-    from .io import atomic_write
+    from .io import atomic_write, check_output_paths
 
+    check_output_paths({"out": out}, {"data file": data})
     files, _ = resolve_inputs(data)
-    if any(Path(out).resolve() == f.resolve() for f in files):
-        raise OptionError(f"--out {out} is the data file itself; write the imputed table to another file")
     ignore = list(ignore_columns)
     if count_column is not None:
         if count_column in network:

@@ -428,9 +428,10 @@ def test_cli_em_writes_result_and_fails_in_one_line(tmp_path):
     assert doc["log_likelihood"] == pytest.approx(ref.log_likelihood, rel=1e-14)
     assert "rate of convergence 0.90" in r.output  # Stouffer-Toby: about 0.905 (this EM)
     # starting from that result, EM stays
-    r = runner.invoke(app, ["em", str(toml), str(csv), "--count-column", "count", "--out", str(out),
+    again = tmp_path / "em2.json"  # (the start file itself is an input: never overwritten)
+    r = runner.invoke(app, ["em", str(toml), str(csv), "--count-column", "count", "--out", str(again),
                             "--init", str(out)])
-    assert r.exit_code == 0 and json.loads(out.read_text())["iterations"] <= 3
+    assert r.exit_code == 0 and json.loads(again.read_text())["iterations"] <= 3
     # a bad input: one line on stderr, exit code 1, no file written
     bad = tmp_path / "bad.json"
     r = runner.invoke(app, ["em", str(toml), str(csv), "--out", str(bad)])

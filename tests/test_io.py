@@ -23,3 +23,211 @@ def test_atomic_write_leaves_old_file_on_error_and_uses_the_umask(tmp_path):
     umask = os.umask(0)
     os.umask(umask)
     assert stat.S_IMODE(target.stat().st_mode) == 0o666 & ~umask
+
+
+# ============================================================================ no input is overwritten
+# Issue 17 found that `--out` could name an input and replace it (exit 0). Every command that
+# writes checks its outputs first (adfit.io.check_output_paths); these run the real commands.
+import signal
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+from typer.testing import CliRunner
+
+from adfit.cli import app
+from adfit.errors import OutputError
+from adfit.io import check_output_paths, remove_stale_temps, temp_name
+
+NET = ('[nodes.wear]\nstates = ["light", "heavy"]\n'
+       '[nodes.failure]\nstates = ["no", "yes"]\nparents = ["wear"]\n')
+RECORDS = "wear,failure\nlight,no\nheavy,yes\n,no\nlight,\nheavy,no\nlight,no\n"
+PRIOR = '[nodes.failure]\npseudo_counts = [[1, 1], [1, 1]]\n'
+
+
+def cli(args):
+    return CliRunner().invoke(app, [str(a) for a in args])
+
+
+@pytest.fixture(scope="module")
+def inputs(tmp_path_factory):
+    """Network, records, prior and a result file made by `adfit em` on them (the control run)."""
+    d = tmp_path_factory.mktemp("io")
+    (d / "n.toml").write_text(NET)
+    (d / "d.csv").write_text(RECORDS)
+    (d / "p.toml").write_text(PRIOR)
+    r = cli(["em", d / "n.toml", d / "d.csv", "--out", d / "r.json"])
+    assert r.exit_code == 0, r.output
+    return d
+
+
+def snapshot(folder: Path) -> dict[str, bytes]:
+    return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*"))
+            if p.is_file() and not p.is_symlink()}
+
+
+def assert_refused(folder: Path, args, *words):
+    before = snapshot(folder)
+    r = cli(args)
+    assert r.exit_code == 1, r.output
+    assert r.output.count("\n") == 1 and r.output.startswith("adfit: error: "), r.output
+    assert "Traceback" not in r.output
+    assert r.exception is None or isinstance(r.exception, SystemExit), r.exception
+    for w in words:
+        assert w in r.output, r.output
+    assert snapshot(folder) == before  # inputs byte for byte, and nothing new written
+    assert not [p for p in folder.rglob("*") if ".adfit-" in p.name]  # no temporary file left
+    return r.output
+
+
+def test_every_writing_command_refuses_to_overwrite_an_input(inputs):
+    d = inputs
+    n, data, res, pri = d / "n.toml", d / "d.csv", d / "r.json", d / "p.toml"
+    fit = ["fit", n, data, "-q"]
+    assert_refused(d, fit + ["--out", data], "--out", "is the data file itself", "the records")
+    assert_refused(d, fit + ["--out", n], "is the network file itself")
+    assert_refused(d, fit + ["--prior", pri, "--out", pri], "is the prior file itself")
+    assert_refused(d, ["em", n, data, "--out", data], "is the data file itself")
+    assert_refused(d, ["em", n, data, "--init", res, "--out", res], "is the init file itself")
+    imp = ["impute", n, data, "--params", res]
+    assert_refused(d, imp + ["--out", res], "is the params file itself")
+    assert_refused(d, imp + ["--out", n], "is the network file itself")
+    assert_refused(d, imp + ["--out", data], "data file itself")  # the message test_impute.py checks
+    assert_refused(d, ["report", res, "--out", res], "is the result file itself")
+    assert_refused(d, ["report", res, "--data", data, "--out", data], "is the data file itself")
+    assert_refused(d, ["show", res, "--out", res], "is the result file itself")
+    # the same file under another spelling or another name (hard link: same device and inode)
+    assert_refused(d, fit + ["--out", d / "." / ".." / d.name / "d.csv"], "is the data file itself")
+    link = d / "hard.csv"
+    os.link(data, link)
+    try:
+        assert_refused(d, ["em", n, link, "--out", data], "is the data file itself")
+    finally:
+        link.unlink()
+    # control: the same commands with a fresh output file work (so the refusals are not blanket ones)
+    r = cli(imp + ["--out", d / "ok.csv"])
+    assert r.exit_code == 0 and (d / "ok.csv").exists(), r.output
+    (d / "ok.csv").unlink()
+
+
+def test_outputs_inside_a_data_folder_or_matching_a_data_glob_are_refused(inputs, tmp_path):
+    n, res = inputs / "n.toml", inputs / "r.json"
+    (tmp_path / "parts").mkdir()
+    (tmp_path / "parts" / "a.csv").write_text(RECORDS)
+    assert_refused(tmp_path, ["impute", n, tmp_path / "parts", "--params", res, "--out", tmp_path / "parts" / "b.csv"],
+                   "inside the data folder")
+    assert_refused(tmp_path, ["impute", n, str(tmp_path / "parts" / "*.csv"), "--params", res,
+                              "--out", tmp_path / "parts" / "new.csv"], "matches the data pattern")
+    assert_refused(tmp_path, ["fit", n, tmp_path / "parts", "--out", tmp_path / "parts" / "fit.json"],
+                   "inside the data folder")
+
+
+def test_folders_links_devices_and_unwritable_places_are_refused_before_any_work(inputs, tmp_path):
+    n, data, res = inputs / "n.toml", inputs / "d.csv", inputs / "r.json"
+    work = tmp_path
+    (work / "other.json").write_text("keep")
+    # a folder (`--out .`), for each command that writes a file
+    for args in (["fit", n, data], ["em", n, data], ["impute", n, data, "--params", res], ["report", res],
+                 ["show", res]):
+        assert_refused(work, args + ["--out", work], "is a folder")
+    # a symbolic link: refused, and neither the link nor its target is touched
+    (work / "link.json").symlink_to(work / "other.json")
+    assert_refused(work, ["em", n, data, "--out", work / "link.json"], "symbolic link")
+    assert (work / "link.json").is_symlink() and (work / "other.json").read_text() == "keep"
+    # a dangling link too
+    (work / "dangling.json").symlink_to(work / "nowhere.json")
+    assert_refused(work, ["show", res, "--out", work / "dangling.json"], "symbolic link")
+    assert not (work / "nowhere.json").exists()
+    # a device node and a pipe: never replaced by a regular file
+    assert_refused(work, ["em", n, data, "--out", "/dev/null"], "not a regular file")
+    assert Path("/dev/null").is_char_device()
+    os.mkfifo(work / "pipe")
+    assert_refused(work, ["report", res, "--out", work / "pipe"], "not a regular file")
+    # a folder that does not exist
+    assert_refused(work, ["fit", n, data, "--out", work / "no" / "fit.json"], "does not exist")
+    # demo: --out must be a folder, its files must not be links
+    (work / "afile").write_text("x")
+    assert_refused(work, ["demo", "-q", "--out", work / "afile"], "not a folder")
+    (work / "demo").mkdir()
+    (work / "demo" / "fit.json").symlink_to(work / "other.json")
+    assert_refused(work, ["demo", "-q", "--out", work / "demo"], "symbolic link")
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root can write into a read-only folder anyway")
+def test_a_read_only_folder_is_refused_before_the_work(inputs, tmp_path):
+    n, data = inputs / "n.toml", inputs / "d.csv"
+    ro = tmp_path / "ro"
+    ro.mkdir()
+    ro.chmod(0o555)
+    try:
+        assert_refused(tmp_path, ["em", n, data, "--out", ro / "r.json"], "not writable")
+        assert_refused(tmp_path, ["demo", "-q", "--out", ro / "sub"], "not writable")
+    finally:
+        ro.chmod(0o755)
+
+
+def test_check_output_paths_from_python_names_the_keyword(tmp_path):
+    f = tmp_path / "d.csv"
+    f.write_text("x\n")
+    with pytest.raises(OutputError, match=r"^out='.*d.csv' is the data file itself"):
+        check_output_paths({"out": f}, {"data file": f})
+    with pytest.raises(OutputError, match="name the same file"):
+        check_output_paths({"out": tmp_path / "a", "report": tmp_path / "a"}, {})
+    check_output_paths({"out": tmp_path / "new.csv", "other": None}, {"data file": f, "prior file": None})
+
+
+# ============================================================================ temporary files
+def test_temporary_file_is_named_after_the_target_and_the_process(tmp_path):
+    target = tmp_path / "out.txt"
+    with atomic_write(target) as fh:
+        fh.write("x")
+        assert [p.name for p in tmp_path.iterdir()] == [f".out.txt.adfit-{os.getpid()}.tmp"]
+        assert temp_name(target).exists()
+    assert [p.name for p in tmp_path.iterdir()] == ["out.txt"]
+
+
+def test_stale_temporary_files_of_dead_processes_are_removed_by_the_next_write(tmp_path):
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()  # its id names no running process now
+    target = tmp_path / "fit.json"
+    stale = temp_name(target, dead.pid)
+    stale.write_text("half")
+    mine = temp_name(target)  # this process is alive: its file is not stale
+    other = temp_name(tmp_path / "other.json", dead.pid)  # another target's: not touched
+    mine.write_text("busy")
+    other.write_text("half")
+    assert remove_stale_temps(target) == [stale]
+    assert mine.exists() and other.exists()
+    mine.unlink()
+    stale.write_text("half")
+    with atomic_write(target) as fh:
+        fh.write("{}")
+    assert not stale.exists() and other.exists() and target.read_text() == "{}"
+
+
+@pytest.mark.parametrize("sig, rc", [(signal.SIGTERM, 143), (signal.SIGINT, None)])
+def test_a_terminated_write_removes_its_temporary_file(tmp_path, sig, rc):
+    target = tmp_path / "out.csv"
+    target.write_text("old")
+    script = textwrap.dedent(f"""
+        import sys, time
+        from adfit.cli import exit_on_sigterm
+        from adfit.io import atomic_write
+        exit_on_sigterm()
+        with atomic_write({str(target)!r}) as fh:
+            fh.write("half")
+            fh.flush()
+            print("ready", flush=True)
+            time.sleep(60)
+        """)
+    proc = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    assert proc.stdout.readline().strip() == "ready"
+    assert temp_name(target, proc.pid).exists()
+    proc.send_signal(sig)
+    _, err = proc.communicate(timeout=60)
+    if rc is not None:
+        assert proc.returncode == rc, err
+    else:
+        assert proc.returncode != 0 and "KeyboardInterrupt" in err
+    assert [p.name for p in tmp_path.iterdir()] == ["out.csv"] and target.read_text() == "old"
