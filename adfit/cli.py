@@ -483,16 +483,18 @@ def score_command(
     Example: adfit score gearbox.toml new_records.csv --params fit.json
     """
     import json
+    import math
 
     from .likelihood import Likelihood, check_possible, score
-    from .result import load_result
 
     with user_errors():
         net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
                                  ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
         probs = cpts_of(net, params)
-        check_possible(Likelihood(net, coded), probs)
-        s = score(net, coded, probs)
+        lik = Likelihood(net, coded)  # one plan and one compiled program for the score and the check
+        s = score(net, coded, probs, likelihood=lik)
+        if not math.isfinite(s["log_likelihood"]):
+            check_possible(lik, probs)  # names the records of probability 0 (exit 1)
         out = {"log_likelihood": s["log_likelihood"], "gradient_norm": s["gradient_norm"],
                "n_rows": coded.n_rows, "n_distinct": coded.n_distinct,
                "log_likelihood_per_record": s["log_likelihood"] / coded.n_rows}

@@ -1991,6 +1991,18 @@ def logits_from_probs(network: Network, probs: Mapping[str, np.ndarray], floor: 
     return out
 
 
+def _prepared(likelihood: Likelihood | None, network: Network, data: CodedData, caller: str) -> Likelihood:
+    """``likelihood`` when it was built for ``network`` and ``data``, else a new one (None)."""
+    if likelihood is None:
+        return Likelihood(network, data)
+    other_net = likelihood.network is not network and likelihood.network != network
+    if other_net or likelihood.data is not data:
+        what = "network" if other_net else "data (not the same CodedData object)"
+        raise OptionError(f"{caller}: the likelihood= given was built for another {what}; pass the "
+                          f"Likelihood(network, data) of these arguments, or none")
+    return likelihood
+
+
 def check_possible(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> None:
     """Raise ImpossibleDataError naming the rows with probability zero under ``probs``.
 
@@ -2011,14 +2023,19 @@ def check_possible(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> None:
 
 
 def score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray], *,
-          pseudo_counts: Mapping[str, np.ndarray] | None = None) -> dict[str, float]:
+          pseudo_counts: Mapping[str, np.ndarray] | None = None,
+          likelihood: Likelihood | None = None) -> dict[str, float]:
     """Marginal log-likelihood and gradient norm (w.r.t. the free logits) of given CPTs.
 
     The gradient norm is that of the objective (log-likelihood plus log-prior when
     ``pseudo_counts`` are given): per free node the logit gradient is
     ``N(x,u) + c(x,u) - theta(x|u) (N(u) + c(u))`` in units of records.
+
+    ``likelihood``: a :class:`Likelihood` already built for this ``network`` and this ``data``
+    (the same object), to reuse its plan and compiled program (a command that also checks or
+    evaluates builds one and passes it everywhere); by default one is built here.
     """
-    lik = Likelihood(network, data)
+    lik = _prepared(likelihood, network, data, "score")
     ll, counts = lik.expected_counts(probs)
     gn2 = 0.0
     for name in network.free_names:
