@@ -371,10 +371,11 @@ def fit_command(
         if not quiet:
             typer.echo(result.summary())
             typer.echo(f"elimination route: {result.settings.get('route')}")
-            if restarts > 1:
+            section = result.extras.get("restarts")
+            if isinstance(section, dict) and section.get("n_starts", 1) > 1:  # however many fit() ran
                 from .restarts import format_optima
 
-                typer.echo(format_optima(result.extras["restarts"]))
+                typer.echo(format_optima(section))
         # error bars first: the complete-case comparison reports differences in their units
         from .uncertainty import cli_errors
 

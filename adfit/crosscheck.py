@@ -288,7 +288,8 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
                   f"but the check is incomplete")
     elif not em_own.converged:
         verdict = "em-own-start-not-converged"
-        detail = (f"EM from the fit's answer agreed (converged in {em_fit_start.iterations} iteration{'' if em_fit_start.iterations == 1 else 's'}, climbing "
+        its = f"{em_fit_start.iterations} iteration{'' if em_fit_start.iterations == 1 else 's'}"
+        detail = (f"EM from the fit's answer agreed (converged in {its}, climbing "
                   f"{max(climb, 0.0):.3g} <= {tol_obj:.3g}); EM from its own start did not converge in "
                   f"{em_own.iterations} iterations {cap}, so the search for another optimum is incomplete")
     elif abs(diff) > tol_obj:
