@@ -100,12 +100,14 @@ def exit_on_sigterm() -> None:
 def main() -> None:
     """Console-script entry point: run the app, turning AdfitError into one line and exit 1."""
     exit_on_sigterm()
-    from .likelihood import enable_compilation_cache
-    enable_compilation_cache()  # compiled programs kept on disk between runs (ADFIT_COMPILE_CACHE=0: off)
+    from ._compile_cache import request_compilation_cache
+    # compiled programs kept on disk between runs (ADFIT_COMPILE_CACHE=0: off); switched on when
+    # a command imports JAX (adfit/_jax.py), so that --help does not pay for importing it
+    request_compilation_cache()
     try:
         from .errors import cli_terms
         with cli_terms():
-            rc = app(standalone_mode=False)
+            rc = app(standalone_mode=False, prog_name="adfit")
         if isinstance(rc, int) and rc:  # without standalone mode, click returns a typer.Exit's code
             sys.exit(rc)
     except AdfitError as e:
@@ -494,16 +496,18 @@ def score_command(
     Example: adfit score gearbox.toml new_records.csv --params fit.json
     """
     import json
+    import math
 
     from .likelihood import Likelihood, check_possible, score
-    from .result import load_result
 
     with user_errors():
         net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
                                  ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
         probs = cpts_of(net, params)
-        check_possible(Likelihood(net, coded), probs)
-        s = score(net, coded, probs)
+        lik = Likelihood(net, coded)  # one plan and one compiled program for the score and the check
+        s = score(net, coded, probs, likelihood=lik)
+        if not math.isfinite(s["log_likelihood"]):
+            check_possible(lik, probs)  # names the records of probability 0 (exit 1)
         out = {"log_likelihood": s["log_likelihood"], "gradient_norm": s["gradient_norm"],
                "n_rows": coded.n_rows, "n_distinct": coded.n_distinct,
                "log_likelihood_per_record": s["log_likelihood"] / coded.n_rows}
@@ -758,3 +762,7 @@ def report_command(
         write_report(out, result, data=data, missing=missing, count_column=count_column,
                      ignore_columns=split_list(ignore_columns), engine=engine, scheduler=scheduler, title=title)
         typer.echo(f"wrote {out}")
+
+
+if __name__ == "__main__":  # python -m adfit.cli
+    main()

@@ -473,8 +473,7 @@ def log_prior_logits(logits: Mapping[str, Any], pseudo_counts: Mapping[str, np.n
 
     Only nodes present in both mappings contribute. Returns a JAX scalar.
     """
-    import jax
-    import jax.numpy as jnp
+    from ._jax import jax, jnp
 
     total = jnp.zeros(())
     for name, z in logits.items():
