@@ -55,6 +55,17 @@ def split_list(value: Optional[str]) -> tuple[str, ...]:
     return tuple(v.strip() for v in value.split(",") if v.strip()) if value else ()
 
 
+SEED_MAX = 2 ** 32 - 1  # numpy's seeds are 32-bit words
+
+
+def check_seed(seed: int) -> None:
+    """Refuse a --seed outside 0..2**32-1 (one line, before any work)."""
+    from .errors import OptionError
+
+    if not 0 <= seed <= SEED_MAX:
+        raise OptionError(f"--seed {seed} is out of range; give a whole number from 0 to {SEED_MAX}")
+
+
 def fail(message: str) -> None:
     """Print one error line and exit 1."""
     typer.echo(f"adfit: error: {message}", err=True)
@@ -215,6 +226,7 @@ def em_command(
     with user_errors():
         from .io import check_output_paths
 
+        check_seed(seed)
         check_output_paths({"out": out}, {"network file": network, "data file": data, "prior file": prior,
                                           "init file": init})
         net = load_network(network)
@@ -329,6 +341,7 @@ def fit_command(
     with user_errors():
         from .io import check_output_paths
 
+        check_seed(seed)
         check_output_paths({"out": out}, {"network file": network, "data file": data, "prior file": prior})
         net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
                                  ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
@@ -587,6 +600,7 @@ def impute_command(
     with user_errors():
         from .io import check_output_paths
 
+        check_seed(seed)
         check_output_paths({"out": out}, {"network file": network, "data file": data, "params file": params})
         net = load_network(network)
         res = load_result(params, net)
@@ -697,6 +711,7 @@ def demo_command(
         from .demo import DATA_FILE, FIT_FILE, IMPUTED_FILE, NETWORK_FILE, PRIOR_FILE, REPORT_FILE
         from .io import check_output_folder
 
+        check_seed(seed)
         check_output_folder("out", out, [NETWORK_FILE, PRIOR_FILE, DATA_FILE, FIT_FILE, IMPUTED_FILE, REPORT_FILE])
         reporter = Reporter() if (quiet or as_json) else RichReporter()
         outcome = run_demo(out, restarts=restarts, seed=seed, reporter=reporter)
