@@ -55,6 +55,17 @@ def split_list(value: Optional[str]) -> tuple[str, ...]:
     return tuple(v.strip() for v in value.split(",") if v.strip()) if value else ()
 
 
+SEED_MAX = 2 ** 32 - 1  # numpy's seeds are 32-bit words
+
+
+def check_seed(seed: int) -> None:
+    """Refuse a --seed outside 0..2**32-1 (one line, before any work)."""
+    from .errors import OptionError
+
+    if not 0 <= seed <= SEED_MAX:
+        raise OptionError(f"--seed {seed} is out of range; give a whole number from 0 to {SEED_MAX}")
+
+
 def fail(message: str) -> None:
     """Print one error line and exit 1."""
     typer.echo(f"adfit: error: {message}", err=True)
@@ -89,12 +100,14 @@ def exit_on_sigterm() -> None:
 def main() -> None:
     """Console-script entry point: run the app, turning AdfitError into one line and exit 1."""
     exit_on_sigterm()
-    from .likelihood import enable_compilation_cache
-    enable_compilation_cache()  # compiled programs kept on disk between runs (ADFIT_COMPILE_CACHE=0: off)
+    from ._compile_cache import request_compilation_cache
+    # compiled programs kept on disk between runs (ADFIT_COMPILE_CACHE=0: off); switched on when
+    # a command imports JAX (adfit/_jax.py), so that --help does not pay for importing it
+    request_compilation_cache()
     try:
         from .errors import cli_terms
         with cli_terms():
-            rc = app(standalone_mode=False)
+            rc = app(standalone_mode=False, prog_name="adfit")
         if isinstance(rc, int) and rc:  # without standalone mode, click returns a typer.Exit's code
             sys.exit(rc)
     except AdfitError as e:
@@ -213,6 +226,7 @@ def em_command(
     with user_errors():
         from .io import check_output_paths
 
+        check_seed(seed)
         check_output_paths({"out": out}, {"network file": network, "data file": data, "prior file": prior,
                                           "init file": init})
         net = load_network(network)
@@ -328,6 +342,7 @@ def fit_command(
     with user_errors():
         from .io import check_output_paths
 
+        check_seed(seed)
         check_output_paths({"out": out}, {"network file": network, "data file": data, "prior file": prior})
         net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
                                  ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
@@ -482,16 +497,18 @@ def score_command(
     Example: adfit score gearbox.toml new_records.csv --params fit.json
     """
     import json
+    import math
 
     from .likelihood import Likelihood, check_possible, score
-    from .result import load_result
 
     with user_errors():
         net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
                                  ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
         probs = cpts_of(net, params)
-        check_possible(Likelihood(net, coded), probs)
-        s = score(net, coded, probs)
+        lik = Likelihood(net, coded)  # one plan and one compiled program for the score and the check
+        s = score(net, coded, probs, likelihood=lik)
+        if not math.isfinite(s["log_likelihood"]):
+            check_possible(lik, probs)  # names the records of probability 0 (exit 1)
         out = {"log_likelihood": s["log_likelihood"], "gradient_norm": s["gradient_norm"],
                "n_rows": coded.n_rows, "n_distinct": coded.n_distinct,
                "log_likelihood_per_record": s["log_likelihood"] / coded.n_rows}
@@ -584,6 +601,7 @@ def impute_command(
     with user_errors():
         from .io import check_output_paths
 
+        check_seed(seed)
         check_output_paths({"out": out}, {"network file": network, "data file": data, "params file": params})
         net = load_network(network)
         res = load_result(params, net)
@@ -694,6 +712,7 @@ def demo_command(
         from .demo import DATA_FILE, FIT_FILE, IMPUTED_FILE, NETWORK_FILE, PRIOR_FILE, REPORT_FILE
         from .io import check_output_folder
 
+        check_seed(seed)
         check_output_folder("out", out, [NETWORK_FILE, PRIOR_FILE, DATA_FILE, FIT_FILE, IMPUTED_FILE, REPORT_FILE])
         reporter = Reporter() if (quiet or as_json) else RichReporter()
         outcome = run_demo(out, restarts=restarts, seed=seed, reporter=reporter)
@@ -744,3 +763,7 @@ def report_command(
         write_report(out, result, data=data, missing=missing, count_column=count_column,
                      ignore_columns=split_list(ignore_columns), engine=engine, scheduler=scheduler, title=title)
         typer.echo(f"wrote {out}")
+
+
+if __name__ == "__main__":  # python -m adfit.cli
+    main()

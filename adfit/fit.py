@@ -34,8 +34,7 @@ import warnings
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Mapping
 
-import jax
-import jax.numpy as jnp
+from ._jax import jax, jnp  # first: float64 on before optax or anything else (adfit/_jax.py)
 import numpy as np
 import optax
 

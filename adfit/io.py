@@ -155,6 +155,37 @@ def _glob(pattern: str) -> list[str]:
     return glob.glob(pattern, recursive=True)
 
 
+# ------------------------------------------------------------------ nesting of parsed documents
+MAX_DEPTH = 32  # an adfit network, prior or result file is at most about 8 levels deep
+
+
+def too_deep(doc: Any, limit: int = MAX_DEPTH) -> str | None:
+    """The path of the first value nested more than ``limit`` levels deep in ``doc`` (None: within).
+
+    Iterative, so that a deep document cannot exhaust the interpreter's stack.
+    """
+    stack: list[tuple[Any, str, int]] = [(doc, "", 0)]
+    while stack:
+        obj, path, depth = stack.pop()
+        if isinstance(obj, Mapping):
+            items = [(f"{path}.{k}" if path else str(k), v) for k, v in obj.items()]
+        elif isinstance(obj, (list, tuple)):
+            items = [(f"{path}[{i}]", v) for i, v in enumerate(obj)]
+        else:
+            continue
+        if depth >= limit:
+            return path or "(top)"
+        stack.extend((v, pth, depth + 1) for pth, v in items)
+    return None
+
+
+def depth_message(source: Any, where: str | None, kind: str) -> str:
+    """One line for a document nested too deeply (``where`` None: the parser itself gave up)."""
+    at = f" (at {where})" if where else ""
+    return (f"{source}: nested more than {MAX_DEPTH} levels deep{at}; a {kind} file is only a few levels deep: "
+            f"check the brackets and table headers")
+
+
 # ------------------------------------------------------------------ atomic writes
 _TMP = re.compile(r"^\.(?P<name>.+)\.adfit-(?P<pid>\d+)(?:-\d+)?\.tmp$")
 

@@ -66,10 +66,9 @@ from dataclasses import dataclass
 from functools import partial
 from typing import Any, Mapping, Sequence
 
-import jax
-import jax.numpy as jnp
 import numpy as np
 
+from ._jax import jax, jnp  # float64 on before anything else (adfit/_jax.py)
 from .data import HIDDEN, CodedData
 from .errors import ImpossibleDataError, OptionError
 from .network import Network
@@ -1992,6 +1991,18 @@ def logits_from_probs(network: Network, probs: Mapping[str, np.ndarray], floor: 
     return out
 
 
+def _prepared(likelihood: Likelihood | None, network: Network, data: CodedData, caller: str) -> Likelihood:
+    """``likelihood`` when it was built for ``network`` and ``data``, else a new one (None)."""
+    if likelihood is None:
+        return Likelihood(network, data)
+    other_net = likelihood.network is not network and likelihood.network != network
+    if other_net or likelihood.data is not data:
+        what = "network" if other_net else "data (not the same CodedData object)"
+        raise OptionError(f"{caller}: the likelihood= given was built for another {what}; pass the "
+                          f"Likelihood(network, data) of these arguments, or none")
+    return likelihood
+
+
 def check_possible(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> None:
     """Raise ImpossibleDataError naming the rows with probability zero under ``probs``.
 
@@ -2012,14 +2023,19 @@ def check_possible(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> None:
 
 
 def score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray], *,
-          pseudo_counts: Mapping[str, np.ndarray] | None = None) -> dict[str, float]:
+          pseudo_counts: Mapping[str, np.ndarray] | None = None,
+          likelihood: Likelihood | None = None) -> dict[str, float]:
     """Marginal log-likelihood and gradient norm (w.r.t. the free logits) of given CPTs.
 
     The gradient norm is that of the objective (log-likelihood plus log-prior when
     ``pseudo_counts`` are given): per free node the logit gradient is
     ``N(x,u) + c(x,u) - theta(x|u) (N(u) + c(u))`` in units of records.
+
+    ``likelihood``: a :class:`Likelihood` already built for this ``network`` and this ``data``
+    (the same object), to reuse its plan and compiled program (a command that also checks or
+    evaluates builds one and passes it everywhere); by default one is built here.
     """
-    lik = Likelihood(network, data)
+    lik = _prepared(likelihood, network, data, "score")
     ll, counts = lik.expected_counts(probs)
     gn2 = 0.0
     for name in network.free_names:
@@ -2031,44 +2047,9 @@ def score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray], *,
 
 
 # --------------------------------------------------------------------------- compile cache
-COMPILE_CACHE_MAX_BYTES = 1 << 30
-
-
-def enable_compilation_cache(path: str | None = None) -> str | None:
-    """Keep compiled programs on disk between runs (JAX's persistent compilation cache).
-
-    A CLI run on the same network and data layout then skips XLA compilation (tracing is still
-    paid). The folder is ``$ADFIT_COMPILE_CACHE`` if set (``0`` or ``off`` disables the cache),
-    else ``path``, else ``$XDG_CACHE_HOME/adfit/jax`` (``~/.cache/adfit/jax``); it is created
-    readable by the user only (JAX treats the cache as trusted code), entries are kept above
-    0.1 s of compile time and, where the ``filelock`` package is installed, the folder is held to
-    :data:`COMPILE_CACHE_MAX_BYTES` (least recently used entries go first). An existing
-    ``jax_compilation_cache_dir`` setting is kept.
-    Call before the first compilation. Returns the folder in use, or None.
-    """
-    env = os.environ.get("ADFIT_COMPILE_CACHE")
-    if env is not None and env.strip().lower() in ("0", "off", "no", "false", ""):
-        return None
-    if jax.config.jax_compilation_cache_dir:
-        return jax.config.jax_compilation_cache_dir
-    base = env or path or os.path.join(os.environ.get("XDG_CACHE_HOME") or os.path.expanduser("~/.cache"), "adfit", "jax")
-    try:
-        os.makedirs(base, mode=0o700, exist_ok=True)
-    except OSError:
-        return None
-    jax.config.update("jax_compilation_cache_dir", base)
-    jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.1)
-    try:  # the size limit needs the filelock package (JAX); without it the folder is not limited
-        import filelock  # noqa: F401
-        jax.config.update("jax_compilation_cache_max_size", COMPILE_CACHE_MAX_BYTES)
-    except ImportError:
-        pass
-    try:  # JAX decides at its first compilation whether a cache is in use: ask it again
-        from jax.experimental.compilation_cache import compilation_cache as _cc
-        _cc.reset_cache()
-    except Exception:  # pragma: no cover - an older or newer JAX without it: the setting still applies
-        pass
-    return base
+# Kept here under their old names; the setup lives in adfit/_compile_cache.py (it imports no JAX,
+# so that the command line can ask for the cache before it knows whether a command computes).
+from ._compile_cache import COMPILE_CACHE_MAX_BYTES, enable_compilation_cache  # noqa: E402,F401
 
 
 # --------------------------------------------------------------------------- posteriors

@@ -14,7 +14,7 @@ from __future__ import annotations
 import math
 from typing import Callable, Mapping
 
-import jax.numpy as jnp
+from ._jax import jnp  # first: float64 on before optax (adfit/_jax.py)
 import numpy as np
 import optax
 

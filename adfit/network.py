@@ -271,6 +271,15 @@ def load_network(path: str | Path) -> Network:
         raise NetworkError(f"{p}: network file is not UTF-8 text") from None
     except tomllib.TOMLDecodeError as e:
         raise NetworkError(f"{p}: not valid TOML ({e})") from None
+    except RecursionError:
+        from .io import depth_message
+
+        raise NetworkError(depth_message(p, None, "network")) from None
+    from .io import depth_message, too_deep
+
+    where = too_deep(doc)
+    if where is not None:
+        raise NetworkError(depth_message(p, where, "network"))
     return parse_network(doc, source=str(p))
 
 

@@ -247,6 +247,15 @@ def load_prior(path: str | Path, network: Network) -> Prior:
         raise PriorError(f"{p}: prior file is not UTF-8 text") from None
     except tomllib.TOMLDecodeError as e:
         raise PriorError(f"{p}: not valid TOML ({e})") from None
+    except RecursionError:
+        from .io import depth_message
+
+        raise PriorError(depth_message(p, None, "prior")) from None
+    from .io import depth_message, too_deep
+
+    where = too_deep(doc)
+    if where is not None:
+        raise PriorError(depth_message(p, where, "prior"))
     return prior_from_dict(doc, network, source=str(p))
 
 
@@ -464,8 +473,7 @@ def log_prior_logits(logits: Mapping[str, Any], pseudo_counts: Mapping[str, np.n
 
     Only nodes present in both mappings contribute. Returns a JAX scalar.
     """
-    import jax
-    import jax.numpy as jnp
+    from ._jax import jax, jnp
 
     total = jnp.zeros(())
     for name, z in logits.items():

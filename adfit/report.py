@@ -1478,6 +1478,10 @@ def load_result_doc(path: str | Path) -> dict[str, Any]:
         raise ResultError(f"{p}: is a folder; give the result JSON file written by adfit fit") from None
     except (json.JSONDecodeError, UnicodeDecodeError) as e:
         raise ResultError(f"{p}: not a valid JSON result file ({e}); give the file written by adfit fit") from None
+    except RecursionError:
+        from .io import depth_message
+
+        raise ResultError(depth_message(p, None, "result")) from None
     if not isinstance(doc, dict):
         raise ResultError(f"{p}: not an adfit result file (expected a JSON object with \"format\": \"{FORMAT}\")")
     return doc

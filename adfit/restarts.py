@@ -65,8 +65,7 @@ import types
 from functools import partial
 from typing import Any, Callable, Mapping, Sequence
 
-import jax
-import jax.numpy as jnp
+from ._jax import jax, jnp  # first: float64 on before optax or anything else (adfit/_jax.py)
 import numpy as np
 import optax
 

@@ -238,17 +238,152 @@ def _float(v: Any) -> float:
     return float(v)
 
 
+# ------------------------------------------------------------------ the result file's schema
+def _show(v: Any) -> str:
+    """A short rendering of a bad value for a message."""
+    if isinstance(v, Mapping):
+        return "an object"
+    if isinstance(v, (list, tuple)):
+        return f"a list of {len(v)}"
+    text = json.dumps(v) if isinstance(v, (str, bool, int, float)) or v is None else repr(v)
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+_SPECIAL = ("inf", "-inf", "nan")  # how to_dict writes non-finite numbers (NaN is written as null)
+
+
+def _is_num(v: Any, *, nullable: bool = True) -> bool:
+    if v is None:
+        return nullable
+    if isinstance(v, bool):
+        return False
+    if isinstance(v, (int, float)):
+        return True
+    return isinstance(v, str) and v.lower() in _SPECIAL
+
+
+def _is_whole(v: Any) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool) and v >= 0
+
+
+def validate_result_doc(doc: Any, source: str = "<result>") -> None:
+    """Check the types, shapes and ranges of every field of an ``adfit-result/1`` document.
+
+    Runs before anything is computed from the file. Each message names the field by its path
+    (``fit.json: nodes.wear.table[2] has 2 entries, the node has 3 states``). The sections other
+    modules add (restarts, em_check, ...) must be JSON objects; their readers check what is
+    inside. Nesting is limited to :data:`adfit.io.MAX_DEPTH` levels. Raises :class:`ResultError`.
+    """
+    from .io import depth_message, too_deep
+
+    def bad(msg: str) -> ResultError:
+        return ResultError(f"{source}: {msg}; give the result file as adfit wrote it (adfit fit or em)")
+
+    if not isinstance(doc, Mapping) or doc.get("format") != FORMAT:
+        raise ResultError(f"{source}: not an adfit result file (expected \"format\": \"{FORMAT}\")")
+    where = too_deep(doc)
+    if where is not None:
+        raise ResultError(depth_message(source, where, "result"))
+    for key in ("method", "stop_reason"):
+        if key in doc and not isinstance(doc[key], str):
+            raise bad(f"{key} must be text, got {_show(doc[key])}")
+    if "objective" in doc and doc["objective"] not in ("mle", "map"):
+        raise bad(f"objective must be \"mle\" or \"map\", got {_show(doc['objective'])}")
+    for key in ("log_likelihood", "log_prior", "penalty", "objective_value", "gradient_norm", "n_rows"):
+        if key in doc and not _is_num(doc[key]):
+            raise bad(f"{key} must be a number, got {_show(doc[key])}")
+    for key in ("penalty", "gradient_norm", "n_rows"):
+        v = doc.get(key)
+        if isinstance(v, (int, float)) and not isinstance(v, bool) and v < 0:
+            raise bad(f"{key} must be >= 0, got {_show(v)}")
+    if "converged" in doc and not isinstance(doc["converged"], bool):
+        raise bad(f"converged must be true or false, got {_show(doc['converged'])}")
+    for key in ("iterations", "n_distinct"):
+        if key in doc and not _is_whole(doc[key]):
+            raise bad(f"{key} must be a whole number >= 0, got {_show(doc[key])}")
+    if doc.get("seed") is not None and not _is_whole(doc["seed"]):
+        raise bad(f"seed must be a whole number >= 0 or null, got {_show(doc['seed'])}")
+    for key in ("settings", "history", "network"):
+        if doc.get(key) is not None and not isinstance(doc[key], Mapping):
+            raise bad(f"{key} must be an object, got {_show(doc[key])}")
+    for name, values in (doc.get("history") or {}).items():
+        if not isinstance(values, list):
+            raise bad(f"history.{name} must be a list of numbers, got {_show(values)}")
+        for i, v in enumerate(values):
+            if not _is_num(v):
+                raise bad(f"history.{name}[{i}] must be a number, got {_show(v)}")
+    nodes = doc.get("nodes")
+    if not isinstance(nodes, Mapping):
+        raise ResultError(f"{source}: no \"nodes\" section" if nodes is None else
+                          f"{source}: nodes must be an object (one entry per node), got {_show(nodes)}")
+    for name, sec in nodes.items():
+        if not isinstance(sec, Mapping):
+            raise bad(f"nodes.{name} must be an object with states, parents and table, got {_show(sec)}")
+        for key in ("states", "parents"):
+            v = sec.get(key, [] if key == "parents" else None)
+            if not isinstance(v, list) or not all(isinstance(x, str) for x in v):
+                raise bad(f"nodes.{name}.{key} must be a list of names, got {_show(v)}")
+        for key in ("latent", "fixed"):
+            if key in sec and not isinstance(sec[key], bool):
+                raise bad(f"nodes.{name}.{key} must be true or false, got {_show(sec[key])}")
+    for name, sec in nodes.items():
+        card = len(sec["states"])
+        rows = 1
+        for par in sec.get("parents", []):
+            psec = nodes.get(par)
+            if psec is None:
+                raise bad(f"nodes.{name}.parents names {par!r}, which is not a node of the result")
+            rows *= len(psec["states"])
+        table = sec.get("table")
+        if not sec.get("parents") and isinstance(table, list) and table and not isinstance(table[0], list):
+            table = [table]  # a parentless node's table may be written flat
+        _check_grid(bad, f"nodes.{name}.table", table, rows, card, nullable=False)
+        if sec.get("se") is not None:
+            _check_grid(bad, f"nodes.{name}.se", sec["se"], rows, card, nullable=True)
+        iv = sec.get("interval")
+        if iv is not None:
+            if not isinstance(iv, list) or len(iv) != 2:
+                raise bad(f"nodes.{name}.interval must be a pair [lower table, upper table], got {_show(iv)}")
+            for j, part in enumerate(iv):
+                _check_grid(bad, f"nodes.{name}.interval[{j}]", part, rows, card, nullable=True)
+    for key in _SECTIONS:
+        if doc.get(key) is not None and not isinstance(doc[key], Mapping) \
+                and not (key == "restarts" and isinstance(doc[key], list)):  # older layout: a list of starts
+            raise bad(f"{key} must be an object, got {_show(doc[key])}")
+
+
+def _check_grid(bad, path: str, table: Any, rows: int, card: int, *, nullable: bool) -> None:
+    """``table``: ``rows`` lists of ``card`` numbers (None allowed where ``nullable``)."""
+    if not isinstance(table, list):
+        raise bad(f"{path} must be a list of {rows} row(s) of {card} numbers, got {_show(table)}")
+    if len(table) != rows:
+        raise bad(f"{path} has {len(table)} row(s), the node has {rows} parent configuration(s)")
+    for i, row in enumerate(table):
+        if not isinstance(row, list):
+            raise bad(f"{path}[{i}] must be a list of {card} numbers, got {_show(row)}")
+        if len(row) != card:
+            raise bad(f"{path}[{i}] has {len(row)} entries, the node has {card} states")
+        for j, v in enumerate(row):
+            if not _is_num(v, nullable=nullable):
+                raise bad(f"{path}[{i}][{j}] must be a number, got {_show(v)}")
+
+
+_CORE = {"format", "method", "objective", "log_likelihood", "log_prior", "penalty", "objective_value",
+         "gradient_norm", "converged", "stop_reason", "iterations", "n_rows", "n_distinct", "seed",
+         "settings", "history", "nodes", "network"}
+# sections that other modules add (each a JSON object; their readers check what is inside)
+_SECTIONS = ("restarts", "prior", "em", "em_check", "uncertainty", "complete_case", "information_criteria",
+             "cross_validation")
+
+
 def result_from_dict(doc: Mapping[str, Any], *, network: Network | None = None, source: str = "<result>") -> FitResult:
     """Rebuild a :class:`FitResult` from its JSON form.
 
     When ``network`` is given, the result's nodes must match it (names, states, parents);
     otherwise the network embedded in the file is used.
     """
-    if not isinstance(doc, Mapping) or doc.get("format") != FORMAT:
-        raise ResultError(f"{source}: not an adfit result file (expected \"format\": \"{FORMAT}\")")
-    nodes = doc.get("nodes")
-    if not isinstance(nodes, Mapping):
-        raise ResultError(f"{source}: no \"nodes\" section")
+    validate_result_doc(doc, source)
+    nodes = doc["nodes"]
     if network is None:
         if "network" not in doc:
             raise ResultError(f"{source}: no embedded \"network\"; pass the network file as well")
@@ -269,9 +404,7 @@ def result_from_dict(doc: Mapping[str, Any], *, network: Network | None = None, 
     extra_nodes = set(nodes) - set(network.names)
     if extra_nodes:
         raise ResultError(f"{source}: result has node(s) {sorted(extra_nodes)} that the network lacks")
-    known = {"format", "method", "objective", "log_likelihood", "log_prior", "penalty", "objective_value",
-             "gradient_norm", "converged", "stop_reason", "iterations", "n_rows", "n_distinct", "seed",
-             "settings", "history", "nodes", "network"}
+    known = _CORE
     extras = {k: v for k, v in doc.items() if k not in known}
     node_keys = {"states", "parents", "latent", "fixed", "table"}
     node_extras = {n: {k: v for k, v in nodes[n].items() if k not in node_keys} for n in network.names}
@@ -296,6 +429,12 @@ def load_result(path: str | Path, network: Network | None = None) -> FitResult:
         doc = json.loads(p.read_text(encoding="utf-8"))
     except FileNotFoundError:
         raise ResultError(f"{p}: result file not found") from None
+    except IsADirectoryError:
+        raise ResultError(f"{p}: is a folder; give the result JSON file written by adfit fit or em") from None
     except (json.JSONDecodeError, UnicodeDecodeError) as e:
         raise ResultError(f"{p}: not a valid JSON result file ({e})") from None
+    except RecursionError:
+        from .io import depth_message
+
+        raise ResultError(depth_message(p, None, "result")) from None
     return result_from_dict(doc, network=network, source=str(p))

@@ -55,8 +55,7 @@ from dataclasses import dataclass, field
 from functools import partial
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
-import jax
-import jax.numpy as jnp
+from ._jax import jax, jnp  # first: float64 on (adfit/_jax.py)
 import numpy as np
 import pandas as pd
 import scipy.linalg

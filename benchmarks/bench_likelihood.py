@@ -39,7 +39,7 @@ import jax  # noqa: E402
 import jax.numpy as jnp  # noqa: E402
 import numpy as np  # noqa: E402
 
-import adfit  # noqa: E402,F401  (float64)
+import adfit._jax  # noqa: E402,F401  (float64)
 from adfit.fit import fit  # noqa: E402
 from adfit.likelihood import Likelihood, _min_fill_order, logits_from_probs  # noqa: E402
 from workloads import coded, local_network, mask_mcar, random_cpts, sample  # noqa: E402
