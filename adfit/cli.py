@@ -578,6 +578,9 @@ def impute_command(
     missing: MissingOpt = None,
     count_column: CountOpt = None,
     ignore_columns: IgnoreOpt = None,
+    defuse: Annotated[bool, Flag(
+        "--defuse/--raw-cells", help="Text cells that start like a spreadsheet formula (=, +, -, @) get a leading "
+                                     "apostrophe (default); --raw-cells writes every cell as it is.")] = True,
 ) -> None:
     """Posterior of every missing cell given the record's observed cells, its most probable value, and draws.
 
@@ -587,6 +590,7 @@ def impute_command(
     each state; 1/0 where observed), NODE__draw1..K (joint draws from the posterior of the
     record's hidden cells; the observed value where observed), and row__log_p_observed. Latent
     nodes are always hidden, so they always get these columns. A count column is carried along.
+    Text cells that a spreadsheet would run as formulas get a leading apostrophe (--raw-cells: as they are).
 
     Caution: the draws condition on the fitted CPTs (parameter uncertainty is not propagated) and
     rest on the network and on MAR; imputed values are not observations.
@@ -606,7 +610,7 @@ def impute_command(
         res = load_result(params, net)
         imp, _ = impute_file(net, res.probs, data, out, draws=draws, seed=seed,
                              nodes=split_list(nodes) or None, missing=missing, count_column=count_column,
-                             ignore_columns=split_list(ignore_columns))
+                             ignore_columns=split_list(ignore_columns), defuse=defuse)
         typer.echo(format_summary(imp))
         typer.echo(f"wrote {out}")
         typer.echo(CAUTION)
