@@ -600,7 +600,7 @@ def resolve_inputs(path: str | Path | Sequence[str | Path]) -> tuple[list[Path],
         raise DataError(f"{label}: no data files given")
     for f in files:
         if not f.exists():
-            raise DataError(f"{f}: data file not found")
+            raise DataError(f"{f}: data file not found (check the path)")
         if f.is_dir():
             raise DataError(f"{f}: is a folder; give a CSV or Parquet file, or the folder alone")
     fmts = {("parquet" if f.suffix.lower() in PARQUET_SUFFIXES else "csv") for f in files}
@@ -622,7 +622,7 @@ def csv_header(path: str | Path) -> list[str]:
                 if rec:
                     return rec
     except FileNotFoundError:
-        raise DataError(f"{p}: data file not found") from None
+        raise DataError(f"{p}: data file not found (check the path)") from None
     except UnicodeDecodeError:
         raise DataError(f"{p}: not UTF-8 text; save the CSV as UTF-8") from None
     except csv.Error as e:
@@ -750,7 +750,7 @@ def parquet_names(path: str | Path) -> list[str]:
     try:
         return list(pq.read_schema(p).names)
     except FileNotFoundError:
-        raise DataError(f"{p}: data file not found") from None
+        raise DataError(f"{p}: data file not found (check the path)") from None
     except Exception as e:
         raise DataError(f"{p}: not a readable Parquet file ({type(e).__name__}: {_first_line(e)})") from None
 

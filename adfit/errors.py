@@ -40,6 +40,10 @@ class OutputError(OptionError):
     read, is a folder, link, device or pipe, or its folder is missing or not writable."""
 
 
+class InputFileNotFound(OptionError):
+    """A file named on the command line does not exist, is a folder, or cannot be read."""
+
+
 class ConvergenceWarning(UserWarning):
     """The optimiser stopped before its stopping rule held; the estimate may not be a maximum."""
 

@@ -1,0 +1,141 @@
+"""What adfit refuses, and how (issue 17, second part): input files named on the command line,
+markup characters in state labels, one-column CSV files, duplicate states, Parquet column
+types, and sizes that would not fit in memory. Each refusal is one line "adfit: error: ...",
+exit 1, no traceback, no output file; each acceptance is checked against an outside oracle
+(the csv module, pyarrow's schema, html.escape, a product of state counts)."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import pytest
+import typer
+from click.testing import CliRunner
+
+from adfit.cli import app
+
+COMMAND = typer.main.get_command(app)
+
+NET = ('[nodes.wear]\nstates = ["light", "medium", "heavy"]\n'
+       '[nodes.failure]\nstates = ["no", "yes"]\nparents = ["wear"]\n')
+RECORDS = "wear,failure\nlight,no\nheavy,yes\n,no\nmedium,\nheavy,no\nlight,no\nmedium,yes\n"
+
+
+def cli(args):
+    return CliRunner().invoke(COMMAND, [str(a) for a in args], prog_name="adfit")
+
+
+def one_line_error(r) -> bool:
+    return (r.exit_code == 1 and r.output.count("\n") == 1 and r.output.startswith("adfit: error: ")
+            and "Traceback" not in r.output and "Usage:" not in r.output)
+
+
+@pytest.fixture(scope="module")
+def valid(tmp_path_factory):
+    d = tmp_path_factory.mktemp("refusals")
+    (d / "n.toml").write_text(NET)
+    (d / "d.csv").write_text(RECORDS)
+    (d / "p.toml").write_text("[nodes.wear]\npseudo_counts = [[1.0, 1.0, 1.0]]\n")
+    r = cli(["em", d / "n.toml", d / "d.csv", "--out", d / "fit.json", "--seed", "3"])
+    assert r.exit_code == 0, r.output
+    return d
+
+
+# ------------------------------------------------------------------ 1. input files
+def file_commands(d: Path, out: Path) -> list[tuple[str, list]]:
+    """Every command line with an input file, the file written as a placeholder {n} {d} {p} {r}."""
+    return [
+        ("gaps", ["gaps", "{n}", "{d}"]),
+        ("em", ["em", "{n}", "{d}", "--out", out]),
+        ("em --prior", ["em", "{n}", "{d}", "--prior", "{p}", "--out", out]),
+        ("em --init", ["em", "{n}", "{d}", "--init", "{r}", "--out", out]),
+        ("fit", ["fit", "{n}", "{d}", "--out", out]),
+        ("fit --prior", ["fit", "{n}", "{d}", "--prior", "{p}", "--out", out]),
+        ("score", ["score", "{n}", "{d}", "--params", "{r}"]),
+        ("show", ["show", "{r}"]),
+        ("impute", ["impute", "{n}", "{d}", "--params", "{r}", "--out", out]),
+        ("query", ["query", "{n}", "--params", "{r}"]),
+        ("report", ["report", "{r}", "--out", out]),
+        ("report --data", ["report", "{r}", "--data", "{d}", "--out", out]),
+    ]
+
+
+@pytest.mark.parametrize("problem", ["missing", "folder", "unreadable"])
+def test_a_missing_folder_or_unreadable_input_file_is_one_line_for_every_command(valid, tmp_path, problem):
+    if problem == "unreadable" and os.geteuid() == 0:
+        pytest.skip("root reads every file")
+    good = {"n": valid / "n.toml", "d": valid / "d.csv", "p": valid / "p.toml", "r": valid / "fit.json"}
+    out = tmp_path / "out.x"
+    bad = tmp_path / "bad.toml"
+    if problem == "folder":
+        bad.mkdir()
+    elif problem == "unreadable":
+        bad.write_text(NET)
+        bad.chmod(0)
+    words = {"missing": "file not found (check the path)", "folder": "is a folder",
+             "unreadable": "cannot be read (check its permissions)"}[problem]
+    failures = []
+    for label, template in file_commands(valid, out):
+        for key in "ndpr":
+            if "{" + key + "}" not in template:
+                continue
+            if key == "d" and problem == "folder":
+                continue  # a folder of data files is a valid data argument
+            args = [str(a).format(**{**good, key: bad}) for a in template]
+            r = cli(args)
+            if not (one_line_error(r) and str(bad) in r.output and words in r.output and not out.exists()):
+                failures.append(f"{label} with a {problem} {key}: exit {r.exit_code}, {r.output!r}")
+    # the control: the same command lines with the good files run (a refusal of everything fails)
+    for label, template in file_commands(valid, out):
+        r = cli([str(a).format(**good) for a in template])
+        if r.exit_code != 0:
+            failures.append(f"{label} with good files: exit {r.exit_code}, {r.output[-300:]!r}")
+        if out.exists():
+            out.unlink()
+    assert not failures, "\n".join(failures)
+
+
+# ------------------------------------------------------------------ 2. markup in state labels
+MARKUP_STATES = ["$x", "{0}", "%s", "<b>", "$\\foo$ $^$", "a$b$c"]
+
+
+def test_state_labels_with_markup_characters_are_drawn_and_escaped_as_written(tmp_path, monkeypatch):
+    # matplotlib reads text between two "$" as maths markup (matplotlib documentation, "Writing
+    # mathematical expressions"): "$\foo$" raised a ParseFatalException inside adfit report.
+    import html
+    import json
+
+    from matplotlib.text import Text
+
+    from adfit import report
+
+    wear, failure = MARKUP_STATES[:3], MARKUP_STATES[3:]
+    net = tmp_path / "n.toml"
+    net.write_text(f"[nodes.wear]\nstates = {json.dumps(wear)}\n"
+                   f"[nodes.failure]\nstates = {json.dumps(failure)}\nparents = [\"wear\"]\n")
+    rows = [(w, f) for w in wear for f in failure] + [("", failure[0]), (wear[1], "")]
+    data = tmp_path / "d.csv"
+    data.write_text("wear,failure\n" + "".join(f"{w},{f}\n" for w, f in rows))
+    fit = tmp_path / "fit.json"
+    assert cli(["em", net, data, "--out", fit]).exit_code == 0
+
+    drawn: list[Text] = []
+    real_png = report._png
+
+    def recording_png(fig):
+        out = real_png(fig)
+        drawn.extend(fig.findobj(Text))  # tick labels exist once the figure has been drawn
+        return out
+
+    monkeypatch.setattr(report, "_png", recording_png)
+    page = tmp_path / "r.html"
+    r = cli(["report", fit, "--data", data, "--out", page])
+    assert r.exit_code == 0, r.output
+    text = page.read_text()
+    for label in MARKUP_STATES:
+        assert html.escape(label) in text, label  # html.escape: Python standard library
+    assert "<b>" not in text and "$\\foo$ $^$" in html.unescape(text)
+    written = [t for t in drawn if t.get_text()]  # empty tick labels are made lazily, after drawing
+    assert [t for t in written if t.get_text() == ", ".join(failure)], "the states are drawn"
+    assert not [t for t in written if t.get_parse_math()], [t for t in written if t.get_parse_math()]
