@@ -24,6 +24,8 @@ Reading rules (the same for every engine, see :mod:`adfit.engines`):
 
 from __future__ import annotations
 
+from collections import Counter as _Counter
+
 import csv
 import functools
 import glob as _glob
@@ -421,7 +423,7 @@ def check_columns(network: Network, columns: Sequence[str], *, count_column: str
     blank = [i + 1 for i, c in enumerate(cols) if c.strip() == ""]
     if blank:
         raise DataError(f"{source}: column {blank[0]} has an empty name in the header; name it or delete the column")
-    dup = sorted({c for c in cols if cols.count(c) > 1})
+    dup = sorted(c for c, k in _Counter(cols).items() if k > 1)
     if dup:
         raise DataError(f"{source}: column(s) {dup} appear more than once; rename or remove the duplicates")
     for c in ignore:
@@ -633,17 +635,45 @@ def csv_header(path: str | Path) -> list[str]:
 
 
 def _csv_records(path: Path) -> Iterator[tuple[int, list[str]]]:
-    """``(start_line, fields)`` of every data record after the header (empty lines skipped)."""
+    """``(start_line, fields)`` of every data record after the header.
+
+    Empty lines are skipped, except after the header of a one-column file: there an empty line
+    is a record whose only cell is empty (RFC 4180 makes every line a record), read as a gap
+    like an empty cell of a wider file (:func:`one_column_empty_lines_are_records`)."""
     with open(path, newline="", encoding="utf-8-sig", errors="replace") as fh:
         reader = csv.reader(fh)
         start = 1
-        header_seen = False
+        header: list[str] | None = None
         for rec in reader:
-            if rec:
-                if header_seen:
-                    yield start, rec
-                header_seen = True
+            if header is None:
+                if rec:
+                    header = rec
+            elif rec:
+                yield start, rec
+            elif len(header) == 1:
+                yield start, [""]
             start = reader.line_num + 1
+
+
+def csv_leading_empty_lines(path: str | Path) -> int:
+    """Number of empty lines before the header row of a CSV file."""
+    n = 0
+    with open(path, newline="", encoding="utf-8-sig", errors="replace") as fh:
+        for line in fh:
+            if line.strip("\r\n") != "":
+                return n
+            n += 1
+    return n
+
+
+def one_column_empty_lines_are_records(header: Sequence[str]) -> bool:
+    """In a file with one column, an empty line after the header is a record with an empty cell.
+
+    Skipping it as a blank line would drop records without a word (six records read as three);
+    an empty cell is a gap under the default missing labels, or an unknown label otherwise, as in
+    any other file. Empty lines before the header, and in wider files, are not records (a record
+    of a wider file has its commas)."""
+    return len(header) == 1
 
 
 def csv_line_of(path: str | Path, row: int) -> int | None:
@@ -691,9 +721,11 @@ def _csv_error(path: Path, exc: Exception) -> DataError:
 def _csv_arrow_options(path: Path, header: Sequence[str], columns: Sequence[str], block_size: int | None = None):
     import pyarrow as pa
     import pyarrow.csv as pcsv
-    ro = pcsv.ReadOptions(use_threads=True, **({"block_size": int(block_size)} if block_size else {}))
+    keep_empty = one_column_empty_lines_are_records(header)
+    ro = pcsv.ReadOptions(use_threads=True, skip_rows=csv_leading_empty_lines(path) if keep_empty else 0,
+                          **({"block_size": int(block_size)} if block_size else {}))
     po = pcsv.ParseOptions(delimiter=",", quote_char='"', double_quote=True, escape_char=False,
-                           newlines_in_values=True, ignore_empty_lines=True)
+                           newlines_in_values=True, ignore_empty_lines=not keep_empty)
     co = pcsv.ConvertOptions(column_types={c: pa.string() for c in header}, include_columns=list(columns),
                              strings_can_be_null=False, quoted_strings_can_be_null=False, null_values=[],
                              check_utf8=True)

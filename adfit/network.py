@@ -12,6 +12,8 @@ the node's states. A node without parents may give a flat list.
 
 from __future__ import annotations
 
+from collections import Counter
+
 import math
 import re
 import tomllib
@@ -318,7 +320,7 @@ def parse_network(doc: Mapping[str, Any], *, source: str = "<network>") -> Netwo
         if odd:
             raise NetworkError(f"{source}: nodes.{name}.states label {odd[0]!r} has surrounding spaces or control "
                                f"characters; write it without them (data cells are matched after trimming spaces)")
-        dup = sorted({s for s in states_t if states_t.count(s) > 1})
+        dup = sorted(s for s, k in Counter(states_t).items() if k > 1)  # linear: 1e6 states load in seconds
         if dup:
             raise NetworkError(f"{source}: nodes.{name}.states has duplicate label(s) {dup}; each state must be distinct")
         parents = spec.get("parents", [])
