@@ -106,13 +106,33 @@ def fail(message: str) -> None:
 @contextmanager
 def user_errors():
     """Wrap a command body: an AdfitError becomes one line on stderr and exit code 1."""
-    from .errors import cli_terms
+    import warnings
 
+    from .errors import DataWarning, cli_terms
+
+    caught: list = []
     try:
-        with cli_terms():  # messages name options as --ignore-columns, not ignore_columns=
-            yield
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", DataWarning)
+            with cli_terms():  # messages name options as --ignore-columns, not ignore_columns=
+                yield
     except AdfitError as e:
+        _replay([w for w in caught if not issubclass(w.category, DataWarning)])  # the error is the one line
         fail(str(e))
+    _replay(caught)
+
+
+def _replay(caught) -> None:
+    """Warnings recorded in a command: a DataWarning as one line; any other as Python shows it."""
+    import warnings
+
+    from .errors import DataWarning
+
+    for w in caught:
+        if issubclass(w.category, DataWarning):
+            typer.echo(f"adfit: warning: {w.message}", err=True)
+        else:
+            warnings.showwarning(w.message, w.category, w.filename, w.lineno)
 
 
 def exit_on_sigterm() -> None:

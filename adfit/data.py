@@ -787,6 +787,44 @@ def parquet_names(path: str | Path) -> list[str]:
         raise DataError(f"{p}: not a readable Parquet file ({type(e).__name__}: {_first_line(e)})") from None
 
 
+SUPPORTED_PARQUET_TYPES = "text, integer, floating-point, boolean or dictionary (categorical)"
+
+
+def check_parquet_types(files: Sequence[Path], columns: Sequence[str]) -> None:
+    """Refuse Parquet columns that hold more than one value per cell; warn about null-typed ones.
+
+    A list, struct, map or union column (pyarrow's nested types) has no label per cell: one line
+    naming the file, the column, its type and the types that are read. A column of null type
+    (pandas writes one for a column of None only) holds no value in any row: it is read as all
+    gaps, like an empty CSV column, with a :class:`DataWarning` (the CLI prints it as one line),
+    since it often means a column that was not filled in at all.
+    """
+    import warnings
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from .errors import DataWarning
+
+    for f in files:
+        try:
+            schema = pq.read_schema(f)
+        except Exception as e:
+            raise DataError(f"{f}: not a readable Parquet file ({type(e).__name__}: {_first_line(e)})") from None
+        by_trim = {n.strip(): n for n in schema.names}
+        for c in columns:
+            if c not in by_trim:
+                continue
+            t = schema.field(by_trim[c]).type
+            if pa.types.is_nested(t):
+                shown = str(t) if len(str(t)) <= 60 else str(t)[:57] + "..."
+                raise DataError(f"{f}: column {c!r} has Parquet type {shown}, several values per cell; "
+                                f"adfit reads {SUPPORTED_PARQUET_TYPES} columns, one label per cell: store it as one of those")
+            if pa.types.is_null(t):
+                warnings.warn(f"{f}: column {c!r} has Parquet type null (no value in any row): every cell "
+                              f"is read as missing; check that the column was filled in", DataWarning, stacklevel=2)
+
+
 def _first_line(e: Exception) -> str:
     s = str(e)
     return s.splitlines()[0] if s else ""
@@ -906,6 +944,8 @@ def load_files(network: Network, path: str | Path | Sequence[str | Path], *, mis
     cols = common_columns(files, fmt)
     read = check_columns(network, cols, count_column=count_column, ignore_columns=ignore_columns,
                          source=str(files[0]) if len(files) == 1 else source)
+    if fmt == "parquet":
+        check_parquet_types(files, read)
     coder = LabelCoder(network, missing)
     parts = [_encode_file(network, f, fmt, coder, read, count_column) for f in files]
     _release_arrow_memory()

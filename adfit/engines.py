@@ -38,7 +38,7 @@ import numpy as np
 import pandas as pd
 
 from .data import (HIDDEN, UNKNOWN, CodedData, LabelCoder, _count_problem, _csv_error, check_columns, code_columns,
-                   common_columns, csv_header, csv_leading_empty_lines, encode_frame, first_error, iter_csv_batches, iter_parquet_batches,
+                   check_parquet_types, common_columns, csv_header, csv_leading_empty_lines, encode_frame, first_error, iter_csv_batches, iter_parquet_batches,
                    key_layout, load_files, locator, parquet_names, resolve_inputs)
 from .rowkeys import PackedRows, reduce_words
 from .errors import DataError, OptionError
@@ -80,6 +80,8 @@ def make_plan(network: Network, path: Any, *, missing: Iterable[str] | None = No
     cols = common_columns(files, fmt)
     read = check_columns(network, cols, count_column=count_column, ignore_columns=ignore_columns,
                          source=str(files[0]) if len(files) == 1 else source)
+    if fmt == "parquet":
+        check_parquet_types(files, read)
     return ReadPlan(network, tuple(str(f) for f in files), fmt, tuple(cols), tuple(read),
                     LabelCoder(network, missing), count_column, source, int(chunk_rows))
 

@@ -195,3 +195,57 @@ def test_duplicate_states_are_named_and_the_check_is_linear(tmp_path):
     assert "\n" not in str(e.value)
     p.write_text("[nodes.a]\nstates = [" + ", ".join(f'"{s}"' for s in labels) + "]\n")
     assert load_network(p).node("a").states == tuple(labels)
+
+
+# ------------------------------------------------------------------ 5. Parquet column types
+def test_parquet_nested_columns_are_refused_and_null_columns_read_as_gaps_with_a_warning(tmp_path):
+    # the types as pyarrow writes and reads them back (pyarrow.parquet.read_schema is the oracle
+    # of what the file holds)
+    import warnings
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from adfit.engines import load_coded
+    from adfit.errors import DataError, DataWarning
+    from adfit.network import network_from_dict
+
+    net = network_from_dict({"wear": {"states": ["light", "heavy"]},
+                             "failure": {"states": ["no", "yes"], "parents": ["wear"]}})
+    (tmp_path / "n.toml").write_text('[nodes.wear]\nstates = ["light", "heavy"]\n'
+                                     '[nodes.failure]\nstates = ["no", "yes"]\nparents = ["wear"]\n')
+    wear = pa.array(["light", "heavy", "light"])
+    nested = {"list": pa.array([["no"], ["yes"], []]),
+              "struct": pa.array([{"a": "no"}, {"a": "yes"}, {"a": None}]),
+              "map": pa.array([[("k", "no")], [], [("k", "yes")]], type=pa.map_(pa.string(), pa.string()))}
+    for kind, col in nested.items():
+        p = tmp_path / f"{kind}.parquet"
+        pq.write_table(pa.table({"wear": wear, "failure": col}), p)
+        assert pa.types.is_nested(pq.read_schema(p).field("failure").type)
+        for engine in ("pandas", "stream", "duckdb"):
+            with pytest.raises(DataError) as e:
+                load_coded(net, p, engine=engine)
+            msg = str(e.value)
+            assert msg.startswith(f"{p}: column 'failure' has Parquet type ") and "\n" not in msg, (kind, engine, msg)
+            assert "text, integer, floating-point, boolean or dictionary" in msg
+        r = cli(["gaps", tmp_path / "n.toml", p])
+        assert one_line_error(r) and "column 'failure'" in r.output, r.output
+        # a nested column that is not read (ignored) is no obstacle
+        pq.write_table(pa.table({"wear": wear, "failure": pa.array(["no", "yes", None]), "extra": col}), p)
+        assert load_coded(net, p, ignore_columns=["extra"]).counts.sum() == 3.0
+
+    p = tmp_path / "null.parquet"
+    pq.write_table(pa.table({"wear": wear, "failure": pa.nulls(3)}), p)
+    assert pa.types.is_null(pq.read_schema(p).field("failure").type)
+    for engine in ("pandas", "stream", "duckdb"):
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            cd = load_coded(net, p, engine=engine)
+        got = {tuple(c): w for c, w in zip(cd.codes.tolist(), cd.counts.tolist())}
+        assert got == {(0, -1): 2.0, (1, -1): 1.0}, engine  # every failure cell is a gap
+        assert [str(w.message) for w in caught if issubclass(w.category, DataWarning)] == [
+            f"{p}: column 'failure' has Parquet type null (no value in any row): every cell is read as missing; "
+            f"check that the column was filled in"], engine
+    r = cli(["gaps", tmp_path / "n.toml", p])
+    assert r.exit_code == 0, r.output
+    assert r.output.count("adfit: warning: ") == 1 and "Parquet type null" in r.output
