@@ -249,3 +249,67 @@ def test_parquet_nested_columns_are_refused_and_null_columns_read_as_gaps_with_a
     r = cli(["gaps", tmp_path / "n.toml", p])
     assert r.exit_code == 0, r.output
     assert r.output.count("adfit: warning: ") == 1 and "Parquet type null" in r.output
+
+
+# ------------------------------------------------------------------ 6. resource limits
+def grid_toml(k: int, states: int) -> str:
+    """A k x k grid of latent nodes (parents: the cell above and the cell to the left) and one
+    recorded node below the last cell, so that no latent node is barren."""
+    labels = ", ".join(f'"s{i}"' for i in range(states))
+    out = []
+    for i in range(k):
+        for j in range(k):
+            parents = ([f'"g{i - 1}_{j}"'] if i else []) + ([f'"g{i}_{j - 1}"'] if j else [])
+            out.append(f"[nodes.g{i}_{j}]\nstates = [{labels}]\nlatent = true\nparents = [{', '.join(parents)}]\n")
+    out.append(f'[nodes.y]\nstates = ["no", "yes"]\nparents = ["g{k - 1}_{k - 1}"]\n')
+    return "".join(out)
+
+
+def largest_clique(order, scopes, cards) -> int:
+    """Entries of the largest table created along an elimination order (recomputed here)."""
+    import math
+
+    nb = {v: set() for s in scopes for v in s}
+    for s in scopes:
+        for a in s:
+            nb[a] |= set(s) - {a}
+    big = 0
+    for v in order:
+        ns = nb.pop(v)
+        big = max(big, cards[v] * math.prod(cards[u] for u in ns))
+        for a in ns:
+            nb[a] |= ns - {a}
+            nb[a].discard(v)
+    return big
+
+
+def test_an_elimination_beyond_the_table_limit_is_refused_before_compiling(tmp_path):
+    # A k x k grid has treewidth k (Robertson and Seymour, Graph Minors; from memory): a 12 x 12
+    # grid of 4-state latent nodes needs tables of at least 4**13 = 6.7e7 entries per record in
+    # any order, and the greedy min-fill order makes larger ones. The limit is 2**27 entries.
+    from adfit import em, likelihood
+    from adfit.network import MAX_TABLE_ENTRIES
+
+    d = tmp_path
+    (d / "grid.toml").write_text(grid_toml(12, 4))
+    (d / "d.csv").write_text("y\nno\nyes\nno\n")
+    for args in (["fit", d / "grid.toml", d / "d.csv", "--out", d / "o.json"],
+                 ["em", d / "grid.toml", d / "d.csv", "--out", d / "o.json"],
+                 ["gaps", d / "grid.toml", d / "d.csv"]):
+        r = cli(args)
+        if args[0] == "gaps":  # the overview sums nothing out: it runs
+            assert r.exit_code == 0, r.output
+            continue
+        assert one_line_error(r) and "the limit is 2**27 = 134,217,728 entries" in r.output, (args[0], r.output)
+        assert "GiB) when node 'g" in r.output and not (d / "o.json").exists()
+    # the refusal is exactly at the limit: the same grid of binary nodes is below it and its
+    # order is the full order (every variable once), whose largest table is recomputed here
+    k, c = 12, 2
+    scopes = [[i * k + j] + ([(i - 1) * k + j] if i else []) + ([i * k + j - 1] if j else [])
+              for i in range(k) for j in range(k)]
+    for order_fn in (likelihood._min_fill_order, em._min_fill_order):
+        order = order_fn(list(range(k * k)), scopes, [c] * (k * k))
+        assert sorted(order) == list(range(k * k))
+        assert 2 ** 13 <= largest_clique(order, scopes, [c] * (k * k)) <= MAX_TABLE_ENTRIES
+        with pytest.raises(likelihood.TooLargeError):
+            order_fn(list(range(k * k)), scopes, [4] * (k * k))
