@@ -39,9 +39,40 @@ def Flag(*names: str, **kw):  # noqa: N802 (a declaration, like typer.Option)
     return typer.Option(*names, metavar="", **kw)
 
 
+class InputFile:
+    """An input file that must exist and be readable (``dir_okay``: a folder is accepted too).
+
+    Checked when the command line is read, before any work; a problem is one line naming the
+    file's role, the path and what to do (``adfit: error: ...``, exit 1) instead of click's
+    usage block (exit 2). The line is printed here and the run ends with ``typer.Exit(1)``:
+    typer would draw a raised click error in a box."""
+
+    def __init__(self, role: str, *, dir_okay: bool = False):
+        self.role = role
+        self.dir_okay = dir_okay
+
+    def __call__(self, value):
+        import os
+
+        from .errors import InputFileNotFound
+
+        path = Path(value)
+        where = f"{self.role} {value}"
+        if not path.exists():
+            problem = f"{where}: file not found (check the path)"
+        elif path.is_dir() and not self.dir_okay:
+            problem = f"{where}: is a folder, not a file (give the file's path)"
+        elif not os.access(path, os.R_OK):
+            problem = f"{where}: cannot be read (check its permissions)"
+        else:
+            return path
+        typer.echo(f"adfit: error: {InputFileNotFound(problem)}", err=True)
+        raise typer.Exit(code=1)
+
+
 # Shared option declarations (reuse these in every command that reads data).
 NetworkArg = Annotated[Path, typer.Argument(help="Network file (TOML): [nodes.NAME] tables with states, parents, latent, fixed.",
-                                            exists=True, dir_okay=False, readable=True)]
+                                            parser=InputFile("network file"))]
 DataArg = Annotated[Path, typer.Argument(help="Records: a CSV or Parquet file (or a folder or glob pattern of such files), one column per non-latent node.")]
 MissingOpt = Annotated[Optional[list[str]], typer.Option(
     "--missing", rich_help_panel=DATA_PANEL, help="A label that means 'not recorded' (repeat for several). Default: empty, NA, NaN, ?.")]
@@ -75,13 +106,33 @@ def fail(message: str) -> None:
 @contextmanager
 def user_errors():
     """Wrap a command body: an AdfitError becomes one line on stderr and exit code 1."""
-    from .errors import cli_terms
+    import warnings
 
+    from .errors import DataWarning, cli_terms
+
+    caught: list = []
     try:
-        with cli_terms():  # messages name options as --ignore-columns, not ignore_columns=
-            yield
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", DataWarning)
+            with cli_terms():  # messages name options as --ignore-columns, not ignore_columns=
+                yield
     except AdfitError as e:
+        _replay([w for w in caught if not issubclass(w.category, DataWarning)])  # the error is the one line
         fail(str(e))
+    _replay(caught)
+
+
+def _replay(caught) -> None:
+    """Warnings recorded in a command: a DataWarning as one line; any other as Python shows it."""
+    import warnings
+
+    from .errors import DataWarning
+
+    for w in caught:
+        if issubclass(w.category, DataWarning):
+            typer.echo(f"adfit: warning: {w.message}", err=True)
+        else:
+            warnings.showwarning(w.message, w.category, w.filename, w.lineno)
 
 
 def exit_on_sigterm() -> None:
@@ -196,10 +247,10 @@ def em_command(
     ignore_columns: IgnoreOpt = None,
     prior: Annotated[Optional[Path], typer.Option(
         "--prior", help="Prior file (TOML, Dirichlet pseudo-counts): EM then finds the MAP estimate.",
-        exists=True, dir_okay=False, readable=True)] = None,
+        parser=InputFile("prior file"))] = None,
     init: Annotated[Optional[Path], typer.Option(
         "--init", help="Start from the CPTs of a result file (default: a seeded random start).",
-        exists=True, dir_okay=False, readable=True)] = None,
+        parser=InputFile("start file (--init)"))] = None,
     seed: Annotated[int, typer.Option("--seed", help="Seed of the random start.")] = 0,
     tol: Annotated[float, typer.Option(
         "--tol", help="Stop when the projected relative rise of the objective is below this ...")] = 1e-10,
@@ -303,7 +354,7 @@ def fit_command(
         "--batch-size", rich_help_panel=OPT_PANEL, help="With --method adam: minibatch gradients from this many sampled distinct rows per step (very large data); the full-data gradient norm is reported at the end.")] = None,
     prior: Annotated[Optional[Path], typer.Option(
         "--prior", help="Prior file (TOML): Dirichlet pseudo-counts, BDeu equivalent sample size or expert tables; gives MAP estimates.",
-        exists=True, dir_okay=False, readable=True)] = None,
+        parser=InputFile("prior file"))] = None,
     l2: Annotated[float, typer.Option("--l2", help="L2 penalty lambda on the logits (row mean removed).")] = 0.0,
     missing: MissingOpt = None,
     count_column: CountOpt = None,
@@ -478,7 +529,7 @@ def score_command(
     data: DataArg,
     params: Annotated[Optional[Path], typer.Option(
         "--params", help="Result file whose CPTs are scored (from fit or em); not needed when every CPT of the network is fixed.",
-        exists=True, dir_okay=False, readable=True)] = None,
+        parser=InputFile("result file (--params)"))] = None,
     missing: MissingOpt = None,
     count_column: CountOpt = None,
     ignore_columns: IgnoreOpt = None,
@@ -527,7 +578,7 @@ def score_command(
 @app.command("show")
 def show_command(
     result: Annotated[Path, typer.Argument(help="Result file (JSON, format adfit-result/1) from fit or em.",
-                                           exists=True, dir_okay=False, readable=True)],
+                                           parser=InputFile("result file"))],
     node: Annotated[Optional[list[str]], typer.Option("--node", help="Node to show (repeat; default: all).")] = None,
     fmt: Annotated[str, typer.Option("--format", help="text, csv, markdown or toml (a network file with every CPT fixed at the estimates).")] = "text",
     out: Annotated[Optional[Path], typer.Option("--out", help="File to write (default: print).")] = None,
@@ -563,7 +614,7 @@ def show_command(
 
 # ------------------------------------------------------------------ impute / query (posteriors)
 ParamsOpt = Annotated[Path, typer.Option("--params", help="Result file whose CPTs are used (from fit or em).",
-                                         exists=True, dir_okay=False, readable=True)]
+                                         parser=InputFile("result file (--params)"))]
 
 
 @app.command("impute")
@@ -579,6 +630,9 @@ def impute_command(
     missing: MissingOpt = None,
     count_column: CountOpt = None,
     ignore_columns: IgnoreOpt = None,
+    defuse: Annotated[bool, Flag(
+        "--defuse/--raw-cells", help="Text cells that start like a spreadsheet formula (=, +, -, @) get a leading "
+                                     "apostrophe (default); --raw-cells writes every cell as it is.")] = True,
 ) -> None:
     """Posterior of every missing cell given the record's observed cells, its most probable value, and draws.
 
@@ -588,6 +642,7 @@ def impute_command(
     each state; 1/0 where observed), NODE__draw1..K (joint draws from the posterior of the
     record's hidden cells; the observed value where observed), and row__log_p_observed. Latent
     nodes are always hidden, so they always get these columns. A count column is carried along.
+    Text cells that a spreadsheet would run as formulas get a leading apostrophe (--raw-cells: as they are).
 
     Caution: the draws condition on the fitted CPTs (parameter uncertainty is not propagated) and
     rest on the network and on MAR; imputed values are not observations.
@@ -607,7 +662,7 @@ def impute_command(
         res = load_result(params, net)
         imp, _ = impute_file(net, res.probs, data, out, draws=draws, seed=seed,
                              nodes=split_list(nodes) or None, missing=missing, count_column=count_column,
-                             ignore_columns=split_list(ignore_columns))
+                             ignore_columns=split_list(ignore_columns), defuse=defuse)
         typer.echo(format_summary(imp))
         typer.echo(f"wrote {out}")
         typer.echo(CAUTION)
@@ -615,7 +670,7 @@ def impute_command(
 
 OptParamsOpt = Annotated[Optional[Path], typer.Option(
     "--params", help="Result file whose CPTs are used (from fit or em); not needed when every CPT of the network is fixed.",
-    exists=True, dir_okay=False, readable=True)]
+    parser=InputFile("result file (--params)"))]
 
 
 def cpts_of(net, params):
@@ -730,11 +785,11 @@ def demo_command(
 @app.command("report")
 def report_command(
     result: Annotated[Path, typer.Argument(help="Result file (JSON, format adfit-result/1) from fit or em.",
-                                           exists=True, dir_okay=False, readable=True)],
+                                           parser=InputFile("result file"))],
     out: Annotated[Path, typer.Option("--out", help="HTML file to write (one self-contained page).")],
     data: Annotated[Optional[Path], typer.Option(
         "--data", help="The records that were fitted (CSV or Parquet): adds the gaps overview.",
-        exists=True, readable=True)] = None,
+        parser=InputFile("data file", dir_okay=True))] = None,
     missing: MissingOpt = None,
     count_column: CountOpt = None,
     ignore_columns: IgnoreOpt = None,

@@ -24,6 +24,8 @@ Reading rules (the same for every engine, see :mod:`adfit.engines`):
 
 from __future__ import annotations
 
+from collections import Counter as _Counter
+
 import csv
 import functools
 import glob as _glob
@@ -421,7 +423,7 @@ def check_columns(network: Network, columns: Sequence[str], *, count_column: str
     blank = [i + 1 for i, c in enumerate(cols) if c.strip() == ""]
     if blank:
         raise DataError(f"{source}: column {blank[0]} has an empty name in the header; name it or delete the column")
-    dup = sorted({c for c in cols if cols.count(c) > 1})
+    dup = sorted(c for c, k in _Counter(cols).items() if k > 1)
     if dup:
         raise DataError(f"{source}: column(s) {dup} appear more than once; rename or remove the duplicates")
     for c in ignore:
@@ -600,7 +602,7 @@ def resolve_inputs(path: str | Path | Sequence[str | Path]) -> tuple[list[Path],
         raise DataError(f"{label}: no data files given")
     for f in files:
         if not f.exists():
-            raise DataError(f"{f}: data file not found")
+            raise DataError(f"{f}: data file not found (check the path)")
         if f.is_dir():
             raise DataError(f"{f}: is a folder; give a CSV or Parquet file, or the folder alone")
     fmts = {("parquet" if f.suffix.lower() in PARQUET_SUFFIXES else "csv") for f in files}
@@ -622,7 +624,7 @@ def csv_header(path: str | Path) -> list[str]:
                 if rec:
                     return rec
     except FileNotFoundError:
-        raise DataError(f"{p}: data file not found") from None
+        raise DataError(f"{p}: data file not found (check the path)") from None
     except UnicodeDecodeError:
         raise DataError(f"{p}: not UTF-8 text; save the CSV as UTF-8") from None
     except csv.Error as e:
@@ -633,17 +635,45 @@ def csv_header(path: str | Path) -> list[str]:
 
 
 def _csv_records(path: Path) -> Iterator[tuple[int, list[str]]]:
-    """``(start_line, fields)`` of every data record after the header (empty lines skipped)."""
+    """``(start_line, fields)`` of every data record after the header.
+
+    Empty lines are skipped, except after the header of a one-column file: there an empty line
+    is a record whose only cell is empty (RFC 4180 makes every line a record), read as a gap
+    like an empty cell of a wider file (:func:`one_column_empty_lines_are_records`)."""
     with open(path, newline="", encoding="utf-8-sig", errors="replace") as fh:
         reader = csv.reader(fh)
         start = 1
-        header_seen = False
+        header: list[str] | None = None
         for rec in reader:
-            if rec:
-                if header_seen:
-                    yield start, rec
-                header_seen = True
+            if header is None:
+                if rec:
+                    header = rec
+            elif rec:
+                yield start, rec
+            elif len(header) == 1:
+                yield start, [""]
             start = reader.line_num + 1
+
+
+def csv_leading_empty_lines(path: str | Path) -> int:
+    """Number of empty lines before the header row of a CSV file."""
+    n = 0
+    with open(path, newline="", encoding="utf-8-sig", errors="replace") as fh:
+        for line in fh:
+            if line.strip("\r\n") != "":
+                return n
+            n += 1
+    return n
+
+
+def one_column_empty_lines_are_records(header: Sequence[str]) -> bool:
+    """In a file with one column, an empty line after the header is a record with an empty cell.
+
+    Skipping it as a blank line would drop records without a word (six records read as three);
+    an empty cell is a gap under the default missing labels, or an unknown label otherwise, as in
+    any other file. Empty lines before the header, and in wider files, are not records (a record
+    of a wider file has its commas)."""
+    return len(header) == 1
 
 
 def csv_line_of(path: str | Path, row: int) -> int | None:
@@ -691,9 +721,11 @@ def _csv_error(path: Path, exc: Exception) -> DataError:
 def _csv_arrow_options(path: Path, header: Sequence[str], columns: Sequence[str], block_size: int | None = None):
     import pyarrow as pa
     import pyarrow.csv as pcsv
-    ro = pcsv.ReadOptions(use_threads=True, **({"block_size": int(block_size)} if block_size else {}))
+    keep_empty = one_column_empty_lines_are_records(header)
+    ro = pcsv.ReadOptions(use_threads=True, skip_rows=csv_leading_empty_lines(path) if keep_empty else 0,
+                          **({"block_size": int(block_size)} if block_size else {}))
     po = pcsv.ParseOptions(delimiter=",", quote_char='"', double_quote=True, escape_char=False,
-                           newlines_in_values=True, ignore_empty_lines=True)
+                           newlines_in_values=True, ignore_empty_lines=not keep_empty)
     co = pcsv.ConvertOptions(column_types={c: pa.string() for c in header}, include_columns=list(columns),
                              strings_can_be_null=False, quoted_strings_can_be_null=False, null_values=[],
                              check_utf8=True)
@@ -750,9 +782,47 @@ def parquet_names(path: str | Path) -> list[str]:
     try:
         return list(pq.read_schema(p).names)
     except FileNotFoundError:
-        raise DataError(f"{p}: data file not found") from None
+        raise DataError(f"{p}: data file not found (check the path)") from None
     except Exception as e:
         raise DataError(f"{p}: not a readable Parquet file ({type(e).__name__}: {_first_line(e)})") from None
+
+
+SUPPORTED_PARQUET_TYPES = "text, integer, floating-point, boolean or dictionary (categorical)"
+
+
+def check_parquet_types(files: Sequence[Path], columns: Sequence[str]) -> None:
+    """Refuse Parquet columns that hold more than one value per cell; warn about null-typed ones.
+
+    A list, struct, map or union column (pyarrow's nested types) has no label per cell: one line
+    naming the file, the column, its type and the types that are read. A column of null type
+    (pandas writes one for a column of None only) holds no value in any row: it is read as all
+    gaps, like an empty CSV column, with a :class:`DataWarning` (the CLI prints it as one line),
+    since it often means a column that was not filled in at all.
+    """
+    import warnings
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from .errors import DataWarning
+
+    for f in files:
+        try:
+            schema = pq.read_schema(f)
+        except Exception as e:
+            raise DataError(f"{f}: not a readable Parquet file ({type(e).__name__}: {_first_line(e)})") from None
+        by_trim = {n.strip(): n for n in schema.names}
+        for c in columns:
+            if c not in by_trim:
+                continue
+            t = schema.field(by_trim[c]).type
+            if pa.types.is_nested(t):
+                shown = str(t) if len(str(t)) <= 60 else str(t)[:57] + "..."
+                raise DataError(f"{f}: column {c!r} has Parquet type {shown}, several values per cell; "
+                                f"adfit reads {SUPPORTED_PARQUET_TYPES} columns, one label per cell: store it as one of those")
+            if pa.types.is_null(t):
+                warnings.warn(f"{f}: column {c!r} has Parquet type null (no value in any row): every cell "
+                              f"is read as missing; check that the column was filled in", DataWarning, stacklevel=2)
 
 
 def _first_line(e: Exception) -> str:
@@ -874,6 +944,8 @@ def load_files(network: Network, path: str | Path | Sequence[str | Path], *, mis
     cols = common_columns(files, fmt)
     read = check_columns(network, cols, count_column=count_column, ignore_columns=ignore_columns,
                          source=str(files[0]) if len(files) == 1 else source)
+    if fmt == "parquet":
+        check_parquet_types(files, read)
     coder = LabelCoder(network, missing)
     parts = [_encode_file(network, f, fmt, coder, read, count_column) for f in files]
     _release_arrow_memory()

@@ -44,8 +44,8 @@ from typing import Any, Callable, Iterable, Mapping, Sequence
 import numpy as np
 
 from .data import HIDDEN, CodedData, decode, load_data
-from .errors import ImpossibleDataError, OptionError, PriorError
-from .network import SUM_TOL, Network
+from .errors import ImpossibleDataError, OptionError, PriorError, TooLargeError
+from .network import MAX_TABLE_ENTRIES, SUM_TOL, Network, table_too_large
 
 __all__ = ["EMResult", "EStep", "expected_counts", "em_fit", "fit_em", "to_fit_result", "log_likelihood",
            "random_start", "stationarity_residual", "RATE_MIN_STEP"]
@@ -88,8 +88,11 @@ class _PatternPlan:
     ev_assigned: tuple[tuple[int, ...], ...] = ()     # evidence indicators sitting in each cluster
 
 
-def _min_fill_order(hidden: Sequence[int], scopes: Iterable[Sequence[int]], cards: Sequence[int]) -> list[int]:
-    """Greedy elimination order: fewest fill-in edges, then smallest cluster, then node index."""
+def _min_fill_order(hidden: Sequence[int], scopes: Iterable[Sequence[int]], cards: Sequence[int],
+                    names: Sequence[str] | None = None) -> list[int]:
+    """Greedy elimination order: fewest fill-in edges, then smallest cluster, then node index.
+
+    Refuses (TooLargeError) as soon as a cluster would exceed MAX_TABLE_ENTRIES entries."""
     adj: dict[int, set[int]] = {v: set() for v in hidden}
     for s in scopes:
         for a in s:
@@ -109,6 +112,8 @@ def _min_fill_order(hidden: Sequence[int], scopes: Iterable[Sequence[int]], card
                 best = (key, v)
         v = best[1]
         nb = adj[v]
+        if best[0][1] > MAX_TABLE_ENTRIES:
+            raise TooLargeError(table_too_large(best[0][1], names[v] if names else str(v), len(nb) + 1))
         for a in nb:
             adj[a] |= nb - {a}
             adj[a].discard(v)
@@ -145,7 +150,7 @@ def _pattern_plan(network: Network, rows: np.ndarray, codes: np.ndarray, weights
     fams = [_family_index(network, v, hidden_set, codes) for v in range(len(network))]
     hidden_fams = tuple(f for f in fams if f.hid_vars)
     const_fams = tuple(f for f in fams if not f.hid_vars)
-    order = _min_fill_order(tree_vars, [f.hid_vars for f in hidden_fams], network.cards)
+    order = _min_fill_order(tree_vars, [f.hid_vars for f in hidden_fams], network.cards, network.names)
     pos = {v: i for i, v in enumerate(order)}
     # clusters from the elimination
     adj: dict[int, set[int]] = {v: set() for v in tree_vars}

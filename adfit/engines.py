@@ -38,7 +38,7 @@ import numpy as np
 import pandas as pd
 
 from .data import (HIDDEN, UNKNOWN, CodedData, LabelCoder, _count_problem, _csv_error, check_columns, code_columns,
-                   common_columns, csv_header, encode_frame, first_error, iter_csv_batches, iter_parquet_batches,
+                   check_parquet_types, common_columns, csv_header, csv_leading_empty_lines, encode_frame, first_error, iter_csv_batches, iter_parquet_batches,
                    key_layout, load_files, locator, parquet_names, resolve_inputs)
 from .rowkeys import PackedRows, reduce_words
 from .errors import DataError, OptionError
@@ -80,6 +80,8 @@ def make_plan(network: Network, path: Any, *, missing: Iterable[str] | None = No
     cols = common_columns(files, fmt)
     read = check_columns(network, cols, count_column=count_column, ignore_columns=ignore_columns,
                          source=str(files[0]) if len(files) == 1 else source)
+    if fmt == "parquet":
+        check_parquet_types(files, read)
     return ReadPlan(network, tuple(str(f) for f in files), fmt, tuple(cols), tuple(read),
                     LabelCoder(network, missing), count_column, source, int(chunk_rows))
 
@@ -224,31 +226,20 @@ def _sql_str(s: str) -> str:
     return "'" + s.replace("'", "''") + "'"
 
 
-def _header_skip(path: str) -> int:
-    """Number of empty lines before the header row of a CSV file."""
-    n = 0
-    with open(path, newline="", encoding="utf-8-sig", errors="replace") as fh:
-        for line in fh:
-            if line.strip("\r\n") != "":
-                return n
-            n += 1
-    return n
-
-
 def _duckdb_source(plan: ReadPlan) -> tuple[str, str]:
     files = "[" + ", ".join(_sql_str(os.path.abspath(f)) for f in plan.files) + "]"
     if plan.fmt == "parquet":
         return f"read_parquet({files})", ""
     raw = csv_header(plan.files[0])
     cols = "{" + ", ".join(f"{_sql_str(c)}: 'VARCHAR'" for c in raw) + "}"
-    skips = {_header_skip(f) for f in plan.files}
+    skips = {csv_leading_empty_lines(f) for f in plan.files}
     skip = f", skip={skips.pop()}" if len(skips) == 1 and 0 not in skips else ""
     src = (f"read_csv({files}, auto_detect=false, header=true, columns={cols}, delim=',', quote='\"', "
            f"escape='\"', strict_mode=true, null_padding=false, allow_quoted_nulls=false, "
            f"encoding='utf-8'{skip})")
-    # In a one-column file an empty line is read as a null row; the other readers skip it.
-    where = f" WHERE {_sql_ident(raw[0])} IS NOT NULL" if len(raw) == 1 else ""
-    return src, where
+    # In a one-column file an empty line is read as a null row: an empty cell, as in the other
+    # readers (adfit.data.one_column_empty_lines_are_records).
+    return src, ""
 
 
 def _duckdb_error(plan: ReadPlan, e: Exception) -> DataError:

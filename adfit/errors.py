@@ -40,6 +40,19 @@ class OutputError(OptionError):
     read, is a folder, link, device or pipe, or its folder is missing or not writable."""
 
 
+class InputFileNotFound(OptionError):
+    """A file named on the command line does not exist, is a folder, or cannot be read."""
+
+
+class TooLargeError(OptionError):
+    """A computation would need more memory than adfit allows (the elimination's largest table,
+    a minibatch, the draws of an imputation): refused before it starts, with the estimate."""
+
+
+class DataWarning(UserWarning):
+    """The records are read, but not quite as written (a Parquet column of null type: all gaps)."""
+
+
 class ConvergenceWarning(UserWarning):
     """The optimiser stopped before its stopping rule held; the estimate may not be a maximum."""
 

@@ -320,15 +320,47 @@ def imputed_frame(frame: pd.DataFrame, imputation: Imputation) -> pd.DataFrame:
     return pd.concat([frame, added], axis=1)
 
 
+def _plain_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return text.strip() == text  # "-1.5" is a number to a spreadsheet; " -1" or "-1\t" is not left alone
+
+
+def defuse_frame(table: pd.DataFrame) -> tuple[pd.DataFrame, int]:
+    """Text cells a spreadsheet would run as formulas (first character ``=``, ``+``, ``-``, ``@``,
+    tab or carriage return) get a leading apostrophe; plain numbers such as ``-1.5`` are left as
+    they are. Column names too. Returns the table and how many cells were changed."""
+    from .show import defuse_cell
+
+    def fix(v: object) -> object:
+        return v if isinstance(v, str) and _plain_number(v) else defuse_cell(v)
+
+    out = table.copy()
+    changed = 0
+    for col in out.columns:
+        if out[col].dtype == object or pd.api.types.is_string_dtype(out[col]):
+            new = [fix(v) for v in out[col]]
+            changed += sum(a is not b for a, b in zip(new, out[col]))
+            out[col] = new
+    out.columns = [fix(c) if isinstance(c, str) else c for c in out.columns]
+    return out, changed
+
+
 def impute_file(network: Network, probs: Mapping[str, np.ndarray], data: str | Path, out: str | Path, *,
                 draws: int = 0, seed: int = 0, nodes: Sequence[str] | None = None,
                 missing: Iterable[str] | None = None, count_column: str | None = None,
-                ignore_columns: Iterable[str] = ()) -> tuple[Imputation, pd.DataFrame]:
+                ignore_columns: Iterable[str] = (), defuse: bool = True) -> tuple[Imputation, pd.DataFrame]:
     """Read ``data`` (CSV/Parquet file, folder or glob), impute, write ``out`` (CSV, atomically).
 
     Every input record gives one output row, in the input order, with every input column as it
     was read (CSV: the text of the cell) and the added columns (:data:`COLUMNS_DOC`). A count
     column, if named, is carried along unchanged: posteriors do not depend on record weights.
+
+    With ``defuse`` (the default) text cells that a spreadsheet would run as formulas are written
+    with a leading apostrophe (:func:`defuse_frame`; OWASP, "CSV Injection"); ``defuse=False``
+    writes every cell as it was. The returned table is the one written.
 
     Returns:
         ``(imputation, the written table)``.
@@ -354,6 +386,8 @@ def impute_file(network: Network, probs: Mapping[str, np.ndarray], data: str | P
         locate = csv_rows(files[0])
     imp = impute(network, probs, coded, draws=draws, seed=seed, nodes=nodes, locate=locate)
     table = imputed_frame(frame, imp)
+    if defuse:
+        table, _ = defuse_frame(table)
     with atomic_write(out) as fh:
         table.to_csv(fh, index=False, lineterminator="\n", na_rep="")
     return imp, table

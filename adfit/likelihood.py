@@ -70,8 +70,8 @@ import numpy as np
 
 from ._jax import jax, jnp  # float64 on before anything else (adfit/_jax.py)
 from .data import HIDDEN, CodedData
-from .errors import ImpossibleDataError, OptionError
-from .network import Network
+from .errors import ImpossibleDataError, OptionError, TooLargeError
+from .network import MAX_TABLE_ENTRIES, Network, table_too_large
 
 # --------------------------------------------------------------------------- cost model
 # Seconds on the 2-core reference machine for one value-and-gradient, fitted to the figures of
@@ -168,8 +168,13 @@ class GroupPlan:
     n_pruned: int
 
 
-def _min_fill_order(variables: Sequence[int], scopes: Sequence[Sequence[int]], cards: Sequence[int]) -> list[int]:
-    """Greedy min-fill elimination order, ties broken by the size of the created clique."""
+def _min_fill_order(variables: Sequence[int], scopes: Sequence[Sequence[int]], cards: Sequence[int],
+                    names: Sequence[str] | None = None) -> list[int]:
+    """Greedy min-fill elimination order, ties broken by the size of the created clique.
+
+    Raises TooLargeError as soon as the chosen step's clique (the table it creates, per row)
+    exceeds :data:`adfit.network.MAX_TABLE_ENTRIES`: before the rest of the order is searched
+    and before anything is compiled."""
     nb: dict[int, set[int]] = {v: set() for v in variables}
     for s in scopes:
         for a in s:
@@ -193,6 +198,8 @@ def _min_fill_order(variables: Sequence[int], scopes: Sequence[Sequence[int]], c
             if best_key is None or key < best_key:
                 best, best_key = v, key
         v = best
+        if best_key[1] > MAX_TABLE_ENTRIES:
+            raise TooLargeError(table_too_large(best_key[1], names[v] if names else str(v), len(nb[v]) + 1))
         ns = list(nb[v])
         for a in ns:
             for b in ns:
@@ -262,7 +269,7 @@ def _group_plan(network: Network, hidden_mask: np.ndarray, *, kind: str, n_rows:
 
     scopes: list[tuple[int, ...]] = [f.scope for f in factors] + [(v,) for v in indicators]
     variables = sorted({v for s in scopes for v in s})
-    order = _min_fill_order(variables, scopes, cards)
+    order = _min_fill_order(variables, scopes, cards, network.names)
     live = list(range(len(scopes)))
     steps: list[Step] = []
     cost = 0.0

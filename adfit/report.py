@@ -271,6 +271,27 @@ def _short(v: Any, limit: int = 300) -> str:
 
 
 # ============================================================================== figures
+def _plain_text():
+    """Labels drawn as written: matplotlib reads text between two ``$`` as maths markup (a state
+    ``$\\foo$`` crashed the report, ``$x$`` came out in italics). Texts take the setting when
+    they are created, tick labels when the figure is drawn: figures are built and saved inside."""
+    import matplotlib
+
+    return matplotlib.rc_context({"text.parse_math": False, "text.usetex": False})
+
+
+def _plain_labels(draw):
+    """Build a figure with :func:`_plain_text` on (node names and state labels are data)."""
+    import functools
+
+    @functools.wraps(draw)
+    def wrapper(*args, **kwargs):
+        with _plain_text():
+            return draw(*args, **kwargs)
+
+    return wrapper
+
+
 def _figure(width: float, height: float):
     from matplotlib.figure import Figure
 
@@ -280,7 +301,8 @@ def _figure(width: float, height: float):
 def _png(fig) -> tuple[str, float, float]:
     """The figure as a base64 PNG, and its size in CSS pixels (96 per inch)."""
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=DPI, metadata={"Software": "adfit"})
+    with _plain_text():
+        fig.savefig(buf, format="png", dpi=DPI, metadata={"Software": "adfit"})
     w, h = fig.get_size_inches()
     return base64.b64encode(buf.getvalue()).decode("ascii"), float(w) * 96.0, float(h) * 96.0
 
@@ -373,6 +395,7 @@ def _crosses(a: tuple[float, float], b: tuple[float, float], boxes: Sequence[tup
     return any(bool(np.any((np.abs(x - ox) < hw) & (np.abs(y - oy) < hh))) for ox, oy in boxes)
 
 
+@_plain_labels
 def network_figure(network: Network):
     """The network drawn in layers (a matplotlib Figure, no display needed).
 
@@ -507,6 +530,7 @@ _LINESTYLES = ("-", "--", ":", "-.")
 _COLOURS = ("#1b1b1b", "#7a4b00", "#2f5f8a", "#6b6b6b", "#8a2f4d", "#3f7a3a")
 
 
+@_plain_labels
 def convergence_figure(histories: Sequence[tuple[str, list[float], list[float], bool]], *,
                        threshold: float | None = None):
     """Objective (linear), shortfall below the best objective (log) and gradient norm (log)
@@ -561,6 +585,7 @@ def convergence_figure(histories: Sequence[tuple[str, list[float], list[float], 
     return fig
 
 
+@_plain_labels
 def gaps_figure(columns: Sequence[Mapping[str, Any]]):
     """Share of missing cells per observed column (horizontal bars)."""
     names = [str(c.get("name")) for c in columns]
@@ -615,6 +640,7 @@ def _row_index(doc: Mapping[str, Any], parents: Sequence[str], cfg: Mapping[str,
     return row
 
 
+@_plain_labels
 def complete_case_figure(doc: Mapping[str, Any], entries: Sequence[Mapping[str, Any]], *, z: float = 1.96):
     """Both estimates of every entry (rows), full likelihood with its error bar, complete case beside it.
 

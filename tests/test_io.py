@@ -231,3 +231,33 @@ def test_a_terminated_write_removes_its_temporary_file(tmp_path, sig, rc):
     else:
         assert proc.returncode != 0 and "KeyboardInterrupt" in err
     assert [p.name for p in tmp_path.iterdir()] == ["out.csv"] and target.read_text() == "old"
+
+
+# ============================================================================ spreadsheet formulas
+def test_impute_defuses_formula_cells_by_default_and_writes_raw_on_request(tmp_path):
+    # OWASP, "CSV Injection": cells starting with =, +, -, @ (and tab, carriage return) are run as
+    # formulas by spreadsheets; the usual defence is a leading apostrophe. Plain numbers stay.
+    import pandas as pd
+
+    (tmp_path / "n.toml").write_text('[nodes.wear]\nstates = ["=low", "@high"]\n'
+                                     '[nodes.failure]\nstates = ["no", "yes"]\nparents = ["wear"]\n')
+    (tmp_path / "d.csv").write_text('wear,failure,@note\n=low,no,"=HYPERLINK(""x"")"\n@high,yes,-1.5\n,no,+cmd\n'
+                                    '=low,,plain\n@high,no,-\n')
+    r = cli(["em", tmp_path / "n.toml", tmp_path / "d.csv", "--ignore-columns", "@note", "--out", tmp_path / "r.json"])
+    assert r.exit_code == 0, r.output
+    base = ["impute", tmp_path / "n.toml", tmp_path / "d.csv", "--params", tmp_path / "r.json",
+            "--ignore-columns", "@note", "--draws", "1"]
+    r = cli(base + ["--out", tmp_path / "safe.csv"])
+    assert r.exit_code == 0, r.output
+    safe = pd.read_csv(tmp_path / "safe.csv", dtype=str, keep_default_na=False)
+    assert list(safe["'@note"]) == ["'=HYPERLINK(\"x\")", "-1.5", "'+cmd", "plain", "'-"]
+    assert list(safe["wear"]) == ["'=low", "'@high", "", "'=low", "'@high"]
+    assert set(safe["wear__mode"]) <= {"'=low", "'@high"} and set(safe["wear__draw1"]) <= {"'=low", "'@high"}
+    assert "wear__p_=low" in safe.columns  # (a name that does not start like a formula stays)
+    assert all(float(v) < 0 for v in safe["row__log_p_observed"])  # negative numbers are not touched
+    r = cli(base + ["--raw-cells", "--out", tmp_path / "raw.csv"])
+    assert r.exit_code == 0, r.output
+    raw = pd.read_csv(tmp_path / "raw.csv", dtype=str, keep_default_na=False)
+    assert list(raw["@note"]) == ['=HYPERLINK("x")', "-1.5", "+cmd", "plain", "-"]
+    assert list(raw["wear"]) == ["=low", "@high", "", "=low", "@high"] 
+    assert (raw["row__log_p_observed"] == safe["row__log_p_observed"]).all()
