@@ -118,6 +118,10 @@ def fold_counts(data: CodedData, folds: int, seed: int = 0) -> tuple[np.ndarray,
     w = np.asarray(data.counts, dtype=np.float64)
     rng = np.random.default_rng(seed)
     k = int(folds)
+    from .limits import check_memory
+
+    check_memory(f"--folds {k} over {len(w):,} distinct rows", float(k) * len(w) * 8 * 2,
+                 "give fewer --folds (5 or 10 is common practice)")
     out = np.zeros((k, len(w)))
     if np.all(w == np.round(w)):
         wi = np.round(w).astype(np.int64)

@@ -395,8 +395,18 @@ def fit_command(
 
         check_seed(seed)
         check_output_paths({"out": out}, {"network file": network, "data file": data, "prior file": prior})
+        import math
+
+        from .limits import check_batch_size, check_folds, check_restarts
+        from .network import load_network as _load
+
+        _net = _load(network)  # sizes that cannot fit are refused before the records are read
+        if batch_size is not None and batch_size >= 1:
+            check_batch_size(batch_size, len(_net))
+        check_restarts(restarts, sum(math.prod(_net.cpt_shape(v)) for v in _net.free_names))
         net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
                                  ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
+        check_folds(folds, float(coded.counts.sum()), len(coded.counts))
         pri = None
         if prior is not None:
             from .priors import load_prior

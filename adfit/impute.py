@@ -384,6 +384,9 @@ def impute_file(network: Network, probs: Mapping[str, np.ndarray], data: str | P
         from .data import csv_rows
 
         locate = csv_rows(files[0])
+    from .limits import check_draws
+
+    check_draws(draws, len(frame), len(nodes) if nodes else len(network))  # before the posterior is computed
     imp = impute(network, probs, coded, draws=draws, seed=seed, nodes=nodes, locate=locate)
     table = imputed_frame(frame, imp)
     if defuse:

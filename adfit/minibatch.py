@@ -49,6 +49,9 @@ def run_minibatch(fitter, logits0: Mapping[str, np.ndarray], *, batch_size: int,
 
     if batch_size < 1:
         raise OptionError(f"--batch-size must be >= 1, got {batch_size}")
+    from .limits import check_batch_size
+
+    check_batch_size(batch_size, len(fitter.network))  # before the plan: a huge batch is refused at once
     network = fitter.network
     data: CodedData = fitter.data
     gp, n_chunks = minibatch_plan(network, batch_size)

@@ -19,7 +19,7 @@ import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterable, Mapping
+from typing import Any, Iterable, Mapping, Sequence
 
 import numpy as np
 
@@ -356,6 +356,7 @@ def parse_network(doc: Mapping[str, Any], *, source: str = "<network>") -> Netwo
                 raise NetworkError(f"{source}: node {n.name!r} has unknown parent {p!r}; declare it as [nodes.{p}]")
 
     ordered = _topological(raw_nodes, source)
+    _check_cpt_sizes(ordered, source)
     net = Network(tuple(ordered))
     if fixed_raw:
         nodes = []
@@ -366,6 +367,23 @@ def parse_network(doc: Mapping[str, Any], *, source: str = "<network>") -> Netwo
             nodes.append(n)
         net = Network(tuple(nodes))
     return net
+
+
+def _check_cpt_sizes(nodes: Sequence[Node], source: str) -> None:
+    """Refuse a CPT (or all CPTs together) over MAX_TABLE_ENTRIES entries, before any array is made."""
+    card = {n.name: len(n.states) for n in nodes}
+    total = 0
+    for n in nodes:
+        rows = math.prod(card[p] for p in n.parents)
+        size = rows * card[n.name]
+        total += size
+        if size > MAX_TABLE_ENTRIES:
+            raise NetworkError(f"{source}: nodes.{n.name} has a CPT of {size:.3g} entries ({rows:.3g} parent "
+                               f"configurations x {card[n.name]} states), more than the limit 2**27 = "
+                               f"{MAX_TABLE_ENTRIES:,}: give it fewer parents, or its parents fewer states")
+    if total > MAX_TABLE_ENTRIES:
+        raise NetworkError(f"{source}: the CPTs have {total:.3g} entries in all, more than the limit 2**27 = "
+                           f"{MAX_TABLE_ENTRIES:,}: give nodes fewer states or fewer parents")
 
 
 def _topological(nodes: list[Node], source: str) -> list[Node]:

@@ -313,3 +313,45 @@ def test_an_elimination_beyond_the_table_limit_is_refused_before_compiling(tmp_p
         assert 2 ** 13 <= largest_clique(order, scopes, [c] * (k * k)) <= MAX_TABLE_ENTRIES
         with pytest.raises(likelihood.TooLargeError):
             order_fn(list(range(k * k)), scopes, [4] * (k * k))
+
+
+def test_sizes_that_cannot_fit_in_memory_are_refused_before_the_work(valid, tmp_path):
+    # the estimates are plain byte counts (adfit/limits.py); 10**12 rows of a minibatch, 10**8
+    # draws, starts or folds exceed the memory of any machine this runs on
+    from adfit import limits
+
+    n, data, params = valid / "n.toml", valid / "d.csv", valid / "fit.json"
+    out = tmp_path / "o"
+    for args, words in [
+        (["fit", n, data, "--method", "adam", "--batch-size", 10 ** 12, "--out", out], "--batch-size 1000000000000 would need about"),
+        (["fit", n, data, "--restarts", 10 ** 11, "--out", out], "--restarts 100000000000 (9 parameters each) would need about"),
+        (["fit", n, data, "--folds", 10 ** 8, "--out", out], "--folds 100000000 is more than the 7 records"),
+        (["impute", n, data, "--params", params, "--draws", 10 ** 11, "--out", out], "--draws 100000000000 for 7 records would need about"),
+    ]:
+        r = cli(args)
+        assert one_line_error(r) and words in r.output and not out.exists(), (args[:2], r.output)
+    # 9 parameters: the CPT entries, 3 for wear and 3 x 2 for failure given wear
+    # the estimate itself: 10**12 rows x (8 + 8 x 2 nodes + 16) bytes
+    assert limits.minibatch_bytes(10 ** 12, 2) == 10 ** 12 * 40
+    with pytest.raises(limits.TooLargeError) as e:
+        limits.check_memory("a test", 3 * 2 ** 30, "make it smaller", available=4 * 2 ** 30)
+    assert str(e.value) == "a test would need about 3 GiB of memory, more than half of the 4 GiB available; make it smaller"
+    limits.check_memory("a test", 2 * 2 ** 30, "make it smaller", available=4 * 2 ** 30)  # half: accepted
+
+
+def test_a_cpt_beyond_the_table_limit_is_refused_when_the_network_is_read(tmp_path):
+    # 10 parents of 8 states and 2 states of its own: 8**10 x 2 = 2**31 entries > 2**27
+    from adfit.errors import NetworkError
+    from adfit.network import MAX_TABLE_ENTRIES, load_network
+
+    labels = ", ".join(f'"s{i}"' for i in range(8))
+    text = "".join(f"[nodes.p{i}]\nstates = [{labels}]\n" for i in range(10))
+    p = tmp_path / "wide.toml"
+    p.write_text(text + "[nodes.c]\nstates = [\"a\", \"b\"]\nparents = [" + ", ".join(f'"p{i}"' for i in range(10)) + "]\n")
+    assert 8 ** 10 * 2 == 2 ** 31 > MAX_TABLE_ENTRIES
+    with pytest.raises(NetworkError) as e:
+        load_network(p)
+    assert str(e.value).startswith(f"{p}: nodes.c has a CPT of 2.15e+09 entries (1.07e+09 parent configurations x 2 states)")
+    # 6 parents: 8**6 x 2 = 524 288 entries, accepted
+    p.write_text(text + "[nodes.c]\nstates = [\"a\", \"b\"]\nparents = [" + ", ".join(f'"p{i}"' for i in range(6)) + "]\n")
+    assert load_network(p).cpt_shape("c") == (8,) * 6 + (2,)
