@@ -64,8 +64,8 @@ def restarts_bytes(restarts: int, n_params: int) -> float:
     return float(restarts) * n_params * 8 * 32
 
 
-def check_restarts(restarts: int, n_params: int) -> None:
-    if restarts > 1:
+def check_restarts(restarts: int | None, n_params: int) -> None:
+    if restarts is not None and restarts > 1:
         check_memory(f"--restarts {restarts} ({n_params} parameters each)", restarts_bytes(restarts, n_params),
                      "give fewer --restarts (5 to 50 is common practice)")
 
