@@ -45,7 +45,7 @@ def run_minibatch(fitter, logits0: Mapping[str, np.ndarray], *, batch_size: int,
     The objective history holds the minibatch estimates of F (noisy by construction); the last
     entry is replaced by the exact full-data value by the caller.
     """
-    from .fit import _objective_fg  # the same compiled pieces as the full-data fit
+    from .params import objective_fg as _objective_fg  # the same compiled pieces as the full-data fit
 
     if batch_size < 1:
         raise OptionError(f"--batch-size must be >= 1, got {batch_size}")
@@ -60,7 +60,7 @@ def run_minibatch(fitter, logits0: Mapping[str, np.ndarray], *, batch_size: int,
     p = data.counts / data.counts.sum()
     N = fitter.n_total
     B = n_chunks * gp.chunk
-    lay = fitter.layout  # the optimiser works on one flat vector (adfit.fit.FreeLayout)
+    lay = fitter.layout  # the optimiser works on one flat vector (adfit.params.FreeLayout)
     z = lay.flatten(logits0)
     ones = np.ones(lay.size)
     pseudo = jnp.asarray(fitter.pseudo_flat)

@@ -70,7 +70,7 @@ import numpy as np
 import optax
 
 from .crosscheck import LL_RTOL, THETA_ATOL, align_latent_states, relabel
-from .fit import _head, _head_grad, free_layout
+from .params import free_layout, head as _head, head_grad as _head_grad
 from .likelihood import _value_and_flat_expected_counts
 from .network import Network
 
@@ -88,10 +88,10 @@ def _batched_objective(network: Network, groups, z, scale, lc_given, use_given, 
                        codes, weights):
     """For K points at once: log-likelihood, −F/N, expected counts and ∂(−F/N)/∂z.
 
-    Every parameter array is flat (:class:`adfit.fit.FreeLayout`), stacked on axis 0. Slot ``i``
+    Every parameter array is flat (:class:`adfit.params.FreeLayout`), stacked on axis 0. Slot ``i``
     is evaluated at the log-CPTs of the free nodes given in ``lc_given`` where ``use_given[i]``
     (the exact evaluation of :meth:`Fitter.evaluate`), else at ``softmax(z·scale)`` (a point of
-    the optimiser, :func:`adfit.fit._objective_fg`). The expected counts come back flat, in the
+    the optimiser, :func:`adfit.params.objective_fg`). The expected counts come back flat, in the
     likelihood's layout (two trailing entries to ignore).
     """
     lay = free_layout(network)
@@ -142,7 +142,7 @@ class BatchedDirections:
     """L-BFGS directions of up to ``width`` starts in one vmapped call, each start with its own
     memory (kept here, stacked; the starts hold a :class:`_Memory` handle). Parameters,
     gradients and directions are flat vectors of the length of ``template``
-    (:class:`adfit.fit.FreeLayout`)."""
+    (:class:`adfit.params.FreeLayout`)."""
 
     def __init__(self, width: int, memory: int, template: np.ndarray):
         self.width = int(width)

@@ -186,7 +186,7 @@ def test_flat_head_matches_per_node_softmax_and_the_closed_form_gradient():
     import jax.numpy as jnp
     from scipy.special import log_softmax
 
-    from adfit.fit import _head, _head_grad, fixed_log_tables, free_layout
+    from adfit.params import fixed_log_tables, free_layout, head as _head, head_grad as _head_grad
     from adfit.likelihood import layout_of
 
     net = _head_test_network()
@@ -285,7 +285,8 @@ def test_numpy_head_equals_the_jax_head():
     # jax.nn.log_softmax (the batched starts use the JAX head).
     import jax.numpy as jnp
 
-    from adfit.fit import _head, _head_grad, _head_grad_np, _head_np, fixed_log_tables, free_layout
+    from adfit.params import (fixed_log_tables, free_layout, head as _head, head_grad as _head_grad,
+                              head_grad_np as _head_grad_np, head_np as _head_np)
 
     net = _head_test_network()
     lay = free_layout(net)

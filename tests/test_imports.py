@@ -131,3 +131,37 @@ def test_the_cache_can_still_be_switched_off(tmp_path):
     out = json.loads(r.stdout.strip().splitlines()[-1])
     assert out["dtype"] == "float64" and not out["cache"]
     assert not (tmp_path / "cache").exists()
+
+
+def _package_imports() -> dict[str, set[str]]:
+    """adfit module -> the adfit modules it imports, at its top or inside functions (ast)."""
+    graph = {}
+    for path in PACKAGE.glob("*.py"):
+        deps = set()
+        for node in ast.walk(ast.parse(path.read_text())):
+            if isinstance(node, ast.ImportFrom) and node.level == 1:
+                deps.update([node.module.split(".")[0]] if node.module else [a.name for a in node.names])
+        graph[path.stem] = deps
+    return graph
+
+
+def test_no_import_circles_between_modules():
+    """No module reaches itself through imports, lazy ones included (DEVELOPERS.md). The one
+    allowed pair: ``_jax`` calls ``_compile_cache`` once JAX is configured, which imports JAX
+    back from ``_jax`` only inside a function (both are there to keep --help free of JAX)."""
+    graph = _package_imports()
+    allowed = {frozenset({"_jax", "_compile_cache"})}
+    circles = []
+    for start in graph:
+        stack = [(start, (start,))]
+        while stack:
+            mod, path = stack.pop()
+            for dep in graph.get(mod, ()):
+                if dep == start and frozenset(path) not in allowed:
+                    circles.append(" -> ".join(path + (dep,)))
+                elif dep not in path:
+                    stack.append((dep, path + (dep,)))
+    assert not circles, circles
+    # the parameterisation layer sits below the optimisers that use it
+    assert not graph["params"] & {"fit", "restarts", "minibatch", "uncertainty"}
+    assert "fit" not in graph["restarts"] | graph["minibatch"]

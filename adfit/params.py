@@ -1,0 +1,235 @@
+"""The free parameter vector and its map to log-CPTs (the parameterisation layer).
+
+The optimiser (:mod:`adfit.fit`), the side-by-side starts (:mod:`adfit.restarts`) and the
+minibatch loop (:mod:`adfit.minibatch`) work on one flat float64 vector of free parameters;
+this module owns its layout (:class:`FreeLayout`) and the map from it to the log-CPTs of every
+node in the likelihood's flat layout (:func:`head` in JAX, :func:`head_np` in numpy), with the
+prior/penalty part of the objective and its gradient given the expected counts
+(:func:`head_grad`, :func:`head_grad_np`), and the objective itself (:func:`objective_fg`).
+The likelihood core (:mod:`adfit.likelihood`) only ever sees log-CPTs.
+
+Today every free node has the table form: its CPT rows are ``softmax`` of free logits, scaled by
+the fitter's preconditioner (``eta = z * scale``). Other forms (structured CPTs) map their own
+parameters to log-CPTs here, so that nothing outside this module needs to know a node's form.
+
+Imports: this module depends on :mod:`adfit.likelihood` and :mod:`adfit.network` only; nothing
+here imports :mod:`adfit.fit`, which removes the former circle fit → restarts → fit.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from functools import partial
+from typing import Any, Mapping
+
+from ._jax import jax, jnp  # first: float64 on (adfit/_jax.py)
+import numpy as np
+
+from .likelihood import _value_and_flat_expected_counts
+from .network import Network
+
+__all__ = ["FreeLayout", "free_layout", "fixed_log_tables", "head", "head_grad", "head_np", "head_grad_np",
+           "objective_fg"]
+
+
+# --------------------------------------------------------------------------- the flat parameter vector
+@dataclass(frozen=True, eq=False)
+class FreeLayout:
+    """The logits of the free nodes as one flat float64 vector: the free nodes in network order,
+    each CPT raveled (C order), at ``offsets``. The optimiser works on such vectors only (its
+    compiled pieces then take one array whatever the number of nodes, and compile once per
+    vector length); CPT-shaped dicts appear at its boundary (:meth:`flatten`, :meth:`unflatten`).
+
+    ``rows`` groups the CPT rows by their number of states: ``(k, idx)`` with ``idx`` the
+    ``(rows, k)`` positions of every row of ``k`` states in the vector (``None`` when the vector
+    is just those rows, in order); ``inverse`` puts the concatenated groups back in vector order
+    (``None`` when they already are). ``full_index`` maps every entry of the likelihood's flat
+    layout (all nodes, :func:`adfit.likelihood.layout_of`) to its position in the free vector
+    followed by the fixed nodes' log-tables (``None`` when no node is fixed).
+    """
+
+    names: tuple[str, ...]
+    shapes: tuple[tuple[int, ...], ...]
+    offsets: tuple[int, ...]
+    size: int
+    n_flat: int
+    rows: tuple[tuple[int, Any], ...]
+    inverse: Any
+    full_index: Any
+    order: Any = None        # the row blocks' entries in vector positions (inverse of ``inverse``)
+    free_index: Any = None   # the free entries' positions in the likelihood's layout (None: all entries)
+
+    def flatten(self, tree: Mapping[str, Any]) -> np.ndarray:
+        """One float64 vector from CPT-shaped arrays of the free nodes (a new array)."""
+        if not self.names:
+            return np.zeros(0)
+        return np.concatenate([np.ravel(np.asarray(tree[k], dtype=np.float64)) for k in self.names])
+
+    def unflatten(self, vec: Any) -> dict[str, np.ndarray]:
+        """CPT-shaped views of a flat vector, by free node."""
+        v = np.asarray(vec)
+        return {k: v[o:o + math.prod(sh)].reshape(sh) for k, sh, o in zip(self.names, self.shapes, self.offsets)}
+
+
+_FREE_LAYOUTS: dict[int, tuple[Network, FreeLayout]] = {}
+
+
+def free_layout(network: Network) -> FreeLayout:
+    """The :class:`FreeLayout` of ``network`` (cached by identity, as the likelihood's layout)."""
+    hit = _FREE_LAYOUTS.get(id(network))
+    if hit is None or hit[0] is not network:
+        hit = _FREE_LAYOUTS[id(network)] = (network, _make_free_layout(network))
+    return hit[1]
+
+
+def _make_free_layout(network: Network) -> FreeLayout:
+    names = tuple(network.free_names)
+    free = set(names)
+    shapes, offsets, by_card = [], [], {}
+    off = 0
+    for name in names:
+        sh = tuple(network.cpt_shape(name))
+        size = math.prod(sh)
+        shapes.append(sh)
+        offsets.append(off)
+        by_card.setdefault(sh[-1], []).append(np.arange(off, off + size, dtype=np.int32))
+        off += size
+    P = off
+    rows, order = [], []
+    for k in sorted(by_card):
+        idx = np.concatenate(by_card[k])
+        order.append(idx)
+        rows.append((k, idx.reshape(-1, k)))
+    perm = np.concatenate(order) if order else np.zeros(0, np.int32)
+    in_order = bool(np.array_equal(perm, np.arange(P)))
+    if in_order and len(rows) == 1:
+        rows = [(rows[0][0], None)]
+    inverse = None if in_order else np.argsort(perm).astype(np.int32)
+    full, fixed_off, n_flat = [], 0, 0
+    for node in network.nodes:
+        size = math.prod(network.cpt_shape(node.name))
+        n_flat += size
+        if node.name in free:
+            o = offsets[names.index(node.name)]
+            full.append(np.arange(o, o + size, dtype=np.int32))
+        else:
+            full.append(np.arange(P + fixed_off, P + fixed_off + size, dtype=np.int32))
+            fixed_off += size
+    full_index = None if fixed_off == 0 else np.concatenate(full)
+    free_index = None if full_index is None else np.flatnonzero(full_index < P).astype(np.int32)
+    return FreeLayout(names, tuple(shapes), tuple(offsets), P, n_flat, tuple(rows), inverse, full_index,
+                      None if inverse is None else perm.astype(np.int32), free_index)
+
+
+def fixed_log_tables(network: Network) -> np.ndarray:
+    """log of the fixed nodes' tables, in network order, raveled (the tail of
+    ``FreeLayout.full_index``'s source vector)."""
+    parts = []
+    with np.errstate(divide="ignore"):
+        for name in network.fixed_names:
+            parts.append(np.ravel(np.log(np.asarray(network.fixed_table(name), dtype=np.float64))))
+    return np.concatenate(parts) if parts else np.zeros(0)
+
+
+# --------------------------------------------------------------------------- the fast objective
+@partial(jax.jit, static_argnums=(0,))
+def head(network: Network, z, scale, pseudo, fixed_flat, l2):
+    """Log-CPTs of all nodes (one flat vector in the likelihood's layout) and the prior/penalty
+    part of F, from the scaled logits ``z`` (flat, :class:`FreeLayout`). The softmax runs once per
+    number of states over all CPT rows of that size, so the program does not grow with the
+    number of nodes."""
+    lay = free_layout(network)
+    eta = z * scale
+    parts = []
+    pen = jnp.zeros((), jnp.float64)
+    for k, idx in lay.rows:
+        e = eta.reshape(-1, k) if idx is None else eta[idx]
+        parts.append(jax.nn.log_softmax(e, axis=-1).reshape(-1))
+        pen = pen + jnp.sum((e - jnp.mean(e, axis=-1, keepdims=True)) ** 2)
+    lc = parts[0] if len(parts) == 1 else jnp.concatenate(parts)
+    if lay.inverse is not None:
+        lc = lc[lay.inverse]
+    lp = jnp.sum(pseudo * lc)
+    full = lc if lay.full_index is None else jnp.concatenate([lc, fixed_flat])[lay.full_index]
+    return full, lp - l2 * pen
+
+
+@partial(jax.jit, static_argnums=(0,))
+def head_grad(network: Network, z, scale, pseudo, fixed_flat, l2, counts, n_total):
+    """Gradient of −F/N w.r.t. z, given ∂ log L/∂ log θ = the expected counts (flat, in the
+    likelihood's layout; trailing entries beyond it are ignored)."""
+    n_flat = free_layout(network).n_flat
+    _, vjp = jax.vjp(lambda zz: head(network, zz, scale, pseudo, fixed_flat, l2), z)
+    (g,) = vjp((counts[:n_flat], jnp.ones((), jnp.float64)))
+    return -g / n_total
+
+
+def head_np(lay: FreeLayout, z: np.ndarray, scale: np.ndarray, pseudo: np.ndarray, fixed_flat: np.ndarray,
+             l2: float):
+    """:func:`head` in numpy, for the single-start optimiser (no compile; a few vector operations
+    per call): ``(log-CPTs in the likelihood's flat layout, prior/penalty part of F, (eta, theta,
+    row blocks) for :func:`head_grad_np`)``. The same softmax as ``jax.nn.log_softmax`` (row max
+    shifted out); equal to :func:`head` up to rounding."""
+    eta = z * scale
+    parts, blocks = [], []
+    pen = 0.0
+    for k, idx in lay.rows:
+        e = eta.reshape(-1, k) if idx is None else eta[idx]
+        sh = e - e.max(axis=-1, keepdims=True)
+        ls = sh - np.log(np.sum(np.exp(sh), axis=-1, keepdims=True))
+        parts.append(ls.reshape(-1))
+        blocks.append((e, ls))
+        d = e - e.mean(axis=-1, keepdims=True)
+        pen += float(np.sum(d * d))
+    lc = parts[0] if len(parts) == 1 else (np.concatenate(parts) if parts else np.zeros(0))
+    if lay.inverse is not None:
+        lc = lc[lay.inverse]
+    with np.errstate(invalid="ignore"):
+        lp = float(np.dot(pseudo, lc))
+    full = lc if lay.full_index is None else np.concatenate([lc, fixed_flat])[lay.full_index]
+    return full, lp - l2 * pen, blocks
+
+
+def head_grad_np(lay: FreeLayout, blocks, scale: np.ndarray, pseudo: np.ndarray, l2: float, counts: np.ndarray,
+                  n_total: float) -> np.ndarray:
+    """:func:`_head_grad` in closed form (numpy): with ``a = N(x,u) + c`` per CPT entry, the
+    gradient of F w.r.t. the logits is ``a − θ Σ_x a − 2λ(η − mean η)`` per row (Fisher's
+    identity, the prior, the penalty); times ``scale`` and ``−1/N``."""
+    c = counts[:lay.n_flat] if lay.free_index is None else counts[lay.free_index]
+    a = c + pseudo
+    if lay.inverse is not None:
+        a = a[lay.order]
+    out, off = [], 0
+    for (e, ls), (k, _) in zip(blocks, lay.rows):
+        ab = a[off:off + e.size].reshape(e.shape)
+        off += e.size
+        g = ab - np.exp(ls) * ab.sum(axis=-1, keepdims=True)
+        if l2:
+            g = g - 2.0 * l2 * (e - e.mean(axis=-1, keepdims=True))
+        out.append(g.reshape(-1))
+    g = out[0] if len(out) == 1 else np.concatenate(out)
+    if lay.inverse is not None:
+        g = g[lay.inverse]
+    return -(g * scale) / n_total
+
+
+def objective_fg(network: Network, groups, z, scale, pseudo, fixed_flat, l2, n_total, codes, weights):
+    """−F/N and its gradient w.r.t. z (flat numpy vectors, :class:`FreeLayout`).
+
+    The likelihood's expected-counts scan is the one compiled piece; it is the same compiled
+    program that :meth:`Likelihood.expected_counts` uses, so one fit compiles the elimination
+    once. (Tracing the objective inside an optimiser's own while-loop copies the whole
+    elimination into one XLA computation several times and multiplies the compile time.) The
+    softmax/prior head around it and its gradient are a few numpy vector operations
+    (:func:`head_np`); :mod:`adfit.restarts` traces the JAX :func:`head` into its vmapped
+    program instead.
+    """
+    lay = free_layout(network)
+    z, scale = np.asarray(z, dtype=np.float64), np.asarray(scale, dtype=np.float64)
+    pseudo, fixed_flat = np.asarray(pseudo, dtype=np.float64), np.asarray(fixed_flat, dtype=np.float64)
+    l2, n_total = float(l2), float(n_total)
+    lc, rest, blocks = head_np(lay, z, scale, pseudo, fixed_flat, l2)
+    ll, counts = _value_and_flat_expected_counts(network, groups, lc, codes, weights)
+    g = head_grad_np(lay, blocks, scale, pseudo, l2, np.asarray(counts), n_total)
+    return -(float(ll) + rest) / n_total, g
