@@ -44,7 +44,7 @@ from typing import Any, Callable, Iterable, Mapping, Sequence
 import numpy as np
 
 from .data import HIDDEN, CodedData, decode, load_data
-from .errors import ImpossibleDataError, OptionError, PriorError, TooLargeError
+from .errors import ImpossibleDataError, NetworkError, OptionError, PriorError, TooLargeError
 from .network import MAX_TABLE_ENTRIES, SUM_TOL, Network, table_too_large
 
 __all__ = ["EMResult", "EStep", "expected_counts", "em_fit", "fit_em", "to_fit_result", "log_likelihood",
@@ -644,6 +644,9 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
     """
     if not (tol >= 0 and gtol >= 0):
         raise OptionError(f"EM tolerances must be >= 0 (tol={tol}, gtol={gtol})")
+    refusal = network.unsupported_structure(what="EM")
+    if refusal is not None:
+        raise NetworkError(refusal)
     if max_iter < 0:
         raise OptionError(f"EM max_iter must be >= 0, got {max_iter}")
     coded = load_data(network, data, missing=missing, count_column=count_column, ignore_columns=ignore_columns)

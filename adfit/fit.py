@@ -39,7 +39,7 @@ import numpy as np
 import optax
 
 from .data import HIDDEN, CodedData, load_data
-from .errors import ConvergenceWarning, IdentifiabilityWarning, LocalOptimaWarning, OptionError
+from .errors import ConvergenceWarning, IdentifiabilityWarning, LocalOptimaWarning, NetworkError, OptionError
 from .likelihood import (Likelihood, check_possible,
                          logits_from_probs, probs_from_logits)
 from .network import Network
@@ -390,6 +390,9 @@ class Fitter:
                  pseudo_counts: Mapping[str, np.ndarray] | None = None, route: str = "auto",
                  likelihood: Likelihood | None = None):
         settings.validate()
+        refusal = network.unsupported_structure(what="the gradient fit")
+        if refusal is not None:
+            raise NetworkError(refusal)
         self.network = network
         self.data = data
         self.settings = settings

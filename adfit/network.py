@@ -17,7 +17,7 @@ from collections import Counter
 import math
 import re
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Iterable, Mapping, Sequence
 
@@ -39,7 +39,10 @@ def table_too_large(entries: int, node: str, n_vars: int) -> str:
             f"the limit is 2**27 = {MAX_TABLE_ENTRIES:,} entries: give the latent or often-missing nodes "
             f"fewer states, give nodes fewer parents, or record more of the hidden nodes")
 _NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
-_NODE_KEYS = {"states", "parents", "latent", "fixed"}
+_NODE_KEYS = {"states", "parents", "latent", "fixed", "cpd", "tied_to", "impossible", "increasing_with"}
+# the forms a CPT may take (``cpd = "..."``; docs/user-guide.md "Structured CPTs"): the full table
+# (softmax per row), the causal-independence forms and the multinomial logistic form
+CPD_FORMS = ("table", "noisy_or", "noisy_max", "logistic")
 
 
 @dataclass(frozen=True)
@@ -53,6 +56,14 @@ class Node:
         latent: True when the node is never observed (it has no data column).
         fixed: a known CPT, flattened row-major from shape ``(*parent_cards, card)``;
             None when the CPT is estimated.
+        cpd: the form of the estimated CPT, one of :data:`CPD_FORMS` ("table" by default).
+        tied_to: the node whose parameters this node shares (same states, same parents' state
+            lists, same form), or None. The tied node's form, impossible cells and monotone
+            parents are the source's.
+        impossible: cells fixed at 0, as ``(row, state)`` index pairs into the CPT's 2-D layout
+            (row = parent configuration in row-major order, last parent fastest), sorted.
+        increasing_with: parents along whose state order the node's distribution is
+            stochastically non-decreasing (first-order dominance over the node's state order).
     """
 
     name: str
@@ -60,6 +71,10 @@ class Node:
     parents: tuple[str, ...] = ()
     latent: bool = False
     fixed: tuple[float, ...] | None = None
+    cpd: str = "table"
+    tied_to: str | None = None
+    impossible: tuple[tuple[int, int], ...] = ()
+    increasing_with: tuple[str, ...] = ()
 
     @property
     def card(self) -> int:
@@ -207,8 +222,59 @@ class Network:
                 d["latent"] = True
             if n.fixed is not None:
                 d["fixed"] = self.array_to_table(n.name, self.fixed_table(n.name))
+            if n.cpd != "table" and n.tied_to is None:
+                d["cpd"] = n.cpd
+            if n.tied_to is not None:
+                d["tied_to"] = n.tied_to
+            if n.impossible and n.tied_to is None:
+                labels = self.parent_config_labels(n.name)
+                d["impossible"] = [{"given": dict(zip(n.parents, labels[r])), "state": n.states[k]}
+                                   for r, k in n.impossible]
+            if n.increasing_with and n.tied_to is None:
+                d["increasing_with"] = list(n.increasing_with)
             nodes[n.name] = d
         return {"nodes": nodes}
+
+    # ----------------------------------------------------------------- structured CPTs
+    def cpd_form(self, name: str) -> str:
+        """The form of ``name``'s CPT ("table" for fixed nodes); a tied node has its source's."""
+        return self.node(self.tie_source(name)).cpd
+
+    def tie_source(self, name: str) -> str:
+        """The node whose parameters ``name`` uses: its ``tied_to`` or itself."""
+        return self.node(name).tied_to or name
+
+    def impossible_mask(self, name: str) -> np.ndarray:
+        """Boolean array of shape :meth:`cpt_shape`: True where the cell is fixed at 0 (the
+        source's cells for a tied node)."""
+        src = self.node(self.tie_source(name))
+        shape = self.cpt_shape(name)
+        mask = np.zeros((int(math.prod(shape[:-1])), shape[-1]), dtype=bool)
+        for r, k in src.impossible:
+            mask[r, k] = True
+        return mask.reshape(shape)
+
+    def unsupported_structure(self, supported: Sequence[str] = ("table",), *, what: str = "this fit") -> str | None:
+        """A one-line refusal naming the first estimated node whose form, tie, impossible cells or
+        monotone constraint ``what`` cannot estimate yet (forms in ``supported`` and plain tables
+        can), or None. Estimating such a node as a full table would silently give other numbers."""
+        for n in self.nodes:
+            if n.fixed is not None:
+                continue
+            key = ("cpd" if n.cpd not in supported else "tied_to" if n.tied_to and "tied" not in supported
+                   else "impossible" if n.impossible and "impossible" not in supported
+                   else "increasing_with" if n.increasing_with and "increasing" not in supported else None)
+            if key is not None:
+                return (f"nodes.{n.name}.{key}: {what} cannot estimate this structured CPT yet; "
+                        f"remove the key to estimate a full table, or fix the table")
+        return None
+
+    @property
+    def is_structured(self) -> bool:
+        """True when some estimated node is not a plain full table (another form, a tie, an
+        impossible cell or a monotone constraint)."""
+        return any(n.fixed is None and (n.cpd != "table" or n.tied_to or n.impossible or n.increasing_with)
+                   for n in self.nodes)
 
 
 def table_to_array(network: Network, name: str, table: Any, *, what: str = "table",
@@ -312,6 +378,7 @@ def parse_network(doc: Mapping[str, Any], *, source: str = "<network>") -> Netwo
 
     raw_nodes: list[Node] = []
     fixed_raw: dict[str, Any] = {}
+    impossible_raw: dict[str, Any] = {}
     for name, spec in nodes_doc.items():
         if not _NAME.match(name):
             raise NetworkError(f"{source}: node name {name!r} is not an identifier (letters, digits, _; not starting with a digit)")
@@ -347,7 +414,23 @@ def parse_network(doc: Mapping[str, Any], *, source: str = "<network>") -> Netwo
             raise NetworkError(f"{source}: nodes.{name}.latent must be true or false")
         if "fixed" in spec:
             fixed_raw[name] = spec["fixed"]
-        raw_nodes.append(Node(name=name, states=states_t, parents=tuple(parents), latent=latent))
+        cpd = spec.get("cpd", "table")
+        if cpd not in CPD_FORMS:
+            raise NetworkError(f"{source}: nodes.{name}.cpd is {cpd!r}; use one of {', '.join(map(repr, CPD_FORMS))}")
+        tied = spec.get("tied_to")
+        if tied is not None and not isinstance(tied, str):
+            raise NetworkError(f"{source}: nodes.{name}.tied_to must be the name of another node, got {tied!r}")
+        inc = spec.get("increasing_with", [])
+        if not isinstance(inc, list) or not all(isinstance(x, str) for x in inc) or len(set(inc)) != len(inc):
+            raise NetworkError(f"{source}: nodes.{name}.increasing_with must be a list of distinct parent names")
+        if "impossible" in spec:
+            impossible_raw[name] = spec["impossible"]
+        if ("fixed" in spec) and ("cpd" in spec or tied is not None or "impossible" in spec or inc):
+            extra = [k for k in ("cpd", "tied_to", "impossible", "increasing_with") if k in spec]
+            raise NetworkError(f"{source}: nodes.{name} has a fixed table and {', '.join(extra)}; these keys describe "
+                               f"an estimated CPT: remove them or remove 'fixed'")
+        raw_nodes.append(Node(name=name, states=states_t, parents=tuple(parents), latent=latent, cpd=cpd,
+                              tied_to=tied, increasing_with=tuple(inc)))
 
     names = {n.name for n in raw_nodes}
     for n in raw_nodes:
@@ -363,10 +446,112 @@ def parse_network(doc: Mapping[str, Any], *, source: str = "<network>") -> Netwo
         for n in net.nodes:
             if n.name in fixed_raw:
                 arr = table_to_array(net, n.name, fixed_raw[n.name], what="fixed table", source=source)
-                n = Node(n.name, n.states, n.parents, n.latent, tuple(float(v) for v in arr.ravel()))
+                n = replace(n, fixed=tuple(float(v) for v in arr.ravel()))
             nodes.append(n)
         net = Network(tuple(nodes))
+    if impossible_raw:
+        net = Network(tuple(replace(n, impossible=_parse_impossible(net, n, impossible_raw[n.name], source))
+                            if n.name in impossible_raw else n for n in net.nodes))
+    _check_structure(net, source)
     return net
+
+
+def _parse_impossible(net: Network, node: Node, raw: Any, source: str) -> tuple[tuple[int, int], ...]:
+    """``impossible = [{ given = { parent = "state", ... }, state = "..." }, ...]`` as sorted
+    ``(row, state)`` pairs; a parent left out of ``given`` stands for each of its states."""
+    key = f"nodes.{node.name}.impossible"
+    if not isinstance(raw, list):
+        raise NetworkError(f"{source}: {key} must be a list of tables {{ given = {{ parent = \"state\" }}, state = \"...\" }}")
+    cells: set[tuple[int, int]] = set()
+    for i, entry in enumerate(raw):
+        where = f"{key}[{i}]"
+        if not isinstance(entry, Mapping) or "state" not in entry or set(entry) - {"given", "state"}:
+            raise NetworkError(f"{source}: {where} must be a table with keys state (and optionally given), "
+                               f"e.g. {{ given = {{ parent = \"state\" }}, state = \"...\" }}")
+        state = entry["state"]
+        if not isinstance(state, (str, int)) or isinstance(state, bool) or str(state) not in node.states:
+            raise NetworkError(f"{source}: {where}.state is {state!r}, not a state of {node.name!r} "
+                               f"(states: {list(node.states)})")
+        given = entry.get("given", {})
+        if not isinstance(given, Mapping):
+            raise NetworkError(f"{source}: {where}.given must be a table {{ parent = \"state\", ... }}")
+        choices = []
+        for p in node.parents:
+            pn = net.node(p)
+            if p in given:
+                v = given[p]
+                if not isinstance(v, (str, int)) or isinstance(v, bool) or str(v) not in pn.states:
+                    raise NetworkError(f"{source}: {where}.given.{p} is {v!r}, not a state of {p!r} "
+                                       f"(states: {list(pn.states)})")
+                choices.append([pn.states.index(str(v))])
+            else:
+                choices.append(range(pn.card))
+        unknown = sorted(set(given) - set(node.parents))
+        if unknown:
+            raise NetworkError(f"{source}: {where}.given names {unknown[0]!r}, which is not a parent of {node.name!r} "
+                               f"(parents: {list(node.parents)})")
+        cards = [net.node(p).card for p in node.parents]
+        k = node.states.index(str(state))
+        for cfg in np.ndindex(*[len(c) for c in choices]) if choices else [()]:
+            idx = [choices[j][c] for j, c in enumerate(cfg)]
+            row = int(np.ravel_multi_index(idx, cards)) if cards else 0
+            cells.add((row, k))
+    return tuple(sorted(cells))
+
+
+def _check_structure(net: Network, source: str) -> None:
+    """The structured-CPT keys fit their node (one-line errors naming file, node and key)."""
+    for n in net.nodes:
+        key = f"{source}: nodes.{n.name}"
+        if n.tied_to is not None:
+            if n.tied_to == n.name:
+                raise NetworkError(f"{key}.tied_to names the node itself; name another node with the same shape")
+            if n.tied_to not in net:
+                raise NetworkError(f"{key}.tied_to is {n.tied_to!r}, which is not a node of the network")
+            src = net.node(n.tied_to)
+            if src.fixed is not None:
+                raise NetworkError(f"{key}.tied_to is {src.name!r}, whose CPT is fixed; give {n.name!r} the same "
+                                   f"fixed table instead")
+            if src.tied_to is not None:
+                raise NetworkError(f"{key}.tied_to is {src.name!r}, which is itself tied to {src.tied_to!r}; "
+                                   f"tie {n.name!r} to {src.tied_to!r} directly")
+            if src.states != n.states:
+                raise NetworkError(f"{key}.tied_to: {n.name!r} has states {list(n.states)} but {src.name!r} has "
+                                   f"{list(src.states)}; tied nodes need the same states in the same order")
+            mine = [net.node(p).states for p in n.parents]
+            theirs = [net.node(p).states for p in src.parents]
+            if mine != theirs:
+                raise NetworkError(f"{key}.tied_to: the parents of {n.name!r} ({list(n.parents)}) and of {src.name!r} "
+                                   f"({list(src.parents)}) must have the same state lists, in the same order")
+            if n.cpd != "table" and n.cpd != src.cpd:
+                raise NetworkError(f"{key}.cpd is {n.cpd!r} but its tie source {src.name!r} has {src.cpd!r}; "
+                                   f"a tied node takes its source's form (leave cpd out)")
+            if n.impossible or n.increasing_with:
+                raise NetworkError(f"{key} is tied to {src.name!r}: give impossible / increasing_with on "
+                                   f"{src.name!r} only (a tied node takes its source's)")
+        if n.cpd in ("noisy_or", "noisy_max") and not n.parents:
+            raise NetworkError(f"{key}.cpd = {n.cpd!r} needs at least one parent (a node without parents is a plain table)")
+        if n.cpd == "noisy_or" and n.card != 2:
+            raise NetworkError(f"{key}.cpd = 'noisy_or' needs a two-state node (first state absent, second present); "
+                               f"{n.name!r} has {n.card} states: use 'noisy_max' for ordered states")
+        if n.cpd in ("noisy_or", "noisy_max") and n.impossible:
+            raise NetworkError(f"{key}.impossible is not available with cpd = {n.cpd!r} (its cells follow from "
+                               f"the strengths); use cpd = 'table' or 'logistic'")
+        if n.increasing_with:
+            if n.cpd not in ("table", "logistic"):
+                raise NetworkError(f"{key}.increasing_with is available with cpd = 'table' or 'logistic' only")
+            for p in n.increasing_with:
+                if p not in n.parents:
+                    raise NetworkError(f"{key}.increasing_with names {p!r}, which is not a parent of {n.name!r} "
+                                       f"(parents: {list(n.parents)})")
+        if n.impossible:
+            counts = Counter(r for r, _ in n.impossible)
+            full = [r for r, c in counts.items() if c >= n.card]
+            if full:
+                labels = net.parent_config_labels(n.name)[full[0]]
+                cfg = ", ".join(f"{p}={v}" for p, v in zip(n.parents, labels)) or "no parents"
+                raise NetworkError(f"{key}.impossible makes every state impossible in the row {cfg}; "
+                                   f"leave at least one state possible")
 
 
 def _check_cpt_sizes(nodes: Sequence[Node], source: str) -> None:
