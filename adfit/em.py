@@ -43,6 +43,7 @@ from typing import Any, Callable, Iterable, Mapping, Sequence
 
 import numpy as np
 
+from . import emforms as _forms
 from .data import HIDDEN, CodedData, decode, load_data
 from .errors import ImpossibleDataError, NetworkError, OptionError, PriorError, TooLargeError
 from .network import MAX_TABLE_ENTRIES, SUM_TOL, Network, table_too_large
@@ -489,6 +490,14 @@ def _check_pseudo(network: Network, pseudo_counts: Mapping[str, Any] | None) -> 
             raise PriorError(f"pseudo-counts of node {name!r} have shape {a.shape}, expected {shape}")
         if not np.all(np.isfinite(a)) or np.any(a < 0):
             raise PriorError(f"pseudo-counts of node {name!r} must be finite and >= 0 (Dirichlet alpha = c + 1 >= 1)")
+        form = network.cpd_form(name)
+        if form != "table":
+            if np.any(a != 0):
+                raise PriorError(f"pseudo-counts given for node {name!r}, whose CPT has the {form} form: EM takes "
+                                 f"Dirichlet pseudo-counts on full tables only; remove them for this node")
+            continue
+        if network.node(network.tie_source(name)).impossible:
+            a = np.where(network.impossible_mask(name), 0.0, a)  # a cell fixed at 0 has no pseudo-count
         out[name] = a
     return out
 
@@ -547,6 +556,12 @@ class EMResult:
         expected_counts: ``N̂`` of every node at ``probs``.
         objective: ``"mle"`` or ``"map"``.
         n_records: total weight of the data.
+        parameters: per node of a noisy_or, noisy_max or logistic form (tied nodes included), its
+            parameters in the result file's layout (:func:`adfit.emforms.to_json`).
+
+    For a network with structured CPTs (:mod:`adfit.emforms`) ``stationarity`` and
+    ``gradient_norm`` are taken in each form's own coordinates (the logits of the pooled table
+    rows and of the hidden causes' distributions, the logistic coefficients).
     """
 
     probs: dict[str, np.ndarray]
@@ -563,6 +578,7 @@ class EMResult:
     expected_counts: dict[str, np.ndarray] = field(repr=False)
     objective: str = "mle"
     n_records: float = 0.0
+    parameters: dict[str, dict[str, Any]] = field(default_factory=dict)
 
     @property
     def objective_value(self) -> float:
@@ -619,7 +635,8 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
            pseudo_counts: Mapping[str, np.ndarray] | None = None, tol: float = 1e-10, gtol: float = 1e-9,
            max_iter: int = 5000, seed: int = 0, missing: Iterable[str] | None = None,
            count_column: str | None = None, ignore_columns: Iterable[str] = (),
-           callback: Callable[[int, dict[str, np.ndarray]], None] | None = None) -> EMResult:
+           callback: Callable[[int, dict[str, np.ndarray]], None] | None = None,
+           init_params: Mapping[str, Mapping[str, Any]] | None = None) -> EMResult:
     """Fit the free CPTs by EM (maximum likelihood, or MAP with ``pseudo_counts``).
 
     Args:
@@ -637,6 +654,14 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
         missing, count_column, ignore_columns: as in :func:`adfit.data.load_data`, when ``data``
             is a DataFrame or a file.
         callback: called as ``callback(k, probs)`` after the k-th M-step (k = 1, 2, ...).
+        init_params: starting parameters of structured nodes (noisy_or, noisy_max, logistic), in
+            the result file's layout, by node name; a structured node without them starts from
+            the parameters read off its table in ``init`` (which must then be of its form), or
+            at random.
+
+    Structured CPTs (``cpd``, ``tied_to``, ``impossible``) are estimated by their own M-steps
+    (:mod:`adfit.emforms`); monotone nodes (``increasing_with``) are refused: the M-step under
+    stochastic-order constraints has no closed form (docs/method.md).
 
     Raises:
         ImpossibleDataError: some rows have probability 0 at the start (naming them).
@@ -644,14 +669,24 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
     """
     if not (tol >= 0 and gtol >= 0):
         raise OptionError(f"EM tolerances must be >= 0 (tol={tol}, gtol={gtol})")
-    refusal = network.unsupported_structure(what="EM")
+    refusal = network.unsupported_structure(_forms.SUPPORTED, what="EM")
     if refusal is not None:
         raise NetworkError(refusal)
     if max_iter < 0:
         raise OptionError(f"EM max_iter must be >= 0, got {max_iter}")
     coded = load_data(network, data, missing=missing, count_column=count_column, ignore_columns=ignore_columns)
     prior = _check_pseudo(network, pseudo_counts)
-    probs = _check_probs(network, init, "EM starting values") if init is not None else random_start(network, seed)
+    groups = _forms.groups_of(network)
+    plain = all(g.plain for g in groups)
+    if plain:
+        if init_params:
+            raise OptionError(f"EM starting parameters given for {sorted(init_params)}, but the network has no "
+                              f"structured CPT; give starting tables (init) instead")
+        probs = _check_probs(network, init, "EM starting values") if init is not None else random_start(network, seed)
+        params = None
+    else:
+        params = _start_params(network, groups, init, init_params, seed)
+        probs = _implied_probs(network, groups, params)
     estep = EStep(network, coded)
     w = np.asarray(coded.counts, dtype=np.float64)
     n_rec = float(w.sum())
@@ -669,13 +704,20 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
         lp = _log_prior(network, probs, prior)
         obj = ll + lp
         trace.append(obj)
-        resid = stationarity_residual(network, counts, probs, prior)
+        resid = (stationarity_residual(network, counts, probs, prior) if plain
+                 else _forms.gradient_norm(network, counts, params, prior, norm="max"))
         if it >= 1 and _remaining_gain(trace) <= tol * max(1.0, abs(obj)) and resid <= gtol * max(1.0, n_rec):
             converged = True
             break
         if it >= max_iter:
             break
-        new = _mstep(network, counts, probs, prior)
+        if plain:
+            new = _mstep(network, counts, probs, prior)
+        else:
+            params = {g.source: _forms.mstep(g, _forms.pooled(g, counts), params[g.source],
+                                             _forms.pooled(g, prior) if g.kind == "table" else None)
+                      for g in groups}
+            new = _implied_probs(network, groups, params)
         steps.append(math.sqrt(sum(float(np.sum((new[m] - probs[m]) ** 2)) for m in network.free_names)))
         probs = new
         it += 1
@@ -689,14 +731,68 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
         iterations=it,
         converged=converged,
         rate=_rate(steps),
-        uninformed=_uninformed(network, counts),
+        uninformed=_uninformed(network, counts) if plain else _uninformed_groups(groups, counts),
         stationarity=resid,
-        gradient_norm=stationarity_residual(network, counts, probs, prior, norm="l2"),
+        gradient_norm=(stationarity_residual(network, counts, probs, prior, norm="l2") if plain
+                       else _forms.gradient_norm(network, counts, params, prior, norm="l2")),
         steps=steps,
         expected_counts=counts,
         objective="map" if prior and any(np.any(c > 0) for c in prior.values()) else "mle",
         n_records=n_rec,
+        parameters={} if plain else _parameters_json(network, groups, params),
     )
+
+
+def _start_params(network: Network, groups: Sequence[_forms.Group], init: Mapping[str, np.ndarray] | None,
+                  init_params: Mapping[str, Mapping[str, Any]] | None, seed: int) -> dict[str, Any]:
+    """Starting parameters of every group: given, read off the starting tables, or at random."""
+    init_params = dict(init_params or {})
+    unknown = sorted(k for k in init_params if k not in network or network.cpd_form(k) == "table"
+                     or network.node(k).fixed is not None)
+    if unknown:
+        raise OptionError(f"EM starting parameters given for {unknown[0]!r}, which is not a node with a noisy_or, "
+                          f"noisy_max or logistic CPT; give its starting table (init) instead")
+    tables = _check_probs(network, init, "EM starting values") if init is not None else None
+    rng = np.random.default_rng(seed)
+    out: dict[str, Any] = {}
+    for g in groups:
+        given = next((m for m in g.members if m in init_params), None)
+        if given is not None:
+            out[g.source] = _forms.from_json(network, g, init_params[given], what="EM starting parameters")
+        elif tables is not None:
+            out[g.source] = _forms.from_table(g, tables[g.source])
+        else:
+            out[g.source] = _forms.random_params(g, rng)
+    return out
+
+
+def _implied_probs(network: Network, groups: Sequence[_forms.Group], params: Mapping[str, Any]) -> dict[str, np.ndarray]:
+    probs: dict[str, np.ndarray] = {name: network.fixed_table(name) for name in network.fixed_names}
+    for g in groups:
+        t = _forms.implied_table(g, params[g.source])
+        for m in g.members:
+            probs[m] = t
+    return {name: probs[name] for name in network.names}
+
+
+def _uninformed_groups(groups: Sequence[_forms.Group], counts: Mapping[str, np.ndarray]) -> dict[str, list[int]]:
+    out: dict[str, list[int]] = {}
+    for g in groups:
+        rows = _forms.uninformed_rows(g, _forms.pooled(g, counts))
+        if rows:
+            for m in g.members:
+                out[m] = rows
+    return out
+
+
+def _parameters_json(network: Network, groups: Sequence[_forms.Group], params: Mapping[str, Any]) -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for g in groups:
+        doc = _forms.to_json(network, g, params[g.source])
+        if doc is not None:
+            for m in g.members:
+                out[m] = doc
+    return out
 
 
 # =============================================================================== result file
@@ -730,8 +826,14 @@ def to_fit_result(network: Network, data: CodedData, res: EMResult, *, seed: int
         gradient_norm=res.gradient_norm, converged=res.converged, stop_reason=reason,
         iterations=res.iterations, history={"objective": tuple(res.trace)},
         n_rows=data.n_rows, n_distinct=data.n_distinct, seed=seed,
-        settings=dict(settings or {}), extras={"em": section, **dict(extras or {})},
+        settings=dict(settings or {}), extras={"em": section, **_node_sections(network, res), **dict(extras or {})},
     )
+
+
+def _node_sections(network: Network, res: EMResult) -> dict[str, Any]:
+    """``{"nodes": {name: {"cpd": form, "parameters": ...}}}`` for the structured nodes (none: {})."""
+    nodes = {name: {"cpd": network.cpd_form(name), "parameters": doc} for name, doc in res.parameters.items()}
+    return {"nodes": nodes} if nodes else {}
 
 
 def fit_em(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None = None, prior: Any = None,

@@ -165,3 +165,13 @@ def test_no_import_circles_between_modules():
     # the parameterisation layer sits below the optimisers that use it
     assert not graph["params"] & {"fit", "restarts", "minibatch", "uncertainty"}
     assert "fit" not in graph["restarts"] | graph["minibatch"]
+    # the EM reference (with its structured M-steps) shares nothing with the JAX core
+    core = {"_jax", "likelihood", "params", "fit", "restarts", "minibatch", "uncertainty", "crosscheck"}
+    for mod in ("em", "emforms"):
+        reach, todo = set(), [mod]
+        while todo:
+            for dep in graph.get(todo.pop(), ()):
+                if dep not in reach:
+                    reach.add(dep)
+                    todo.append(dep)
+        assert not reach & core, (mod, reach & core)
