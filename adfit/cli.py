@@ -215,13 +215,18 @@ def gaps_command(
 
 
 # ------------------------------------------------------------------ em (the EM reference fit)
-def em_check_options(l2: float) -> None:
-    """For ``fit --em-check``: refuse, before fitting, what the EM cross-check cannot cover."""
+def em_check_options(l2: float, net=None) -> None:
+    """For ``fit --em-check``: refuse, before fitting, what the EM cross-check cannot cover
+    (the L2 penalty; monotone nodes, :func:`adfit.crosscheck.check_em_coverage`)."""
     from .errors import OptionError
 
     if l2 > 0:
         raise OptionError(f"--em-check covers the likelihood and Dirichlet priors, not the L2 penalty "
                           f"(--l2 {l2:g}); drop --em-check or use --l2 0")
+    if net is not None:
+        from .crosscheck import check_em_coverage
+
+        check_em_coverage(net)
 
 
 def with_em_check(result, coded, *, pseudo_counts=None, seed: int = 0, max_iter: Optional[int] = None):
@@ -413,7 +418,7 @@ def fit_command(
 
             pri = load_prior(prior, net)
         if em_check:
-            em_check_options(l2)
+            em_check_options(l2, net)
         from .crosscheck import check_em_max_iter
 
         check_em_max_iter(em_max_iter)

@@ -19,6 +19,17 @@ fixed CPT is not relabelled (its labels are pinned by that table).
 CPT rows whose parent configuration has expected count 0 (not informed by the data) are left
 out of ``max |Δθ|`` and listed.
 
+Structured CPTs (:mod:`adfit.emforms`: noisy-OR, noisy-MAX, logistic, ties, impossible cells) are
+compared on their implied tables as above and, under ``"parameters"``, on the form's parameters
+(the fit's as recorded in its result, else read off its tables): the largest difference between
+the fit's and each EM run's leak/strength (probabilities) or logistic coefficients (log-odds),
+leaving out parameters that only rows not informed by the data use. Differences of noisy-OR /
+noisy-MAX parameters count in the verdict with ``theta_atol`` (a ridge shows there even when the
+implied tables agree); logistic coefficients are reported only (log-odds are unbounded; where they
+are identified, tables within ``theta_atol`` bound them). The gradient norms are then taken in the
+forms' own coordinates. Monotone nodes (``increasing_with``) are not checked by EM: the check is
+refused (:func:`check_em_coverage`).
+
 Verdicts (``"verdict"``, in the order they are tested; the first that applies is given, and
 ``"runs_not_converged"`` lists every run whose stopping rule did not hold). The tolerance on the
 objective is ``tol_obj = ll_rtol · max(1, |objective of the fit|)`` (``ll_rtol`` = 1e-6 by
@@ -60,13 +71,15 @@ from typing import Any, Iterable, Mapping
 import numpy as np
 from scipy.optimize import linear_sum_assignment
 
+from . import emforms as _forms
 from .data import CodedData, load_data
 from .em import EMResult, em_fit
 from .errors import OptionError, option
 from .network import Network
 
 __all__ = ["em_check", "attach_em_check", "format_em_check", "align_latent_states", "VERDICTS",
-           "VERDICT_MEANING", "LEGACY_VERDICTS", "LL_RTOL", "THETA_ATOL", "EM_MAX_ITER", "check_em_max_iter"]
+           "VERDICT_MEANING", "LEGACY_VERDICTS", "LL_RTOL", "THETA_ATOL", "EM_MAX_ITER", "check_em_max_iter",
+           "check_em_coverage"]
 
 #: every verdict, in the order they are tested (module docstring)
 VERDICTS = ("fit-not-converged", "fit-not-at-maximum", "em-from-fit-not-converged", "em-own-start-not-converged",
@@ -106,6 +119,20 @@ def check_em_max_iter(value: Any) -> int:
         raise OptionError(f"the EM cross-check's iteration cap must be an integer >= 1, got {value!r}; "
                           f"give {option('em_max_iter', str(EM_MAX_ITER))} (the default) or another count >= 1")
     return int(value)
+
+
+def check_em_coverage(network: Network) -> None:
+    """Refuse (OptionError, one line) a network the EM cross-check cannot cover: monotone nodes
+    (``increasing_with``), whose M-step under stochastic-order constraints has no closed form
+    (docs/method.md, "The EM reference")."""
+    for n in network.nodes:
+        if n.fixed is None and n.increasing_with:
+            raise OptionError(f"nodes.{n.name}.increasing_with: the EM cross-check does not cover monotone nodes "
+                              f"(EM has no closed-form M-step under stochastic-order constraints; docs/method.md); "
+                              f"run the fit without the EM check")
+    refusal = network.unsupported_structure(_forms.SUPPORTED, what="the EM cross-check")
+    if refusal is not None:
+        raise OptionError(refusal)
 
 
 # ------------------------------------------------------------------------------- relabelling
@@ -183,11 +210,106 @@ def _delta(network: Network, a: Mapping[str, np.ndarray], b: Mapping[str, np.nda
 
 
 def _score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray],
-           pseudo: Mapping[str, np.ndarray] | None) -> dict[str, float]:
-    from .likelihood import score  # the JAX core, only to measure (not to compute EM)
+           pseudo: Mapping[str, np.ndarray] | None, lik: Any = None) -> dict[str, float]:
+    """Log-likelihood and gradient norm by the JAX core (only to measure, not to compute EM).
 
-    s = score(network, data, {k: np.asarray(v) for k, v in probs.items()}, pseudo_counts=pseudo)
-    return {"log_likelihood": float(s["log_likelihood"]), "gradient_norm": float(s["gradient_norm"])}
+    With structured CPTs the gradient is taken in each form's own coordinates (those of
+    :func:`adfit.emforms.gradient_norm`), from the JAX core's expected counts and the form's
+    parameters read off the tables."""
+    from .likelihood import score
+
+    tables = {k: np.asarray(v, dtype=np.float64) for k, v in probs.items()}
+    if not network.is_structured:
+        s = score(network, data, tables, pseudo_counts=pseudo, likelihood=lik)
+        return {"log_likelihood": float(s["log_likelihood"]), "gradient_norm": float(s["gradient_norm"])}
+    ll, counts = lik.expected_counts(tables)
+    params = {g.source: _forms.from_table(g, tables[g.source]) for g in _forms.groups_of(network)}
+    return {"log_likelihood": float(ll), "gradient_norm": _forms.gradient_norm(network, counts, params, pseudo)}
+
+
+def _fit_parameters(result: Any) -> dict[str, Any]:
+    """The structured nodes' parameters a fit recorded (result layout), those EM can read."""
+    net: Network = result.network
+    nodes = (getattr(result, "extras", None) or {}).get("nodes") or {}
+    out: dict[str, Any] = {}
+    for g in _forms.groups_of(net):
+        if g.kind == "table":
+            continue
+        doc = (nodes.get(g.source) or {}).get("parameters") if isinstance(nodes.get(g.source), Mapping) else None
+        if doc is None:
+            continue
+        try:
+            _forms.from_json(net, g, doc)
+        except OptionError:
+            continue
+        out[g.source] = doc
+    return out
+
+
+def _leaves(doc: Any, path: str = "") -> list[tuple[str, float]]:
+    if isinstance(doc, Mapping):
+        return [x for k, v in doc.items() for x in _leaves(v, f"{path}.{k}" if path else str(k))]
+    if isinstance(doc, (list, tuple)):
+        return [x for i, v in enumerate(doc) for x in _leaves(v, f"{path}[{i}]")]
+    return [(path, float(doc))]
+
+
+def _compare_parameters(net: Network, fit_probs: Mapping[str, np.ndarray], fit_params: Mapping[str, Any],
+                        em_from: EMResult, em_own: EMResult, perms: Mapping[str, np.ndarray],
+                        skip: Mapping[str, set[int]]) -> dict[str, Any]:
+    """Per structured node: the fit's, and EM's parameters and their largest differences.
+
+    Parameters every row of which is not informed by the data are left out (as the rows are
+    from ``max |Δθ|``). EM's own start is compared only when no latent state of the family was
+    relabelled (its parameters would need the relabelling through the form)."""
+    out: dict[str, Any] = {}
+    for g in _forms.groups_of(net):
+        if g.kind == "table":
+            continue
+        fit_doc = fit_params.get(g.source)
+        if fit_doc is None:
+            fit_doc = _forms.to_json(net, g, _forms.from_table(g, fit_probs[g.source]))
+        node = net.node(g.source)
+        rows = skip.get(g.source, set())
+        ignored: set[str] = set()
+        if rows:
+            if len(rows) >= g.n_rows:
+                ignored |= {"leak", "intercept"}
+            for i, p in enumerate(node.parents):
+                for s_i, label in enumerate(net.node(p).states):
+                    have = set(np.flatnonzero(g.parent_states[i] == s_i).tolist())
+                    if have and have <= rows:
+                        ignored |= {f"strength.{p}.{label}", f"coefficients.{p}.{label}"}
+
+        def delta(other: Any) -> tuple[float, str | None]:
+            a, b = dict(_leaves(fit_doc)), dict(_leaves(other))
+            worst, where = 0.0, None
+            for k, v in a.items():
+                if k not in b or any(k == x or k.startswith(x + ".") or k.startswith(x + "[") for x in ignored):
+                    continue
+                d = abs(v - b[k])
+                if d > worst:
+                    worst, where = d, k
+            return worst, where
+
+        d_from, at_from = delta(em_from.parameters[g.source])
+        family = node.parents + (g.source,)
+        moved = [u for u in family if u in perms and not np.array_equal(perms[u], np.arange(len(perms[u])))]
+        entry: dict[str, Any] = {
+            "cpd": g.kind, "scale": "log-odds" if g.kind == "logistic" else "probability",
+            "in_verdict": g.kind != "logistic",
+            "fit": fit_doc, "em_own_start": em_own.parameters[g.source],
+            "em_from_fit_max_abs_delta": d_from, "em_from_fit_largest_delta_at": at_from,
+            "not_informed": sorted(ignored),
+        }
+        if moved:
+            entry.update(max_abs_delta=None, largest_delta_at=None,
+                         note=f"not compared: the states of latent {', '.join(moved)} were relabelled")
+        else:
+            d_own, at_own = delta(em_own.parameters[g.source])
+            entry.update(max_abs_delta=d_own, largest_delta_at=at_own)
+        out[g.source] = entry
+    return out
 
 
 def _em_side(em: EMResult, jax_score: Mapping[str, float], delta: float, where: Any) -> dict[str, Any]:
@@ -239,11 +361,14 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
     if not (ll_rtol >= 0 and theta_atol >= 0):
         raise OptionError(f"cross-check tolerances must be >= 0 (ll_rtol={ll_rtol}, theta_atol={theta_atol})")
     check_em_max_iter(max_iter)
+    check_em_coverage(net)
     coded = load_data(net, data, missing=missing, count_column=count_column, ignore_columns=ignore_columns)
     pseudo = _pseudo_for(result, pseudo_counts)
     fit_probs = {k: np.asarray(v, dtype=np.float64) for k, v in result.probs.items()}
+    fit_params = _fit_parameters(result) if net.is_structured else {}
 
-    em_fit_start = em_fit(net, coded, init=fit_probs, pseudo_counts=pseudo, tol=tol, gtol=gtol, max_iter=max_iter)
+    em_fit_start = em_fit(net, coded, init=fit_probs, init_params=fit_params or None, pseudo_counts=pseudo,
+                          tol=tol, gtol=gtol, max_iter=max_iter)
     em_own = em_fit(net, coded, init=None, seed=seed, pseudo_counts=pseudo, tol=tol, gtol=gtol, max_iter=max_iter)
 
     perms = align_latent_states(net, em_own.probs, fit_probs)
@@ -255,9 +380,16 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
     d_from_fit, w_from_fit = _delta(net, em_fit_start.probs, fit_probs, skip)
     d_own, w_own = _delta(net, own_aligned, fit_probs, skip)
 
-    s_fit = _score(net, coded, fit_probs, pseudo)
-    s_ff = _score(net, coded, em_fit_start.probs, pseudo)
-    s_own = _score(net, coded, em_own.probs, pseudo)
+    from .likelihood import Likelihood
+
+    lik = Likelihood(net, coded)  # one plan for the three measurements
+    s_fit = _score(net, coded, fit_probs, pseudo, lik)
+    s_ff = _score(net, coded, em_fit_start.probs, pseudo, lik)
+    s_own = _score(net, coded, em_own.probs, pseudo, lik)
+    params_cmp = (_compare_parameters(net, fit_probs, fit_params, em_fit_start, em_own, perms, skip)
+                  if net.is_structured else {})
+    d_par = max((e["max_abs_delta"] for e in params_cmp.values()
+                 if e["in_verdict"] and e["max_abs_delta"] is not None), default=0.0)
     lp_fit = float(getattr(result, "log_prior", 0.0) or 0.0)
     obj_fit = float(result.log_likelihood) + lp_fit
     scale = max(1.0, abs(obj_fit))
@@ -297,10 +429,12 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
         higher = "em" if diff > 0 else "fit"
         detail = (f"both stationary, objectives differ by {abs(diff):.6g}: the likelihood is multimodal; "
                   f"the {'EM optimum' if higher == 'em' else 'fit'} is higher (try more restarts)")
-    elif d_own > theta_atol:
+    elif d_own > theta_atol or d_par > theta_atol:
         verdict = "disagree-different-parameters"
         higher = "equal"
-        detail = (f"same objective within {tol_obj:.3g} but CPT entries differ by up to {d_own:.3g}: "
+        what = (f"CPT entries differ by up to {d_own:.3g}" if d_own > theta_atol else
+                f"the implied CPTs agree but form parameters (leak, strengths) differ by up to {d_par:.3g}")
+        detail = (f"same objective within {tol_obj:.3g} but {what}: "
                   f"parameters not identified by the data (a flat ridge), or equally high optima")
     else:
         verdict = "agree"
@@ -335,6 +469,7 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
         "objective_difference": diff,
         "latent_permutation": perm_out,
         "excluded_rows": {k: sorted(v) for k, v in skip.items()},
+        **({"parameters": params_cmp, "max_abs_delta_parameters": d_par} if params_cmp else {}),
     }
 
 
@@ -373,6 +508,12 @@ def format_em_check(check: Mapping[str, Any]) -> str:
     if moved:
         lines.append("  latent states relabelled (EM -> fit): "
                      + "; ".join(f"{k}: " + ", ".join(f"{s}->{t}" for s, t in v.items()) for k, v in moved.items()))
+    for name, e in (check.get("parameters") or {}).items():
+        own = e.get("max_abs_delta")
+        lines.append(f"  {name} ({e.get('cpd')}) parameters, max |difference| ({e.get('scale')}): EM own start "
+                     + (g(own) + (f" at {e.get('largest_delta_at')}" if e.get("largest_delta_at") else "")
+                        if own is not None else str(e.get("note", "n/a")))
+                     + f"; EM from the fit {g(e.get('em_from_fit_max_abs_delta'))}")
     if check["excluded_rows"]:
         lines.append("  rows not informed by the data, left out of |dtheta|: "
                      + "; ".join(f"{k} rows {', '.join(str(i + 1) for i in v)}" for k, v in check["excluded_rows"].items()))

@@ -22,7 +22,9 @@ M-step. Per free CPT row, ``θ(x|u) = (N̂(x,u) + c(x,u)) / (N̂(u) + c(u))`` wi
 pseudo-counts (``c = 0``: maximum likelihood; ``c ≥ 0``: the posterior mode of a Dirichlet with
 ``α = c + 1``, matching the objective ``log L + Σ c log θ`` of the gradient fit). Fixed CPTs never
 change. A row whose denominator is 0 keeps its current value; rows with ``N̂(u) = 0`` are
-reported as not informed by the data.
+reported as not informed by the data. Structured CPTs (noisy-OR, noisy-MAX, logistic, ties,
+impossible cells) have their own M-steps on the same expected counts (:mod:`adfit.emforms`);
+monotone nodes are refused.
 
 Stopping. EM stops when the relative change of the objective still to come (the last increment
 ``d`` projected over the linear convergence, ``d / (1 − q)`` with ``q`` the ratio of the last two

@@ -384,3 +384,47 @@ def test_to_fit_result_carries_the_form_and_its_parameters():
         assert doc["nodes"][name]["parameters"] == res.parameters["y"]
     assert set(doc["nodes"]["y"]["parameters"]["strength"]["b"]) == {"mid", "hi"}
     assert "cpd" not in doc["nodes"]["a"]
+
+
+# --------------------------------------------------------------------------- the cross-check
+def test_crosscheck_of_structured_forms_compares_tables_and_parameters():
+    # The cross-check's own logic on a fit known to be at the optimum (EM's own answer, made a
+    # result): EM from it stays (DLR 1977, Theorem 1), EM from its own start reaches the same
+    # parameters; the gradient norms in the forms' coordinates vanish there.
+    from adfit.crosscheck import em_check, format_em_check
+
+    net = net_with({"states": ["absent", "present"], "cpd": "noisy_or"},
+                   {"y2": {"states": ["absent", "present"], "parents": ["a", "b"], "tied_to": "y"},
+                    "z": {"states": ["u", "v", "w"], "parents": ["a"], "cpd": "logistic"}})
+    g = group(net, "y")
+    t = F.implied_table(g, F.from_json(net, g, TRUE_NOISY_OR))
+    probs = {"a": np.array([0.6, 0.4]), "b": np.array([0.5, 0.3, 0.2]), "y": t, "y2": t,
+             "z": np.array([[0.5, 0.3, 0.2], [0.2, 0.3, 0.5]])}
+    df = simulate(net, probs, 300, seed=4, missing={"a": 0.2, "y": 0.1})
+    coded = encode_frame(net, df)
+    em = em_fit(net, coded, tol=1e-14, gtol=1e-11, max_iter=20000, seed=8)
+    result = to_fit_result(net, coded, em).with_extras(nodes={})  # parameters read off the tables
+    chk = em_check(result, coded, tol=1e-13, gtol=1e-10)
+    assert chk["verdict"] == "agree", chk["detail"]
+    assert set(chk["parameters"]) == {"y", "z"}
+    assert chk["parameters"]["y"]["max_abs_delta"] < 1e-4 and chk["parameters"]["y"]["scale"] == "probability"
+    assert chk["parameters"]["z"]["in_verdict"] is False
+    assert chk["fit"]["gradient_norm"] < 1e-6 and chk["em_from_fit"]["em_gradient_norm"] < 1e-6
+    assert "y (noisy_or) parameters" in format_em_check(chk)
+    # a fit that stopped early on the leak: EM from its answer climbs
+    p = dict(em.parameters["y"], leak=em.parameters["y"]["leak"] + 0.05)
+    early = F.implied_table(g, F.from_json(net, g, p))
+    bad = to_fit_result(net, coded, em)
+    bad = type(bad)(**{**bad.__dict__, "probs": {**em.probs, "y": early, "y2": early},
+                       "log_likelihood": brute_force_loglik(net, {**em.probs, "y": early, "y2": early}, df),
+                       "extras": {}})
+    assert em_check(bad, coded, max_iter=3000)["verdict"] == "fit-not-at-maximum"
+
+
+def test_crosscheck_refuses_monotone_nodes_in_one_line():
+    from adfit.crosscheck import check_em_coverage
+
+    net = net_with({"states": ["s0", "s1"], "increasing_with": ["b"]})
+    with pytest.raises(OptionError, match=r"^nodes.y.increasing_with: the EM cross-check does not cover monotone") as e:
+        check_em_coverage(net)
+    assert "\n" not in str(e.value)
