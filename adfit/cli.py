@@ -215,10 +215,13 @@ def gaps_command(
 
 
 # ------------------------------------------------------------------ em (the EM reference fit)
-def em_check_options(l2: float) -> None:
+def em_check_options(l2: float, network=None) -> None:
     """For ``fit --em-check``: refuse, before fitting, what the EM cross-check cannot cover."""
     from .errors import OptionError
 
+    refusal = None if network is None else network.unsupported_structure(what="the EM cross-check")
+    if refusal is not None:
+        raise OptionError(f"{refusal} (or fit without --em-check)")
     if l2 > 0:
         raise OptionError(f"--em-check covers the likelihood and Dirichlet priors, not the L2 penalty "
                           f"(--l2 {l2:g}); drop --em-check or use --l2 0")
@@ -413,7 +416,7 @@ def fit_command(
 
             pri = load_prior(prior, net)
         if em_check:
-            em_check_options(l2)
+            em_check_options(l2, _net)
         from .crosscheck import check_em_max_iter
 
         check_em_max_iter(em_max_iter)
