@@ -219,7 +219,9 @@ def em_check_options(l2: float, network=None) -> None:
     """For ``fit --em-check``: refuse, before fitting, what the EM cross-check cannot cover."""
     from .errors import OptionError
 
-    refusal = None if network is None else network.unsupported_structure(what="the EM cross-check")
+    from .fit import _em_refusal
+
+    refusal = None if network is None else _em_refusal(network)
     if refusal is not None:
         raise OptionError(f"{refusal} (or fit without --em-check)")
     if l2 > 0:

@@ -82,6 +82,8 @@ EVALS_PER_START = 150
 AUTO_STARTS_SECONDS = 60.0
 # default starts run side by side only when one evaluation takes at least this long
 BATCH_MIN_EVAL_SECONDS = 0.01
+# the structured-CPT features the gradient fit estimates (Network.unsupported_structure)
+SUPPORTED_STRUCTURE = ("table", "tied", "impossible")
 # stop reasons of a stalled (not converged) quasi-Newton run, after which a boundary escape is tried
 STALL_REASONS = ("line search found no better point", "no further progress after rescaling")
 
@@ -413,7 +415,7 @@ class Fitter:
                  pseudo_counts: Mapping[str, np.ndarray] | None = None, route: str = "auto",
                  likelihood: Likelihood | None = None):
         settings.validate()
-        refusal = network.unsupported_structure(("table", "tied", "impossible"), what="the gradient fit")
+        refusal = network.unsupported_structure(SUPPORTED_STRUCTURE, what="the gradient fit")
         if refusal is not None:
             raise NetworkError(refusal)
         self.network = network
@@ -1008,6 +1010,13 @@ def em_burn_in(fitter: "Fitter", probs: Mapping[str, np.ndarray], steps: int) ->
     return out
 
 
+def _em_refusal(network: Network) -> str | None:
+    """Why the EM cross-check cannot run on ``network`` (a structure EM does not estimate), or None."""
+    from .em import SUPPORTED_STRUCTURE as em_supported
+
+    return network.unsupported_structure(em_supported, what="the EM cross-check")
+
+
 def check_impossible_cells(network: Network, data: CodedData) -> None:
     """Raise ImpossibleDataError naming the first record whose observed cells put a node and all
     its parents in a configuration the network calls impossible (``impossible`` cells)."""
@@ -1119,7 +1128,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         raise OptionError(f"--restarts must be >= 1, got {restarts}")
     if em_check and l2:
         raise OptionError("em_check covers the likelihood and Dirichlet priors, not the L2 penalty; use l2=0")
-    if em_check and (refusal := network.unsupported_structure(what="the EM cross-check")) is not None:
+    if em_check and (refusal := _em_refusal(network)) is not None:
         raise OptionError(f"{refusal} (or fit without {option('em_check')})")
     if em_max_iter is not None:
         from .crosscheck import check_em_max_iter
