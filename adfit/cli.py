@@ -215,18 +215,23 @@ def gaps_command(
 
 
 # ------------------------------------------------------------------ em (the EM reference fit)
-def em_check_options(l2: float, net=None) -> None:
+def em_check_options(l2: float, network=None) -> None:
     """For ``fit --em-check``: refuse, before fitting, what the EM cross-check cannot cover
-    (the L2 penalty; monotone nodes, :func:`adfit.crosscheck.check_em_coverage`)."""
+    (monotone nodes: :func:`adfit.crosscheck.check_em_coverage`; the L2 penalty)."""
     from .errors import OptionError
 
+    from .fit import _em_refusal
+
+    if network is not None:
+        from .crosscheck import check_em_coverage
+
+        check_em_coverage(network)
+    refusal = None if network is None else _em_refusal(network)
+    if refusal is not None:
+        raise OptionError(f"{refusal} (or fit without --em-check)")
     if l2 > 0:
         raise OptionError(f"--em-check covers the likelihood and Dirichlet priors, not the L2 penalty "
                           f"(--l2 {l2:g}); drop --em-check or use --l2 0")
-    if net is not None:
-        from .crosscheck import check_em_coverage
-
-        check_em_coverage(net)
 
 
 def with_em_check(result, coded, *, pseudo_counts=None, seed: int = 0, max_iter: Optional[int] = None):
@@ -418,7 +423,7 @@ def fit_command(
 
             pri = load_prior(prior, net)
         if em_check:
-            em_check_options(l2, net)
+            em_check_options(l2, _net)
         from .crosscheck import check_em_max_iter
 
         check_em_max_iter(em_max_iter)

@@ -50,6 +50,10 @@ from .data import HIDDEN, CodedData, decode, load_data
 from .errors import ImpossibleDataError, NetworkError, OptionError, PriorError, TooLargeError
 from .network import MAX_TABLE_ENTRIES, SUM_TOL, Network, table_too_large
 
+#: the structured-CPT features EM estimates (Network.unsupported_structure); the cross-check is
+#: refused before any fitting for a network with others
+SUPPORTED_STRUCTURE = _forms.SUPPORTED
+
 __all__ = ["EMResult", "EStep", "expected_counts", "em_fit", "fit_em", "to_fit_result", "log_likelihood",
            "random_start", "stationarity_residual", "RATE_MIN_STEP"]
 
@@ -671,7 +675,7 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
     """
     if not (tol >= 0 and gtol >= 0):
         raise OptionError(f"EM tolerances must be >= 0 (tol={tol}, gtol={gtol})")
-    refusal = network.unsupported_structure(_forms.SUPPORTED, what="EM")
+    refusal = network.unsupported_structure(SUPPORTED_STRUCTURE, what="EM")
     if refusal is not None:
         raise NetworkError(refusal)
     if max_iter < 0:

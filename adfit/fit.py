@@ -39,11 +39,13 @@ import numpy as np
 import optax
 
 from .data import HIDDEN, CodedData, load_data
-from .errors import ConvergenceWarning, IdentifiabilityWarning, LocalOptimaWarning, NetworkError, OptionError
+from .errors import (ConvergenceWarning, IdentifiabilityWarning, ImpossibleDataError, LocalOptimaWarning, NetworkError,
+                     OptionError, PriorError, option)
 from .likelihood import (Likelihood, check_possible,
                          logits_from_probs, probs_from_logits)
 from .network import Network
-from .params import FreeLayout, fixed_log_tables, free_layout, objective_fg as _objective_fg
+from .params import (FreeLayout, fixed_log_tables, free_layout, full_logits, full_probs, mask_pseudo,
+                     objective_fg as _objective_fg, pool_counts)
 from .priors import describe_rows, prior_only_rows, resolve_pseudo_counts
 from .result import FitResult
 
@@ -80,6 +82,8 @@ EVALS_PER_START = 150
 AUTO_STARTS_SECONDS = 60.0
 # default starts run side by side only when one evaluation takes at least this long
 BATCH_MIN_EVAL_SECONDS = 0.01
+# the structured-CPT features the gradient fit estimates (Network.unsupported_structure)
+SUPPORTED_STRUCTURE = ("table", "tied", "impossible")
 # stop reasons of a stalled (not converged) quasi-Newton run, after which a boundary escape is tried
 STALL_REASONS = ("line search found no better point", "no further progress after rescaling")
 
@@ -123,11 +127,18 @@ class FitSettings:
 
 # --------------------------------------------------------------------------- objective pieces
 def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) -> dict[str, np.ndarray]:
+    """Pseudo-counts by estimated node (tied nodes share their source's; impossible cells get 0)."""
     out = {}
     for name in network.free_names:
         c = None if pseudo_counts is None else pseudo_counts.get(name)
+        src = network.tie_source(name)
+        if src != name:
+            if c is not None and np.any(np.asarray(c, dtype=np.float64) > 0):
+                raise PriorError(f"node {name!r} is tied to {src!r} and shares its parameters: give the prior "
+                                 f"on {src!r} only")
+            continue
         out[name] = np.zeros(network.cpt_shape(name)) if c is None else np.asarray(c, dtype=np.float64)
-    return out
+    return mask_pseudo(network, out)
 
 
 def log_prior_value(probs: Mapping[str, np.ndarray], pseudo: Mapping[str, np.ndarray]) -> float:
@@ -140,27 +151,41 @@ def log_prior_value(probs: Mapping[str, np.ndarray], pseudo: Mapping[str, np.nda
     return tot
 
 
-def penalty_value(logits: Mapping[str, Any], l2: float) -> float:
+def penalty_value(logits: Mapping[str, Any], l2: float, network: Network | None = None) -> float:
+    """λ Σ (η − row mean η)² over the estimated nodes' logits (with ``network``: once per set of
+    tied nodes, impossible cells left out, as in :func:`adfit.params.head`)."""
     if l2 == 0:
         return 0.0
     tot = 0.0
-    for eta in logits.values():
-        e = np.asarray(eta)
-        tot += float(np.sum((e - e.mean(axis=-1, keepdims=True)) ** 2))
+    names = logits.keys() if network is None else network.estimated_names
+    for name in names:
+        e = np.asarray(logits[name], dtype=np.float64)
+        if network is not None and network.node(name).impossible:
+            ok = ~network.impossible_mask(name)
+            mean = np.sum(np.where(ok, e, 0.0), axis=-1, keepdims=True) / ok.sum(axis=-1, keepdims=True)
+            tot += float(np.sum(np.where(ok, e - mean, 0.0) ** 2))
+        else:
+            tot += float(np.sum((e - e.mean(axis=-1, keepdims=True)) ** 2))
     return l2 * tot
 
 
 def objective_gradient(network: Network, probs: Mapping[str, np.ndarray], counts: Mapping[str, np.ndarray],
                        pseudo: Mapping[str, np.ndarray], logits: Mapping[str, Any] | None, l2: float) -> dict[str, np.ndarray]:
-    """∂F/∂η for every free node from the expected counts (Fisher's identity)."""
+    """∂F/∂η for every estimated node from the expected counts (Fisher's identity; pooled over
+    tied nodes, :func:`adfit.params.pool_counts`)."""
     g = {}
-    for name in network.free_names:
+    for name in network.estimated_names:
         n_xu = counts[name] + pseudo[name]
         th = np.asarray(probs[name])
         gi = n_xu - th * n_xu.sum(axis=-1, keepdims=True)
         if l2 and logits is not None:
-            e = np.asarray(logits[name])
-            gi = gi - 2 * l2 * (e - e.mean(axis=-1, keepdims=True))
+            e = np.asarray(logits[name], dtype=np.float64)
+            if network.node(name).impossible:
+                ok = ~network.impossible_mask(name)
+                mean = np.sum(np.where(ok, e, 0.0), axis=-1, keepdims=True) / ok.sum(axis=-1, keepdims=True)
+                gi = gi - 2 * l2 * np.where(ok, e - mean, 0.0)
+            else:
+                gi = gi - 2 * l2 * (e - e.mean(axis=-1, keepdims=True))
         g[name] = gi
     return g
 
@@ -184,7 +209,7 @@ def kkt_ratios(network: Network, probs: Mapping[str, np.ndarray], counts: Mappin
     (NaN): no record informs them.
     """
     out = {}
-    for name in network.free_names:
+    for name in network.estimated_names:
         th = np.asarray(probs[name], dtype=np.float64)
         a = np.asarray(counts[name], dtype=np.float64) + pseudo[name]
         mu = a.sum(axis=-1, keepdims=True)
@@ -390,7 +415,7 @@ class Fitter:
                  pseudo_counts: Mapping[str, np.ndarray] | None = None, route: str = "auto",
                  likelihood: Likelihood | None = None):
         settings.validate()
-        refusal = network.unsupported_structure(what="the gradient fit")
+        refusal = network.unsupported_structure(SUPPORTED_STRUCTURE, what="the gradient fit")
         if refusal is not None:
             raise NetworkError(refusal)
         self.network = network
@@ -399,7 +424,7 @@ class Fitter:
         self.lik = likelihood if likelihood is not None else Likelihood(network, data, route=route)
         self.pseudo = _pseudo(network, pseudo_counts)
         self.n_total = float(data.n_rows)
-        self.free = network.free_names
+        self.free = network.estimated_names  # tied nodes share their source's parameters
         self.em_polish_steps = 0
         self.boundary_escapes = 0
         self.saddle_escapes = 0
@@ -411,6 +436,7 @@ class Fitter:
             self.fixed_lc = {n: jnp.asarray(np.log(network.fixed_table(n))) for n in network.fixed_names}
         # the optimiser's flat vectors (FreeLayout): pseudo-counts and the fixed nodes' log-tables
         self.layout = free_layout(network)
+        self.constrained = self.layout.tied or self.layout.mask is not None
         self.pseudo_flat = self.layout.flatten(self.pseudo)
         self.fixed_flat = fixed_log_tables(network)
 
@@ -431,12 +457,20 @@ class Fitter:
         return np.asarray(d), state
 
     def probs(self, logits: Mapping[str, Any]) -> dict[str, np.ndarray]:
-        return probs_from_logits(self.network, logits)
+        """CPTs of every node from the estimated nodes' logits (impossible cells 0, ties filled)."""
+        return probs_from_logits(self.network, full_logits(self.network, logits))
+
+    def counts(self, probs: Mapping[str, np.ndarray]) -> tuple[float, dict[str, np.ndarray]]:
+        """Log-likelihood and expected counts at ``probs`` (CPTs of the estimated nodes, or of
+        all), the constraints applied first (:func:`adfit.params.full_probs`) and the counts of
+        tied families pooled into their source's (:func:`adfit.params.pool_counts`)."""
+        ll, counts = self.lik.expected_counts(full_probs(self.network, probs) if self.constrained else probs)
+        return ll, (pool_counts(self.network, counts) if self.constrained else counts)
 
     def evaluate(self, logits: Mapping[str, Any]) -> dict[str, Any]:
         """Log-likelihood, log-prior, penalty, gradient (∂F/∂η) and residuals at ``logits``."""
         probs = self.probs(logits)
-        ll, counts = self.lik.expected_counts(probs)
+        ll, counts = self.counts(probs)
         g = objective_gradient(self.network, probs, counts, self.pseudo, logits, self.settings.l2)
         resid = 0.0
         for name in self.free:
@@ -444,7 +478,7 @@ class Fitter:
             r = np.abs(g[name]) / np.maximum(denom, 1.0)
             resid = max(resid, float(r.max(initial=0.0)))
         lp = log_prior_value(probs, self.pseudo)
-        pen = penalty_value(logits, self.settings.l2)
+        pen = penalty_value(logits, self.settings.l2, self.network)
         kkt = self.kkt(probs, counts) if self.settings.l2 == 0 else None
         return {"probs": probs, "log_likelihood": ll, "log_prior": lp, "penalty": pen,
                 "objective": ll + lp - pen, "grad": g, "gradient_norm": _norm(g),
@@ -463,13 +497,15 @@ class Fitter:
             th = np.asarray(probs[name])
             mu = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
             t = (th <= KKT_TINY) & (mu >= KKT_MIN_WEIGHT)
+            if self.network.node(name).impossible:
+                t &= ~self.network.impossible_mask(name)  # fixed at 0: not a boundary of the fit
             if t.any():
                 tiny[name] = t
         if tiny:
             floored = dict(probs)
             for name, t in tiny.items():
                 floored[name] = np.where(t, KKT_FLOOR, probs[name])
-            _, c2 = self.lik.expected_counts(floored)
+            _, c2 = self.counts(floored)
             r2 = kkt_ratios(self.network, floored, c2, self.pseudo)
             for name, t in tiny.items():
                 r[name] = np.where(t, r2[name], r[name])
@@ -947,7 +983,7 @@ def default_starts(network: Network, fitter: "Fitter", start: Mapping[str, np.nd
     if not any(n.latent for n in network.nodes):
         return 1, None, float("nan")
     t = time.perf_counter()
-    fitter.lik.expected_counts(start)
+    fitter.counts(start)
     per_eval = time.perf_counter() - t
     k = LATENT_STARTS
     while k > 1 and k * EVALS_PER_START * per_eval > AUTO_STARTS_SECONDS:
@@ -966,12 +1002,50 @@ def em_burn_in(fitter: "Fitter", probs: Mapping[str, np.ndarray], steps: int) ->
     Rows no record informs keep their values. Fixed nodes are left as they are."""
     out = {k: np.asarray(v, dtype=np.float64) for k, v in probs.items()}
     for _ in range(int(steps)):
-        _, counts = fitter.lik.expected_counts(out)
+        _, counts = fitter.counts(out)
         for name in fitter.free:
             num = counts[name] + fitter.pseudo[name]
             den = num.sum(axis=-1, keepdims=True)
             out[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), out[name])
     return out
+
+
+def _em_refusal(network: Network) -> str | None:
+    """Why the EM cross-check cannot run on ``network`` (a structure EM does not estimate), or None."""
+    from .em import SUPPORTED_STRUCTURE as em_supported
+
+    return network.unsupported_structure(em_supported, what="the EM cross-check")
+
+
+def check_impossible_cells(network: Network, data: CodedData) -> None:
+    """Raise ImpossibleDataError naming the first record whose observed cells put a node and all
+    its parents in a configuration the network calls impossible (``impossible`` cells)."""
+    codes = np.asarray(data.codes)
+    for node in network.nodes:
+        if not node.impossible or node.fixed is not None:
+            continue
+        fam = [network.index(p) for p in node.parents] + [network.index(node.name)]
+        sub = codes[:, fam]
+        ok = np.all(sub >= 0, axis=1)
+        if not ok.any():
+            continue
+        shape = network.cpt_shape(node.name)
+        flat = np.ravel_multi_index(tuple(sub[ok].T), shape)
+        mask = network.impossible_mask(node.name).ravel()
+        hit = np.flatnonzero(mask[flat])
+        if hit.size:
+            row = int(np.flatnonzero(ok)[hit[0]])
+            r, k = divmod(int(flat[hit[0]]), node.card)
+            cfg = ", ".join(f"{p}={v}" for p, v in zip(node.parents, network.parent_config_labels(node.name)[r]))
+            from .data import decode
+
+            rec = decode(network, codes[row:row + 1]).to_dict("records")[0]
+            shown = ", ".join(f"{c}={v}" for c, v in rec.items() if v is not None)
+            n = float(np.sum(np.asarray(data.counts)[np.flatnonzero(ok)[hit]]))
+            raise ImpossibleDataError(
+                f"{data.source}: {n:g} record(s) have {node.name}={node.states[k]} with {cfg or 'no parents'}, a cell "
+                f"the network declares impossible (nodes.{node.name}.impossible), e.g. [{shown}]; correct the "
+                f"records or the network")
 
 
 def random_start(network: Network, rng: np.random.Generator) -> dict[str, np.ndarray]:
@@ -1054,6 +1128,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         raise OptionError(f"--restarts must be >= 1, got {restarts}")
     if em_check and l2:
         raise OptionError("em_check covers the likelihood and Dirichlet priors, not the L2 penalty; use l2=0")
+    if em_check and (refusal := _em_refusal(network)) is not None:
+        raise OptionError(f"{refusal} (or fit without {option('em_check')})")
     if em_max_iter is not None:
         from .crosscheck import check_em_max_iter
 
@@ -1077,6 +1153,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         network, coded, rng, fitter.pseudo, observed=fitter.lik.observed_family_counts())
     for name in network.fixed_names:
         p0[name] = network.fixed_table(name)
+    p0 = full_probs(network, p0)
+    check_impossible_cells(network, coded)
     check_possible(fitter.lik, p0)
     auto_starts = restarts is None
     latent = any(n.latent for n in network.nodes)
@@ -1132,7 +1210,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
                 **({"prior": prior_desc} if prior_desc else {})},
     )
     if is_map:
-        parent_weight = {n: ev["counts"][n].sum(axis=-1) for n in network.free_names}
+        parent_weight = {n: ev["counts"][n].sum(axis=-1) for n in network.estimated_names}
         only = prior_only_rows(network, parent_weight, fitter.pseudo)
         if only:
             labels = describe_rows(network, only)

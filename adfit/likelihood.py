@@ -2036,7 +2036,8 @@ def score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray], *,
 
     The gradient norm is that of the objective (log-likelihood plus log-prior when
     ``pseudo_counts`` are given): per free node the logit gradient is
-    ``N(x,u) + c(x,u) - theta(x|u) (N(u) + c(u))`` in units of records.
+    ``N(x,u) + c(x,u) - theta(x|u) (N(u) + c(u))`` in units of records (for a set of tied nodes,
+    one gradient with their counts added; impossible cells contribute 0).
 
     ``likelihood``: a :class:`Likelihood` already built for this ``network`` and this ``data``
     (the same object), to reuse its plan and compiled program (a command that also checks or
@@ -2045,9 +2046,10 @@ def score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray], *,
     lik = _prepared(likelihood, network, data, "score")
     ll, counts = lik.expected_counts(probs)
     gn2 = 0.0
-    for name in network.free_names:
+    for name in network.estimated_names:  # a tied node's family counts add to its source's
         th = np.asarray(probs[name], dtype=np.float64)
-        n_xu = counts[name] + (0.0 if pseudo_counts is None or name not in pseudo_counts else pseudo_counts[name])
+        n_xu = sum((counts[t] for t in network.tied_names(name)), counts[name])
+        n_xu = n_xu + (0.0 if pseudo_counts is None or name not in pseudo_counts else pseudo_counts[name])
         g = n_xu - th * n_xu.sum(axis=-1, keepdims=True)
         gn2 += float(np.sum(g * g))
     return {"log_likelihood": ll, "gradient_norm": math.sqrt(gn2)}

@@ -166,6 +166,16 @@ class Network:
     def fixed_names(self) -> tuple[str, ...]:
         return tuple(n.name for n in self.nodes if n.fixed is not None)
 
+    @property
+    def estimated_names(self) -> tuple[str, ...]:
+        """Names of the estimated nodes that own their parameters: :attr:`free_names` without
+        the nodes tied to another (``tied_to``), which share their source's."""
+        return tuple(n.name for n in self.nodes if n.fixed is None and n.tied_to is None)
+
+    def tied_names(self, source: str) -> tuple[str, ...]:
+        """The nodes tied to ``source`` (they share its parameters)."""
+        return tuple(n.name for n in self.nodes if n.tied_to == source)
+
     def cpt_shape(self, name: str) -> tuple[int, ...]:
         """Shape ``(*parent_cards, card)`` of the CPT array of ``name``."""
         n = self.node(name)
@@ -182,8 +192,13 @@ class Network:
         return np.asarray(n.fixed, dtype=np.float64).reshape(self.cpt_shape(name))
 
     def n_free_parameters(self) -> int:
-        """Free parameters of the estimated CPTs: (card - 1) per parent configuration."""
-        return sum(self.n_parent_configs(m) * (self.node(m).card - 1) for m in self.free_names)
+        """Free parameters of the estimated CPTs: (possible states − 1) per parent configuration
+        (``card − 1`` without impossible cells), counted once for a set of tied nodes."""
+        total = 0
+        for m in self.estimated_names:
+            node = self.node(m)
+            total += self.n_parent_configs(m) * (node.card - 1) - len(node.impossible)
+        return total
 
     def parent_config_labels(self, name: str) -> list[tuple[str, ...]]:
         """Labels of the parent configurations of ``name``, in table row order."""

@@ -12,6 +12,18 @@ Today every free node has the table form: its CPT rows are ``softmax`` of free l
 the fitter's preconditioner (``eta = z * scale``). Other forms (structured CPTs) map their own
 parameters to log-CPTs here, so that nothing outside this module needs to know a node's form.
 
+Constraints on tables (network keys ``tied_to`` and ``impossible``):
+
+* A tied node has no block of its own: the vector holds the parameters of the nodes that own
+  them (:attr:`Network.estimated_names`), and ``FreeLayout.full_index`` sends the tied node's
+  entries of the likelihood layout to its source's positions. The log-likelihood then depends on
+  the shared θ through both families, so ∂ log L/∂ log θ is the sum of both families' expected
+  counts (:func:`pool_counts`; the transpose of the gather is that sum).
+* Impossible cells keep a logit in the vector, but the head adds −∞ to it before the softmax
+  (``FreeLayout.mask``): the cell is exactly 0, its row renormalises over the others, and its
+  gradient is 0 (its expected count is 0 and so is its pseudo-count, :func:`mask_pseudo`).
+  Outside the head, :func:`full_logits` applies the same mask and fills in the tied nodes.
+
 Imports: this module depends on :mod:`adfit.likelihood` and :mod:`adfit.network` only; nothing
 here imports :mod:`adfit.fit`, which removes the former circle fit → restarts → fit.
 """
@@ -30,7 +42,7 @@ from .likelihood import _value_and_flat_expected_counts
 from .network import Network
 
 __all__ = ["FreeLayout", "free_layout", "fixed_log_tables", "head", "head_grad", "head_np", "head_grad_np",
-           "objective_fg"]
+           "objective_fg", "pool_counts", "full_logits", "full_probs", "mask_pseudo"]
 
 
 # --------------------------------------------------------------------------- the flat parameter vector
@@ -59,6 +71,8 @@ class FreeLayout:
     full_index: Any
     order: Any = None        # the row blocks' entries in vector positions (inverse of ``inverse``)
     free_index: Any = None   # the free entries' positions in the likelihood's layout (None: all entries)
+    tied: bool = False       # some node is tied to another: counts are pooled (bincount over full_index)
+    mask: Any = None         # 0 / −inf per vector entry (impossible cells), None when there are none
 
     def flatten(self, tree: Mapping[str, Any]) -> np.ndarray:
         """One float64 vector from CPT-shaped arrays of the free nodes (a new array)."""
@@ -84,7 +98,7 @@ def free_layout(network: Network) -> FreeLayout:
 
 
 def _make_free_layout(network: Network) -> FreeLayout:
-    names = tuple(network.free_names)
+    names = tuple(network.estimated_names)
     free = set(names)
     shapes, offsets, by_card = [], [], {}
     off = 0
@@ -110,16 +124,70 @@ def _make_free_layout(network: Network) -> FreeLayout:
     for node in network.nodes:
         size = math.prod(network.cpt_shape(node.name))
         n_flat += size
-        if node.name in free:
-            o = offsets[names.index(node.name)]
+        src = network.tie_source(node.name) if node.fixed is None else node.name
+        if src in free:
+            o = offsets[names.index(src)]
             full.append(np.arange(o, o + size, dtype=np.int32))
         else:
             full.append(np.arange(P + fixed_off, P + fixed_off + size, dtype=np.int32))
             fixed_off += size
-    full_index = None if fixed_off == 0 else np.concatenate(full)
+    tied = len(names) < len(network.free_names)
+    full_index = None if fixed_off == 0 and not tied else np.concatenate(full)
     free_index = None if full_index is None else np.flatnonzero(full_index < P).astype(np.int32)
+    mask = None
+    if any(network.node(n).impossible for n in names):
+        mask = np.concatenate([np.where(network.impossible_mask(n).ravel(), -np.inf, 0.0) for n in names])
     return FreeLayout(names, tuple(shapes), tuple(offsets), P, n_flat, tuple(rows), inverse, full_index,
-                      None if inverse is None else perm.astype(np.int32), free_index)
+                      None if inverse is None else perm.astype(np.int32), free_index, tied, mask)
+
+
+def pool_counts(network: Network, counts: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Expected counts by estimated node (:attr:`Network.estimated_names`): each source's own
+    plus those of the nodes tied to it (the derivative of log L w.r.t. the shared log θ); the
+    tied nodes keep their own family's counts under their own names (for reports)."""
+    if len(network.estimated_names) == len(network.free_names):
+        return dict(counts)
+    out = dict(counts)
+    for name in network.estimated_names:
+        for t in network.tied_names(name):
+            out[name] = np.asarray(out[name], dtype=np.float64) + np.asarray(counts[t], dtype=np.float64)
+    return out
+
+
+def full_logits(network: Network, logits: Mapping[str, Any]) -> dict[str, np.ndarray]:
+    """Logits of every free node from those of the estimated ones: impossible cells at −∞, tied
+    nodes given their source's logits."""
+    out = {}
+    for name in network.free_names:
+        src = network.tie_source(name)
+        e = np.asarray(logits[src], dtype=np.float64)
+        if network.node(src).impossible:
+            e = np.where(network.impossible_mask(src), -np.inf, e)
+        out[name] = e
+    return out
+
+
+def full_probs(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """CPTs of every node with the constraints applied: tied nodes take their source's table;
+    impossible cells are set to 0 and their rows renormalised. Fixed nodes pass through."""
+    out = dict(probs)
+    for name in network.free_names:
+        src = network.tie_source(name)
+        th = np.asarray(probs[src], dtype=np.float64)
+        if network.node(src).impossible:
+            th = np.where(network.impossible_mask(src), 0.0, th)
+            th = th / th.sum(axis=-1, keepdims=True)
+        out[name] = th
+    return out
+
+
+def mask_pseudo(network: Network, pseudo: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Pseudo-counts with 0 on impossible cells (a prior cannot put mass on a cell fixed at 0)."""
+    out = dict(pseudo)
+    for name in network.estimated_names:
+        if name in out and network.node(name).impossible:
+            out[name] = np.where(network.impossible_mask(name), 0.0, np.asarray(out[name], dtype=np.float64))
+    return out
 
 
 def fixed_log_tables(network: Network) -> np.ndarray:
@@ -145,12 +213,19 @@ def head(network: Network, z, scale, pseudo, fixed_flat, l2):
     pen = jnp.zeros((), jnp.float64)
     for k, idx in lay.rows:
         e = eta.reshape(-1, k) if idx is None else eta[idx]
-        parts.append(jax.nn.log_softmax(e, axis=-1).reshape(-1))
-        pen = pen + jnp.sum((e - jnp.mean(e, axis=-1, keepdims=True)) ** 2)
+        if lay.mask is None:
+            parts.append(jax.nn.log_softmax(e, axis=-1).reshape(-1))
+            pen = pen + jnp.sum((e - jnp.mean(e, axis=-1, keepdims=True)) ** 2)
+            continue
+        m = jnp.asarray(lay.mask.reshape(-1, k) if idx is None else lay.mask[idx])
+        ok = m == 0
+        parts.append(jax.nn.log_softmax(e + m, axis=-1).reshape(-1))
+        mean = jnp.sum(jnp.where(ok, e, 0.0), axis=-1, keepdims=True) / jnp.sum(ok, axis=-1, keepdims=True)
+        pen = pen + jnp.sum(jnp.where(ok, e - mean, 0.0) ** 2)
     lc = parts[0] if len(parts) == 1 else jnp.concatenate(parts)
     if lay.inverse is not None:
         lc = lc[lay.inverse]
-    lp = jnp.sum(pseudo * lc)
+    lp = jnp.sum(pseudo * lc) if lay.mask is None else jnp.sum(jnp.where(lay.mask == 0, pseudo * lc, 0.0))
     full = lc if lay.full_index is None else jnp.concatenate([lc, fixed_flat])[lay.full_index]
     return full, lp - l2 * pen
 
@@ -176,17 +251,25 @@ def head_np(lay: FreeLayout, z: np.ndarray, scale: np.ndarray, pseudo: np.ndarra
     pen = 0.0
     for k, idx in lay.rows:
         e = eta.reshape(-1, k) if idx is None else eta[idx]
-        sh = e - e.max(axis=-1, keepdims=True)
+        if lay.mask is None:
+            em, d = e, e - e.mean(axis=-1, keepdims=True)
+        else:
+            m = lay.mask.reshape(-1, k) if idx is None else lay.mask[idx]
+            ok = m == 0
+            em = e + m
+            mean = np.sum(np.where(ok, e, 0.0), axis=-1, keepdims=True) / np.sum(ok, axis=-1, keepdims=True)
+            d = np.where(ok, e - mean, 0.0)
+        sh = em - em.max(axis=-1, keepdims=True)
         ls = sh - np.log(np.sum(np.exp(sh), axis=-1, keepdims=True))
         parts.append(ls.reshape(-1))
-        blocks.append((e, ls))
-        d = e - e.mean(axis=-1, keepdims=True)
+        blocks.append((e, ls, d))
         pen += float(np.sum(d * d))
     lc = parts[0] if len(parts) == 1 else (np.concatenate(parts) if parts else np.zeros(0))
     if lay.inverse is not None:
         lc = lc[lay.inverse]
     with np.errstate(invalid="ignore"):
-        lp = float(np.dot(pseudo, lc))
+        lp = float(np.dot(pseudo, lc)) if lay.mask is None else float(np.dot(np.where(lay.mask == 0, pseudo, 0.0),
+                                                                            np.where(lay.mask == 0, lc, 0.0)))
     full = lc if lay.full_index is None else np.concatenate([lc, fixed_flat])[lay.full_index]
     return full, lp - l2 * pen, blocks
 
@@ -196,17 +279,21 @@ def head_grad_np(lay: FreeLayout, blocks, scale: np.ndarray, pseudo: np.ndarray,
     """:func:`_head_grad` in closed form (numpy): with ``a = N(x,u) + c`` per CPT entry, the
     gradient of F w.r.t. the logits is ``a − θ Σ_x a − 2λ(η − mean η)`` per row (Fisher's
     identity, the prior, the penalty); times ``scale`` and ``−1/N``."""
-    c = counts[:lay.n_flat] if lay.free_index is None else counts[lay.free_index]
+    if lay.tied:  # the transpose of the gather: tied families' counts added to their source's
+        sel = lay.free_index
+        c = np.bincount(lay.full_index[sel], weights=counts[sel], minlength=lay.size)
+    else:
+        c = counts[:lay.n_flat] if lay.free_index is None else counts[lay.free_index]
     a = c + pseudo
     if lay.inverse is not None:
         a = a[lay.order]
     out, off = [], 0
-    for (e, ls), (k, _) in zip(blocks, lay.rows):
+    for (e, ls, d), (k, _) in zip(blocks, lay.rows):
         ab = a[off:off + e.size].reshape(e.shape)
         off += e.size
         g = ab - np.exp(ls) * ab.sum(axis=-1, keepdims=True)
         if l2:
-            g = g - 2.0 * l2 * (e - e.mean(axis=-1, keepdims=True))
+            g = g - 2.0 * l2 * d
         out.append(g.reshape(-1))
     g = out[0] if len(out) == 1 else np.concatenate(out)
     if lay.inverse is not None:

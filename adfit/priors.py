@@ -198,9 +198,15 @@ class Prior:
             if network.node(name).fixed is not None:
                 raise PriorError(f"{self.source}: [nodes.{name}]: node {name!r} has a fixed CPT; a prior does not "
                                  f"apply (remove this entry, or remove 'fixed' from the network file)")
+            if network.node(name).tied_to is not None:
+                src = network.node(name).tied_to
+                raise PriorError(f"{self.source}: [nodes.{name}]: node {name!r} is tied to {src!r} and shares its "
+                                 f"parameters; give the prior as [nodes.{src}] (it applies to both)")
         out: dict[str, np.ndarray] = {}
         for name in network.free_names:
-            if name in own:
+            if network.node(name).tied_to is not None:
+                out[name] = np.zeros(network.cpt_shape(name))  # a tie takes its source's prior, once
+            elif name in own:
                 out[name] = _resolve(own[name], network, name, f"{self.source}: [nodes.{name}]")
             elif self.default is not None:
                 out[name] = _resolve(self.default, network, name, f"{self.source}: [default] (node {name!r})")

@@ -65,6 +65,7 @@ from .data import CodedData, load_data
 from .errors import OptionError
 from .likelihood import Likelihood, _loglik_logcpt, check_possible
 from .network import Network
+from .params import full_probs, mask_pseudo, pool_counts
 
 #: default confidence level of the intervals
 LEVEL = 0.95
@@ -98,8 +99,8 @@ MAX_NAMED = 10
 #: a row is named in a direction when it carries at least this share of it
 NAME_SHARE = 0.05
 
-STATUS = ("interior", "boundary", "not identified", "no data", "not computed")
-_INTERIOR, _BOUNDARY, _NOT_IDENTIFIED, _NO_DATA, _NOT_COMPUTED = range(5)
+STATUS = ("interior", "boundary", "not identified", "no data", "not computed", "constrained")
+_INTERIOR, _BOUNDARY, _NOT_IDENTIFIED, _NO_DATA, _NOT_COMPUTED, _CONSTRAINED = range(6)
 _FLOOR = 1e-300  # floor of θ before logs (boundary cells of an EM fit can be exact zeros)
 
 LATENT_NOTE = ("the states of a latent node are identified only up to a relabelling (any permutation of "
@@ -119,7 +120,8 @@ class Coordinates:
     Attributes:
         network: the network.
         coords: one ``(node, row, state)`` per coordinate φ (row = table row, state = index).
-        sizes: coordinates per free node, in ``network.free_names`` order.
+        sizes: coordinates per estimated node, in ``network.estimated_names`` order (a node tied
+            to another has none: it shares its source's coordinates).
         reference: per free node, the reference state of every row (shape ``(rows,)``).
         status: per free node, ``(rows, card)`` int codes into :data:`STATUS` fixed before the
             Hessian (interior, boundary, no data).
@@ -147,7 +149,7 @@ class Coordinates:
         """Logits (reference 0) of every free node at coordinates ``phi`` (the estimate at 0)."""
         phi = np.asarray(phi, dtype=np.float64)
         out, off = {}, 0
-        for name, s in zip(self.network.free_names, self.sizes):
+        for name, s in zip(self.network.estimated_names, self.sizes):
             eta = np.array(self.base[name])
             eta[self.index[name]] += phi[off:off + s]
             off += s
@@ -160,13 +162,16 @@ class Coordinates:
         for name, eta in self.logits_at(phi).items():
             e = np.exp(eta - eta.max(axis=-1, keepdims=True))
             out[name] = e / e.sum(axis=-1, keepdims=True)
+        for name in self.network.free_names:
+            if name not in out:
+                out[name] = out[self.network.tie_source(name)]
         for name in self.network.fixed_names:
             out[name] = self.network.fixed_table(name)
         return out
 
     def offsets(self) -> dict[str, int]:
         out, off = {}, 0
-        for name, s in zip(self.network.free_names, self.sizes):
+        for name, s in zip(self.network.estimated_names, self.sizes):
             out[name] = off
             off += s
         return out
@@ -183,20 +188,25 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
                      n_cells: Mapping[str, np.ndarray]) -> Coordinates:
     """Reference states, boundary and no-data cells, and the coordinates, at an estimate.
 
-    ``n_cells``: per free node, expected counts plus pseudo-counts (CPT-shaped).
+    ``n_cells``: per estimated node, expected counts plus pseudo-counts (CPT-shaped; pooled over
+    tied nodes). Impossible cells (and the one state left in a row whose other cells are all
+    impossible) are "constrained": fixed by the network, no coordinate, no error bar.
     """
     coords: list[tuple[str, int, int]] = []
     sizes, ref_d, st_d, pr_d, n_d, base_d, idx_d = [], {}, {}, {}, {}, {}, {}
-    for name in network.free_names:
+    for name in network.estimated_names:
         K = network.node(name).card
         th = np.asarray(probs[name], dtype=np.float64).reshape(-1, K)
         n = np.asarray(n_cells[name], dtype=np.float64).reshape(-1, K)
         nu = n.sum(axis=1)
-        ref = np.argmax(n + 1e-12 * th, axis=1)  # most expected state; ties by the estimate
+        imp = network.impossible_mask(name).reshape(-1, K)
+        ref = np.argmax(np.where(imp, -np.inf, n + 1e-12 * th), axis=1)  # most expected state; ties by the estimate
         status = np.full(th.shape, _INTERIOR, dtype=np.int64)
         status[n < BOUNDARY_COUNT * np.minimum(1.0, nu)[:, None]] = _BOUNDARY
         status[np.arange(len(ref)), ref] = _INTERIOR
         status[nu < UNINFORMED_COUNT] = _NO_DATA
+        status[imp] = _CONSTRAINED
+        status[(imp.sum(axis=1) == K - 1)[:, None] & ~imp] = _CONSTRAINED
         lt = np.log(np.maximum(th, _FLOOR))
         base = lt - lt[np.arange(len(ref)), ref][:, None]
         free_cells = []
@@ -215,11 +225,10 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
 # --------------------------------------------------------------------------- the objective in JAX
 def _objective(network: Network, groups, sizes: tuple[int, ...], phi, aux):
     base, index, pseudo, fixed_lc, l2, codes, weights = aux
-    lcs, lp, pen = [], 0.0, 0.0
+    own, lp, pen = dict(fixed_lc), 0.0, 0.0
     off = k = 0
     for node in network.nodes:
-        if node.fixed is not None:
-            lcs.append(fixed_lc[node.name])
+        if node.fixed is not None or node.tied_to is not None:
             continue
         s = sizes[k]
         k += 1
@@ -229,10 +238,12 @@ def _objective(network: Network, groups, sizes: tuple[int, ...], phi, aux):
         off += s
         eta = eta.reshape(network.cpt_shape(node.name))
         lc = jax.nn.log_softmax(eta, axis=-1)
-        lcs.append(lc)
+        own[node.name] = lc
         lp = lp + jnp.sum(pseudo[node.name] * lc)
         pen = pen + jnp.sum((eta - jnp.mean(eta, axis=-1, keepdims=True)) ** 2)
-    ll = _loglik_logcpt(network, groups, tuple(lcs), codes, weights)
+    # a tied node's log-CPT is its source's (the same parameters in both families)
+    lcs = tuple(own[network.tie_source(n.name) if n.fixed is None else n.name] for n in network.nodes)
+    ll = _loglik_logcpt(network, groups, lcs, codes, weights)
     return ll + lp - l2 * pen
 
 
@@ -315,7 +326,8 @@ def observed_information(network: Network, data: Any, probs: Mapping[str, np.nda
     full = _full_probs(network, probs)
     check_possible(lik, full)
     _, counts = lik.expected_counts(full)
-    co = make_coordinates(network, full, {k: counts[k] + pseudo[k] for k in network.free_names})
+    counts = pool_counts(network, counts)
+    co = make_coordinates(network, full, {k: counts[k] + pseudo[k] for k in network.estimated_names})
     pb = _Problem(network, coded, co, pseudo, l2, batch)
     return pb.dense_information(), co
 
@@ -537,7 +549,8 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     lik = likelihood if likelihood is not None else Likelihood(network, coded)
     check_possible(lik, full)
     _, counts = lik.expected_counts(full)
-    co = make_coordinates(network, full, {k: counts[k] + pseudo[k] for k in network.free_names})
+    counts = pool_counts(network, counts)
+    co = make_coordinates(network, full, {k: counts[k] + pseudo[k] for k in network.estimated_names})
     P = co.size
     if method == "auto":
         method = "dense" if P <= DENSE_MAX_PARAMETERS else "matrix-free"
@@ -547,9 +560,9 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     z = float(stats.norm.ppf(0.5 + level / 2))
     blocks = complete_information(co, l2)
     if P == 0:
-        sec = _assemble(co, level, z, _CovBlocks(co, {}), np.zeros((0, 0)), blocks, wanted)
+        sec = _with_tied(network, *_assemble(co, level, z, _CovBlocks(co, {}), np.zeros((0, 0)), blocks, wanted))
         return Uncertainty(network, level, method, *sec, co, np.zeros(0), np.zeros(0), (),
-                           {n: _missing_none(co, n) for n in network.free_names}, None, 0.0,
+                           {n: _missing_none(co, network.tie_source(n)) for n in network.free_names}, None, 0.0,
                            notes=tuple(notes + ["no coordinate is left to estimate (every row is on the boundary or has no data)"]),
                            wide=wide, settings={"_pseudo": pseudo, "l2": l2})
     pb = _Problem(network, coded, co, pseudo, l2, batch, lik)
@@ -564,7 +577,7 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
         flat_X = X[:, ~ok]
         offs = co.offsets()
         node_cov = _CovBlocks(co, {n: cov[offs[n]:offs[n] + sz, offs[n]:offs[n] + sz]
-                                   for n, sz in zip(network.free_names, co.sizes)})
+                                   for n, sz in zip(network.estimated_names, co.sizes)})
         all_rho, all_X = rho, X
     else:
         all_rho, all_X, node_cov, flat_X, cg_note = _matrix_free(pb, co, blocks, wanted, cg_tol, cg_max_iter, n_eig)
@@ -576,9 +589,9 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
                      "(a saddle or an unconverged fit); the entries loading on those directions get no error bar")
     if gnorm > 1e-3 * max(1.0, math.sqrt(coded.n_rows)):
         notes.append(f"the gradient at the estimate is not small ({gnorm:.3g}); the error bars assume a maximum")
-    se, lower, upper, status = _assemble(co, level, z, node_cov, flat_X, blocks, wanted)
+    se, lower, upper, status = _with_tied(network, *_assemble(co, level, z, node_cov, flat_X, blocks, wanted))
     directions = _name_directions(co, all_rho, all_X, blocks, info)
-    missing_info = {n: _missing_fraction(co, n, status, node_cov, blocks) if n in wanted
+    missing_info = {n: _missing_fraction(co, network.tie_source(n), status, node_cov, blocks) if n in wanted
                     else None for n in network.free_names}
     em_rate = (1.0 if np.any(all_rho <= FLAT_TOL) else float(np.clip(1.0 - all_rho.min(), 0.0, 1.0))) if len(all_rho) else None
     return Uncertainty(network, level, method, se, lower, upper, status, co, all_rho, ev, tuple(directions),
@@ -593,9 +606,28 @@ def relabelable_latent(network: Network) -> list[str]:
     return [n.name for n in network.nodes if n.latent and n.fixed is None and n.name not in pinned]
 
 
+def _with_tied(network: Network, *tables: dict[str, np.ndarray]) -> tuple[dict[str, np.ndarray], ...]:
+    """Per-node tables of the estimated nodes, with each tied node given its source's (the same
+    parameters, so the same error bars)."""
+    out = []
+    for t in tables:
+        t = dict(t)
+        for name in network.free_names:
+            if name not in t:
+                t[name] = t[network.tie_source(name)]
+        out.append(t)
+    return tuple(out)
+
+
 def _wanted_nodes(network: Network, nodes: Iterable[str] | None) -> set[str]:
+    """The free nodes error bars are asked for, with the source of every tied node among them."""
     if nodes is None:
         return set(network.free_names)
+    out = _wanted_nodes_given(network, nodes)
+    return out | {network.tie_source(n) for n in out}
+
+
+def _wanted_nodes_given(network: Network, nodes: Iterable[str]) -> set[str]:
     out = set()
     for n in nodes:
         network.index(n)
@@ -614,7 +646,7 @@ def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) ->
         if not np.all(np.isfinite(c)) or np.any(c < 0):
             raise OptionError(f"node {name!r}: pseudo-counts must be finite and >= 0")
         out[name] = c
-    return out
+    return mask_pseudo(network, out)
 
 
 def _full_probs(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
@@ -629,7 +661,7 @@ def _full_probs(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, 
         if a.shape != network.cpt_shape(n.name):
             raise OptionError(f"node {n.name!r}: CPT has shape {a.shape}, expected {network.cpt_shape(n.name)}")
         out[n.name] = a
-    return out
+    return full_probs(network, out)
 
 
 def _generalised_eigh(info: np.ndarray, M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -667,7 +699,7 @@ def _assemble(co: Coordinates, level: float, z: float, cov: _CovBlocks, flat_X: 
     offs = co.offsets()
     rows = co.row_slices()
     se_d, lo_d, hi_d, st_d = {}, {}, {}, {}
-    for name in net.free_names:
+    for name in net.estimated_names:
         K = net.node(name).card
         th = co.probs[name]
         Q = th.shape[0]
@@ -681,7 +713,7 @@ def _assemble(co: Coordinates, level: float, z: float, cov: _CovBlocks, flat_X: 
             hi[:] = np.nan
         else:
             for u in range(Q):
-                if st[u, 0] == _NO_DATA:
+                if (st[u] == _NO_DATA).any():
                     continue
                 nu = float(co.n[name][u].sum())
                 bnd = st[u] == _BOUNDARY
@@ -699,7 +731,7 @@ def _assemble(co: Coordinates, level: float, z: float, cov: _CovBlocks, flat_X: 
                 Minv = np.linalg.inv(blocks[(name, u)])
                 S = cov.get(name, js)
                 for k in range(K):
-                    if bnd[k]:
+                    if bnd[k] or st[u, k] == _CONSTRAINED:
                         continue
                     g = G[k]
                     den = float(g @ Minv @ g)
@@ -721,6 +753,8 @@ def _assemble(co: Coordinates, level: float, z: float, cov: _CovBlocks, flat_X: 
                     hi[u, k] = _expit(lg + half)
             ni = st == _NOT_IDENTIFIED
             lo[ni], hi[ni] = 0.0, 1.0
+            fixed = st == _CONSTRAINED  # fixed by the network's impossible cells: the point itself
+            lo[fixed] = hi[fixed] = th[fixed]
         shape = net.cpt_shape(name)
         se_d[name], lo_d[name], hi_d[name], st_d[name] = (se.reshape(shape), lo.reshape(shape), hi.reshape(shape),
                                                           st.reshape(shape))
@@ -859,8 +893,8 @@ def _matrix_free(pb: _Problem, co: Coordinates, blocks, wanted: set[str], tol: f
     flat = rho <= FLAT_TOL
     # columns of I⁻¹ for the wanted nodes' coordinates, kept as one block per node
     offs = co.offsets()
-    sizes = dict(zip(co.network.free_names, co.sizes))
-    node_cov = {n: np.zeros((sizes[n], sizes[n])) for n in wanted}
+    sizes = dict(zip(co.network.estimated_names, co.sizes))
+    node_cov = {n: np.zeros((sizes[n], sizes[n])) for n in wanted if n in sizes}
     cols = np.asarray([j for j, (name, _, _) in enumerate(co.coords) if name in wanted], dtype=np.int64)
     notes: list[str] = []
     if eig_res > 1e-6:
@@ -1036,7 +1070,8 @@ def format_uncertainty(summary: Mapping[str, Any], nodes: Mapping[str, Mapping[s
     for note in summary.get("notes") or []:
         lines.append(f"note: {note}")
     if network is not None and nodes:
-        mark = {"interior": "", "boundary": "*", "not identified": "?", "no data": "-", "not computed": ""}
+        mark = {"interior": "", "boundary": "*", "not identified": "?", "no data": "-", "not computed": "",
+                "constrained": "="}
         for name, sec in nodes.items():
             if "interval" not in sec:
                 continue
@@ -1050,7 +1085,7 @@ def format_uncertainty(summary: Mapping[str, Any], nodes: Mapping[str, Mapping[s
             df = pd.DataFrame(cells, index=index, columns=pd.Index(list(node.states), name=name))
             with pd.option_context("display.width", 200, "display.max_columns", 20):
                 lines.append(f"\n{pct} intervals for P({name} | {', '.join(node.parents) or '-'})"
-                             f" (* boundary, ? not identified, - no data)\n{df.to_string()}")
+                             f" (* boundary, ? not identified, - no data, = fixed by the network)\n{df.to_string()}")
     return "\n".join(lines)
 
 
