@@ -720,7 +720,10 @@ def _section_fitted(doc: Mapping[str, Any], res: FitResult, gaps: Mapping[str, A
                            f"the node table below lists every node and its parents."))
     node_rows = []
     for n in net.nodes:
-        role = ("latent" if n.latent else "observed") + (", CPT fixed" if n.fixed is not None else ", CPT estimated")
+        role = ("latent" if n.latent else "observed") + (", CPT fixed" if n.fixed is not None else
+                                                          f", CPT tied to {n.tied_to}" if n.tied_to else ", CPT estimated")
+        if n.impossible:
+            role += f", {len(n.impossible)} impossible cell(s)"
         node_rows.append([n.name, role, ", ".join(n.parents) or "-", ", ".join(n.states)])
     parts.append(_table(["node", "role", "parents", "states"], node_rows, cls="plain nodes", num_from=99))
 
@@ -947,7 +950,7 @@ def _per_cell(value: Any, n_rows: int, card: int) -> bool:
 
 
 _STATUS_WORD = {"boundary": "on the boundary", "not identified": "not identified", "no data": "no data",
-                "not computed": "not computed"}
+                "not computed": "not computed", "constrained": "fixed by the network"}
 
 
 def _cfg_text(parents: Any) -> str:
@@ -1067,6 +1070,10 @@ def _cpt_block(net: Network, name: str, sec: Mapping[str, Any], excluded: set[in
         tags.append("latent")
     if node.fixed is not None:
         tags.append("fixed in the network, not estimated")
+    if node.tied_to:
+        tags.append(f"tied to {node.tied_to}: the same parameters, estimated from both")
+    if node.impossible:
+        tags.append(f"{len(node.impossible)} cell(s) impossible by design, fixed at 0")
     head = f"P({name} | {', '.join(node.parents)})" if node.parents else f"P({name})"
     out = [f'<div class="cpt" id="cpt-{esc(name)}"><h3>{esc(head)}'
            + "".join(f' <span class="tag">{esc(t)}</span>' for t in tags) + "</h3>"]
