@@ -760,7 +760,7 @@ def query_command(
         parser=InputFile("network file"), show_default=False)] = None,
     params: OptParamsOpt = None,
     given: Annotated[Optional[list[str]], typer.Option(
-        "--given", help="Evidence NODE=STATE (repeat for several).")] = None,
+        "--given", help="Evidence NODE=STATE (repeat for several); soft evidence NODE=STATE:WEIGHT,STATE:WEIGHT (likelihood weights >= 0, unlisted states 0).")] = None,
     target: Annotated[Optional[list[str]], typer.Option(
         "--target", help="Node whose posterior is wanted (repeat; default: every node not given).")] = None,
     explain: Annotated[bool, Flag(
@@ -770,8 +770,12 @@ def query_command(
     """Posterior of chosen nodes given evidence, and the probability of the evidence.
 
     Several --target nodes also give their joint distribution. --explain adds the most probable
-    explanation: the single most probable joint state of every node not given (by enumeration;
-    refused when the hidden nodes have too many joint states).
+    explanation: the single most probable joint state of every node not given, with its
+    probability (max-product elimination; refused when its largest table is too large).
+
+    Soft evidence, --given NODE=STATE:WEIGHT,STATE:WEIGHT, multiplies P(NODE = STATE) by the
+    weight (likelihood evidence: e.g. a sensor that reads "alarm" 4 times as often in state
+    worn as in good: --given wear=worn:4,good:1); states not listed get weight 0.
 
     Exact (variable elimination) under the CPTs of --params, or under the network's own CPTs
     when every one is fixed (an expert model, or one written by `adfit show --format toml`).
@@ -783,9 +787,7 @@ def query_command(
     """
     import json
 
-    from .impute import parse_assignments, query
-    from .network import load_network
-    from .result import load_result
+    from .impute import parse_evidence, query
 
     with user_errors():
         from .errors import OptionError
@@ -797,16 +799,16 @@ def query_command(
         from .explain import format_explanation, format_joint, joint_posterior, most_probable
 
         probs = res.probs if res is not None else cpts_of(net, None)
-        ev = parse_assignments(given or [])
-        q = query(net, probs, ev, target or None)
+        ev, soft = parse_evidence(net, given or [])
+        q = query(net, probs, ev, target or None, soft=soft)
         doc = q.to_dict()
         texts = [q.format_text()]
         if target and len(q.posteriors) > 1:
-            doc["joint"] = joint_posterior(net, probs, ev, list(q.posteriors))
-            texts.append(format_joint(doc["joint"], ev))
+            doc["joint"] = joint_posterior(net, probs, ev, list(q.posteriors), soft)
+            texts.append(format_joint(doc["joint"], ev, soft=soft))
         if explain:
-            doc["explanation"] = most_probable(net, probs, ev)
-            texts.append(format_explanation(doc["explanation"], ev))
+            doc["explanation"] = most_probable(net, probs, ev, soft)
+            texts.append(format_explanation(doc["explanation"], ev, soft=soft))
         if as_json:
             typer.echo(json.dumps(doc, indent=2))
         else:
