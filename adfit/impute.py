@@ -350,10 +350,22 @@ def defuse_frame(table: pd.DataFrame) -> tuple[pd.DataFrame, int]:
     out = table.copy()
     changed = 0
     for col in out.columns:
-        if out[col].dtype == object or pd.api.types.is_string_dtype(out[col]):
-            new = [fix(v) for v in out[col]]
-            changed += sum(a is not b for a, b in zip(new, out[col]))
-            out[col] = new
+        s = out[col]
+        if not (s.dtype == object or pd.api.types.is_string_dtype(s)):
+            continue
+        # each distinct value once (a column of labels has a handful), then the cells that change
+        mapping = {}
+        for v in pd.unique(s.to_numpy(dtype=object)):
+            if isinstance(v, str):
+                w = fix(v)
+                if w is not v:
+                    mapping[v] = w
+        if mapping:
+            mask = s.isin(list(mapping)).to_numpy(dtype=bool)
+            col_values = s.to_numpy(dtype=object).copy()
+            col_values[mask] = [mapping[v] for v in col_values[mask]]
+            out[col] = col_values
+            changed += int(mask.sum())
     out.columns = [fix(c) if isinstance(c, str) else c for c in out.columns]
     return out, changed
 

@@ -37,17 +37,18 @@ def random_rows(net, rng, n_rows, p_missing):
     return CodedData(d, c)
 
 
-def latent_case(seed: int):
+def latent_case(seed: int, missing: tuple[float, float] = (0.05, 0.3)):
     """A random small network with at least one latent node and one observed node (3-5 nodes,
     2-3 states, random CPTs) and 60-160 records drawn from it: cells missing completely at random
-    (even seeds) or at random given the first observed node, which is always recorded (odd seeds)."""
+    (even seeds) or at random given the first observed node, which is always recorded (odd seeds),
+    with a chance drawn uniformly from ``missing`` (heavy gaps: e.g. ``(0.3, 0.6)``)."""
     rng = np.random.default_rng(seed)
     while True:
         net = random_network(rng, int(rng.integers(3, 6)), p_latent=0.3)
         if any(n.latent for n in net.nodes) and net.free_names and not all(n.latent for n in net.nodes):
             break
     n_rows = int(rng.integers(60, 160))
-    p = float(rng.uniform(0.05, 0.3))
+    p = float(rng.uniform(*missing))
     # records drawn from the network itself, with random CPTs (ancestral sampling)
     probs = random_probs(net, rng)
     x = np.zeros((n_rows, len(net.nodes)), dtype=np.int32)
