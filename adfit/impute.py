@@ -391,7 +391,7 @@ def impute_file(network: Network, probs: Mapping[str, np.ndarray], data: str | P
     from .io import atomic_write, check_output_paths
 
     check_output_paths({"out": out}, {"data file": data})
-    files, _ = resolve_inputs(data)
+    files, fmt = resolve_inputs(data)
     ignore = list(ignore_columns)
     if count_column is not None:
         if count_column in network:
@@ -399,6 +399,15 @@ def impute_file(network: Network, probs: Mapping[str, np.ndarray], data: str | P
                             f"rename the count column")
         ignore.append(count_column)
     coded = load_files(network, data, missing=missing, ignore_columns=list(dict.fromkeys(ignore)))
+    from .data import csv_header, parquet_names
+    from .limits import check_impute
+
+    # the imputation holds every record at once: refuse, before the records are read as text and
+    # the posteriors spread over them, what could not fit in memory
+    n_columns = len(csv_header(files[0]) if fmt == "csv" else parquet_names(files[0]))
+    chosen = default_nodes(network, coded) if nodes is None else _check_nodes(network, nodes)
+    check_impute(float(len(coded.inverse)) if coded.inverse is not None else float(coded.counts.sum()),
+                 n_columns, network, chosen)
     frames = [read_table(f) for f in files]
     frame = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
     locate = None

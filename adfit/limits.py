@@ -78,3 +78,23 @@ def check_folds(folds: int, n_records: float, n_distinct: int) -> None:
     if folds:
         check_memory(f"--folds {folds} over {n_distinct:,} distinct rows", float(folds) * n_distinct * 8 * 2,
                      "give fewer --folds (5 or 10 is common practice)")
+
+
+def impute_bytes(n_records: float, n_columns: int, network, nodes=None) -> float:
+    """The per-record arrays of an imputation held at once (adfit/impute.py): the records'
+    codes (int32 per node) and their index (int64); per chosen node its posterior (float64 per
+    state), mode and hidden flag; the added columns (float64 per state, a pointer per mode, the
+    log-probability), twice (the added table and the output table they are joined into); the
+    input columns, a pointer or an offset per cell, twice (read, and in the output table).
+    ``nodes``: the chosen nodes (default: every node)."""
+    cards = [network.node(v).card for v in (nodes or network.names)]
+    per_record = (4 * len(network) + 8 + 8
+                  + sum(8 * c + 4 + 1 for c in cards)
+                  + 2 * (sum(8 * c + 8 for c in cards) + 8)
+                  + 2 * 8 * n_columns)
+    return float(n_records) * per_record
+
+
+def check_impute(n_records: float, n_columns: int, network, nodes=None) -> None:
+    check_memory(f"imputing {n_records:,.0f} records", impute_bytes(n_records, n_columns, network, nodes),
+                 "impute the records in parts (split the file) or name fewer --nodes")

@@ -459,3 +459,42 @@ def test_impossible_records_name_fixed_cpts_only_when_the_network_has_them(valid
     assert one_line_error(r) and "under the fixed CPTs and the starting values" in r.output, r.output
     r = cli(["fit", fixed, data, "--out", tmp_path / "o.json"])
     assert one_line_error(r) and "under the fixed CPTs and the first start" in r.output, r.output
+
+
+def test_an_imputation_that_cannot_fit_in_memory_is_refused_before_the_posteriors(valid, tmp_path, monkeypatch):
+    # impute holds every record at once (fit reduces them to distinct rows): its estimate is a
+    # plain count of the per-record arrays (adfit.limits.impute_bytes). The oracle of what is
+    # held is numpy's nbytes of the imputation's arrays and pandas' memory_usage of the table
+    # written: both exist together when the file is written, so the estimate is at least their
+    # sum, and it counts each at most twice (the added table and the joined one).
+    from adfit import limits
+    from adfit.impute import impute_file
+    from adfit.network import load_network
+    from adfit.result import load_result
+
+    net = load_network(valid / "n.toml")
+    res = load_result(valid / "fit.json", net)
+    lines = RECORDS.splitlines()
+    big = tmp_path / "d.csv"
+    big.write_text("\n".join([lines[0]] + [lines[1 + i % 7] for i in range(7000)]) + "\n")
+    imp, table = impute_file(net, res.probs, big, tmp_path / "i.csv")
+    held = (sum(a.nbytes for d in (imp.posterior, imp.hidden, imp.mode) for a in d.values())
+            + imp.log_p_observed.nbytes + int(table.memory_usage(index=False, deep=False).sum()))
+    est = limits.impute_bytes(7000, 2, net, imp.nodes)
+    assert held <= est <= 2 * held, (held, est)
+    # with less memory than that available, the command refuses before computing anything
+    (tmp_path / "i.csv").unlink()
+    monkeypatch.setattr(limits, "memory_available", lambda: int(est))  # the estimate is more than half
+    called = []
+    import adfit.impute as impute_mod
+
+    real_posteriors = impute_mod.row_posteriors
+    monkeypatch.setattr(impute_mod, "row_posteriors", lambda *a, **k: called.append(1))
+    r = cli(["impute", valid / "n.toml", big, "--params", valid / "fit.json", "--out", tmp_path / "i.csv"])
+    assert one_line_error(r) and "imputing 7,000 records would need about" in r.output, r.output
+    assert "impute the records in parts (split the file) or name fewer --nodes" in r.output
+    assert not called and not (tmp_path / "i.csv").exists()
+    monkeypatch.setattr(impute_mod, "row_posteriors", real_posteriors)
+    monkeypatch.setattr(limits, "memory_available", lambda: int(2 * est))  # exactly half: accepted
+    r = cli(["impute", valid / "n.toml", big, "--params", valid / "fit.json", "--out", tmp_path / "i.csv"])
+    assert r.exit_code == 0, r.output
