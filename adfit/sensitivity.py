@@ -350,7 +350,7 @@ class _Solution:
     iterations: int
 
 
-def _refit(model: _Model, log_r: float, u0: np.ndarray) -> _Solution:
+def _refit(model: _Model, log_r: float, u0: np.ndarray, odds: float | None = None) -> _Solution:
     """Maximise the selection model at fixed log r from the unscaled start ``u0``."""
     from scipy.optimize import minimize
 
@@ -372,7 +372,7 @@ def _refit(model: _Model, log_r: float, u0: np.ndarray) -> _Solution:
     model.scale = np.ones(model.size)
     f, _ = model.fg(u)
     lp = _log_prior(model, u)
-    return _Solution(math.exp(log_r), u, -f * model.n_total - lp, gnorm <= GTOL * model.n_total, gnorm, it)
+    return _Solution(math.exp(log_r) if odds is None else float(odds), u, -f * model.n_total - lp, gnorm <= GTOL * model.n_total, gnorm, it)
 
 
 def _log_prior(model: _Model, u: np.ndarray) -> float:
@@ -610,6 +610,7 @@ def sensitivity_analysis(network: Network, data: Any, shifts: Sequence[Shift] | 
     if prior is not None and pseudo_counts is None:
         pseudo_counts = prior.pseudo_counts(network)
     say = progress or (lambda line: None)
+    mar_note = None
     model = _Model(network, coded, shifts, predictors, pseudo_counts)
     model.lik_cells = Likelihood(network, coded)
     if start is None:
@@ -617,21 +618,23 @@ def sensitivity_analysis(network: Network, data: Any, shifts: Sequence[Shift] | 
 
         res = fit(network, coded, pseudo_counts=pseudo_counts, seed=seed, restarts=restarts, warn=False)
         start = res.probs
+        if not res.converged:
+            mar_note = f"the MAR fit did not meet its stopping rule ({res.stop_reason}); the grid starts from it"
         say(f"MAR fit: log-likelihood {res.log_likelihood:.4f}" + ("" if res.converged else " (NOT converged)"))
     check_possible(model.lik_cells, {**start, **{n: network.fixed_table(n) for n in network.fixed_names}})
     u0 = model.start_vector(start)
     sols: dict[float, _Solution] = {}
-    sols[1.0] = _refit(model, 0.0, u0)
+    sols[1.0] = _refit(model, 0.0, u0, 1.0)
     say(f"odds 1 (MAR): log-likelihood {sols[1.0].log_likelihood:.4f}")
     up = [r for r in grid if r > 1.0]
     down = [r for r in reversed(grid) if r < 1.0]
     for chain in (up, down):
         prev = sols[1.0]
         for r in chain:
-            prev = sols[r] = _refit(model, math.log(r), prev.v)
+            prev = sols[r] = _refit(model, math.log(r), prev.v, r)
             say(f"odds {r:g}: log-likelihood {prev.log_likelihood:.4f}" + ("" if prev.converged else " (NOT converged)"))
     tcalc = _Targets(network, tg)
-    rows, notes = [], []
+    rows, notes = [], [mar_note] if mar_note else []
     for r in grid:
         sol = sols[r]
         tv = tcalc.evaluate(model.probs(sol.v))
