@@ -904,6 +904,9 @@ def report_command(
     engine: EngineOpt = "pandas",
     scheduler: SchedulerOpt = None,
     title: Annotated[Optional[str], typer.Option("--title", help="Title of the page (default: from the file name).")] = None,
+    sensitivity: Annotated[Optional[Path], typer.Option(
+        "--sensitivity", help="A file from adfit sensitivity: adds the missing-not-at-random section (plot and table).",
+        parser=InputFile("sensitivity file"))] = None,
 ) -> None:
     """Write the fit as one self-contained HTML page (plots inside; opens offline, prints).
 
@@ -922,9 +925,10 @@ def report_command(
     with user_errors():
         from .io import check_output_paths
 
-        check_output_paths({"out": out}, {"result file": result, "data file": data})
+        check_output_paths({"out": out}, {"result file": result, "data file": data, "sensitivity file": sensitivity})
         write_report(out, result, data=data, missing=missing, count_column=count_column,
-                     ignore_columns=split_list(ignore_columns), engine=engine, scheduler=scheduler, title=title)
+                     ignore_columns=split_list(ignore_columns), engine=engine, scheduler=scheduler, title=title,
+                     sensitivity=sensitivity)
         typer.echo(f"wrote {out}")
 
 

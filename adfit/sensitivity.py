@@ -767,8 +767,9 @@ def format_sensitivity(doc: Mapping[str, Any]) -> str:
     for b in body:
         lines.append("  ".join(c.rjust(w[i]) for i, c in enumerate(b)))
     lls = [r["log_likelihood"] for r in doc["rows"]]
-    lines.append(f"(± one standard error; the selection-model log-likelihood varies by {max(lls) - min(lls):.3g} "
-                 f"across the grid: the data say next to nothing about the odds)")
+    lines.append(f"(± one standard error. The selection-model log-likelihood varies by {max(lls) - min(lls):.3g} "
+                 f"across the grid: what little it varies comes from the network's own assumptions, not from "
+                 f"evidence about why cells are missing; do not read it as an estimate of the odds.)")
     tip = doc.get("tipping_point")
     if tip:
         lines.append(f"Tipping point: {tip['note']}")
