@@ -1397,7 +1397,8 @@ def _latent_states(doc: Mapping[str, Any]) -> str:
         if not latent:
             return ""
         return ("<h3>Number of latent states</h3>"
-                + _absent("One number of states was fitted: adfit fit --latent-states NODE=2..6 compares several."))
+                + _note("One number of states was fitted for each latent node; adfit fit --latent-states "
+                        "NODE=2..6 fits several and compares them by BIC."))
     rows = []
     for c in sec.get("candidates") or []:
         if not isinstance(c, Mapping):
