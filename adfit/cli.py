@@ -633,7 +633,7 @@ def score_command(
         lik = Likelihood(net, coded)  # one plan and one compiled program for the score and the check
         s = score(net, coded, probs, likelihood=lik)
         if not math.isfinite(s["log_likelihood"]):
-            check_possible(lik, probs)  # names the records of probability 0 (exit 1)
+            check_possible(lik, probs, given="the CPTs of --params")  # names the records of probability 0 (exit 1)
         out = {"log_likelihood": s["log_likelihood"], "gradient_norm": s["gradient_norm"],
                "n_rows": coded.n_rows, "n_distinct": coded.n_distinct,
                "log_likelihood_per_record": s["log_likelihood"] / coded.n_rows}
@@ -767,18 +767,32 @@ def query_command(
         parser=InputFile("network file"), show_default=False)] = None,
     params: OptParamsOpt = None,
     given: Annotated[Optional[list[str]], typer.Option(
-        "--given", help="Evidence NODE=STATE (repeat for several).")] = None,
+        "--given", help="Evidence NODE=STATE (repeat for several); soft evidence NODE=STATE:WEIGHT,STATE:WEIGHT (likelihood weights >= 0, unlisted states 0).")] = None,
     target: Annotated[Optional[list[str]], typer.Option(
         "--target", help="Node whose posterior is wanted (repeat; default: every node not given).")] = None,
     explain: Annotated[bool, Flag(
         "--explain", help="Also give the most probable joint state of every node not given, with its probability.")] = False,
     as_json: Annotated[bool, Flag("--json", help="Print the result as JSON (format adfit-query/1).")] = False,
+    batch: Annotated[Optional[Path], typer.Option(
+        "--batch", help="CSV (or Parquet) file of evidence, one query per row: a column per node given, cells "
+                        "STATE, STATE:WEIGHT,... or empty; answers written to --out.",
+        parser=InputFile("batch file (--batch)"))] = None,
+    out: Annotated[Optional[Path], typer.Option("--out", help="With --batch: the CSV file of answers to write.")] = None,
+    ignore_columns: Annotated[Optional[str], typer.Option(
+        "--ignore-columns", help="With --batch: comma-separated columns that are not evidence (ids...), carried to --out as they are.")] = None,
+    defuse: Annotated[bool, Flag(
+        "--defuse/--raw-cells", help="With --batch: text cells that start like a spreadsheet formula (=, +, -, @) get a "
+                                     "leading apostrophe (default); --raw-cells writes them as they are.")] = True,
 ) -> None:
     """Posterior of chosen nodes given evidence, and the probability of the evidence.
 
     Several --target nodes also give their joint distribution. --explain adds the most probable
-    explanation: the single most probable joint state of every node not given (by enumeration;
-    refused when the hidden nodes have too many joint states).
+    explanation: the single most probable joint state of every node not given, with its
+    probability (max-product elimination; refused when its largest table is too large).
+
+    Soft evidence, --given NODE=STATE:WEIGHT,STATE:WEIGHT, multiplies P(NODE = STATE) by the
+    weight (likelihood evidence: e.g. a sensor that reads "alarm" 4 times as often in state
+    worn as in good: --given wear=worn:4,good:1); states not listed get weight 0.
 
     Exact (variable elimination) under the CPTs of --params, or under the network's own CPTs
     when every one is fixed (an expert model, or one written by `adfit show --format toml`).
@@ -786,13 +800,18 @@ def query_command(
     Caution: the answer is only as good as the CPTs and the network; it supports, and does not
     replace, engineering or clinical judgement.
 
+    --batch FILE.csv answers one query per row (the row's cells are its evidence) and writes a CSV
+    to --out: the input columns, then NODE__p_STATE and NODE__mode per target, the joint of
+    several --targets (joint__p_A=a;B=b), with --explain NODE__explain and row__p_explanation,
+    and row__log_p_evidence.
+
     Example: adfit query gearbox.toml --params fit.json --given wear=heavy --given load=high --target failure
+
+    Example: adfit query --params fit.json --batch cases.csv --out answers.csv --target failure
     """
     import json
 
-    from .impute import parse_assignments, query
-    from .network import load_network
-    from .result import load_result
+    from .impute import parse_evidence, query
 
     with user_errors():
         from .errors import OptionError
@@ -800,26 +819,138 @@ def query_command(
         if network is None and params is None:
             raise OptionError("adfit query: give the network file (every CPT fixed), or --params RESULT.json "
                               "(its embedded network is used), or both")
+        if batch is None:
+            for name, value in (("--out", out), ("--ignore-columns", ignore_columns)):
+                if value is not None:
+                    raise OptionError(f"{name} goes with --batch FILE.csv (many queries); a single query prints its answer")
+        else:
+            if given:
+                raise OptionError("--batch reads the evidence from the file's columns; leave out --given "
+                                  "(add a column for a node given in every row)")
+            if as_json:
+                raise OptionError("--batch writes its answers as CSV to --out; leave out --json")
+            if out is None:
+                raise OptionError("--batch needs --out ANSWERS.csv, the file of answers to write")
+            from .io import check_output_paths
+
+            check_output_paths({"out": out}, {"batch file": batch, "network file": network, "params file": params})
         net, res = network_of(network, params)
         from .explain import format_explanation, format_joint, joint_posterior, most_probable
 
         probs = res.probs if res is not None else cpts_of(net, None)
-        ev = parse_assignments(given or [])
-        q = query(net, probs, ev, target or None)
+        if batch is not None:
+            from .batch import query_file
+
+            table = query_file(net, probs, batch, out, targets=target or None, explain=explain,
+                               ignore_columns=split_list(ignore_columns), defuse=defuse)
+            typer.echo(f"answered {len(table)} queries from {batch}")
+            typer.echo(f"wrote {out}")
+            typer.echo(CAUTION)
+            return
+        ev, soft = parse_evidence(net, given or [])
+        q = query(net, probs, ev, target or None, soft=soft)
         doc = q.to_dict()
         texts = [q.format_text()]
         if target and len(q.posteriors) > 1:
-            doc["joint"] = joint_posterior(net, probs, ev, list(q.posteriors))
-            texts.append(format_joint(doc["joint"], ev))
+            doc["joint"] = joint_posterior(net, probs, ev, list(q.posteriors), soft)
+            texts.append(format_joint(doc["joint"], ev, soft=soft))
         if explain:
-            doc["explanation"] = most_probable(net, probs, ev)
-            texts.append(format_explanation(doc["explanation"], ev))
+            doc["explanation"] = most_probable(net, probs, ev, soft)
+            texts.append(format_explanation(doc["explanation"], ev, soft=soft))
         if as_json:
             typer.echo(json.dumps(doc, indent=2))
         else:
             typer.echo("\n\n".join(texts))
             typer.echo("")
             typer.echo(CAUTION)
+
+
+# ------------------------------------------------------------------ sensitivity (missing not at random)
+@app.command("sensitivity")
+def sensitivity_command(
+    network: NetworkArg,
+    data: DataArg,
+    out: Annotated[Path, typer.Option("--out", help="File to write (JSON, format adfit-sensitivity/1).")],
+    node: Annotated[list[str], typer.Option(
+        "--node", help="Node whose gaps may depend on its own unrecorded value (repeat for several, each with its --state).")],
+    state: Annotated[list[str], typer.Option(
+        "--state", help="The state of --node whose odds of being missing are multiplied (one per --node, in order).")],
+    odds: Annotated[str, typer.Option(
+        "--odds", help="Odds ratios to try, comma-separated: a cell of --node is missing with odds r times higher when its true value is --state (1 = MAR, always included).")] = "0.25,0.5,1,2,4",
+    target: Annotated[Optional[list[str]], typer.Option(
+        "--target", help="Marginal probability NODE=STATE to report at every odds (repeat; default: every state of each --node).")] = None,
+    predictor: Annotated[Optional[list[str]], typer.Option(
+        "--predictor", help="A recorded node the gaps may also depend on (repeat): one free missingness intercept per configuration of the predictors (default: one intercept).")] = None,
+    threshold: Annotated[Optional[float], typer.Option(
+        "--threshold", help="With one --target: find the odds at which it crosses this probability (the tipping point).")] = None,
+    prior: Annotated[Optional[Path], typer.Option(
+        "--prior", help="Prior file (TOML), as for adfit fit: every refit is then a MAP fit.",
+        parser=InputFile("prior file"))] = None,
+    missing: MissingOpt = None,
+    count_column: CountOpt = None,
+    ignore_columns: IgnoreOpt = None,
+    engine: EngineOpt = "pandas",
+    scheduler: SchedulerOpt = None,
+    seed: Annotated[int, typer.Option("--seed", rich_help_panel=OPT_PANEL, help="Seed of the MAR fit's random starts.")] = 0,
+    restarts: Annotated[Optional[int], typer.Option("--restarts", rich_help_panel=OPT_PANEL, help="Starts of the MAR fit (as adfit fit).")] = None,
+    errors: Annotated[bool, Flag(
+        "--errors/--no-errors", rich_help_panel=CHECK_PANEL, help="Error bars of the targets (observed information, delta method; up to 1000 parameters).")] = True,
+    quiet: Annotated[bool, Flag("--quiet", "-q", help="Print only the file written and warnings.")] = False,
+) -> None:
+    """How far would the answer move if the gaps were missing NOT at random? (selection model)
+
+    For each odds value r, the network is refitted assuming that, given the --predictor nodes,
+    the odds that a cell of --node is missing are r times higher when its true value is --state
+    than when it is any other state (r = 1 is MAR and reproduces adfit fit). Each --target is
+    reported at every r with its error bar; --threshold finds the tipping point. The file feeds
+    `adfit report FIT.json --sensitivity FILE`.
+
+    Caution: the odds are assumptions, not estimates; the data carry no information about them
+    (the log-likelihood column is nearly the same for every r); the plausible range must come from
+    subject knowledge. The analysis supports, and does not replace, engineering or clinical
+    judgement; local codes, regulations and licensed practice come first.
+
+    Example: adfit sensitivity gearbox.toml records.csv --node bearing_wear --state heavy --odds 0.25,0.5,1,2,4 --predictor vibration_alarm --out sens.json
+    """
+    with user_errors():
+        from .errors import OptionError
+        from .io import check_output_paths
+
+        check_seed(seed)
+        check_output_paths({"out": out}, {"network file": network, "data file": data, "prior file": prior})
+        if len(node) != len(state):
+            raise OptionError(f"--node is given {len(node)} time(s) and --state {len(state)}: give one --state "
+                              f"for each --node, in the same order")
+        from .network import load_network as _load
+        from .sensitivity import Shift, check_shifts, parse_odds, parse_targets
+
+        _net = _load(network)  # options checked before the records are read
+        shifts = tuple(Shift(n, s) for n, s in zip(node, state))
+        preds = tuple(predictor or ())
+        parse_odds(odds)
+        check_shifts(_net, None, shifts, preds)
+        tg = parse_targets(_net, target, shifts)
+        if threshold is not None and len(tg) != 1:
+            raise OptionError(f"--threshold needs exactly one --target NODE=STATE (got {len(tg)}); name the "
+                              f"probability whose tipping point you want")
+        if restarts is not None and restarts < 1:
+            raise OptionError(f"--restarts must be >= 1, got {restarts}")
+        net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
+                                 ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
+        pri = None
+        if prior is not None:
+            from .priors import load_prior
+
+            pri = load_prior(prior, net)
+        from .sensitivity import sensitivity_analysis, write_sensitivity
+
+        say = (lambda line: None) if quiet else (lambda line: typer.echo(line, err=True))
+        res = sensitivity_analysis(net, coded, shifts, odds, targets=target, predictors=preds, prior=pri,
+                                   threshold=threshold, errors=errors, seed=seed, restarts=restarts, progress=say)
+        write_sensitivity(out, res)
+        if not quiet:
+            typer.echo(res.format_text())
+        typer.echo(f"wrote {out}")
 
 
 # ------------------------------------------------------------------ demo (the embedded scenario)
@@ -833,7 +964,7 @@ def demo_command(
 ) -> None:
     """Run the whole job on the embedded wind-turbine gearbox scenario (simulated records).
 
-    Writes into --out: the network, the prior and the records, then looks at the gaps, fits the CPTs (MAP, expert prior on oil_debris, several starts), cross-checks the fit with EM, adds error bars, compares with dropping incomplete records, imputes the gaps, and writes fit.json and report.html. The summary says where each file went and what the numbers mean.
+    Writes into --out: the network, the prior and the records, then looks at the gaps, fits the CPTs (MAP, expert prior on oil_debris, several starts), cross-checks the fit with EM, adds error bars, compares with dropping incomplete records, asks how far the answer moves if the gaps in bearing_wear were not at random (sensitivity.json), imputes the gaps, and writes fit.json and report.html. The summary says where each file went and what the numbers mean.
 
     Caution: the records are simulated; estimates rest on the network, the prior and MAR.
 
@@ -844,11 +975,12 @@ def demo_command(
     from .demo import Reporter, RichReporter, run_demo
 
     with user_errors():
-        from .demo import DATA_FILE, FIT_FILE, IMPUTED_FILE, NETWORK_FILE, PRIOR_FILE, REPORT_FILE
+        from .demo import DATA_FILE, FIT_FILE, IMPUTED_FILE, NETWORK_FILE, PRIOR_FILE, REPORT_FILE, SENSITIVITY_FILE
         from .io import check_output_folder
 
         check_seed(seed)
-        check_output_folder("out", out, [NETWORK_FILE, PRIOR_FILE, DATA_FILE, FIT_FILE, IMPUTED_FILE, REPORT_FILE])
+        check_output_folder("out", out, [NETWORK_FILE, PRIOR_FILE, DATA_FILE, FIT_FILE, IMPUTED_FILE,
+                                         SENSITIVITY_FILE, REPORT_FILE])
         reporter = Reporter() if (quiet or as_json) else RichReporter()
         outcome = run_demo(out, restarts=restarts, seed=seed, reporter=reporter)
         for w in outcome.warnings:
@@ -876,6 +1008,9 @@ def report_command(
     engine: EngineOpt = "pandas",
     scheduler: SchedulerOpt = None,
     title: Annotated[Optional[str], typer.Option("--title", help="Title of the page (default: from the file name).")] = None,
+    sensitivity: Annotated[Optional[Path], typer.Option(
+        "--sensitivity", help="A file from adfit sensitivity: adds the missing-not-at-random section (plot and table).",
+        parser=InputFile("sensitivity file"))] = None,
 ) -> None:
     """Write the fit as one self-contained HTML page (plots inside; opens offline, prints).
 
@@ -894,9 +1029,10 @@ def report_command(
     with user_errors():
         from .io import check_output_paths
 
-        check_output_paths({"out": out}, {"result file": result, "data file": data})
+        check_output_paths({"out": out}, {"result file": result, "data file": data, "sensitivity file": sensitivity})
         write_report(out, result, data=data, missing=missing, count_column=count_column,
-                     ignore_columns=split_list(ignore_columns), engine=engine, scheduler=scheduler, title=title)
+                     ignore_columns=split_list(ignore_columns), engine=engine, scheduler=scheduler, title=title,
+                     sensitivity=sensitivity)
         typer.echo(f"wrote {out}")
 
 
