@@ -44,7 +44,8 @@ from .errors import (ConvergenceWarning, IdentifiabilityWarning, ImpossibleDataE
 from .likelihood import (Likelihood, check_possible,
                          logits_from_probs, probs_from_logits)
 from .network import Network
-from .params import (FreeLayout, fixed_log_tables, free_layout, full_logits, full_probs, mask_pseudo,
+from . import forms as _forms
+from .params import (FreeLayout, block_shape, estimated_starts, fixed_log_tables, free_layout, full_logits, full_probs, mask_pseudo,
                      objective_fg as _objective_fg, pool_counts)
 from .priors import describe_rows, prior_only_rows, resolve_pseudo_counts
 from .result import FitResult
@@ -83,7 +84,7 @@ AUTO_STARTS_SECONDS = 60.0
 # default starts run side by side only when one evaluation takes at least this long
 BATCH_MIN_EVAL_SECONDS = 0.01
 # the structured-CPT features the gradient fit estimates (Network.unsupported_structure)
-SUPPORTED_STRUCTURE = ("table", "tied", "impossible")
+SUPPORTED_STRUCTURE = ("table", "noisy_or", "noisy_max", "tied", "impossible")
 # stop reasons of a stalled (not converged) quasi-Newton run, after which a boundary escape is tried
 STALL_REASONS = ("line search found no better point", "no further progress after rescaling")
 
@@ -136,6 +137,12 @@ def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) ->
             if c is not None and np.any(np.asarray(c, dtype=np.float64) > 0):
                 raise PriorError(f"node {name!r} is tied to {src!r} and shares its parameters: give the prior "
                                  f"on {src!r} only")
+            continue
+        if _forms.is_noisy(network, name):
+            if c is not None and np.any(np.asarray(c, dtype=np.float64) > 0):
+                raise PriorError(f"node {name!r} has cpd = {network.cpd_form(name)!r}: priors on its leak and "
+                                 f"strengths are not available yet; fit it without a prior on {name!r}")
+            out[name] = np.zeros(block_shape(network, name))
             continue
         out[name] = np.zeros(network.cpt_shape(name)) if c is None else np.asarray(c, dtype=np.float64)
     return mask_pseudo(network, out)
@@ -259,6 +266,8 @@ def _cell_label(network: Network, name: str, flat: int) -> str:
     """``"node=state | parent=state, ..."`` for entry ``flat`` of the raveled CPT of ``name``."""
     node = network.node(name)
     row, col = divmod(int(flat), node.card)
+    if _forms.is_noisy(network, name):  # a cell of a cause row (adfit.forms)
+        return f"{name}={node.states[col]} in the cause row {_forms.cause_row_labels(network, name)[row]}"
     cfg = network.parent_config_labels(name)[row]
     given = ", ".join(f"{p}={v}" for p, v in zip(node.parents, cfg))
     return f"{name}={node.states[col]}" + (f" | {given}" if given else "")
@@ -456,6 +465,15 @@ class Fitter:
         d, state = _lbfgs_direction(memory, grad, state, params)
         return np.asarray(d), state
 
+    def logits_of(self, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+        """Logits of the estimated nodes (log-probabilities, row max shifted to 0; tied nodes
+        need no entry)."""
+        out = {}
+        for name in self.free:
+            lp = np.log(np.maximum(np.asarray(probs[name], dtype=np.float64), 1e-300))
+            out[name] = lp - lp.max(axis=-1, keepdims=True)
+        return out
+
     def probs(self, logits: Mapping[str, Any]) -> dict[str, np.ndarray]:
         """CPTs of every node from the estimated nodes' logits (impossible cells 0, ties filled)."""
         return probs_from_logits(self.network, full_logits(self.network, logits))
@@ -464,13 +482,26 @@ class Fitter:
         """Log-likelihood and expected counts at ``probs`` (CPTs of the estimated nodes, or of
         all), the constraints applied first (:func:`adfit.params.full_probs`) and the counts of
         tied families pooled into their source's (:func:`adfit.params.pool_counts`)."""
-        ll, counts = self.lik.expected_counts(full_probs(self.network, probs) if self.constrained else probs)
-        return ll, (pool_counts(self.network, counts) if self.constrained else counts)
+        ll, counts, _ = self.counts_and_families(probs)
+        return ll, counts
+
+    def counts_and_families(self, probs: Mapping[str, np.ndarray]):
+        """:meth:`counts`, and the CPT-shaped expected family counts of every node as the
+        likelihood gives them (before pooling ties or the chain rule onto cause rows)."""
+        if not self.constrained:
+            ll, counts = self.lik.expected_counts(probs)
+            return ll, counts, counts
+        ll, fam = self.lik.expected_counts(full_probs(self.network, probs))
+        return ll, pool_counts(self.network, fam, probs), fam
+
+    def tables(self, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+        """The CPT of every node from the fitter's parameters (cause rows imply their tables)."""
+        return full_probs(self.network, probs) if self.constrained else dict(probs)
 
     def evaluate(self, logits: Mapping[str, Any]) -> dict[str, Any]:
         """Log-likelihood, log-prior, penalty, gradient (∂F/∂η) and residuals at ``logits``."""
         probs = self.probs(logits)
-        ll, counts = self.counts(probs)
+        ll, counts, fam = self.counts_and_families(probs)
         g = objective_gradient(self.network, probs, counts, self.pseudo, logits, self.settings.l2)
         resid = 0.0
         for name in self.free:
@@ -482,7 +513,7 @@ class Fitter:
         kkt = self.kkt(probs, counts) if self.settings.l2 == 0 else None
         return {"probs": probs, "log_likelihood": ll, "log_prior": lp, "penalty": pen,
                 "objective": ll + lp - pen, "grad": g, "gradient_norm": _norm(g),
-                "residual": resid, "counts": counts, "kkt": kkt,
+                "residual": resid, "counts": counts, "kkt": kkt, "family_counts": fam,
                 "kkt_ratio": _max_finite(kkt) if kkt is not None else None}
 
     def kkt(self, probs: Mapping[str, np.ndarray], counts: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
@@ -703,7 +734,7 @@ class Fitter:
                 changed = True
             if not changed:
                 return None
-            cand = logits_from_probs(self.network, new)
+            cand = self.logits_of(new)
             ev_c = self.evaluate(cand)
             if math.isfinite(ev_c["objective"]) and (best is None or ev_c["objective"] > best[1]["objective"]):
                 best = (cand, ev_c)
@@ -716,7 +747,7 @@ class Fitter:
                 num = cur["counts"][name] + self.pseudo[name]
                 den = num.sum(axis=-1, keepdims=True)
                 new_probs[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), cur["probs"][name])
-            cand = logits_from_probs(self.network, new_probs)
+            cand = self.logits_of(new_probs)
             ev_c = self.evaluate(cand)
             if not (math.isfinite(ev_c["objective"]) and ev_c["objective"] >= cur["objective"]):
                 break
@@ -857,7 +888,7 @@ class Fitter:
                         num = ev["counts"][name] + self.pseudo[name]
                         den = num.sum(axis=-1, keepdims=True)
                         new_probs[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), ev["probs"][name])
-                    cand = logits_from_probs(self.network, new_probs)
+                    cand = self.logits_of(new_probs)
                     ev_c = self.evaluate(cand)
                     if not (math.isfinite(ev_c["objective"]) and ev_c["objective"] >= ev["objective"] - 1e-12 * abs(ev["objective"])):
                         break
@@ -1048,9 +1079,33 @@ def check_impossible_cells(network: Network, data: CodedData) -> None:
                 f"records or the network")
 
 
+def _noisy_starts(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Starting CPTs with each noisy node's replaced by the cause rows read off it
+    (:func:`adfit.forms.start_rows`); cause rows given already (their shape) are kept."""
+    out = dict(probs)
+    for name in network.estimated_names:
+        if _forms.is_noisy(network, name) and np.shape(out[name]) == tuple(network.cpt_shape(name)):
+            out[name] = _forms.start_rows(network, name, out[name])
+    return out
+
+
+def form_sections(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, dict[str, Any]]:
+    """``{name: {"cpd": form, "parameters": ...}}`` for every noisy node (tied copies included),
+    from the fitter's cause rows (:func:`adfit.forms.parameters_json`)."""
+    out = {}
+    for name in network.free_names:
+        if _forms.is_noisy(network, name):
+            src = network.tie_source(name)
+            out[name] = {"cpd": network.cpd_form(src), "parameters": _forms.parameters_json(network, src, probs[src])}
+    return out
+
+
 def random_start(network: Network, rng: np.random.Generator) -> dict[str, np.ndarray]:
     out = {}
     for name in network.free_names:
+        if _forms.is_noisy(network, name):
+            out[name] = _forms.random_rows(network, name, rng)
+            continue
         shape = network.cpt_shape(name)
         out[name] = rng.dirichlet(np.ones(shape[-1]), size=shape[:-1]).reshape(shape)
     for name in network.fixed_names:
@@ -1150,12 +1205,14 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     fitter.saddle_check = bool(saddle_check)
     rng = np.random.default_rng(seed)
     p0 = dict(init) if init is not None else complete_family_start(
-        network, coded, rng, fitter.pseudo, observed=fitter.lik.observed_family_counts())
+        network, coded, rng, {k: v for k, v in fitter.pseudo.items() if not _forms.is_noisy(network, k)},
+        observed=fitter.lik.observed_family_counts())
     for name in network.fixed_names:
         p0[name] = network.fixed_table(name)
-    p0 = full_probs(network, p0)
+    p0 = _noisy_starts(network, p0)
+    p0 = estimated_starts(network, p0)
     check_impossible_cells(network, coded)
-    check_possible(fitter.lik, p0)
+    check_possible(fitter.lik, fitter.tables(p0))
     auto_starts = restarts is None
     latent = any(n.latent for n in network.nodes)
     batched = True
@@ -1166,6 +1223,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         batched = not (per_eval < BATCH_MIN_EVAL_SECONDS)
     else:
         starts_note = None
+    if fitter.layout.noisy:
+        batched = False  # the side-by-side program evaluates tables, not cause rows
     starts = [p0]
     for k in range(1, restarts):
         pk = random_start(network, rng)
@@ -1183,6 +1242,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     best_k = int(np.nanargmax([r.value if math.isfinite(r.value) else -np.inf for r in runs]))
     best = runs[best_k]
     ev = fitter.evaluate(best.logits)
+    tables = fitter.tables(ev["probs"])
     elapsed = time.perf_counter() - t0
     is_map = any(np.any(c > 0) for c in fitter.pseudo.values())
     restart_rows = [{"start": k, "kind": "complete-family counts" if k == 0 and init is None else ("given" if k == 0 else "random Dirichlet"),
@@ -1191,10 +1251,13 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     from .restarts import local_optima_message, restarts_report
 
     stationarity = stationarity_section(fitter, ev)
-    restarts_section = restarts_report(network, restart_rows, finals if finals is not None else [ev], best=best_k,
+    finals = finals if finals is not None else [ev]
+    if fitter.layout.noisy:  # the optima are compared on their CPTs (cause rows imply them)
+        finals = [{**f, "probs": fitter.tables(f["probs"]), "counts": f["family_counts"]} for f in finals]
+    restarts_section = restarts_report(network, restart_rows, finals, best=best_k,
                                        gtol_abs=gtol * coded.n_rows, ptol=ptol, batch_width=restart_stats.get("width", 1))
     result = FitResult(
-        network=network, method=method, objective="map" if is_map else "mle", probs=ev["probs"],
+        network=network, method=method, objective="map" if is_map else "mle", probs=tables,
         log_likelihood=ev["log_likelihood"], log_prior=ev["log_prior"], penalty=ev["penalty"],
         gradient_norm=ev["gradient_norm"], converged=best.converged, stop_reason=best.stop_reason,
         iterations=best.iterations, history={"objective": tuple(best.history_obj), "gradient_norm": tuple(best.history_gn)},
@@ -1207,10 +1270,12 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
                   **({"learning_rate": learning_rate} if method == "adam" else {}),
                   **({"batch_size": batch_size} if batch_size else {})},
         extras={"restarts": restarts_section, "best_start": best_k, "stationarity": stationarity,
-                **({"prior": prior_desc} if prior_desc else {})},
+                **({"prior": prior_desc} if prior_desc else {}),
+                **({"nodes": form_sections(network, ev["probs"])} if fitter.layout.noisy else {})},
     )
     if is_map:
-        parent_weight = {n: ev["counts"][n].sum(axis=-1) for n in network.estimated_names}
+        parent_weight = {n: ev["counts"][n].sum(axis=-1) for n in network.estimated_names
+                         if not _forms.is_noisy(network, n)}
         only = prior_only_rows(network, parent_weight, fitter.pseudo)
         if only:
             labels = describe_rows(network, only)

@@ -532,6 +532,8 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
         converged: whether the fit's stopping rule held (a note is added when False).
         likelihood: a :class:`adfit.likelihood.Likelihood` of this network and data to reuse.
     """
+    if (refusal := structure_refusal(network)) is not None:
+        raise OptionError(refusal)
     if not (0 < level < 1):
         raise OptionError(f"level must be between 0 and 1 (e.g. 0.95), got {level}")
     if not (wide > 0):
@@ -661,7 +663,7 @@ def _full_probs(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, 
         if a.shape != network.cpt_shape(n.name):
             raise OptionError(f"node {n.name!r}: CPT has shape {a.shape}, expected {network.cpt_shape(n.name)}")
         out[n.name] = a
-    return full_probs(network, out)
+    return full_probs(network, out, cause_rows=False)
 
 
 def _generalised_eigh(info: np.ndarray, M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -1098,11 +1100,30 @@ def gradient_seconds(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> float:
     return time.perf_counter() - t0
 
 
+#: what :func:`structure_refusal` lets through (the forms whose coordinates are CPT rows)
+SUPPORTED_STRUCTURE = ("table", "tied", "impossible")
+
+
+def structure_refusal(network: Network) -> str | None:
+    """Why error bars cannot be computed for ``network`` (a structured form whose parameters are
+    not CPT rows: noisy_or / noisy_max), or None."""
+    for n in network.nodes:
+        if n.fixed is None and n.cpd not in SUPPORTED_STRUCTURE:
+            return (f"error bars are not available yet for nodes.{n.name} (cpd = {n.cpd!r}); its estimates "
+                    f"come without standard errors or intervals")
+    return None
+
+
 def cli_errors(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] | None, l2: float,
                errors: bool | None, quiet: bool, echo: Callable[..., None]) -> Any:
     """For ``adfit fit``: attach error bars (by default when the free parameters are at most
     :data:`AUTO_MAX_PARAMETERS`; ``errors`` True forces, False skips) and print their summary."""
     if errors is False:
+        return result
+    if (refusal := structure_refusal(result.network)) is not None:
+        if errors:
+            raise OptionError(f"{refusal} (fit without --errors)")
+        echo(f"error bars skipped: {refusal}")
         return result
     P = result.network.n_free_parameters()
     if errors is None and P > AUTO_MAX_PARAMETERS:
