@@ -84,7 +84,7 @@ AUTO_STARTS_SECONDS = 60.0
 # default starts run side by side only when one evaluation takes at least this long
 BATCH_MIN_EVAL_SECONDS = 0.01
 # the structured-CPT features the gradient fit estimates (Network.unsupported_structure)
-SUPPORTED_STRUCTURE = ("table", "noisy_or", "noisy_max", "tied", "impossible")
+SUPPORTED_STRUCTURE = ("table", "noisy_or", "noisy_max", "logistic", "tied", "impossible")
 # stop reasons of a stalled (not converged) quasi-Newton run, after which a boundary escape is tried
 STALL_REASONS = ("line search found no better point", "no further progress after rescaling")
 
@@ -138,10 +138,10 @@ def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) ->
                 raise PriorError(f"node {name!r} is tied to {src!r} and shares its parameters: give the prior "
                                  f"on {src!r} only")
             continue
-        if _forms.is_noisy(network, name):
+        if _forms.has_rows(network, name):
             if c is not None and np.any(np.asarray(c, dtype=np.float64) > 0):
-                raise PriorError(f"node {name!r} has cpd = {network.cpd_form(name)!r}: priors on its leak and "
-                                 f"strengths are not available yet; fit it without a prior on {name!r}")
+                raise PriorError(f"node {name!r} has cpd = {network.cpd_form(name)!r}: priors on its parameters "
+                                 f"are not available yet; fit it without a prior on {name!r}")
             out[name] = np.zeros(block_shape(network, name))
             continue
         out[name] = np.zeros(network.cpt_shape(name)) if c is None else np.asarray(c, dtype=np.float64)
@@ -218,6 +218,9 @@ def kkt_ratios(network: Network, probs: Mapping[str, np.ndarray], counts: Mappin
     out = {}
     for name in network.estimated_names:
         th = np.asarray(probs[name], dtype=np.float64)
+        if _forms.is_logistic(network, name):  # coefficients: no simplex, the logit rule is the condition
+            out[name] = np.full(th.shape, np.nan)
+            continue
         a = np.asarray(counts[name], dtype=np.float64) + pseudo[name]
         mu = a.sum(axis=-1, keepdims=True)
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -266,8 +269,9 @@ def _cell_label(network: Network, name: str, flat: int) -> str:
     """``"node=state | parent=state, ..."`` for entry ``flat`` of the raveled CPT of ``name``."""
     node = network.node(name)
     row, col = divmod(int(flat), node.card)
-    if _forms.is_noisy(network, name):  # a cell of a cause row (adfit.forms)
-        return f"{name}={node.states[col]} in the cause row {_forms.cause_row_labels(network, name)[row]}"
+    if _forms.has_rows(network, name):  # a cell of a parameter row (adfit.forms)
+        kind = "coefficient row" if _forms.is_logistic(network, name) else "cause row"
+        return f"{name}={node.states[col]} in the {kind} {_forms.cause_row_labels(network, name)[row]}"
     cfg = network.parent_config_labels(name)[row]
     given = ", ".join(f"{p}={v}" for p, v in zip(node.parents, cfg))
     return f"{name}={node.states[col]}" + (f" | {given}" if given else "")
@@ -434,6 +438,10 @@ class Fitter:
         self.pseudo = _pseudo(network, pseudo_counts)
         self.n_total = float(data.n_rows)
         self.free = network.estimated_names  # tied nodes share their source's parameters
+        # logistic rows take no EM steps (coefficients have no closed-form M-step): the other
+        # nodes' EM steps with them held fixed still never lower the objective (a GEM step)
+        self.logistic = tuple(n for n in self.free if _forms.is_logistic(network, n))
+        self.em_free = tuple(n for n in self.free if n not in self.logistic)
         self.em_polish_steps = 0
         self.boundary_escapes = 0
         self.saddle_escapes = 0
@@ -504,8 +512,12 @@ class Fitter:
         ll, counts, fam = self.counts_and_families(probs)
         g = objective_gradient(self.network, probs, counts, self.pseudo, logits, self.settings.l2)
         resid = 0.0
+        weights = self._logistic_weights(probs, fam) if self.logistic else {}
         for name in self.free:
-            denom = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
+            if name in weights:  # records the coefficient row serves
+                denom = weights[name][1][:, None]
+            else:
+                denom = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
             r = np.abs(g[name]) / np.maximum(denom, 1.0)
             resid = max(resid, float(r.max(initial=0.0)))
         lp = log_prior_value(probs, self.pseudo)
@@ -513,7 +525,7 @@ class Fitter:
         kkt = self.kkt(probs, counts) if self.settings.l2 == 0 else None
         return {"probs": probs, "log_likelihood": ll, "log_prior": lp, "penalty": pen,
                 "objective": ll + lp - pen, "grad": g, "gradient_norm": _norm(g),
-                "residual": resid, "counts": counts, "kkt": kkt, "family_counts": fam,
+                "residual": resid, "counts": counts, "kkt": kkt, "family_counts": fam, "logistic_weights": weights,
                 "kkt_ratio": _max_finite(kkt) if kkt is not None else None}
 
     def kkt(self, probs: Mapping[str, np.ndarray], counts: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
@@ -524,7 +536,7 @@ class Fitter:
         more than about 1e-200."""
         r = kkt_ratios(self.network, probs, counts, self.pseudo)
         tiny = {}
-        for name in self.free:
+        for name in self.em_free:
             th = np.asarray(probs[name])
             mu = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
             t = (th <= KKT_TINY) & (mu >= KKT_MIN_WEIGHT)
@@ -546,6 +558,24 @@ class Fitter:
         """The simplex KKT condition at an evaluated point: every checked cell's ratio ≤ 1 + kkt_tol
         (always true with an L2 penalty, whose maximum is interior: the logit rule covers it)."""
         return ev.get("kkt_ratio") is None or not (ev["kkt_ratio"] > 1.0 + self.settings.kkt_tol)
+
+    def _logistic_weights(self, probs: Mapping[str, np.ndarray], fam: Mapping[str, np.ndarray]):
+        """Per logistic node: (complete-data information of each coefficient, records per row),
+        :func:`adfit.forms.logistic_weights`, from the family counts pooled over ties."""
+        out = {}
+        for name in self.logistic:
+            n = sum((np.asarray(fam[t]) for t in self.network.tied_names(name)), np.asarray(fam[name]))
+            table = _forms.implied_table(self.network, name, probs[name])
+            out[name] = _forms.logistic_weights(self.network, name, n, table)
+        return out
+
+    def _scale_at(self, ev: Mapping[str, Any]) -> dict[str, np.ndarray]:
+        """:meth:`_scale` at an evaluated point; a logistic node's coefficients are scaled by
+        1/sqrt(their complete-data information + ε)."""
+        out = self._scale(ev["counts"], ev["probs"])
+        for name, (info, _) in (ev.get("logistic_weights") or {}).items():
+            out[name] = 1.0 / np.sqrt(info + SCALE_EPS)
+        return out
 
     def _scale(self, counts: Mapping[str, np.ndarray], probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
         """Diagonal preconditioner: 1/sqrt(N(u)·θ(x|u) + ε) per logit.
@@ -652,7 +682,7 @@ class Fitter:
         objective beyond rounding (so a flat direction the data cannot identify, with curvature
         about zero, is never called one)."""
         lay = self.layout
-        scale = lay.flatten(self._scale(ev["counts"], ev["probs"]))
+        scale = lay.flatten(self._scale_at(ev))
         pseudo, l2, N = self.pseudo_flat, float(self.settings.l2), float(self.n_total)
         z0 = lay.flatten(logits) / scale
         f0 = -ev["objective"] / N
@@ -742,8 +772,8 @@ class Fitter:
             return best
         cur, logits = ev, None
         for _ in range(10 * EM_POLISH_STEPS):
-            new_probs = {}
-            for name in self.free:
+            new_probs = {n: cur["probs"][n] for n in self.logistic}
+            for name in self.em_free:
                 num = cur["counts"][name] + self.pseudo[name]
                 den = num.sum(axis=-1, keepdims=True)
                 new_probs[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), cur["probs"][name])
@@ -785,7 +815,7 @@ class Fitter:
             if ev["gradient_norm"] <= gtol_abs:
                 converged, stop_reason = True, "gradient norm below gtol"
                 break
-            scale = lay.flatten(self._scale(ev["counts"], ev["probs"]))
+            scale = lay.flatten(self._scale_at(ev))
             phase_len = PHASE_LENGTHS[min(n_phase, len(PHASE_LENGTHS) - 1)] if s.method == "lbfgs" else max_iter
             n_phase += 1
 
@@ -883,8 +913,8 @@ class Fitter:
                 # the objective (Dempster, Laird & Rubin 1977, Theorem 1) and set such cells to
                 # (near) zero at once; the next phase then resumes the quasi-Newton method.
                 for _ in range(EM_POLISH_STEPS):
-                    new_probs = {}
-                    for name in self.free:
+                    new_probs = {n: ev["probs"][n] for n in self.logistic}
+                    for name in self.em_free:
                         num = ev["counts"][name] + self.pseudo[name]
                         den = num.sum(axis=-1, keepdims=True)
                         new_probs[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), ev["probs"][name])
@@ -1034,7 +1064,7 @@ def em_burn_in(fitter: "Fitter", probs: Mapping[str, np.ndarray], steps: int) ->
     out = {k: np.asarray(v, dtype=np.float64) for k, v in probs.items()}
     for _ in range(int(steps)):
         _, counts = fitter.counts(out)
-        for name in fitter.free:
+        for name in getattr(fitter, "em_free", fitter.free):
             num = counts[name] + fitter.pseudo[name]
             den = num.sum(axis=-1, keepdims=True)
             out[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), out[name])
@@ -1084,7 +1114,7 @@ def _noisy_starts(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str
     (:func:`adfit.forms.start_rows`); cause rows given already (their shape) are kept."""
     out = dict(probs)
     for name in network.estimated_names:
-        if _forms.is_noisy(network, name) and np.shape(out[name]) == tuple(network.cpt_shape(name)):
+        if _forms.has_rows(network, name) and np.shape(out[name]) == tuple(network.cpt_shape(name)):
             out[name] = _forms.start_rows(network, name, out[name])
     return out
 
@@ -1094,7 +1124,7 @@ def form_sections(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str
     from the fitter's cause rows (:func:`adfit.forms.parameters_json`)."""
     out = {}
     for name in network.free_names:
-        if _forms.is_noisy(network, name):
+        if _forms.has_rows(network, name):
             src = network.tie_source(name)
             out[name] = {"cpd": network.cpd_form(src), "parameters": _forms.parameters_json(network, src, probs[src])}
     return out
@@ -1103,7 +1133,7 @@ def form_sections(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str
 def random_start(network: Network, rng: np.random.Generator) -> dict[str, np.ndarray]:
     out = {}
     for name in network.free_names:
-        if _forms.is_noisy(network, name):
+        if _forms.has_rows(network, name):
             out[name] = _forms.random_rows(network, name, rng)
             continue
         shape = network.cpt_shape(name)
@@ -1205,7 +1235,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     fitter.saddle_check = bool(saddle_check)
     rng = np.random.default_rng(seed)
     p0 = dict(init) if init is not None else complete_family_start(
-        network, coded, rng, {k: v for k, v in fitter.pseudo.items() if not _forms.is_noisy(network, k)},
+        network, coded, rng, {k: v for k, v in fitter.pseudo.items() if not _forms.has_rows(network, k)},
         observed=fitter.lik.observed_family_counts())
     for name in network.fixed_names:
         p0[name] = network.fixed_table(name)
@@ -1275,7 +1305,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     )
     if is_map:
         parent_weight = {n: ev["counts"][n].sum(axis=-1) for n in network.estimated_names
-                         if not _forms.is_noisy(network, n)}
+                         if not _forms.has_rows(network, n)}
         only = prior_only_rows(network, parent_weight, fitter.pseudo)
         if only:
             labels = describe_rows(network, only)

@@ -29,7 +29,17 @@ Baum & Eagon 1967), which the fit's burn-in and boundary escapes use.
 
 The log of the implied CPT is computed in log space (cumulative log-sum-exp of the rows' log
 probabilities; differences of cumulative terms by ``expm1``), so that small cells keep their
-relative precision. This module is written from the definitions above, independently of the EM
+relative precision. A ``logistic`` node, ``log P(y | u) = intercept(y) + Σ_i coefficient(i, u_i, y) − normaliser``
+(the first child state and each parent's first state the references), is estimated through
+the same kind of rows: row 0 holds the intercepts and each (parent, non-first state) row the
+coefficients, each stored as a softmax row ``v_d`` whose log is the row up to a constant (the
+constants cancel in the final softmax). There are no simplex constraints on coefficients, so
+their virtual counts sum to 0 per row, the gradient in the logits is the virtual counts
+themselves, and the KKT check and EM steps (which need counts) leave logistic rows out; the
+preconditioner uses the complete-data information of each coefficient
+(:func:`logistic_weights`).
+
+This module is written from the definitions above, independently of the EM
 reference's :mod:`adfit.emforms`, so that the cross-check compares two implementations.
 """
 
@@ -44,15 +54,28 @@ import numpy as np
 from .network import Network
 
 __all__ = ["NOISY", "is_noisy", "cause_shape", "cause_row_labels", "implied_log_table", "implied_table",
-           "virtual_counts", "rows_from_table", "start_rows", "random_rows", "parameters_json", "rows_from_parameters"]
+           "virtual_counts", "row_sums", "logistic_weights", "is_logistic", "has_rows", "ROW_FORMS", "rows_from_table", "start_rows", "random_rows", "parameters_json", "rows_from_parameters"]
 
-#: the forms estimated through cause rows
+#: the causal-independence forms (cause rows on simplices)
 NOISY = ("noisy_or", "noisy_max")
+#: the forms estimated through parameter rows (noisy: cause rows; logistic: coefficient rows)
+ROW_FORMS = NOISY + ("logistic",)
 
 
 def is_noisy(network: Network, name: str) -> bool:
     """Whether ``name`` (or the node it is tied to) has a noisy_or / noisy_max form."""
     return network.cpd_form(network.tie_source(name)) in NOISY
+
+
+def is_logistic(network: Network, name: str) -> bool:
+    """Whether ``name`` (or the node it is tied to) has the logistic form."""
+    return network.cpd_form(network.tie_source(name)) == "logistic"
+
+
+def has_rows(network: Network, name: str) -> bool:
+    """Whether ``name`` (or its tie source) is estimated through parameter rows (a form of
+    :data:`ROW_FORMS`) rather than its CPT's rows."""
+    return network.cpd_form(network.tie_source(name)) in ROW_FORMS
 
 
 def _spans(network: Network, name: str) -> list[tuple[int, int]]:
@@ -72,8 +95,9 @@ def cause_shape(network: Network, name: str) -> tuple[int, int]:
 
 
 def cause_row_labels(network: Network, name: str) -> list[str]:
-    """A readable label per cause row: ``leak``, then ``parent=state`` for each active state."""
-    out = ["leak"]
+    """A readable label per parameter row: ``leak`` (``intercept`` for a logistic node), then
+    ``parent=state`` for each active (non-reference) state."""
+    out = ["intercept" if is_logistic(network, name) else "leak"]
     for p in network.node(name).parents:
         out += [f"{p}={s}" for s in network.node(p).states[1:]]
     return out
@@ -85,8 +109,40 @@ def _log_cum_jax(logv):
     return jax.lax.cumlogsumexp(logv, axis=logv.ndim - 1)
 
 
+def _linear_jax(network: Network, name: str, rows):
+    """Σ over the node's parameter rows that apply to each parent configuration: row 0 always,
+    the row of parent i's state s where u_i = s ≥ 1 (CPT-shaped; JAX)."""
+    K = network.node(name).card
+    shape = tuple(network.cpt_shape(name))
+    out = jnp.broadcast_to(rows[0], shape)
+    for i, (r0, c) in enumerate(_spans(network, name)):
+        f = jnp.concatenate([jnp.zeros((1, K)), rows[r0:r0 + c]], axis=0)  # first state: nothing
+        bshape = [1] * (len(shape) - 1) + [K]
+        bshape[i] = c + 1
+        out = out + f.reshape(bshape)
+    return out
+
+
+def _linear_np(network: Network, name: str, rows: np.ndarray) -> np.ndarray:
+    """:func:`_linear_jax` in numpy."""
+    K = network.node(name).card
+    shape = tuple(network.cpt_shape(name))
+    out = np.broadcast_to(rows[0], shape).copy()
+    for i, (r0, c) in enumerate(_spans(network, name)):
+        f = np.concatenate([np.zeros((1, K)), rows[r0:r0 + c]], axis=0)
+        bshape = [1] * (len(shape) - 1) + [K]
+        bshape[i] = c + 1
+        out = out + f.reshape(bshape)
+    return out
+
+
 def implied_log_table(network: Network, name: str, logv):
-    """log P(child | parents) (CPT-shaped, JAX) from the log cause rows ``logv`` (rows, card)."""
+    """log P(child | parents) (CPT-shaped, JAX) from the log parameter rows ``logv`` (rows,
+    card): the cause rows of a noisy node, or for a logistic node the softmax rows whose logs
+    are the intercept and coefficient rows up to a constant each (the constants cancel in the
+    softmax: ``log P(· | u) = log_softmax(Σ_d X_ud logv_d)``)."""
+    if is_logistic(network, name):
+        return jax.nn.log_softmax(_linear_jax(network, name, logv), axis=-1)
     node = network.node(name)
     K = node.card
     # every cumulative term is kept, the last one too (log of the row's sum, 0 on the simplex):
@@ -109,10 +165,15 @@ def implied_log_table(network: Network, name: str, logv):
 
 
 def implied_table(network: Network, name: str, v: np.ndarray) -> np.ndarray:
-    """P(child | parents) (CPT-shaped, numpy) from the cause rows ``v`` (rows, card)."""
+    """P(child | parents) (CPT-shaped, numpy) from the parameter rows ``v`` (rows, card)."""
     node = network.node(name)
     K = node.card
     v = np.asarray(v, dtype=np.float64)
+    if is_logistic(network, name):
+        with np.errstate(divide="ignore"):
+            eta = _linear_np(network, name, np.log(v))
+        e = np.exp(eta - eta.max(axis=-1, keepdims=True))
+        return e / e.sum(axis=-1, keepdims=True)
     with np.errstate(divide="ignore"):
         logQ = np.log(np.cumsum(v, axis=-1))[:, :K - 1]
     shape = tuple(network.cpt_shape(name))
@@ -167,10 +228,29 @@ def start_rows(network: Network, name: str, table: np.ndarray) -> np.ndarray:
     return _read_rows(network, name, table, floor=START_FLOOR)
 
 
+def _softmax(x: np.ndarray) -> np.ndarray:
+    e = np.exp(x - x.max(axis=-1, keepdims=True))
+    return e / e.sum(axis=-1, keepdims=True)
+
+
 def _read_rows(network: Network, name: str, table: np.ndarray, *, floor: float) -> np.ndarray:
     R, K = cause_shape(network, name)
     p = np.asarray(table, dtype=np.float64)
     node = network.node(name)
+    if is_logistic(network, name):
+        # log θ(· | u) = intercept + Σ coefficients − normaliser: the intercept row is read at the
+        # all-first-states row, each coefficient row at the row where only its parent moves
+        with np.errstate(divide="ignore"):
+            lp = np.log(np.maximum(p, 1e-300))
+        zero = (0,) * len(node.parents)
+        out = np.empty((R, K))
+        out[0] = lp[zero]
+        for i, (r0, n_act) in enumerate(_spans(network, name)):
+            for s in range(1, n_act + 1):
+                at = list(zero)
+                at[i] = s
+                out[r0 + s - 1] = lp[tuple(at)] - lp[zero]
+        return _softmax(out)
     zero = (0,) * len(node.parents)
     out = np.empty((R, K))
     out[0] = p[zero]
@@ -186,6 +266,32 @@ def _read_rows(network: Network, name: str, table: np.ndarray, *, floor: float) 
     return out / out.sum(axis=-1, keepdims=True)
 
 
+def row_sums(network: Network, name: str, m: np.ndarray) -> np.ndarray:
+    """The transpose of the row-to-configuration map: for a CPT-shaped ``m``, per parameter row
+    the sum of ``m`` over the parent configurations it applies to (rows, card)."""
+    m = np.asarray(m, dtype=np.float64)
+    R, K = cause_shape(network, name)
+    k = m.ndim - 1
+    out = np.empty((R, K))
+    out[0] = m.reshape(-1, K).sum(axis=0)
+    for i, (r0, n_act) in enumerate(_spans(network, name)):
+        per = m.sum(axis=tuple(j for j in range(k) if j != i))  # (card_i, K)
+        out[r0:r0 + n_act] = per[1:]
+    return out
+
+
+def logistic_weights(network: Network, name: str, family_counts: np.ndarray, table: np.ndarray):
+    """For a logistic node at ``table`` with expected family counts ``family_counts`` (pooled
+    over ties): the diagonal of the complete-data information of each coefficient,
+    ``Σ_u X_ud N(u) π_uk (1 − π_uk)`` (rows, card), and the records each row serves,
+    ``Σ_u X_ud N(u)`` (rows,)."""
+    n_u = np.asarray(family_counts, dtype=np.float64).sum(axis=-1, keepdims=True)
+    pi = np.asarray(table, dtype=np.float64)
+    info = row_sums(network, name, n_u * pi * (1.0 - pi))
+    served = row_sums(network, name, np.broadcast_to(n_u, pi.shape))[:, 0]
+    return info, served
+
+
 def random_rows(network: Network, name: str, rng: np.random.Generator) -> np.ndarray:
     """A Dirichlet(1) draw per cause row."""
     R, K = cause_shape(network, name)
@@ -198,6 +304,17 @@ def parameters_json(network: Network, name: str, v: np.ndarray) -> dict[str, Any
     ...}}}``, each a probability (noisy_or: of the second, present state) or a list over the
     child's states (noisy_max)."""
     v = np.asarray(v, dtype=np.float64)
+    if is_logistic(network, name):
+        with np.errstate(divide="ignore"):
+            B = np.log(v)
+        B = B - B[:, :1]  # the first child state is the reference
+        coef: dict[str, Any] = {}
+        for p, (r0, n_act) in zip(network.node(name).parents, _spans(network, name)):
+            st = network.node(p).states
+            coef[p] = {st[0]: [0.0] * v.shape[1]}
+            for s in range(1, n_act + 1):
+                coef[p][st[s]] = [float(x) for x in B[r0 + s - 1]]
+        return {"intercept": [float(x) for x in B[0]], "coefficients": coef}
     two = network.cpd_form(network.tie_source(name)) == "noisy_or"
 
     def cell(row: np.ndarray) -> Any:
@@ -212,8 +329,16 @@ def parameters_json(network: Network, name: str, v: np.ndarray) -> dict[str, Any
 
 def rows_from_parameters(network: Network, name: str, doc: Mapping[str, Any]) -> np.ndarray:
     """Cause rows from a ``"parameters"`` section (the inverse of :func:`parameters_json`)."""
-    two = network.cpd_form(network.tie_source(name)) == "noisy_or"
     R, K = cause_shape(network, name)
+    if is_logistic(network, name):
+        out = np.empty((R, K))
+        out[0] = np.asarray(doc["intercept"], dtype=np.float64)
+        for p, (r0, n_act) in zip(network.node(name).parents, _spans(network, name)):
+            st = network.node(p).states
+            for s in range(1, n_act + 1):
+                out[r0 + s - 1] = np.asarray(doc["coefficients"][p][st[s]], dtype=np.float64)
+        return _softmax(out)
+    two = network.cpd_form(network.tie_source(name)) == "noisy_or"
 
     def row(x: Any) -> np.ndarray:
         return np.array([1.0 - float(x), float(x)]) if two else np.asarray(x, dtype=np.float64)

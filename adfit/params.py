@@ -116,7 +116,7 @@ def free_layout(network: Network) -> FreeLayout:
 
 def block_shape(network: Network, name: str) -> tuple[int, ...]:
     """Shape of an estimated node's block of parameters: its CPT, or its cause rows (noisy forms)."""
-    if _forms.is_noisy(network, name):
+    if _forms.has_rows(network, name):
         return tuple(_forms.cause_shape(network, name))
     return tuple(network.cpt_shape(name))
 
@@ -147,7 +147,7 @@ def _make_free_layout(network: Network) -> FreeLayout:
     n_fixed = sum(math.prod(network.cpt_shape(n)) for n in network.fixed_names)
     noisy, s_off = [], 0
     for name, sh, o in zip(names, shapes, offsets):
-        if _forms.is_noisy(network, name):
+        if _forms.has_rows(network, name):
             noisy.append((name, o, sh, s_off))
             s_off += math.prod(network.cpt_shape(name))
     noisy_at = {name: P + n_fixed + so for name, _, _, so in noisy}
@@ -170,7 +170,7 @@ def _make_free_layout(network: Network) -> FreeLayout:
     free_index = None if full_index is None else np.flatnonzero(full_index < P).astype(np.int32)
     mask = None
     if any(network.node(n).impossible for n in names):
-        mask = np.concatenate([np.zeros(math.prod(sh)) if _forms.is_noisy(network, n) else
+        mask = np.concatenate([np.zeros(math.prod(sh)) if _forms.has_rows(network, n) else
                                np.where(network.impossible_mask(n).ravel(), -np.inf, 0.0)
                                for n, sh in zip(names, shapes)])
     return FreeLayout(names, tuple(shapes), tuple(offsets), P, n_flat, tuple(rows), inverse, full_index,
@@ -188,7 +188,7 @@ def pool_counts(network: Network, counts: Mapping[str, np.ndarray],
     A noisy node's entry becomes the virtual counts of its cause rows (∂ log L/∂ log v,
     :func:`adfit.forms.virtual_counts`), which needs ``probs`` (its cause rows, as the fitter
     holds them); its family counts stay available under the tied nodes' names only."""
-    noisy = [n for n in network.estimated_names if _forms.is_noisy(network, n)]
+    noisy = [n for n in network.estimated_names if _forms.has_rows(network, n)]
     if len(network.estimated_names) == len(network.free_names) and not noisy:
         return dict(counts)
     out = dict(counts)
@@ -240,7 +240,7 @@ def full_probs(network: Network, probs: Mapping[str, np.ndarray], *, cause_rows:
     out = estimated_starts(network, probs)
     if cause_rows:
         for name in network.free_names:
-            if _forms.is_noisy(network, name):
+            if _forms.has_rows(network, name):
                 out[name] = _forms.implied_table(network, network.tie_source(name), out[name])
     return out
 

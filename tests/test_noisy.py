@@ -196,7 +196,7 @@ def test_free_parameter_count_is_the_forms_and_a_prior_on_a_noisy_node_is_refuse
     assert net.n_free_parameters() == 1 + 2 + 2 + 4 * 2
     _, truth = _latent_truth(net)
     df = simulate(net, truth, 50, seed=3)
-    with pytest.raises(PriorError, match="priors on its leak"):
+    with pytest.raises(PriorError, match="priors on its parameters"):
         _quiet_fit(net, df, pseudo_counts={"y": np.ones(net.cpt_shape("y"))})
     from adfit.uncertainty import attach_uncertainty
 
