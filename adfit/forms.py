@@ -54,7 +54,7 @@ import numpy as np
 from .network import Network
 
 __all__ = ["NOISY", "is_noisy", "cause_shape", "cause_row_labels", "implied_log_table", "implied_table",
-           "virtual_counts", "row_sums", "logistic_weights", "is_logistic", "has_rows", "ROW_FORMS", "rows_from_table", "start_rows", "random_rows", "parameters_json", "rows_from_parameters"]
+           "virtual_counts", "row_sums", "logistic_weights", "is_logistic", "has_rows", "ROW_FORMS", "rows_from_table", "start_rows", "random_rows", "parameters_json", "rows_from_parameters", "format_parameters"]
 
 #: the causal-independence forms (cause rows on simplices)
 NOISY = ("noisy_or", "noisy_max")
@@ -356,3 +356,22 @@ def n_cause_parameters(network: Network, name: str) -> int:
     """Free parameters of a noisy node: (rows) · (states − 1)."""
     R, K = cause_shape(network, name)
     return R * (K - 1)
+
+
+def format_parameters(network: Network, name: str, doc: Mapping[str, Any], *, digits: int = 3) -> str:
+    """One line with a structured node's parameters (the result layout), for the terminal."""
+    form = network.cpd_form(network.tie_source(name))
+
+    def num(x: Any) -> str:
+        return f"{x:.{digits}f}" if not isinstance(x, (list, tuple)) else "(" + ", ".join(f"{v:.{digits}f}" for v in x) + ")"
+
+    if form == "logistic":
+        parts = [f"intercept {num(doc['intercept'])}"]
+        for p, by in doc["coefficients"].items():
+            parts += [f"{p}={st} {num(v)}" for st, v in list(by.items())[1:]]
+        return f"  logistic coefficients (log-odds against {network.node(name).states[0]!r}): " + "; ".join(parts)
+    parts = [f"leak {num(doc['leak'])}"]
+    for p, by in doc["strength"].items():
+        parts += [f"{p}={st} {num(v)}" for st, v in by.items()]
+    return f"  {form} parameters: " + "; ".join(parts)
+

@@ -65,7 +65,8 @@ from .data import CodedData, load_data
 from .errors import OptionError
 from .likelihood import Likelihood, _loglik_logcpt, check_possible
 from .network import Network
-from .params import full_probs, mask_pseudo, pool_counts
+from . import forms as _forms
+from .params import block_shape, full_probs, mask_pseudo, pool_counts
 
 #: default confidence level of the intervals
 LEVEL = 0.95
@@ -153,7 +154,7 @@ class Coordinates:
             eta = np.array(self.base[name])
             eta[self.index[name]] += phi[off:off + s]
             off += s
-            out[name] = eta.reshape(self.network.cpt_shape(name))
+            out[name] = eta.reshape(block_shape(self.network, name))
         return out
 
     def probs_at(self, phi: np.ndarray) -> dict[str, np.ndarray]:
@@ -199,7 +200,8 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
         th = np.asarray(probs[name], dtype=np.float64).reshape(-1, K)
         n = np.asarray(n_cells[name], dtype=np.float64).reshape(-1, K)
         nu = n.sum(axis=1)
-        imp = network.impossible_mask(name).reshape(-1, K)
+        imp = (np.zeros(th.shape, bool) if _forms.has_rows(network, name)
+               else network.impossible_mask(name).reshape(-1, K))
         ref = np.argmax(np.where(imp, -np.inf, n + 1e-12 * th), axis=1)  # most expected state; ties by the estimate
         status = np.full(th.shape, _INTERIOR, dtype=np.int64)
         status[n < BOUNDARY_COUNT * np.minimum(1.0, nu)[:, None]] = _BOUNDARY
@@ -236,6 +238,11 @@ def _objective(network: Network, groups, sizes: tuple[int, ...], phi, aux):
         if s:
             eta = eta.at[index[node.name]].add(phi[off:off + s])
         off += s
+        if _forms.has_rows(network, node.name):  # cause rows: their table is implied (no prior on them)
+            eta = eta.reshape(block_shape(network, node.name))
+            own[node.name] = _forms.implied_log_table(network, node.name, jax.nn.log_softmax(eta, axis=-1))
+            pen = pen + jnp.sum((eta - jnp.mean(eta, axis=-1, keepdims=True)) ** 2)
+            continue
         eta = eta.reshape(network.cpt_shape(node.name))
         lc = jax.nn.log_softmax(eta, axis=-1)
         own[node.name] = lc
@@ -399,6 +406,10 @@ class Uncertainty:
     notes: tuple[str, ...] = ()
     wide: float = WIDE_WIDTH
     settings: Mapping[str, Any] = field(default_factory=dict)
+    # noisy nodes: the CPT the cause rows imply (``se`` etc. are on it, by the delta method) and
+    # the cause rows' own error bars {"se", "lower", "upper", "status"} (cause-row shaped)
+    tables: Mapping[str, np.ndarray] = field(default_factory=dict)
+    parameters: Mapping[str, Mapping[str, np.ndarray]] = field(default_factory=dict)
 
     # -- lists ---------------------------------------------------------------------------
     def _label(self, name: str, row: int) -> dict[str, str]:
@@ -417,7 +428,8 @@ class Uncertainty:
         K = self.network.node(name).card
         lo, hi = self.lower[name].reshape(-1, K)[u, k], self.upper[name].reshape(-1, K)[u, k]
         return {"node": name, "row": u, "parents": self._label(name, u), "state": self.network.node(name).states[k],
-                "estimate": float(self.coordinates.probs[name][u, k]), "interval": [float(lo), float(hi)],
+                "estimate": float(np.asarray(self.tables[name]).reshape(-1, K)[u, k] if name in self.tables
+                                  else self.coordinates.probs[name][u, k]), "interval": [float(lo), float(hi)],
                 "width": float(hi - lo), "status": STATUS[int(self.status[name].reshape(-1, K)[u, k])]}
 
     def wide_entries(self) -> list[dict[str, Any]]:
@@ -467,6 +479,18 @@ class Uncertainty:
                 "se_status": [[STATUS[int(c)] for c in row] for row in self.status[name].reshape(-1, K)],
                 "missing_information": self.missing.get(name),
             }
+            src = net.tie_source(name)
+            if src in self.parameters:
+                par = self.parameters[src]
+                st = par["status"]
+
+                def layout(a, src=src):
+                    return _forms.parameters_json(net, src, np.nan_to_num(a, nan=-1.0))
+
+                out[name]["parameters_se"] = _nan_to_none(layout(par["se"]))
+                out[name]["parameters_interval"] = [layout(par["lower"]), layout(par["upper"])]
+                out[name]["parameters_status"] = {lab: [STATUS[int(c)] for c in row]
+                                                  for lab, row in zip(_forms.cause_row_labels(net, src), st)}
         return out
 
     def summary(self) -> dict[str, Any]:
@@ -551,8 +575,14 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     lik = likelihood if likelihood is not None else Likelihood(network, coded)
     check_possible(lik, full)
     _, counts = lik.expected_counts(full)
-    counts = pool_counts(network, counts)
-    co = make_coordinates(network, full, {k: counts[k] + pseudo[k] for k in network.estimated_names})
+    # noisy nodes: the coordinates are on their cause rows, read off the (implied) table
+    noisy = [n for n in network.estimated_names if _forms.has_rows(network, n)]
+    rows_at = dict(full)
+    for n in noisy:
+        rows_at[n] = _forms.rows_from_table(network, n, full[n])
+        pseudo[n] = np.zeros(block_shape(network, n))
+    counts = pool_counts(network, counts, rows_at)
+    co = make_coordinates(network, rows_at, {k: counts[k] + pseudo[k] for k in network.estimated_names})
     P = co.size
     if method == "auto":
         method = "dense" if P <= DENSE_MAX_PARAMETERS else "matrix-free"
@@ -562,7 +592,12 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     z = float(stats.norm.ppf(0.5 + level / 2))
     blocks = complete_information(co, l2)
     if P == 0:
-        sec = _with_tied(network, *_assemble(co, level, z, _CovBlocks(co, {}), np.zeros((0, 0)), blocks, wanted))
+        sec = _assemble(co, level, z, _CovBlocks(co, {}), np.zeros((0, 0)), blocks, wanted)
+        for n in noisy:
+            parts, _ = _noisy_tables(co, n, level, z, _CovBlocks(co, {}), sec[3][n], wanted)
+            for d, a in zip(sec, parts):
+                d[n] = a
+        sec = _with_tied(network, *sec)
         return Uncertainty(network, level, method, *sec, co, np.zeros(0), np.zeros(0), (),
                            {n: _missing_none(co, network.tie_source(n)) for n in network.free_names}, None, 0.0,
                            notes=tuple(notes + ["no coordinate is left to estimate (every row is on the boundary or has no data)"]),
@@ -591,14 +626,21 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
                      "(a saddle or an unconverged fit); the entries loading on those directions get no error bar")
     if gnorm > 1e-3 * max(1.0, math.sqrt(coded.n_rows)):
         notes.append(f"the gradient at the estimate is not small ({gnorm:.3g}); the error bars assume a maximum")
-    se, lower, upper, status = _with_tied(network, *_assemble(co, level, z, node_cov, flat_X, blocks, wanted))
+    se, lower, upper, status = _assemble(co, level, z, node_cov, flat_X, blocks, wanted)
+    param_status = dict(status)
+    tables, params_eb = {}, {}
+    for n in noisy:
+        params_eb[n] = {"se": se[n], "lower": lower[n], "upper": upper[n], "status": status[n]}
+        (se[n], lower[n], upper[n], status[n]), tables[n] = _noisy_tables(co, n, level, z, node_cov, status[n], wanted)
+    se, lower, upper, status = _with_tied(network, se, lower, upper, status)
+    tables = {m: tables[network.tie_source(m)] for m in network.free_names if network.tie_source(m) in tables}
     directions = _name_directions(co, all_rho, all_X, blocks, info)
-    missing_info = {n: _missing_fraction(co, network.tie_source(n), status, node_cov, blocks) if n in wanted
+    missing_info = {n: _missing_fraction(co, network.tie_source(n), param_status, node_cov, blocks) if n in wanted
                     else None for n in network.free_names}
     em_rate = (1.0 if np.any(all_rho <= FLAT_TOL) else float(np.clip(1.0 - all_rho.min(), 0.0, 1.0))) if len(all_rho) else None
     return Uncertainty(network, level, method, se, lower, upper, status, co, all_rho, ev, tuple(directions),
                        missing_info, em_rate, gnorm, info, cov, tuple(notes), wide,
-                       {"_pseudo": pseudo, "l2": l2, "hessian_vector_products": pb.n_products})
+                       {"_pseudo": pseudo, "l2": l2, "hessian_vector_products": pb.n_products}, tables, params_eb)
 
 
 def relabelable_latent(network: Network) -> list[str]:
@@ -757,10 +799,83 @@ def _assemble(co: Coordinates, level: float, z: float, cov: _CovBlocks, flat_X: 
             lo[ni], hi[ni] = 0.0, 1.0
             fixed = st == _CONSTRAINED  # fixed by the network's impossible cells: the point itself
             lo[fixed] = hi[fixed] = th[fixed]
-        shape = net.cpt_shape(name)
+        shape = block_shape(net, name)
         se_d[name], lo_d[name], hi_d[name], st_d[name] = (se.reshape(shape), lo.reshape(shape), hi.reshape(shape),
                                                           st.reshape(shape))
     return se_d, lo_d, hi_d, st_d
+
+
+def _nan_to_none(doc: Any) -> Any:
+    """The parameters layout with the placeholder −1 (no SE) as None."""
+    if isinstance(doc, dict):
+        return {k: _nan_to_none(v) for k, v in doc.items()}
+    if isinstance(doc, list):
+        return [_nan_to_none(v) for v in doc]
+    return None if doc == -1.0 else doc
+
+
+def _implied_tables_of(network: Network, name: str):
+    """The CPT (flat) as a function of the node's coordinates (JAX), for the delta method."""
+    def f(eta_flat):
+        rows = jax.nn.log_softmax(eta_flat.reshape(block_shape(network, name)), axis=-1)
+        return jnp.exp(_forms.implied_log_table(network, name, rows)).reshape(-1)
+    return f
+
+
+def _noisy_tables(co: Coordinates, name: str, level: float, z: float, cov: "_CovBlocks",
+                  param_status: np.ndarray, wanted: set[str]):
+    """SE, interval and status of every cell of a noisy node's implied CPT, by the delta method
+    from the covariance of its cause rows' coordinates: ``var θ = J S Jᵀ``, ``J = ∂θ/∂φ``
+    (exact, by forward-mode differentiation); the interval is Wald on the logit scale, as for
+    tables. A cell that depends on a not identified cause cell is not identified; a cell
+    whose every cause row has no data has none; cause cells on the boundary stay at their
+    estimate (the SE is conditional on them)."""
+    net = co.network
+    shape = tuple(net.cpt_shape(name))
+    K = shape[-1]
+    eta = jnp.asarray(co.base[name])
+    table = np.asarray(_implied_tables_of(net, name)(eta)).reshape(-1, K)
+    Q = table.shape[0]
+    se = np.full((Q, K), np.nan)
+    lo, hi = np.zeros((Q, K)), np.ones((Q, K))
+    st = np.full((Q, K), _INTERIOR, dtype=np.int64)
+    if name not in wanted:
+        st[:] = _NOT_COMPUTED
+        return (se.reshape(shape), np.full(shape, np.nan), np.full(shape, np.nan), st.reshape(shape)), table.reshape(shape)
+    J_all = np.asarray(jax.jacfwd(_implied_tables_of(net, name))(eta))  # (cells, block cells)
+    idx = co.index[name]
+    off = co.offsets()[name]
+    js = np.arange(off, off + len(idx))
+    J = J_all[:, idx] if len(idx) else np.zeros((Q * K, 0))
+    S = cov.get(name, js) if len(idx) else np.zeros((0, 0))
+    # which cause rows each CPT row uses: a cell depends on a cause cell where J_all is not 0
+    dep = np.abs(J_all) > 0
+    pst = param_status.reshape(-1)
+    bad = dep[:, pst == _NOT_IDENTIFIED].any(axis=1) if (pst == _NOT_IDENTIFIED).any() else np.zeros(Q * K, bool)
+    R = param_status.shape[0]
+    used = dep.reshape(Q * K, R, K).any(axis=2)                     # cells × cause rows
+    nodata = np.array([all((param_status[r] == _NO_DATA).all() for r in np.flatnonzero(used[c]))
+                       if used[c].any() else False for c in range(Q * K)])
+    var = np.einsum("ij,jk,ik->i", J, S, J) if J.shape[1] else np.zeros(Q * K)
+    for c in range(Q * K):
+        u, k = divmod(c, K)
+        t = float(table[u, k])
+        if nodata[c]:
+            st[u, k] = _NO_DATA
+            continue
+        if bad[c] or not (var[c] >= 0) or t <= 0 or t >= 1:
+            st[u, k] = _NOT_IDENTIFIED if (bad[c] or not var[c] >= 0) else _BOUNDARY
+            if st[u, k] == _BOUNDARY:
+                lo[u, k] = hi[u, k] = t
+            continue
+        s_ = math.sqrt(var[c])
+        se[u, k] = s_
+        lg = math.log(t) - math.log1p(-t)
+        half = z * s_ / (t * (1.0 - t))
+        lo[u, k], hi[u, k] = _expit(lg - half), _expit(lg + half)
+    ni = st == _NOT_IDENTIFIED
+    lo[ni], hi[ni] = 0.0, 1.0
+    return (se.reshape(shape), lo.reshape(shape), hi.reshape(shape), st.reshape(shape)), table.reshape(shape)
 
 
 def _expit(x: float) -> float:
@@ -819,6 +934,13 @@ def _missing_fraction(co: Coordinates, name: str, status: Mapping[str, np.ndarra
                        "largest over the node's directions, mean over its identified directions, largest per row"}
 
 
+def _row_label(net: Network, name: str, u: int) -> dict[str, str]:
+    """The parent configuration of CPT row ``u``, or ``{"cause": label}`` for a cause row."""
+    if _forms.has_rows(net, name):
+        return {"cause": _forms.cause_row_labels(net, name)[u]}
+    return dict(zip(net.node(name).parents, net.parent_config_labels(name)[u]))
+
+
 def _name_directions(co: Coordinates, rho: np.ndarray, X: np.ndarray, blocks, info: np.ndarray | None) -> list[dict[str, Any]]:
     net = co.network
     rows = co.row_slices()
@@ -831,9 +953,7 @@ def _name_directions(co: Coordinates, rho: np.ndarray, X: np.ndarray, blocks, in
         for (name, u), js in rows.items():
             s = float(x[js] @ blocks[(name, u)] @ x[js])
             if s >= NAME_SHARE:
-                shares.append({"node": name, "row": int(u),
-                               "parents": dict(zip(net.node(name).parents, net.parent_config_labels(name)[u])),
-                               "share": s})
+                shares.append({"node": name, "row": int(u), "parents": _row_label(net, name, int(u)), "share": s})
         shares.sort(key=lambda d: -d["share"])
         kind = "negative" if rho[i] < -FLAT_TOL else ("flat" if rho[i] <= FLAT_TOL else "weak")
         d = {"kind": kind, "relative_curvature": float(rho[i]), "fraction_missing": float(np.clip(1 - rho[i], 0, 1)),
@@ -1101,12 +1221,12 @@ def gradient_seconds(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> float:
 
 
 #: what :func:`structure_refusal` lets through (the forms whose coordinates are CPT rows)
-SUPPORTED_STRUCTURE = ("table", "tied", "impossible")
+SUPPORTED_STRUCTURE = ("table", "noisy_or", "noisy_max", "tied", "impossible")
 
 
 def structure_refusal(network: Network) -> str | None:
-    """Why error bars cannot be computed for ``network`` (a structured form whose parameters are
-    not CPT rows: noisy_or / noisy_max), or None."""
+    """Why error bars cannot be computed for ``network`` (a logistic node: its coefficients
+    have no rows of probabilities for the coordinates below), or None."""
     for n in network.nodes:
         if n.fixed is None and n.cpd not in SUPPORTED_STRUCTURE:
             return (f"error bars are not available yet for nodes.{n.name} (cpd = {n.cpd!r}); its estimates "

@@ -198,14 +198,54 @@ def test_free_parameter_count_is_the_forms_and_a_prior_on_a_noisy_node_is_refuse
     df = simulate(net, truth, 50, seed=3)
     with pytest.raises(PriorError, match="priors on its parameters"):
         _quiet_fit(net, df, pseudo_counts={"y": np.ones(net.cpt_shape("y"))})
+
+
+def test_error_bars_of_the_noisy_or_parameters_equal_the_inverse_hessian_of_the_hand_written_likelihood():
+    # Independent reference: the observed information of the hand-written noisy-OR likelihood
+    # (Pearl 1988 §4.3.2) by central differences of its analytic gradient, in logit coordinates
+    # x = logit(p); SE(p) = p (1 − p) SE(x) (delta method). The implied table's SE follows by the
+    # delta method: θ(present | none) = leak has the leak's SE; θ(absent | a=yes, b=lo) =
+    # (1 − leak)(1 − s_a) has gradient (−(1 − s_a), −(1 − leak)) in (leak, s_a).
     from adfit.uncertainty import attach_uncertainty
 
-    res = _quiet_fit(net, df, restarts=1)
+    net = net_with(OR_CHILD)
+    rows = forms.rows_from_parameters(net, "y", TRUE_NOISY_OR)
+    probs = {"a": np.array([0.6, 0.4]), "b": np.array([0.5, 0.3, 0.2]), "y": forms.implied_table(net, "y", rows)}
+    df = simulate(net, probs, 1500, seed=1)
+    res = attach_uncertainty(_quiet_fit(net, df, gtol=1e-11), df)
+    par = res.extras["nodes"]["y"]["parameters"]
+    p = np.array([par["leak"], par["strength"]["a"]["yes"], par["strength"]["b"]["mid"], par["strength"]["b"]["hi"]])
+    counts = df.assign(a=df.a.map({"no": 0, "yes": 1}), b=df.b.map({"lo": 0, "mid": 1, "hi": 2}),
+                       y=df.y.map({"absent": 0, "present": 1})).value_counts().to_dict()
+    x, h = np.log(p / (1 - p)), 1e-5
+    H = np.column_stack([(_noisy_or_negloglik(x + h * e, counts)[1] - _noisy_or_negloglik(x - h * e, counts)[1]) / (2 * h)
+                         for e in np.eye(4)])
+    C = np.linalg.inv(0.5 * (H + H.T)) * np.outer(p * (1 - p), p * (1 - p))
+    sec = res.extras["nodes"]["y"]
+    se = sec["parameters_se"]
+    got = [se["leak"], se["strength"]["a"]["yes"], se["strength"]["b"]["mid"], se["strength"]["b"]["hi"]]
+    np.testing.assert_allclose(got, np.sqrt(np.diag(C)), rtol=1e-5)
+    table_se = np.asarray(sec["se"], dtype=float)
+    assert table_se[0, 1] == pytest.approx(np.sqrt(C[0, 0]), rel=1e-5)
+    g = np.array([-(1 - p[1]), -(1 - p[0])])
+    assert table_se[3, 0] == pytest.approx(np.sqrt(g @ C[:2, :2] @ g), rel=1e-5)  # row (a=yes, b=lo)
+    assert set(sec["parameters_status"]) == {"leak", "a=yes", "b=mid", "b=hi"}
+    lo, hi = sec["interval"]
+    tab = np.asarray(sec["table"] if "table" in sec else res.probs["y"]).reshape(-1, 2)
+    assert np.all(np.asarray(lo) <= tab + 1e-12) and np.all(tab <= np.asarray(hi) + 1e-12)
+
+
+def test_error_bars_refused_for_logistic_nodes():
+    from adfit.uncertainty import attach_uncertainty
+
+    net = net_with({"states": ["low", "mid", "high"], "cpd": "logistic"})
+    df = simulate(net, {"a": np.array([0.5, 0.5]), "b": np.ones(3) / 3, "y": np.full((2, 3, 3), 1 / 3)}, 80, seed=2)
+    res = _quiet_fit(net, df)
     with pytest.raises(OptionError, match="error bars are not available yet for nodes.y"):
         attach_uncertainty(res, df)
 
 
-def test_cli_round_trip_writes_the_parameters_and_refuses_error_bars(tmp_path):
+def test_cli_round_trip_writes_the_parameters_and_their_error_bars(tmp_path):
     net = _latent_net("noisy_or", tie=False)
     _, truth = _latent_truth(net)
     df = simulate(net, truth, 400, seed=7, missing={"a": 0.2})
@@ -225,7 +265,13 @@ def test_cli_round_trip_writes_the_parameters_and_refuses_error_bars(tmp_path):
     rows = forms.rows_from_parameters(net, "y", y["parameters"])
     np.testing.assert_allclose(np.asarray(y["table"]).reshape(2, 3, 2), forms.implied_table(net, "y", rows),
                                atol=1e-12)
-    bad = CliRunner().invoke(app, ["fit", str(toml), str(csv), "--out", str(tmp_path / "r2.json"), "--errors"])
-    assert bad.exit_code == 1
-    assert "error bars are not available yet for nodes.y" in bad.output
-    assert not (tmp_path / "r2.json").exists()
+    # error bars by default: on the implied table and on the parameters
+    assert "parameters_se" in y and len(y["se"]) == 6
+    assert set(y["parameters_se"]["strength"]["b"]) == {"mid", "hi"}
+    # the report shows the parameters with their standard errors
+    html = tmp_path / "r.html"
+    run = CliRunner().invoke(app, ["report", str(out), "--out", str(html)])
+    assert run.exit_code == 0, run.output
+    page = html.read_text()
+    assert "noisy_or parameters of y" in page
+    assert f"{y['parameters']['leak']:.4f}" in page and f"{y['parameters_se']['leak']:.4f}" in page
