@@ -323,11 +323,12 @@ SchedulerOpt = Annotated[Optional[str], typer.Option(
 
 def read_inputs(network: Path, data: Path, *, missing, count_column, ignore_columns, engine: str = "pandas",
                 scheduler: Optional[str] = None):
-    """Network and coded data, as every data-reading command needs them."""
+    """Network and coded data, as every data-reading command needs them (``network``: a path, or
+    a :class:`~adfit.network.Network` already read, e.g. the one embedded in a result file)."""
     from .engines import load_coded
-    from .network import load_network
+    from .network import Network, load_network
 
-    net = load_network(network)
+    net = network if isinstance(network, Network) else load_network(network)
     coded = load_coded(net, data, engine=engine, scheduler=scheduler, missing=missing,
                        count_column=count_column, ignore_columns=split_list(ignore_columns))
     return net, coded
@@ -559,12 +560,54 @@ def _phase(quiet: bool, description: str):
         yield
 
 
+# ------------------------------------------------------------------ the network argument, optional with a result
+NetworkDataArg = Annotated[list[Path], typer.Argument(
+    metavar="[network] data", show_default=False,
+    help="The network file (TOML) and the records (CSV or Parquet file, folder or glob pattern). With --params "
+         "the network file may be left out: the network embedded in the result file is used.")]
+
+
+def network_and_data(inputs: list[Path], params: Optional[Path], command: str) -> tuple[Optional[Path], Path]:
+    """``[NETWORK] DATA`` of ``score`` and ``impute``: ``(network path or None, data path)``.
+
+    Two paths are the network and the data, as always. One path is the data file when a result
+    file (``--params``) is given, whose embedded network is then used; without ``--params``, or
+    when the one path is a ``.toml`` file (a network, not records), it is refused in one line."""
+    from .errors import OptionError
+
+    if len(inputs) == 2:
+        return InputFile("network file")(inputs[0]), inputs[1]
+    if len(inputs) > 2:
+        raise OptionError(f"adfit {command} takes at most two paths, [NETWORK] DATA, got {len(inputs)} "
+                          f"({', '.join(map(str, inputs))}); quote a glob pattern so that the shell does not expand it")
+    only = inputs[0] if inputs else None
+    if params is None:
+        raise OptionError(f"adfit {command}: give the network file and the data file, or the data file with "
+                          f"--params RESULT.json (its embedded network is used)")
+    if only is not None and only.suffix.lower() == ".toml":
+        raise OptionError(f"adfit {command}: {only} looks like a network file and no data file is given; "
+                          f"give the records after it (with --params the network file may be left out)")
+    return None, only
+
+
+def network_of(network: Optional[Path], params: Optional[Path]):
+    """``(network, result or None)``: the network file when given (a result must match it, as
+    ever), else the network embedded in ``--params``."""
+    from .network import load_network
+    from .result import load_result
+
+    if network is not None:
+        net = load_network(network)
+        return net, (load_result(params, net) if params is not None else None)
+    res = load_result(params)
+    return res.network, res
+
+
 @app.command("score")
 def score_command(
-    network: NetworkArg,
-    data: DataArg,
+    inputs: NetworkDataArg,
     params: Annotated[Optional[Path], typer.Option(
-        "--params", help="Result file whose CPTs are scored (from fit or em); not needed when every CPT of the network is fixed.",
+        "--params", help="Result file whose CPTs are scored (from fit or em; its embedded network is used when no network file is given); not needed when every CPT of the network is fixed.",
         parser=InputFile("result file (--params)"))] = None,
     missing: MissingOpt = None,
     count_column: CountOpt = None,
@@ -582,6 +625,8 @@ def score_command(
     say that the CPTs are right.
 
     Example: adfit score gearbox.toml new_records.csv --params fit.json
+
+    Example: adfit score new_records.csv --params fit.json   (the network embedded in fit.json)
     """
     import json
     import math
@@ -589,13 +634,15 @@ def score_command(
     from .likelihood import Likelihood, check_possible, score
 
     with user_errors():
-        net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
+        network, data = network_and_data(inputs, params, "score")
+        net, res = network_of(network, params)
+        net, coded = read_inputs(net, data, missing=missing, count_column=count_column,
                                  ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
-        probs = cpts_of(net, params)
+        probs = res.probs if res is not None else cpts_of(net, None)
         lik = Likelihood(net, coded)  # one plan and one compiled program for the score and the check
         s = score(net, coded, probs, likelihood=lik)
         if not math.isfinite(s["log_likelihood"]):
-            check_possible(lik, probs)  # names the records of probability 0 (exit 1)
+            check_possible(lik, probs, given="the CPTs of --params")  # names the records of probability 0 (exit 1)
         out = {"log_likelihood": s["log_likelihood"], "gradient_norm": s["gradient_norm"],
                "n_rows": coded.n_rows, "n_distinct": coded.n_distinct,
                "log_likelihood_per_record": s["log_likelihood"] / coded.n_rows}
@@ -655,8 +702,7 @@ ParamsOpt = Annotated[Path, typer.Option("--params", help="Result file whose CPT
 
 @app.command("impute")
 def impute_command(
-    network: NetworkArg,
-    data: DataArg,
+    inputs: NetworkDataArg,
     params: ParamsOpt,
     out: Annotated[Path, typer.Option("--out", help="CSV file to write: the input records, in order, with added columns.")],
     draws: Annotated[int, typer.Option("--draws", help="Joint posterior draws per record (multiple imputation; 0: none).")] = 0,
@@ -684,18 +730,18 @@ def impute_command(
     rest on the network and on MAR; imputed values are not observations.
 
     Example: adfit impute gearbox.toml inspections.csv --params fit.json --out imputed.csv --draws 5
+
+    Example: adfit impute inspections.csv --params fit.json --out imputed.csv   (the network embedded in fit.json)
     """
     from .impute import format_summary, impute_file
-    from .network import load_network
-    from .result import load_result
 
     with user_errors():
         from .io import check_output_paths
 
+        network, data = network_and_data(inputs, params, "impute")
         check_seed(seed)
         check_output_paths({"out": out}, {"network file": network, "data file": data, "params file": params})
-        net = load_network(network)
-        res = load_result(params, net)
+        net, res = network_of(network, params)
         imp, _ = impute_file(net, res.probs, data, out, draws=draws, seed=seed,
                              nodes=split_list(nodes) or None, missing=missing, count_column=count_column,
                              ignore_columns=split_list(ignore_columns), defuse=defuse)
@@ -725,21 +771,37 @@ def cpts_of(net, params):
 
 @app.command("query")
 def query_command(
-    network: NetworkArg,
+    network: Annotated[Optional[Path], typer.Argument(
+        help="Network file (TOML); may be left out with --params (the result's embedded network is used).",
+        parser=InputFile("network file"), show_default=False)] = None,
     params: OptParamsOpt = None,
     given: Annotated[Optional[list[str]], typer.Option(
-        "--given", help="Evidence NODE=STATE (repeat for several).")] = None,
+        "--given", help="Evidence NODE=STATE (repeat for several); soft evidence NODE=STATE:WEIGHT,STATE:WEIGHT (likelihood weights >= 0, unlisted states 0).")] = None,
     target: Annotated[Optional[list[str]], typer.Option(
         "--target", help="Node whose posterior is wanted (repeat; default: every node not given).")] = None,
     explain: Annotated[bool, Flag(
         "--explain", help="Also give the most probable joint state of every node not given, with its probability.")] = False,
     as_json: Annotated[bool, Flag("--json", help="Print the result as JSON (format adfit-query/1).")] = False,
+    batch: Annotated[Optional[Path], typer.Option(
+        "--batch", help="CSV (or Parquet) file of evidence, one query per row: a column per node given, cells "
+                        "STATE, STATE:WEIGHT,... or empty; answers written to --out.",
+        parser=InputFile("batch file (--batch)"))] = None,
+    out: Annotated[Optional[Path], typer.Option("--out", help="With --batch: the CSV file of answers to write.")] = None,
+    ignore_columns: Annotated[Optional[str], typer.Option(
+        "--ignore-columns", help="With --batch: comma-separated columns that are not evidence (ids...), carried to --out as they are.")] = None,
+    defuse: Annotated[bool, Flag(
+        "--defuse/--raw-cells", help="With --batch: text cells that start like a spreadsheet formula (=, +, -, @) get a "
+                                     "leading apostrophe (default); --raw-cells writes them as they are.")] = True,
 ) -> None:
     """Posterior of chosen nodes given evidence, and the probability of the evidence.
 
     Several --target nodes also give their joint distribution. --explain adds the most probable
-    explanation: the single most probable joint state of every node not given (by enumeration;
-    refused when the hidden nodes have too many joint states).
+    explanation: the single most probable joint state of every node not given, with its
+    probability (max-product elimination; refused when its largest table is too large).
+
+    Soft evidence, --given NODE=STATE:WEIGHT,STATE:WEIGHT, multiplies P(NODE = STATE) by the
+    weight (likelihood evidence: e.g. a sensor that reads "alarm" 4 times as often in state
+    worn as in good: --given wear=worn:4,good:1); states not listed get weight 0.
 
     Exact (variable elimination) under the CPTs of --params, or under the network's own CPTs
     when every one is fixed (an expert model, or one written by `adfit show --format toml`).
@@ -747,29 +809,63 @@ def query_command(
     Caution: the answer is only as good as the CPTs and the network; it supports, and does not
     replace, engineering or clinical judgement.
 
+    --batch FILE.csv answers one query per row (the row's cells are its evidence) and writes a CSV
+    to --out: the input columns, then NODE__p_STATE and NODE__mode per target, the joint of
+    several --targets (joint__p_A=a;B=b), with --explain NODE__explain and row__p_explanation,
+    and row__log_p_evidence.
+
     Example: adfit query gearbox.toml --params fit.json --given wear=heavy --given load=high --target failure
+
+    Example: adfit query --params fit.json --batch cases.csv --out answers.csv --target failure
     """
     import json
 
-    from .impute import parse_assignments, query
-    from .network import load_network
-    from .result import load_result
+    from .impute import parse_evidence, query
 
     with user_errors():
-        net = load_network(network)
+        from .errors import OptionError
+
+        if network is None and params is None:
+            raise OptionError("adfit query: give the network file (every CPT fixed), or --params RESULT.json "
+                              "(its embedded network is used), or both")
+        if batch is None:
+            for name, value in (("--out", out), ("--ignore-columns", ignore_columns)):
+                if value is not None:
+                    raise OptionError(f"{name} goes with --batch FILE.csv (many queries); a single query prints its answer")
+        else:
+            if given:
+                raise OptionError("--batch reads the evidence from the file's columns; leave out --given "
+                                  "(add a column for a node given in every row)")
+            if as_json:
+                raise OptionError("--batch writes its answers as CSV to --out; leave out --json")
+            if out is None:
+                raise OptionError("--batch needs --out ANSWERS.csv, the file of answers to write")
+            from .io import check_output_paths
+
+            check_output_paths({"out": out}, {"batch file": batch, "network file": network, "params file": params})
+        net, res = network_of(network, params)
         from .explain import format_explanation, format_joint, joint_posterior, most_probable
 
-        probs = cpts_of(net, params)
-        ev = parse_assignments(given or [])
-        q = query(net, probs, ev, target or None)
+        probs = res.probs if res is not None else cpts_of(net, None)
+        if batch is not None:
+            from .batch import query_file
+
+            table = query_file(net, probs, batch, out, targets=target or None, explain=explain,
+                               ignore_columns=split_list(ignore_columns), defuse=defuse)
+            typer.echo(f"answered {len(table)} queries from {batch}")
+            typer.echo(f"wrote {out}")
+            typer.echo(CAUTION)
+            return
+        ev, soft = parse_evidence(net, given or [])
+        q = query(net, probs, ev, target or None, soft=soft)
         doc = q.to_dict()
         texts = [q.format_text()]
         if target and len(q.posteriors) > 1:
-            doc["joint"] = joint_posterior(net, probs, ev, list(q.posteriors))
-            texts.append(format_joint(doc["joint"], ev))
+            doc["joint"] = joint_posterior(net, probs, ev, list(q.posteriors), soft)
+            texts.append(format_joint(doc["joint"], ev, soft=soft))
         if explain:
-            doc["explanation"] = most_probable(net, probs, ev)
-            texts.append(format_explanation(doc["explanation"], ev))
+            doc["explanation"] = most_probable(net, probs, ev, soft)
+            texts.append(format_explanation(doc["explanation"], ev, soft=soft))
         if as_json:
             typer.echo(json.dumps(doc, indent=2))
         else:

@@ -1242,7 +1242,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     p0 = _noisy_starts(network, p0)
     p0 = estimated_starts(network, p0)
     check_impossible_cells(network, coded)
-    check_possible(fitter.lik, fitter.tables(p0))
+    check_possible(fitter.lik, fitter.tables(p0),
+                   given="the starting CPTs (init)" if init is not None else "the first start")
     auto_starts = restarts is None
     latent = any(n.latent for n in network.nodes)
     batched = True

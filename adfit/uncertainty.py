@@ -331,7 +331,7 @@ def observed_information(network: Network, data: Any, probs: Mapping[str, np.nda
     pseudo = _pseudo(network, pseudo_counts)
     lik = Likelihood(network, coded)
     full = _full_probs(network, probs)
-    check_possible(lik, full)
+    check_possible(lik, full, given="the fitted CPTs")
     _, counts = lik.expected_counts(full)
     counts = pool_counts(network, counts)
     co = make_coordinates(network, full, {k: counts[k] + pseudo[k] for k in network.estimated_names})
@@ -573,7 +573,7 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     wanted = _wanted_nodes(network, nodes)
     full = _full_probs(network, probs)
     lik = likelihood if likelihood is not None else Likelihood(network, coded)
-    check_possible(lik, full)
+    check_possible(lik, full, given="the fitted CPTs")
     _, counts = lik.expected_counts(full)
     # noisy nodes: the coordinates are on their cause rows, read off the (implied) table
     noisy = [n for n in network.estimated_names if _forms.has_rows(network, n)]
