@@ -54,7 +54,7 @@ import numpy as np
 from .network import Network
 
 __all__ = ["NOISY", "is_noisy", "cause_shape", "cause_row_labels", "implied_log_table", "implied_table",
-           "virtual_counts", "row_sums", "logistic_weights", "is_logistic", "has_rows", "ROW_FORMS", "rows_from_table", "start_rows", "random_rows", "parameters_json", "rows_from_parameters", "format_parameters"]
+           "virtual_counts", "row_sums", "logistic_weights", "is_logistic", "has_rows", "ROW_FORMS", "rows_from_table", "start_rows", "random_rows", "parameters_json", "parameters_layout", "rows_from_parameters", "format_parameters"]
 
 #: the causal-independence forms (cause rows on simplices)
 NOISY = ("noisy_or", "noisy_max")
@@ -325,6 +325,23 @@ def parameters_json(network: Network, name: str, v: np.ndarray) -> dict[str, Any
         st = network.node(p).states
         strength[p] = {st[s]: cell(v[r0 + s - 1]) for s in range(1, n_act + 1)}
     return {"leak": cell(v[0]), "strength": strength}
+
+
+def parameters_layout(network: Network, name: str, a: np.ndarray, *, reference: Any = 0.0) -> dict[str, Any]:
+    """A per-cell array over the parameter rows (an SE, a bound) in the ``"parameters"``
+    layout: for noisy nodes the cells of the cause rows as :func:`parameters_json` places the
+    probabilities; for a logistic node the coefficient cells themselves (the reference state's
+    column as it is in ``a``)."""
+    a = np.asarray(a, dtype=np.float64)
+    if not is_logistic(network, name):
+        return parameters_json(network, name, a)
+    coef: dict[str, Any] = {}
+    for p, (r0, n_act) in zip(network.node(name).parents, _spans(network, name)):
+        st = network.node(p).states
+        coef[p] = {st[0]: [reference] * a.shape[1]}
+        for s in range(1, n_act + 1):
+            coef[p][st[s]] = [float(x) for x in a[r0 + s - 1]]
+    return {"intercept": [float(x) for x in a[0]], "coefficients": coef}
 
 
 def rows_from_parameters(network: Network, name: str, doc: Mapping[str, Any]) -> np.ndarray:

@@ -141,6 +141,9 @@ class Coordinates:
     n: Mapping[str, np.ndarray]
     base: Mapping[str, np.ndarray]
     index: Mapping[str, np.ndarray]
+    # logistic nodes: (N(u) pooled over ties, CPT-shaped; the implied table) for the
+    # complete-data information of their coefficient rows
+    logistic: Mapping[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
 
     @property
     def size(self) -> int:
@@ -186,7 +189,8 @@ class Coordinates:
 
 
 def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
-                     n_cells: Mapping[str, np.ndarray]) -> Coordinates:
+                     n_cells: Mapping[str, np.ndarray],
+                     logistic: Mapping[str, tuple[np.ndarray, np.ndarray]] | None = None) -> Coordinates:
     """Reference states, boundary and no-data cells, and the coordinates, at an estimate.
 
     ``n_cells``: per estimated node, expected counts plus pseudo-counts (CPT-shaped; pooled over
@@ -209,6 +213,15 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
         status[nu < UNINFORMED_COUNT] = _NO_DATA
         status[imp] = _CONSTRAINED
         status[(imp.sum(axis=1) == K - 1)[:, None] & ~imp] = _CONSTRAINED
+        if logistic and name in logistic:
+            # coefficient rows: the first child state is the reference (its coefficient is 0 by
+            # definition), nothing is on a boundary; a row that serves no record has no data
+            n_u, _table = logistic[name]
+            served = _forms.row_sums(network, name, np.broadcast_to(n_u, _table.shape))[:, 0]
+            ref = np.zeros(th.shape[0], dtype=np.int64)
+            status = np.full(th.shape, _INTERIOR, dtype=np.int64)
+            status[served < UNINFORMED_COUNT] = _NO_DATA
+            status[:, 0] = _CONSTRAINED
         lt = np.log(np.maximum(th, _FLOOR))
         base = lt - lt[np.arange(len(ref)), ref][:, None]
         free_cells = []
@@ -221,7 +234,8 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
         ref_d[name], st_d[name], pr_d[name], n_d[name] = ref, status, th, n
         base_d[name] = base.reshape(-1)
         idx_d[name] = np.asarray(free_cells, dtype=np.int32)
-    return Coordinates(network, tuple(coords), tuple(sizes), ref_d, st_d, pr_d, n_d, base_d, idx_d)
+    return Coordinates(network, tuple(coords), tuple(sizes), ref_d, st_d, pr_d, n_d, base_d, idx_d,
+                       dict(logistic or {}))
 
 
 # --------------------------------------------------------------------------- the objective in JAX
@@ -359,9 +373,21 @@ def complete_information(co: Coordinates, l2: float = 0.0) -> dict[tuple[str, in
     (``n_u`` = expected count plus pseudo-counts of the parent configuration).
     """
     out = {}
+    lblocks = {}
+    for name, (n_u, table) in co.logistic.items():
+        # Σ_u X_ud N(u) (diag π_u − π_u π_uᵀ): the complete-data information of coefficient row d
+        cov = np.asarray(n_u)[..., None] * (np.einsum("...k,kl->...kl", table, np.eye(table.shape[-1]))
+                                            - table[..., :, None] * table[..., None, :])
+        lblocks[name] = _row_sums_matrix(co.network, name, cov)
     for (name, row), js in co.row_slices().items():
         K = co.network.node(name).card
         states = [co.coords[j][2] for j in js]
+        if name in lblocks:
+            blk = lblocks[name][row][np.ix_(states, states)]
+            if l2:
+                blk = blk + 2.0 * l2 * (np.eye(len(states)) - 1.0 / K)
+            out[(name, row)] = blk
+            continue
         th = co.probs[name][row, states]
         nu = co.n[name][row].sum()
         blk = nu * (np.diag(th) - np.outer(th, th))
@@ -369,6 +395,24 @@ def complete_information(co: Coordinates, l2: float = 0.0) -> dict[tuple[str, in
             blk = blk + 2.0 * l2 * (np.eye(len(states)) - 1.0 / K)
         out[(name, row)] = blk
     return out
+
+
+def _row_sums_matrix(network: Network, name: str, m: np.ndarray) -> np.ndarray:
+    """:func:`adfit.forms.row_sums` of a (*CPT rows, K, K) array: per coefficient row the sum
+    over the parent configurations it applies to (rows, K, K)."""
+    K = m.shape[-1]
+    flat = m.reshape(*m.shape[:-2], K * K)
+    R = _forms.cause_shape(network, name)[0]
+    k = flat.ndim - 1
+    out = np.empty((R, K * K))
+    out[0] = flat.reshape(-1, K * K).sum(axis=0)
+    r = 1
+    for i, p in enumerate(network.node(name).parents):
+        c = network.node(p).card
+        per = flat.sum(axis=tuple(j for j in range(k) if j != i))
+        out[r:r + c - 1] = per[1:]
+        r += c - 1
+    return out.reshape(R, K, K)
 
 
 def _block_matrix(co: Coordinates, blocks: Mapping[tuple[str, int], np.ndarray]) -> np.ndarray:
@@ -484,10 +528,12 @@ class Uncertainty:
                 par = self.parameters[src]
                 st = par["status"]
 
-                def layout(a, src=src):
-                    return _forms.parameters_json(net, src, np.nan_to_num(a, nan=-1.0))
+                def layout(a, src=src, reference=0.0):
+                    a = np.asarray(a, dtype=np.float64)
+                    return _nan_to_none(_forms.parameters_layout(net, src, np.where(np.isfinite(a), a, np.nan),
+                                                                 reference=reference))
 
-                out[name]["parameters_se"] = _nan_to_none(layout(par["se"]))
+                out[name]["parameters_se"] = layout(par["se"], reference=None)
                 out[name]["parameters_interval"] = [layout(par["lower"]), layout(par["upper"])]
                 out[name]["parameters_status"] = {lab: [STATUS[int(c)] for c in row]
                                                   for lab, row in zip(_forms.cause_row_labels(net, src), st)}
@@ -581,8 +627,13 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     for n in noisy:
         rows_at[n] = _forms.rows_from_table(network, n, full[n])
         pseudo[n] = np.zeros(block_shape(network, n))
+    logistic = {}
+    for n in noisy:
+        if _forms.is_logistic(network, n):
+            fam = sum((np.asarray(counts[t]) for t in network.tied_names(n)), np.asarray(counts[n]))
+            logistic[n] = (fam.sum(axis=-1, keepdims=True), np.asarray(full[n], dtype=np.float64))
     counts = pool_counts(network, counts, rows_at)
-    co = make_coordinates(network, rows_at, {k: counts[k] + pseudo[k] for k in network.estimated_names})
+    co = make_coordinates(network, rows_at, {k: counts[k] + pseudo[k] for k in network.estimated_names}, logistic)
     P = co.size
     if method == "auto":
         method = "dense" if P <= DENSE_MAX_PARAMETERS else "matrix-free"
@@ -771,9 +822,24 @@ def _assemble(co: Coordinates, level: float, z: float, cov: _CovBlocks, flat_X: 
                     st[u, r] = _BOUNDARY if bnd.any() else st[u, r]
                     continue
                 states = [co.coords[j][2] for j in js]
-                G = th[u][:, None] * ((np.arange(K)[:, None] == np.asarray(states)[None, :]) - th[u, states][None, :])
                 Minv = np.linalg.inv(blocks[(name, u)])
                 S = cov.get(name, js)
+                if name in co.logistic:  # coefficients (log-odds): Wald on their own scale
+                    b = co.base[name].reshape(Q, K)[u]
+                    for i, k in enumerate(states):
+                        if flat_X.shape[1]:
+                            share = float(np.sum(flat_X[js[i]] ** 2)) / Minv[i, i] if Minv[i, i] > 0 else 1.0
+                            if share >= FLAT_SHARE_TOL:
+                                st[u, k] = _NOT_IDENTIFIED
+                                continue
+                        var = float(S[i, i])
+                        if not var >= 0:
+                            st[u, k] = _NOT_IDENTIFIED
+                            continue
+                        se[u, k] = math.sqrt(var)
+                        lo[u, k], hi[u, k] = b[k] - z * se[u, k], b[k] + z * se[u, k]
+                    continue
+                G = th[u][:, None] * ((np.arange(K)[:, None] == np.asarray(states)[None, :]) - th[u, states][None, :])
                 for k in range(K):
                     if bnd[k] or st[u, k] == _CONSTRAINED:
                         continue
@@ -796,9 +862,12 @@ def _assemble(co: Coordinates, level: float, z: float, cov: _CovBlocks, flat_X: 
                     lo[u, k] = _expit(lg - half)
                     hi[u, k] = _expit(lg + half)
             ni = st == _NOT_IDENTIFIED
-            lo[ni], hi[ni] = 0.0, 1.0
+            lo[ni], hi[ni] = (-np.inf, np.inf) if name in co.logistic else (0.0, 1.0)
             fixed = st == _CONSTRAINED  # fixed by the network's impossible cells: the point itself
-            lo[fixed] = hi[fixed] = th[fixed]
+            lo[fixed] = hi[fixed] = (co.base[name].reshape(Q, K)[fixed] if name in co.logistic else th[fixed])
+            if name in co.logistic:
+                nd = st == _NO_DATA
+                lo[nd], hi[nd] = -np.inf, np.inf
         shape = block_shape(net, name)
         se_d[name], lo_d[name], hi_d[name], st_d[name] = (se.reshape(shape), lo.reshape(shape), hi.reshape(shape),
                                                           st.reshape(shape))
@@ -806,12 +875,12 @@ def _assemble(co: Coordinates, level: float, z: float, cov: _CovBlocks, flat_X: 
 
 
 def _nan_to_none(doc: Any) -> Any:
-    """The parameters layout with the placeholder −1 (no SE) as None."""
+    """The parameters layout with NaN (no SE, an unbounded interval) as None."""
     if isinstance(doc, dict):
         return {k: _nan_to_none(v) for k, v in doc.items()}
     if isinstance(doc, list):
         return [_nan_to_none(v) for v in doc]
-    return None if doc == -1.0 else doc
+    return None if isinstance(doc, float) and math.isnan(doc) else doc
 
 
 def _implied_tables_of(network: Network, name: str):
@@ -854,7 +923,7 @@ def _noisy_tables(co: Coordinates, name: str, level: float, z: float, cov: "_Cov
     bad = dep[:, pst == _NOT_IDENTIFIED].any(axis=1) if (pst == _NOT_IDENTIFIED).any() else np.zeros(Q * K, bool)
     R = param_status.shape[0]
     used = dep.reshape(Q * K, R, K).any(axis=2)                     # cells × cause rows
-    nodata = np.array([all((param_status[r] == _NO_DATA).all() for r in np.flatnonzero(used[c]))
+    nodata = np.array([all((param_status[r] == _NO_DATA).any() for r in np.flatnonzero(used[c]))
                        if used[c].any() else False for c in range(Q * K)])
     var = np.einsum("ij,jk,ik->i", J, S, J) if J.shape[1] else np.zeros(Q * K)
     for c in range(Q * K):
@@ -1221,7 +1290,7 @@ def gradient_seconds(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> float:
 
 
 #: what :func:`structure_refusal` lets through (the forms whose coordinates are CPT rows)
-SUPPORTED_STRUCTURE = ("table", "noisy_or", "noisy_max", "tied", "impossible")
+SUPPORTED_STRUCTURE = ("table", "noisy_or", "noisy_max", "logistic", "tied", "impossible")
 
 
 def structure_refusal(network: Network) -> str | None:

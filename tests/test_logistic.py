@@ -73,6 +73,21 @@ def test_complete_data_fit_equals_statsmodels_mnlogit():
     np.testing.assert_allclose(got, ref.params.to_numpy(), atol=1e-6)
     # the references are present as 0
     assert par["coefficients"]["a"]["no"] == [0.0, 0.0, 0.0] and par["intercept"][0] == 0.0
+    # standard errors: the observed information of the marginal likelihood in the coefficients
+    # equals the multinomial logit's (statsmodels' bse, from its Hessian at the MLE)
+    from adfit.uncertainty import attach_uncertainty
+
+    sec = attach_uncertainty(res, df).extras["nodes"]["y"]
+    se = sec["parameters_se"]
+    got_se = np.array([se["intercept"][1:], se["coefficients"]["a"]["yes"][1:],
+                       se["coefficients"]["b"]["mid"][1:], se["coefficients"]["b"]["hi"][1:]])
+    np.testing.assert_allclose(got_se, ref.bse.to_numpy(), rtol=1e-5)
+    assert se["intercept"][0] is None and se["coefficients"]["a"]["no"] == [None, None, None]
+    lo, hi = sec["parameters_interval"]
+    np.testing.assert_allclose(np.array(hi["coefficients"]["b"]["hi"][1:]) - np.array(lo["coefficients"]["b"]["hi"][1:]),
+                               2 * 1.959963984540054 * ref.bse.to_numpy()[3], rtol=1e-5)  # Wald, z(0.975)
+    assert sec["parameters_status"]["b=hi"] == ["constrained", "interior", "interior"]
+    assert len(sec["se"]) == 6  # the implied table's, by the delta method
     # log L of the child given its parents equals statsmodels' (the parents' part is closed form)
     ll_y = res.log_likelihood - sum(float((c * np.log(c / c.sum())).sum())
                                     for c in (df.a.value_counts().to_numpy(float), df.b.value_counts().to_numpy(float)))

@@ -235,16 +235,6 @@ def test_error_bars_of_the_noisy_or_parameters_equal_the_inverse_hessian_of_the_
     assert np.all(np.asarray(lo) <= tab + 1e-12) and np.all(tab <= np.asarray(hi) + 1e-12)
 
 
-def test_error_bars_refused_for_logistic_nodes():
-    from adfit.uncertainty import attach_uncertainty
-
-    net = net_with({"states": ["low", "mid", "high"], "cpd": "logistic"})
-    df = simulate(net, {"a": np.array([0.5, 0.5]), "b": np.ones(3) / 3, "y": np.full((2, 3, 3), 1 / 3)}, 80, seed=2)
-    res = _quiet_fit(net, df)
-    with pytest.raises(OptionError, match="error bars are not available yet for nodes.y"):
-        attach_uncertainty(res, df)
-
-
 def test_cli_round_trip_writes_the_parameters_and_their_error_bars(tmp_path):
     net = _latent_net("noisy_or", tie=False)
     _, truth = _latent_truth(net)
