@@ -10,7 +10,7 @@ from typer.testing import CliRunner
 
 from adfit.cli import app
 
-COMMANDS = ["fit", "em", "score", "gaps", "impute", "query", "show", "report", "demo"]
+COMMANDS = ["fit", "em", "score", "gaps", "impute", "query", "show", "report", "demo", "sensitivity"]
 
 
 def click_command(name):

@@ -264,4 +264,9 @@ def test_cli_round_trip_writes_the_parameters_and_their_error_bars(tmp_path):
     assert run.exit_code == 0, run.output
     page = html.read_text()
     assert "noisy_or parameters of y" in page
-    assert f"{y['parameters']['leak']:.4f}" in page and f"{y['parameters_se']['leak']:.4f}" in page
+    hi_se = y["parameters_se"]["strength"]["b"]["hi"]  # b is observed: this strength is identified
+    assert y["parameters_status"]["b=hi"] == ["interior", "interior"] and hi_se > 0
+    assert f"{y['parameters']['strength']['b']['hi']:.4f}" in page and f"{hi_se:.4f}" in page
+    # a parameter the data do not pin down (with a latent parent) has no SE, and says so
+    for key, st in y["parameters_status"].items():
+        assert set(st) <= {"interior", "not identified", "boundary", "no data"}, key

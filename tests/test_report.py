@@ -204,9 +204,11 @@ def test_every_section_present_in_order(case):
     assert found == [sid for sid, _ in SECTIONS]
     for sid, title in SECTIONS:
         assert section(tree, sid).find("h2").text() == title
-    # the full case has every optional section, so none says it is absent
-    absent = [p.text() for p in tree.find_all("p", cls="absent")]
+    # the full case has every optional section of a fit result, so none says it is absent; the
+    # sensitivity section needs a separate file (adfit sensitivity) and names the commands
+    absent = [p.text() for sid, _ in SECTIONS if sid != "sensitivity" for p in section(tree, sid).find_all("p", cls="absent")]
     assert absent == [], absent
+    assert "adfit report RESULT --sensitivity" in section(tree, "sensitivity").find("p", cls="absent").text()
 
 
 def test_every_image_decodes(case):
