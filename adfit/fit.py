@@ -139,10 +139,19 @@ def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) ->
                                  f"on {src!r} only")
             continue
         if _forms.has_rows(network, name):
+            shape = block_shape(network, name)
             if c is not None and np.any(np.asarray(c, dtype=np.float64) > 0):
-                raise PriorError(f"node {name!r} has cpd = {network.cpd_form(name)!r}: priors on its parameters "
-                                 f"are not available yet; fit it without a prior on {name!r}")
-            out[name] = np.zeros(block_shape(network, name))
+                if _forms.is_logistic(network, name):
+                    raise PriorError(f"node {name!r} has cpd = 'logistic': priors on its coefficients are not "
+                                     f"available yet; fit it without a prior on {name!r}")
+                c = np.asarray(c, dtype=np.float64)
+                if c.shape != shape:  # Dirichlet pseudo-counts on the cause rows (adfit.priors)
+                    raise PriorError(f"node {name!r} ({network.cpd_form(name)}): pseudo-counts have shape {c.shape}, "
+                                     f"expected {shape} (one row per cause: "
+                                     f"{', '.join(_forms.cause_row_labels(network, name))})")
+                out[name] = c
+                continue
+            out[name] = np.zeros(shape)
             continue
         out[name] = np.zeros(network.cpt_shape(name)) if c is None else np.asarray(c, dtype=np.float64)
     return mask_pseudo(network, out)

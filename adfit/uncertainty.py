@@ -252,9 +252,11 @@ def _objective(network: Network, groups, sizes: tuple[int, ...], phi, aux):
         if s:
             eta = eta.at[index[node.name]].add(phi[off:off + s])
         off += s
-        if _forms.has_rows(network, node.name):  # cause rows: their table is implied (no prior on them)
+        if _forms.has_rows(network, node.name):  # parameter rows: their table is implied
             eta = eta.reshape(block_shape(network, node.name))
-            own[node.name] = _forms.implied_log_table(network, node.name, jax.nn.log_softmax(eta, axis=-1))
+            rows = jax.nn.log_softmax(eta, axis=-1)
+            own[node.name] = _forms.implied_log_table(network, node.name, rows)
+            lp = lp + jnp.sum(jnp.where(pseudo[node.name] > 0, pseudo[node.name] * rows, 0.0))
             pen = pen + jnp.sum((eta - jnp.mean(eta, axis=-1, keepdims=True)) ** 2)
             continue
         eta = eta.reshape(network.cpt_shape(node.name))
@@ -626,7 +628,6 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     rows_at = dict(full)
     for n in noisy:
         rows_at[n] = _forms.rows_from_table(network, n, full[n])
-        pseudo[n] = np.zeros(block_shape(network, n))
     logistic = {}
     for n in noisy:
         if _forms.is_logistic(network, n):
@@ -736,8 +737,8 @@ def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) ->
     out = {}
     for name in network.free_names:
         c = None if pseudo_counts is None else pseudo_counts.get(name)
-        c = np.zeros(network.cpt_shape(name)) if c is None else np.broadcast_to(
-            np.asarray(c, dtype=np.float64), network.cpt_shape(name)).copy()
+        shape = block_shape(network, network.tie_source(name))  # cause rows for a noisy node
+        c = np.zeros(shape) if c is None else np.broadcast_to(np.asarray(c, dtype=np.float64), shape).copy()
         if not np.all(np.isfinite(c)) or np.any(c < 0):
             raise OptionError(f"node {name!r}: pseudo-counts must be finite and >= 0")
         out[name] = c

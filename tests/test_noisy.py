@@ -190,13 +190,13 @@ def test_latent_and_tied_noisy_fit_agrees_with_the_em_reference(form):
     assert score(net, coded, res.probs)["gradient_norm"] < 1e-3
 
 
-def test_free_parameter_count_is_the_forms_and_a_prior_on_a_noisy_node_is_refused():
+def test_free_parameter_count_is_the_forms_and_a_prior_of_the_wrong_shape_is_refused():
     net = _latent_net("noisy_max")
     # h: 1, a: 2, b: 2, y: (1 leak + 1 for h + 2 for b) rows × 2; y2 tied (counted once)
     assert net.n_free_parameters() == 1 + 2 + 2 + 4 * 2
     _, truth = _latent_truth(net)
     df = simulate(net, truth, 50, seed=3)
-    with pytest.raises(PriorError, match="priors on its parameters"):
+    with pytest.raises(PriorError, match=r"expected \(4, 3\) for the noisy_max node 'y' \(one row per cause: leak, h=worn"):
         _quiet_fit(net, df, pseudo_counts={"y": np.ones(net.cpt_shape("y"))})
 
 
@@ -270,3 +270,58 @@ def test_cli_round_trip_writes_the_parameters_and_their_error_bars(tmp_path):
     # a parameter the data do not pin down (with a latent parent) has no SE, and says so
     for key, st in y["parameters_status"].items():
         assert set(st) <= {"interior", "not identified", "boundary", "no data"}, key
+
+
+# --------------------------------------------------------------------------- priors on cause rows
+def test_beta_prior_on_the_noisy_or_parameters_gives_the_map_of_the_hand_written_posterior(tmp_path):
+    # Beta(c1 + 1, c0 + 1) on each probability p (leak, strengths) adds c1 log p + c0 log(1 − p) to
+    # the hand-written log-likelihood (Pearl 1988 §4.3.2); scipy's BFGS finds its mode.
+    from adfit.priors import load_prior
+
+    net = net_with(OR_CHILD)
+    rows = forms.rows_from_parameters(net, "y", TRUE_NOISY_OR)
+    probs = {"a": np.array([0.6, 0.4]), "b": np.array([0.5, 0.3, 0.2]), "y": forms.implied_table(net, "y", rows)}
+    df = simulate(net, probs, 300, seed=8)
+    prior_file = tmp_path / "p.toml"
+    # rows: the leak, a=yes, b=mid, b=hi; columns: absent, present
+    prior_file.write_text("[nodes.y]\npseudo_counts = [[8.0, 2.0], [1.0, 3.0], [2.0, 2.0], [0.5, 4.0]]\n")
+    prior = load_prior(prior_file, net)
+    c = np.array([[8.0, 2.0], [1.0, 3.0], [2.0, 2.0], [0.5, 4.0]])
+    res = _quiet_fit(net, df, prior=prior, gtol=1e-11)
+    assert res.objective == "map" and res.converged
+    counts = df.assign(a=df.a.map({"no": 0, "yes": 1}), b=df.b.map({"lo": 0, "mid": 1, "hi": 2}),
+                       y=df.y.map({"absent": 0, "present": 1})).value_counts().to_dict()
+
+    def neg_post(x):
+        f, g = _noisy_or_negloglik(x, counts)
+        p = expit(x)
+        f -= float(np.sum(c[:, 1] * np.log(p) + c[:, 0] * np.log1p(-p)))
+        g = g - (c[:, 1] * (1 - p) - c[:, 0] * p)
+        return f, g
+
+    opt = minimize(neg_post, np.zeros(4), jac=True, method="BFGS", options={"gtol": 1e-10, "maxiter": 1000})
+    got = res.extras["nodes"]["y"]["parameters"]
+    vec = [got["leak"], got["strength"]["a"]["yes"], got["strength"]["b"]["mid"], got["strength"]["b"]["hi"]]
+    np.testing.assert_allclose(vec, expit(opt.x), atol=1e-6)
+    assert res.log_prior == pytest.approx(float(np.sum(c[:, 1] * np.log(vec) + c[:, 0] * np.log1p(-np.array(vec)))),
+                                          abs=1e-8)
+    # the MAP EM on the hidden-cause network (Dirichlet rows on the causes) reaches the same point
+    em = em_fit(net, df, pseudo_counts={"y": c}, tol=1e-13, gtol=1e-10, max_iter=20000, seed=1)
+    assert em.converged
+    np.testing.assert_allclose(em.probs["y"], res.probs["y"], atol=1e-6)
+    assert em.log_prior == pytest.approx(res.log_prior, abs=1e-6)
+
+
+def test_default_prior_reaches_cause_rows_and_the_em_check_agrees():
+    from adfit.priors import prior_from_dict
+
+    net = _latent_net("noisy_max")
+    _, truth = _latent_truth(net)
+    df = simulate(net, truth, 800, seed=9, missing={"a": 0.2, "b": 0.2, "y": 0.1})
+    prior = prior_from_dict({"default": {"pseudo_counts": 1.0}}, net)
+    pc = prior.pseudo_counts(net)
+    assert pc["y"].shape == (4, 3) and pc["y2"].shape == (4, 3) and not pc["y2"].any()  # the tie: once
+    res = _quiet_fit(net, df, prior=prior, restarts=2, em_check=True)
+    assert res.converged
+    assert res.extras["em_check"]["verdict"] in ("agree", "em-own-start-not-converged")
+    assert res.extras["stationarity"]["holds"]
