@@ -373,7 +373,7 @@ _CORE = {"format", "method", "objective", "log_likelihood", "log_prior", "penalt
          "settings", "history", "nodes", "network"}
 # sections that other modules add (each a JSON object; their readers check what is inside)
 _SECTIONS = ("restarts", "prior", "em", "em_check", "uncertainty", "complete_case", "information_criteria",
-             "cross_validation")
+             "cross_validation", "latent_states")
 
 
 def result_from_dict(doc: Mapping[str, Any], *, network: Network | None = None, source: str = "<result>") -> FitResult:
