@@ -179,10 +179,10 @@ class FitResult:
     def summary(self) -> str:
         """A few plain lines for the terminal."""
         lines = [
-            f"method {self.method} ({self.objective.upper()}), {self.n_rows:g} records, {self.n_distinct} distinct rows",
-            f"log-likelihood {self.log_likelihood:.6f}"
-            + (f", log-prior {self.log_prior:.6f}" if self.objective == "map" else "")
-            + (f", penalty {self.penalty:.6f}" if self.penalty else ""),
+            f"method {self.method} ({self.objective.upper()}), {self.n_rows:,g} records, {self.n_distinct:,} distinct rows",
+            f"log-likelihood {self.log_likelihood:,.2f}"
+            + (f", log-prior {self.log_prior:,.2f}" if self.objective == "map" else "")
+            + (f", penalty {self.penalty:,.2f}" if self.penalty else ""),
             f"gradient norm {self.gradient_norm:.3e} (records), iterations {self.iterations}, "
             + ("converged" if self.converged else f"NOT converged ({self.stop_reason})"),
         ]
