@@ -325,11 +325,12 @@ SchedulerOpt = Annotated[Optional[str], typer.Option(
 
 def read_inputs(network: Path, data: Path, *, missing, count_column, ignore_columns, engine: str = "pandas",
                 scheduler: Optional[str] = None):
-    """Network and coded data, as every data-reading command needs them."""
+    """Network and coded data, as every data-reading command needs them (``network``: a path, or
+    a :class:`~adfit.network.Network` already read, e.g. the one embedded in a result file)."""
     from .engines import load_coded
-    from .network import load_network
+    from .network import Network, load_network
 
-    net = load_network(network)
+    net = network if isinstance(network, Network) else load_network(network)
     coded = load_coded(net, data, engine=engine, scheduler=scheduler, missing=missing,
                        count_column=count_column, ignore_columns=split_list(ignore_columns))
     return net, coded
@@ -563,12 +564,54 @@ def _phase(quiet: bool, description: str):
         yield
 
 
+# ------------------------------------------------------------------ the network argument, optional with a result
+NetworkDataArg = Annotated[list[Path], typer.Argument(
+    metavar="[network] data", show_default=False,
+    help="The network file (TOML) and the records (CSV or Parquet file, folder or glob pattern). With --params "
+         "the network file may be left out: the network embedded in the result file is used.")]
+
+
+def network_and_data(inputs: list[Path], params: Optional[Path], command: str) -> tuple[Optional[Path], Path]:
+    """``[NETWORK] DATA`` of ``score`` and ``impute``: ``(network path or None, data path)``.
+
+    Two paths are the network and the data, as always. One path is the data file when a result
+    file (``--params``) is given, whose embedded network is then used; without ``--params``, or
+    when the one path is a ``.toml`` file (a network, not records), it is refused in one line."""
+    from .errors import OptionError
+
+    if len(inputs) == 2:
+        return InputFile("network file")(inputs[0]), inputs[1]
+    if len(inputs) > 2:
+        raise OptionError(f"adfit {command} takes at most two paths, [NETWORK] DATA, got {len(inputs)} "
+                          f"({', '.join(map(str, inputs))}); quote a glob pattern so that the shell does not expand it")
+    only = inputs[0] if inputs else None
+    if params is None:
+        raise OptionError(f"adfit {command}: give the network file and the data file, or the data file with "
+                          f"--params RESULT.json (its embedded network is used)")
+    if only is not None and only.suffix.lower() == ".toml":
+        raise OptionError(f"adfit {command}: {only} looks like a network file and no data file is given; "
+                          f"give the records after it (with --params the network file may be left out)")
+    return None, only
+
+
+def network_of(network: Optional[Path], params: Optional[Path]):
+    """``(network, result or None)``: the network file when given (a result must match it, as
+    ever), else the network embedded in ``--params``."""
+    from .network import load_network
+    from .result import load_result
+
+    if network is not None:
+        net = load_network(network)
+        return net, (load_result(params, net) if params is not None else None)
+    res = load_result(params)
+    return res.network, res
+
+
 @app.command("score")
 def score_command(
-    network: NetworkArg,
-    data: DataArg,
+    inputs: NetworkDataArg,
     params: Annotated[Optional[Path], typer.Option(
-        "--params", help="Result file whose CPTs are scored (from fit or em); not needed when every CPT of the network is fixed.",
+        "--params", help="Result file whose CPTs are scored (from fit or em; its embedded network is used when no network file is given); not needed when every CPT of the network is fixed.",
         parser=InputFile("result file (--params)"))] = None,
     missing: MissingOpt = None,
     count_column: CountOpt = None,
@@ -586,6 +629,8 @@ def score_command(
     say that the CPTs are right.
 
     Example: adfit score gearbox.toml new_records.csv --params fit.json
+
+    Example: adfit score new_records.csv --params fit.json   (the network embedded in fit.json)
     """
     import json
     import math
@@ -593,9 +638,11 @@ def score_command(
     from .likelihood import Likelihood, check_possible, score
 
     with user_errors():
-        net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
+        network, data = network_and_data(inputs, params, "score")
+        net, res = network_of(network, params)
+        net, coded = read_inputs(net, data, missing=missing, count_column=count_column,
                                  ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
-        probs = cpts_of(net, params)
+        probs = res.probs if res is not None else cpts_of(net, None)
         lik = Likelihood(net, coded)  # one plan and one compiled program for the score and the check
         s = score(net, coded, probs, likelihood=lik)
         if not math.isfinite(s["log_likelihood"]):
@@ -659,8 +706,7 @@ ParamsOpt = Annotated[Path, typer.Option("--params", help="Result file whose CPT
 
 @app.command("impute")
 def impute_command(
-    network: NetworkArg,
-    data: DataArg,
+    inputs: NetworkDataArg,
     params: ParamsOpt,
     out: Annotated[Path, typer.Option("--out", help="CSV file to write: the input records, in order, with added columns.")],
     draws: Annotated[int, typer.Option("--draws", help="Joint posterior draws per record (multiple imputation; 0: none).")] = 0,
@@ -688,18 +734,18 @@ def impute_command(
     rest on the network and on MAR; imputed values are not observations.
 
     Example: adfit impute gearbox.toml inspections.csv --params fit.json --out imputed.csv --draws 5
+
+    Example: adfit impute inspections.csv --params fit.json --out imputed.csv   (the network embedded in fit.json)
     """
     from .impute import format_summary, impute_file
-    from .network import load_network
-    from .result import load_result
 
     with user_errors():
         from .io import check_output_paths
 
+        network, data = network_and_data(inputs, params, "impute")
         check_seed(seed)
         check_output_paths({"out": out}, {"network file": network, "data file": data, "params file": params})
-        net = load_network(network)
-        res = load_result(params, net)
+        net, res = network_of(network, params)
         imp, _ = impute_file(net, res.probs, data, out, draws=draws, seed=seed,
                              nodes=split_list(nodes) or None, missing=missing, count_column=count_column,
                              ignore_columns=split_list(ignore_columns), defuse=defuse)
@@ -729,7 +775,9 @@ def cpts_of(net, params):
 
 @app.command("query")
 def query_command(
-    network: NetworkArg,
+    network: Annotated[Optional[Path], typer.Argument(
+        help="Network file (TOML); may be left out with --params (the result's embedded network is used).",
+        parser=InputFile("network file"), show_default=False)] = None,
     params: OptParamsOpt = None,
     given: Annotated[Optional[list[str]], typer.Option(
         "--given", help="Evidence NODE=STATE (repeat for several).")] = None,
@@ -760,10 +808,15 @@ def query_command(
     from .result import load_result
 
     with user_errors():
-        net = load_network(network)
+        from .errors import OptionError
+
+        if network is None and params is None:
+            raise OptionError("adfit query: give the network file (every CPT fixed), or --params RESULT.json "
+                              "(its embedded network is used), or both")
+        net, res = network_of(network, params)
         from .explain import format_explanation, format_joint, joint_posterior, most_probable
 
-        probs = cpts_of(net, params)
+        probs = res.probs if res is not None else cpts_of(net, None)
         ev = parse_assignments(given or [])
         q = query(net, probs, ev, target or None)
         doc = q.to_dict()
