@@ -201,9 +201,12 @@ def test_page_parses_and_needs_nothing_from_outside(case):
 def test_every_section_present_in_order(case):
     tree = case["tree"]
     found = [n.attrs["id"] for n in tree.find_all("section")]
-    assert found == [sid for sid, _ in SECTIONS]
+    # "Further sections" only when the result holds sections the report does not interpret
+    assert found == [sid for sid, _ in SECTIONS if sid != "other"]
+    assert "Further sections" not in case["text"]  # no hollow heading, in the page or its contents list
     for sid, title in SECTIONS:
-        assert section(tree, sid).find("h2").text() == title
+        if sid != "other":
+            assert section(tree, sid).find("h2").text() == title
     # the full case has every optional section, so none says it is absent
     absent = [p.text() for p in tree.find_all("p", cls="absent")]
     assert absent == [], absent
@@ -450,7 +453,8 @@ def test_absent_sections_say_what_to_run(case):
         for k in ("se", "interval", "se_status", "missing_information"):
             sec.pop(k, None)
     tree = parse(render_report(doc))
-    absent = {sid: " ".join(p.text() for p in section(tree, sid).find_all("p", cls="absent")) for sid, _ in SECTIONS}
+    absent = {sid: " ".join(p.text() for p in section(tree, sid).find_all("p", cls="absent")) for sid, _ in SECTIONS
+              if sid != "other"}
     assert "No EM cross-check was run: use adfit fit --em-check." in absent["em-check"]
     assert "--compare-complete-case" in absent["gaps"] and "--data" in absent["gaps"]
     assert "--folds" in absent["assessment"] and "No information criteria" in absent["assessment"]
@@ -637,7 +641,8 @@ def test_report_sets_unconverged_starts_apart_and_explains_the_new_verdicts(case
     doc["em_check"]["verdict"] = "em-own-start-not-converged"
     conv = section(parse(render_report(doc)), "convergence")
     text = conv.text()
-    assert "1 of 2 starts converged" in text and "Did not converge (not counted as optima): start 1" in text
+    # starts numbered from 1 on the page (the result numbers them from 0)
+    assert "1 of 2 starts converged" in text and "Did not converge (not counted as optima): start 2" in text
     cells = [td.text() for td in conv.find("table", cls="starts").find("tbody").find_all("tr")[1].find_all("td")]
     assert "none (did not converge)" in cells
     for verdict, meaning in VERDICT_MEANING.items():
@@ -647,3 +652,59 @@ def test_report_sets_unconverged_starts_apart_and_explains_the_new_verdicts(case
     doc["em_check"]["verdict"] = "not-converged"  # a result of an earlier version
     p = section(parse(render_report(doc)), "em-check").find("p", cls="verdict").text()
     assert "earlier version" in p
+
+
+# ============================================================================ practitioner's page
+def test_top_line_counts_every_error_bar_flag(case):
+    from adfit.report import error_bar_flags
+
+    doc = copy.deepcopy(case["doc"])
+    unc = doc["uncertainty"]
+    unc["directions"] = [{"kind": "weak", "relative_curvature": 1e-3, "rows": []}] * 3
+    unc["wide_entries"] = [{"node": "item1", "row": 0, "parents": {}, "state": "+", "width": 0.7,
+                            "status": "interior"}] * 12
+    unc["not_identified"] = unc["no_data_rows"] = unc["boundary_entries"] = unc["prior_only_rows"] = []
+    glance = parse(render_report(doc)).find("p", cls="glance").text()
+    assert "3 weakly identified direction(s)" in glance and "12 interval(s) wider than 0.5" in glance
+    assert "identified, no weak" not in glance  # never "all is well" beside flags
+    unc["directions"], unc["wide_entries"] = [], []
+    assert error_bar_flags(unc) == "every free entry identified, no weak direction or wide interval"
+    # a not-identified cell's wide interval is counted as not identified, not as wide
+    unc["not_identified"] = [{"node": "item1", "row": 0, "parents": {}}]
+    unc["wide_entries"] = [{"status": "not identified", "width": 1.0}]
+    assert error_bar_flags(unc) == "1 CPT row(s) not identified"
+
+
+def test_network_title_names_the_page_and_settings_are_folded(case, tmp_path):
+    doc = copy.deepcopy(case["doc"])
+    doc["network"]["network"] = {"title": "Role conflict survey"}
+    tree = parse(render_report(doc, source="fit.json"))
+    assert tree.find("h1").text() == "Role conflict survey" and tree.find("title").text() == "Role conflict survey"
+    assert parse(render_report(doc, title="Given")).find("h1").text() == "Given"  # --title wins
+    # internal settings only inside a folded <details> element
+    fitted = section(tree, "fitted")
+    det = fitted.find("details", cls="settings")
+    assert det is not None and "tol" in det.text()
+    assert not [h for h in fitted.find_all("h3") if h.text() == "Settings"]
+
+
+def test_latent_caution_only_with_a_latent_node(case):
+    from adfit.report import LATENT_CAUTION
+
+    assert LATENT_CAUTION in section(case["tree"], "cautions").text()  # the case has latent nodes
+    doc = copy.deepcopy(case["doc"])
+    for sec in (doc["network"]["nodes"], doc["nodes"]):
+        sec.pop("audit")
+        sec["cls"]["latent"] = False
+    for key in ("restarts", "best_start", "em_check", "complete_case", "cross_validation"):
+        doc.pop(key, None)  # sections recorded for the latent fit
+    doc["uncertainty"]["latent"] = {}
+    tree = parse(render_report(doc))
+    assert LATENT_CAUTION not in section(tree, "cautions").text()
+    assert "relabel" not in tree.text()
+
+
+def test_starts_are_numbered_from_one(case):
+    rows = section(case["tree"], "convergence").find("table", cls="starts").find("tbody").find_all("tr")
+    firsts = [tr.find_all("td")[0].text().split()[0] for tr in rows]
+    assert firsts == [str(k + 1) for k in range(len(rows))]
