@@ -780,18 +780,32 @@ def query_command(
         parser=InputFile("network file"), show_default=False)] = None,
     params: OptParamsOpt = None,
     given: Annotated[Optional[list[str]], typer.Option(
-        "--given", help="Evidence NODE=STATE (repeat for several).")] = None,
+        "--given", help="Evidence NODE=STATE (repeat for several); soft evidence NODE=STATE:WEIGHT,STATE:WEIGHT (likelihood weights >= 0, unlisted states 0).")] = None,
     target: Annotated[Optional[list[str]], typer.Option(
         "--target", help="Node whose posterior is wanted (repeat; default: every node not given).")] = None,
     explain: Annotated[bool, Flag(
         "--explain", help="Also give the most probable joint state of every node not given, with its probability.")] = False,
     as_json: Annotated[bool, Flag("--json", help="Print the result as JSON (format adfit-query/1).")] = False,
+    batch: Annotated[Optional[Path], typer.Option(
+        "--batch", help="CSV (or Parquet) file of evidence, one query per row: a column per node given, cells "
+                        "STATE, STATE:WEIGHT,... or empty; answers written to --out.",
+        parser=InputFile("batch file (--batch)"))] = None,
+    out: Annotated[Optional[Path], typer.Option("--out", help="With --batch: the CSV file of answers to write.")] = None,
+    ignore_columns: Annotated[Optional[str], typer.Option(
+        "--ignore-columns", help="With --batch: comma-separated columns that are not evidence (ids...), carried to --out as they are.")] = None,
+    defuse: Annotated[bool, Flag(
+        "--defuse/--raw-cells", help="With --batch: text cells that start like a spreadsheet formula (=, +, -, @) get a "
+                                     "leading apostrophe (default); --raw-cells writes them as they are.")] = True,
 ) -> None:
     """Posterior of chosen nodes given evidence, and the probability of the evidence.
 
     Several --target nodes also give their joint distribution. --explain adds the most probable
-    explanation: the single most probable joint state of every node not given (by enumeration;
-    refused when the hidden nodes have too many joint states).
+    explanation: the single most probable joint state of every node not given, with its
+    probability (max-product elimination; refused when its largest table is too large).
+
+    Soft evidence, --given NODE=STATE:WEIGHT,STATE:WEIGHT, multiplies P(NODE = STATE) by the
+    weight (likelihood evidence: e.g. a sensor that reads "alarm" 4 times as often in state
+    worn as in good: --given wear=worn:4,good:1); states not listed get weight 0.
 
     Exact (variable elimination) under the CPTs of --params, or under the network's own CPTs
     when every one is fixed (an expert model, or one written by `adfit show --format toml`).
@@ -799,13 +813,18 @@ def query_command(
     Caution: the answer is only as good as the CPTs and the network; it supports, and does not
     replace, engineering or clinical judgement.
 
+    --batch FILE.csv answers one query per row (the row's cells are its evidence) and writes a CSV
+    to --out: the input columns, then NODE__p_STATE and NODE__mode per target, the joint of
+    several --targets (joint__p_A=a;B=b), with --explain NODE__explain and row__p_explanation,
+    and row__log_p_evidence.
+
     Example: adfit query gearbox.toml --params fit.json --given wear=heavy --given load=high --target failure
+
+    Example: adfit query --params fit.json --batch cases.csv --out answers.csv --target failure
     """
     import json
 
-    from .impute import parse_assignments, query
-    from .network import load_network
-    from .result import load_result
+    from .impute import parse_evidence, query
 
     with user_errors():
         from .errors import OptionError
@@ -813,20 +832,44 @@ def query_command(
         if network is None and params is None:
             raise OptionError("adfit query: give the network file (every CPT fixed), or --params RESULT.json "
                               "(its embedded network is used), or both")
+        if batch is None:
+            for name, value in (("--out", out), ("--ignore-columns", ignore_columns)):
+                if value is not None:
+                    raise OptionError(f"{name} goes with --batch FILE.csv (many queries); a single query prints its answer")
+        else:
+            if given:
+                raise OptionError("--batch reads the evidence from the file's columns; leave out --given "
+                                  "(add a column for a node given in every row)")
+            if as_json:
+                raise OptionError("--batch writes its answers as CSV to --out; leave out --json")
+            if out is None:
+                raise OptionError("--batch needs --out ANSWERS.csv, the file of answers to write")
+            from .io import check_output_paths
+
+            check_output_paths({"out": out}, {"batch file": batch, "network file": network, "params file": params})
         net, res = network_of(network, params)
         from .explain import format_explanation, format_joint, joint_posterior, most_probable
 
         probs = res.probs if res is not None else cpts_of(net, None)
-        ev = parse_assignments(given or [])
-        q = query(net, probs, ev, target or None)
+        if batch is not None:
+            from .batch import query_file
+
+            table = query_file(net, probs, batch, out, targets=target or None, explain=explain,
+                               ignore_columns=split_list(ignore_columns), defuse=defuse)
+            typer.echo(f"answered {len(table)} queries from {batch}")
+            typer.echo(f"wrote {out}")
+            typer.echo(CAUTION)
+            return
+        ev, soft = parse_evidence(net, given or [])
+        q = query(net, probs, ev, target or None, soft=soft)
         doc = q.to_dict()
         texts = [q.format_text()]
         if target and len(q.posteriors) > 1:
-            doc["joint"] = joint_posterior(net, probs, ev, list(q.posteriors))
-            texts.append(format_joint(doc["joint"], ev))
+            doc["joint"] = joint_posterior(net, probs, ev, list(q.posteriors), soft)
+            texts.append(format_joint(doc["joint"], ev, soft=soft))
         if explain:
-            doc["explanation"] = most_probable(net, probs, ev)
-            texts.append(format_explanation(doc["explanation"], ev))
+            doc["explanation"] = most_probable(net, probs, ev, soft)
+            texts.append(format_explanation(doc["explanation"], ev, soft=soft))
         if as_json:
             typer.echo(json.dumps(doc, indent=2))
         else:

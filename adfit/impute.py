@@ -85,13 +85,17 @@ def _blocks(codes: np.ndarray, block: int):
 
 
 def row_posteriors(network: Network, probs: Mapping[str, np.ndarray], codes: np.ndarray, *,
-                   block: int | None = None) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+                   block: int | None = None, weights: Mapping[str, np.ndarray] | None = None
+                   ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
     """Exact posterior marginal of every node for each coded row.
 
     Args:
         codes: int array ``(rows, n_nodes)`` in network order, ``-1`` for a hidden cell.
         block: rows per posterior pass (default: from the number of rows, at most
             :data:`BLOCK_ROWS`); every pass has the same shape, so one compiled program serves.
+        weights: likelihood (soft) evidence ``{node: (rows, card)}``, weights >= 0 multiplying
+            the node's evidence indicator (:func:`adfit.likelihood.posterior_marginals`); the
+            log-probability is then ``log sum_x w(x) P(x, observed cells)``.
 
     Returns:
         ``(log P(observed cells) per row, {node: (rows, card)})``. An observed cell's row is the
@@ -107,7 +111,13 @@ def row_posteriors(network: Network, probs: Mapping[str, np.ndarray], codes: np.
     post = {name: np.empty((n, card)) for name, card in zip(network.names, network.cards)}
     with np.errstate(invalid="ignore", divide="ignore"):
         for start, part, k in _blocks(codes, block):
-            l, p = posterior_marginals(network, probs, part)
+            wpart = None
+            if weights:
+                wpart = {}
+                for name, w in weights.items():
+                    w = np.asarray(w, dtype=np.float64)[start:start + k]
+                    wpart[name] = np.concatenate([w, np.ones((block - k, w.shape[1]))]) if k < block else w
+            l, p = posterior_marginals(network, probs, part, weights=wpart)
             ll[start:start + k] = l[:k]
             for name in network.names:
                 post[name][start:start + k] = p[name][:k]
@@ -423,20 +433,28 @@ class QueryResult:
     given: Mapping[str, str]
     log_p_evidence: float
     posteriors: Mapping[str, Mapping[str, float]]
+    soft: Mapping[str, Mapping[str, float]] = field(default_factory=dict)
 
     @property
     def p_evidence(self) -> float:
         return math.exp(self.log_p_evidence)
 
     def to_dict(self) -> dict[str, Any]:
-        return {"format": "adfit-query/1", "given": dict(self.given), "p_evidence": self.p_evidence,
-                "log_p_evidence": self.log_p_evidence,
-                "posteriors": {k: dict(v) for k, v in self.posteriors.items()}}
+        doc = {"format": "adfit-query/1", "given": dict(self.given), "p_evidence": self.p_evidence,
+               "log_p_evidence": self.log_p_evidence,
+               "posteriors": {k: dict(v) for k, v in self.posteriors.items()}}
+        if self.soft:
+            doc["soft_evidence"] = {k: dict(v) for k, v in self.soft.items()}
+        return doc
 
     def format_text(self, digits: int = 4) -> str:
-        ev = ", ".join(f"{k}={v}" for k, v in self.given.items())
-        lines = [f"P({ev}) = {self.p_evidence:.{digits}g}  (log {self.log_p_evidence:.6f})" if ev
-                 else "no evidence: prior marginals"]
+        ev = evidence_text(self.given, self.soft)
+        if self.soft:
+            head = (f"likelihood of the evidence {ev}: {self.p_evidence:.{digits}g}  (log {self.log_p_evidence:.6f}; "
+                    f"sum of P(states, hard evidence) x weights, so it scales with the weights)")
+        else:
+            head = f"P({ev}) = {self.p_evidence:.{digits}g}  (log {self.log_p_evidence:.6f})"
+        lines = [head if ev else "no evidence: prior marginals"]
         for node, dist in self.posteriors.items():
             lines.append("")
             lines.append(f"P({node}" + (f" | {ev})" if ev else ")"))
@@ -444,6 +462,86 @@ class QueryResult:
             for s, p in dist.items():
                 lines.append(f"  {s:<{width}}  {p:.{digits}f}")
         return "\n".join(lines)
+
+
+def evidence_text(given: Mapping[str, str], soft: Mapping[str, Mapping[str, float]] | None = None) -> str:
+    """``wear=heavy, load=high:2,low:1`` (hard evidence, then soft evidence with its weights)."""
+    parts = [f"{k}={v}" for k, v in given.items()]
+    parts += [f"{k}=" + ",".join(f"{s}:{w:g}" for s, w in ws.items() if w > 0) for k, ws in (soft or {}).items()]
+    return ", ".join(parts)
+
+
+def soft_weights(network: Network, node: str, text: str, *, option: str = "--given") -> dict[str, float]:
+    """Parse soft (likelihood) evidence ``STATE:WEIGHT,STATE:WEIGHT`` on ``node``.
+
+    Returns ``{state: weight}`` over every state of the node in declared order; a state not
+    listed gets weight 0. Each weight is a finite number >= 0, not all 0; a state listed twice,
+    an unknown state or a malformed item is an :class:`OptionError` (one line)."""
+    states = network.node(node).states
+    out = {s: 0.0 for s in states}
+    seen: set[str] = set()
+    for item in text.split(","):
+        item = item.strip()
+        if ":" not in item:
+            raise OptionError(f"{option} {node}={text}: soft evidence is STATE:WEIGHT,STATE:WEIGHT "
+                              f"(e.g. {node}={states[0]}:0.8,{states[-1]}:0.2); {item!r} has no ':WEIGHT'")
+        state, w = (x.strip() for x in item.rsplit(":", 1))
+        if state not in out:
+            raise OptionError(f"{option} {node}={text}: node {node!r} has no state {state!r}; "
+                              f"its states are: {', '.join(states)}")
+        if state in seen:
+            raise OptionError(f"{option} {node}={text}: state {state!r} is listed twice; give it once")
+        seen.add(state)
+        try:
+            x = float(w)
+        except ValueError:
+            x = float("nan")
+        if not (math.isfinite(x) and x >= 0):
+            raise OptionError(f"{option} {node}={text}: the weight of {state!r} is {w!r}; "
+                              f"give a finite number >= 0")
+        out[state] = x
+    if not any(v > 0 for v in out.values()):
+        raise OptionError(f"{option} {node}={text}: every weight is 0 (evidence of probability 0); "
+                          f"give at least one state a weight above 0")
+    return out
+
+
+def parse_evidence(network: Network, items: Sequence[str], *, option: str = "--given"
+                   ) -> tuple[dict[str, str], dict[str, dict[str, float]]]:
+    """``--given`` items as ``(hard, soft)``: ``NODE=STATE`` is hard evidence; ``NODE=STATE:W,STATE:W``
+    is soft (likelihood) evidence, weights >= 0 that multiply P(NODE = STATE) (Pearl's virtual
+    evidence; states not listed get weight 0). A value that is a state of the node is always
+    read as that state (a state may contain ':' or ',')."""
+    hard: dict[str, str] = {}
+    soft: dict[str, dict[str, float]] = {}
+    for item in items:
+        if "=" not in item:
+            raise OptionError(f"{option} {item!r}: write NODE=STATE (or NODE=STATE:WEIGHT,STATE:WEIGHT), "
+                              f"e.g. {option} wear=heavy")
+        node, value = (s.strip() for s in item.split("=", 1))
+        if not node or not value:
+            raise OptionError(f"{option} {item!r}: write NODE=STATE with both parts, e.g. {option} wear=heavy")
+        if node not in network:
+            raise OptionError(f"{option} {node}={value}: {node!r} is not a node of the network; "
+                              f"the nodes are: {', '.join(network.names)}")
+        if node in hard and hard[node] == value:
+            continue
+        if node in hard or node in soft:
+            raise OptionError(f"{option} gives node {node!r} twice ({item!r} and an earlier one); give it once")
+        if value in network.node(node).states or ":" not in value:
+            hard[node] = value  # an unknown state is named by query()
+        else:
+            soft[node] = soft_weights(network, node, value, option=option)
+    return hard, soft
+
+
+def soft_arrays(network: Network, soft: Mapping[str, Mapping[str, float]], rows: int = 1) -> dict[str, np.ndarray]:
+    """Soft evidence as weight arrays ``{node: (rows, card)}`` (weights as given, in declared state order)."""
+    out = {}
+    for node, ws in soft.items():
+        w = np.array([float(ws.get(s, 0.0)) for s in network.node(node).states])
+        out[node] = np.tile(w, (rows, 1))
+    return out
 
 
 def parse_assignments(items: Sequence[str], *, option: str = "--given") -> dict[str, str]:
@@ -462,14 +560,23 @@ def parse_assignments(items: Sequence[str], *, option: str = "--given") -> dict[
 
 
 def query(network: Network, probs: Mapping[str, np.ndarray], given: Mapping[str, str] | None = None,
-          targets: Sequence[str] | None = None) -> QueryResult:
+          targets: Sequence[str] | None = None, *, soft: Mapping[str, Mapping[str, float]] | None = None
+          ) -> QueryResult:
     """Exact posterior of ``targets`` (default: every node not given) given the evidence ``given``.
+
+    ``soft``: likelihood evidence ``{node: {state: weight}}`` (weights >= 0, not all 0; a state
+    left out has weight 0), multiplied into P(node = state) (Pearl 1988, virtual evidence). A
+    node with soft evidence may be a target (its posterior given all the evidence); with soft
+    evidence ``log_p_evidence`` is ``log sum w(x) P(x, hard evidence)``, which scales with the
+    weights.
 
     Raises:
         OptionError: an unknown node or state, or a target that is also given (one line naming it).
         ImpossibleDataError: the evidence has probability 0 under the CPTs.
     """
     given = dict(given or {})
+    soft = {k: dict(v) for k, v in (soft or {}).items()}
+    check_soft(network, given, soft)
     codes = np.full((1, len(network)), HIDDEN, dtype=np.int32)
     for node, state in given.items():
         if node not in network:
@@ -481,7 +588,7 @@ def query(network: Network, probs: Mapping[str, np.ndarray], given: Mapping[str,
                               f"its states are: {', '.join(states)}")
         codes[0, network.index(node)] = states.index(state)
     if targets is None or len(targets) == 0:
-        tg = [v for v in network.names if v not in given]
+        tg = [v for v in network.names if v not in given and v not in soft]
         if not tg:
             raise OptionError("every node is given as evidence; leave at least one out or name a --target")
     else:
@@ -493,10 +600,30 @@ def query(network: Network, probs: Mapping[str, np.ndarray], given: Mapping[str,
             if v in given:
                 raise OptionError(f"--target {v}: the node is also given (--given {v}={given[v]}); "
                                   f"its posterior is that state; drop one of the two")
-    ll, post = row_posteriors(network, probs, codes)
+    ll, post = row_posteriors(network, probs, codes, weights=soft_arrays(network, soft) or None)
     if not math.isfinite(ll[0]):
-        ev = ", ".join(f"{k}={v}" for k, v in given.items())
+        ev = evidence_text(given, soft)
         raise ImpossibleDataError(f"the evidence {ev} has probability 0 under the CPTs; no posterior exists; "
                                   f"check the evidence and the fixed or fitted tables")
     posteriors = {v: {s: float(p) for s, p in zip(network.node(v).states, post[v][0])} for v in tg}
-    return QueryResult(given, float(ll[0]), posteriors)
+    return QueryResult(given, float(ll[0]), posteriors, soft)
+
+
+def check_soft(network: Network, given: Mapping[str, str], soft: Mapping[str, Mapping[str, float]],
+               option: str = "--given") -> None:
+    """Soft evidence on known nodes and states, weights finite >= 0 and not all 0, no node both hard and soft."""
+    for node, ws in soft.items():
+        if node not in network:
+            raise OptionError(f"{option} {node}=...: {node!r} is not a node of the network; "
+                              f"the nodes are: {', '.join(network.names)}")
+        if node in given:
+            raise OptionError(f"{option} gives node {node!r} twice (a state and weights); give it once")
+        states = network.node(node).states
+        for s_, w in ws.items():
+            if s_ not in states:
+                raise OptionError(f"{option} {node}=...: node {node!r} has no state {s_!r}; "
+                                  f"its states are: {', '.join(states)}")
+            if not (math.isfinite(float(w)) and float(w) >= 0):
+                raise OptionError(f"{option} {node}=...: the weight of {s_!r} is {w!r}; give a finite number >= 0")
+        if not any(float(w) > 0 for w in ws.values()):
+            raise OptionError(f"{option} {node}=...: every weight is 0; give at least one state a weight above 0")
