@@ -318,7 +318,8 @@ def _em_side(em: EMResult, jax_score: Mapping[str, float], delta: float, where: 
         "objective_value": em.objective_value,
         "gradient_norm": jax_score["gradient_norm"],
         "em_gradient_norm": em.gradient_norm,
-        "jax_log_likelihood": jax_score["log_likelihood"],
+        # EM's CPTs scored again by the gradient fit's own inference (an independent recomputation)
+        "log_likelihood_recomputed": jax_score["log_likelihood"],
         "iterations": em.iterations,
         "converged": em.converged,
         "rate": None if math.isnan(em.rate) else em.rate,

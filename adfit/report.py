@@ -51,7 +51,7 @@ import numpy as np
 from .errors import AdfitError, ResultError
 from .io import atomic_write
 from .network import Network
-from .result import FORMAT, FitResult, result_from_dict
+from .result import FORMAT, FitResult, result_from_dict, upgrade_keys
 
 __all__ = ["render_report", "write_report", "load_result_doc", "network_figure", "convergence_figure",
            "gaps_figure", "complete_case_figure", "network_layers", "SECTIONS", "error_bar_flags", "LATENT_CAUTION", "PROB_DECIMALS",
@@ -1577,6 +1577,7 @@ def render_report(result: Mapping[str, Any] | FitResult | str | Path, *, gaps: A
         doc = result
     src = source or "<result>"
     res = result_from_dict(doc, source=src)
+    doc = upgrade_keys(doc)  # keys of older result files under their current names
     if gaps is not None and hasattr(gaps, "to_dict"):
         gaps = gaps.to_dict()
     other = _section_other(doc)

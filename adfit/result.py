@@ -376,6 +376,31 @@ _SECTIONS = ("restarts", "prior", "em", "em_check", "uncertainty", "complete_cas
              "cross_validation")
 
 
+#: keys renamed since results were first written: (section, old key, new key); read either way
+RENAMED_KEYS: tuple[tuple[tuple[str, ...], str, str], ...] = (
+    (("em_check", "em_from_fit"), "jax_log_likelihood", "log_likelihood_recomputed"),
+    (("em_check", "em_own_start"), "jax_log_likelihood", "log_likelihood_recomputed"),
+)
+
+
+def upgrade_keys(doc: Mapping[str, Any]) -> Mapping[str, Any]:
+    """``doc`` with the keys of older result files under their current names (a copy where
+    something was renamed; ``doc`` itself otherwise)."""
+    out: Any = doc
+    for path, old, new in RENAMED_KEYS:
+        sec: Any = out
+        for k in path:
+            sec = sec.get(k) if isinstance(sec, Mapping) else None
+        if isinstance(sec, Mapping) and old in sec and new not in sec:
+            if out is doc:
+                out = json.loads(json.dumps(doc))
+            sec = out
+            for k in path:
+                sec = sec[k]
+            sec[new] = sec.pop(old)
+    return out
+
+
 def result_from_dict(doc: Mapping[str, Any], *, network: Network | None = None, source: str = "<result>") -> FitResult:
     """Rebuild a :class:`FitResult` from its JSON form.
 
@@ -383,6 +408,7 @@ def result_from_dict(doc: Mapping[str, Any], *, network: Network | None = None, 
     otherwise the network embedded in the file is used.
     """
     validate_result_doc(doc, source)
+    doc = upgrade_keys(doc)
     nodes = doc["nodes"]
     if network is None:
         if "network" not in doc:

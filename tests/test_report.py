@@ -579,6 +579,16 @@ def _chromium() -> str | None:
     return None
 
 
+# Errors are caught from the first moment the page is parsed (a listener in <head>, capturing, so
+# that a resource that fails to load counts too); after the load event the page writes what it
+# saw into a <div> that --dump-dom prints.
+TRAP = """<script>
+window.__errors = [];
+window.addEventListener('error', function (e) {
+  window.__errors.push(e.message || ('failed to load ' + ((e.target && (e.target.src || e.target.href)) || '?')));
+}, true);
+</script>"""
+
 CHECK = """<script>
 window.addEventListener('load', function () {
   var bad = 0, n = 0;
@@ -586,16 +596,22 @@ window.addEventListener('load', function () {
     n++; var im = document.images[i];
     if (!im.complete || im.naturalWidth === 0) bad++;
   }
+  var heads = [];
+  document.querySelectorAll('section').forEach(function (s) {
+    var h = s.querySelector('h2');
+    if (h && h.getBoundingClientRect().height > 0) heads.push(s.id);
+  });
   var out = document.createElement('div');
   out.id = 'render-check';
-  out.textContent = 'images=' + n + ' broken=' + bad + ' sections=' + document.querySelectorAll('section').length
-                    + ' width=' + document.documentElement.scrollWidth;
+  out.textContent = 'images=' + n + ' broken=' + bad + ' sections=' + heads.join(',')
+                    + ' width=' + document.documentElement.scrollWidth
+                    + ' errors=' + window.__errors.length + ' [' + window.__errors.join(' | ') + ']';
   document.body.appendChild(out);
 });
 </script>"""
 
 
-@pytest.mark.skipif(_chromium() is None, reason="no Chromium installed")
+@pytest.mark.skipif(_chromium() is None, reason="no Chromium installed (.ci/run installs it as root)")
 def test_renders_in_headless_chromium(case, tmp_path):
     from PIL import Image
 
@@ -604,15 +620,23 @@ def test_renders_in_headless_chromium(case, tmp_path):
              "--disable-component-update", "--disable-sync", f"--user-data-dir={tmp_path / 'profile'}",
              "--window-size=1200,2000"]
     checked = tmp_path / "checked.html"
-    checked.write_text(case["text"].replace("</body>", CHECK + "</body>"), encoding="utf-8")
+    page = case["text"].replace("<head>", "<head>" + TRAP, 1).replace("</body>", CHECK + "</body>")
+    checked.write_text(page, encoding="utf-8")
     dom = subprocess.run([exe, *flags, "--virtual-time-budget=5000", "--dump-dom", checked.as_uri()],
                          capture_output=True, text=True, timeout=120)
     assert dom.returncode == 0, dom.stderr[-2000:]
-    m = re.search(r"images=(\d+) broken=(\d+) sections=(\d+) width=(\d+)", dom.stdout)
+    m = re.search(r"images=(\d+) broken=(\d+) sections=([\w,-]*) width=(\d+) errors=(\d+) \[(.*?)\]", dom.stdout)
     assert m, dom.stdout[-500:]
-    images, broken, sections, width = map(int, m.groups())
-    assert (images, broken, sections) == (4, 0, len(SECTIONS))
+    images, broken = int(m.group(1)), int(m.group(2))
+    shown, width, n_errors = m.group(3).split(","), int(m.group(4)), int(m.group(5))
+    assert n_errors == 0, m.group(6)  # no script error and no resource that failed to load
+    assert (images, broken) == (4, 0)
+    # every section of the page is laid out with a visible heading, in order
+    assert shown == [sid for sid, _ in SECTIONS if sid != "other"]
     assert width <= 1200  # nothing wider than the window: no sideways scrolling on a laptop
+    # the key content is in the DOM the browser built: the estimates, the verdict, the cautions
+    assert 'class="glance"' in dom.stdout and 'class="verdict"' in dom.stdout and "cpt-table" in dom.stdout
+    assert "missing at random (MAR)" in dom.stdout
     shot = tmp_path / "page.png"
     r = subprocess.run([exe, *flags, f"--screenshot={shot}", case["html"].as_uri()], capture_output=True,
                        text=True, timeout=120)
@@ -621,6 +645,13 @@ def test_renders_in_headless_chromium(case, tmp_path):
         assert im.size == (1200, 2000)
         px = np.asarray(im.convert("L"), dtype=float)
     assert (px < 128).mean() > 0.01  # text and figures drawn, not a blank page
+    # a page with a script error is caught (the check can fail)
+    broken_page = tmp_path / "broken.html"
+    broken_page.write_text(page.replace("</body>", "<script>undefined_function();</script></body>"), encoding="utf-8")
+    dom = subprocess.run([exe, *flags, "--virtual-time-budget=5000", "--dump-dom", broken_page.as_uri()],
+                         capture_output=True, text=True, timeout=120)
+    m = re.search(r"errors=(\d+)", dom.stdout)
+    assert m and int(m.group(1)) == 1, dom.stdout[-500:]
 
 
 def test_report_sets_unconverged_starts_apart_and_explains_the_new_verdicts(case):
