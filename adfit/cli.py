@@ -646,7 +646,7 @@ def score_command(
         lik = Likelihood(net, coded)  # one plan and one compiled program for the score and the check
         s = score(net, coded, probs, likelihood=lik)
         if not math.isfinite(s["log_likelihood"]):
-            check_possible(lik, probs)  # names the records of probability 0 (exit 1)
+            check_possible(lik, probs, given="the CPTs of --params")  # names the records of probability 0 (exit 1)
         out = {"log_likelihood": s["log_likelihood"], "gradient_norm": s["gradient_norm"],
                "n_rows": coded.n_rows, "n_distinct": coded.n_distinct,
                "log_likelihood_per_record": s["log_likelihood"] / coded.n_rows}

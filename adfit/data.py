@@ -42,6 +42,10 @@ from .network import Network
 from .rowkeys import KeyLayout, PackedRows, reduce_words
 
 HIDDEN = -1
+#: Most records a data set may count in all (its weights added up): 2**53, beyond which float64
+#: no longer counts whole records exactly (IEEE 754 binary64: 53-bit significand); a total near
+#: 1e308 would overflow to inf in the log-likelihood and the expected counts.
+MAX_TOTAL_COUNT = 2.0 ** 53
 UNKNOWN = -2  # transient code of a label that is not a state (never left in a CodedData)
 DEFAULT_MISSING: tuple[str, ...] = ("", "NA", "NaN", "?")
 PARQUET_SUFFIXES = (".parquet", ".pq")
@@ -354,7 +358,8 @@ def _count_problem(values: Any) -> tuple[np.ndarray, int | None, str]:
                s.map(lambda v: isinstance(v, (bool, np.bool_))).to_numpy(dtype=bool) if s.dtype == object else None)
     vals = pd.to_numeric(s.where(~is_bool, None) if is_bool is not None and is_bool.any() and s.dtype == object
                          else s, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
-    bad_mask = ~np.isfinite(vals) | (vals < 0)
+    with np.errstate(invalid="ignore"):
+        bad_mask = ~np.isfinite(vals) | (vals < 0) | (vals > MAX_TOTAL_COUNT)
     if is_bool is not None:
         bad_mask |= is_bool
     bad = np.flatnonzero(bad_mask)
@@ -364,6 +369,9 @@ def _count_problem(values: Any) -> tuple[np.ndarray, int | None, str]:
     v = s.iloc[i]
     if is_bool is not None and is_bool[i]:
         return vals, i, f"count {_show(bool(v))} is not a number; counts must be numbers >= 0"
+    if np.isfinite(vals[i]) and vals[i] > MAX_TOTAL_COUNT:
+        return vals, i, (f"count {_show(v)} is more than 2**53 = {MAX_TOTAL_COUNT:.4g} records, beyond which float64 "
+                         f"no longer counts them exactly; rescale the count column")
     return vals, i, (f"count {_show(v)} is not a non-negative number; counts must be numbers >= 0 "
                      f"(no gaps in the count column)")
 
@@ -521,6 +529,16 @@ def concat_rows(parts: Sequence[np.ndarray | PackedRows]) -> np.ndarray | Packed
     return np.concatenate(parts)
 
 
+def check_total_count(counts: np.ndarray, source: str) -> None:
+    """Refuse weights that add up to more than :data:`MAX_TOTAL_COUNT` (or overflow)."""
+    with np.errstate(over="ignore"):
+        total = float(np.sum(counts, dtype=np.float64))
+    if not total <= MAX_TOTAL_COUNT:
+        shown = "more than 1.8e308 (float64 overflows)" if not math.isfinite(total) else f"{total:.4g}"
+        raise DataError(f"{source}: the record counts add up to {shown}, more than 2**53 = {MAX_TOTAL_COUNT:.4g} "
+                        f"records, beyond which float64 no longer counts them exactly; rescale the count column")
+
+
 def coded_from_rows(network: Network, codes: np.ndarray | PackedRows, weights: np.ndarray | None, source: str, *,
                     keep_inverse: bool = True) -> CodedData:
     """Reduce per-record codes (a code matrix or packed rows), with optional weights, to a :class:`CodedData`.
@@ -536,6 +554,7 @@ def coded_from_rows(network: Network, codes: np.ndarray | PackedRows, weights: n
     distinct, counts, inverse = reduce_any(codes, weights, network.cards, inverse=keep_inverse)
     if distinct.shape[0] == 0:
         raise DataError(f"{source}: no records (the table is empty or all counts are 0)")
+    check_total_count(counts, source)
     return CodedData(distinct, counts, inverse if keep_inverse else None, source)
 
 
@@ -970,6 +989,7 @@ def validate_coded(network: Network, data: CodedData) -> CodedData:
         raise DataError(f"{src}: counts has shape {list(counts.shape)}, expected ({codes.shape[0]},)")
     if not np.all(np.isfinite(counts)) or np.any(counts <= 0):
         raise DataError(f"{src}: counts must be finite and > 0")
+    check_total_count(counts, src)
     if not _codes_in_range(network, codes):
         _raise_first_bad_code(network, codes, src)  # a column-by-column search, to name the first bad cell
     if codes.dtype != np.int32 or counts.dtype != np.float64:

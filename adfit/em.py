@@ -532,9 +532,12 @@ def _impossible_message(network: Network, data: CodedData, bad: np.ndarray) -> s
             if hits.size:
                 where = f"row {int(hits[0]) + 1}"
         shown.append(f"{where} ({cells})")
-    return (f"{data.source}: {bad.size} distinct record(s) have probability 0 under the fixed CPTs and the "
-            f"starting values (log-likelihood -inf), e.g. {'; '.join(shown)}; check the fixed tables, the "
-            f"starting values or the records")
+    # the fixed CPTs and impossible cells are named only when the network has them
+    under = (["the fixed CPTs"] if network.fixed_names else []) + (
+        ["the impossible cells"] if any(n.impossible for n in network.nodes if n.fixed is None) else []) + (
+        ["the starting values"] if network.free_names else [])
+    return (f"{data.source}: {bad.size} distinct record(s) have probability 0 under {' and '.join(under)} "
+            f"(log-likelihood -inf), e.g. {'; '.join(shown)}; check {', '.join(under)} or the records")
 
 
 # =============================================================================== EM

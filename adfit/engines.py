@@ -37,7 +37,7 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 import pandas as pd
 
-from .data import (HIDDEN, UNKNOWN, CodedData, LabelCoder, _count_problem, _csv_error, check_columns, code_columns,
+from .data import (HIDDEN, UNKNOWN, CodedData, LabelCoder, _count_problem, _csv_error, check_columns, check_total_count, code_columns,
                    check_parquet_types, common_columns, csv_header, csv_leading_empty_lines, encode_frame, first_error, iter_csv_batches, iter_parquet_batches,
                    key_layout, load_files, locator, parquet_names, resolve_inputs)
 from .rowkeys import PackedRows, reduce_words
@@ -165,6 +165,7 @@ def _finish(plan: ReadPlan, acc: "Accumulator") -> CodedData:
     codes, counts = acc.result()  # distinct, merged, in lexicographic order
     if codes.shape[0] == 0:
         raise DataError(f"{plan.source}: no records (the table is empty or all counts are 0)")
+    check_total_count(counts, plan.source)
     return CodedData(codes, counts, None, plan.source)
 
 
@@ -406,6 +407,7 @@ def reduce_duckdb(plan: ReadPlan, *, memory_limit: str | None = None, threads: i
     words, counts, _ = reduce_words(words, layout.spans, weights, inverse=False, runs=DUCKDB_ORDER)
     if words.shape[1] == 0:
         raise DataError(f"{plan.source}: no records (the table is empty or all counts are 0)")
+    check_total_count(counts, plan.source)
     return CodedData(layout.unpack(words), counts, None, plan.source)
 
 

@@ -1155,7 +1155,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         p0[name] = network.fixed_table(name)
     p0 = full_probs(network, p0)
     check_impossible_cells(network, coded)
-    check_possible(fitter.lik, p0)
+    check_possible(fitter.lik, p0, given="the starting CPTs (init)" if init is not None else "the first start")
     auto_starts = restarts is None
     latent = any(n.latent for n in network.nodes)
     batched = True

@@ -14,6 +14,7 @@ removes it once that process is gone.
 
 from __future__ import annotations
 
+import errno
 import fnmatch
 import json
 import os
@@ -118,12 +119,35 @@ def check_output_paths(outputs: Mapping[str, PathLike | None],
         if r in seen:
             raise OutputError(f"{name} and {option(seen[r], str(p))} name the same file; give each its own name")
         seen[r] = key
-        # 4. the folder it goes into
+        # 4. the folder it goes into: there, a folder, and a file can be created in it now
         parent = p.parent if str(p.parent) else Path(".")
         if not parent.is_dir():
+            if parent.exists() or parent.is_symlink():
+                raise OutputError(f"{name}: {parent} is a file, not a folder; give a path inside a folder")
             raise OutputError(f"{name}: the output folder {parent} does not exist; create it first")
         if not os.access(parent, os.W_OK | os.X_OK):
             raise OutputError(f"{name}: the output folder {parent} is not writable; choose another folder")
+        probe_folder(name, p)
+
+
+def probe_folder(name: str, path: PathLike) -> None:
+    """Create and remove the temporary file of ``path`` now, so that a folder where no file can be
+    created is refused before the work. ``os.access`` alone says yes to root in a read-only folder,
+    and nothing on a read-only file system or a full quota; this asks the file system itself."""
+    p = Path(path)
+    tmp = temp_name(p)
+    try:
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_NOFOLLOW", 0), 0o600)
+    except FileExistsError:  # this process is writing it already (or another write is under way)
+        return
+    except OSError as e:
+        raise OutputError(f"{name}: cannot create a file in the output folder {p.parent if str(p.parent) else '.'} "
+                          f"({e.strerror or e}); choose another folder") from None
+    os.close(fd)
+    try:
+        os.unlink(tmp)
+    except OSError:
+        pass
 
 
 def check_output_folder(key: str, folder: PathLike, names: Sequence[str]) -> None:
@@ -187,7 +211,7 @@ def depth_message(source: Any, where: str | None, kind: str) -> str:
 
 
 # ------------------------------------------------------------------ atomic writes
-_TMP = re.compile(r"^\.(?P<name>.+)\.adfit-(?P<pid>\d+)(?:-\d+)?\.tmp$")
+_TMP = re.compile(r"\.(?P<name>.+)\.adfit-(?P<pid>\d+)(?:-\d+)?\.tmp")  # matched whole (fullmatch)
 
 
 def temp_name(path: PathLike, pid: int | None = None) -> Path:
@@ -220,7 +244,7 @@ def remove_stale_temps(path: PathLike) -> list[Path]:
     except OSError:
         return removed
     for e in entries:
-        m = _TMP.match(e.name)
+        m = _TMP.fullmatch(e.name)
         if m is None or m.group("name") != p.name or _alive(int(m.group("pid"))):
             continue
         try:
@@ -230,6 +254,16 @@ def remove_stale_temps(path: PathLike) -> list[Path]:
         except OSError:
             pass
     return removed
+
+
+# a write that fails for want of room or permission: one line, not a traceback
+_NO_ROOM = {
+    errno.ENOSPC: "the disk is full; free some space or write elsewhere",
+    errno.EDQUOT: "the disk quota is used up; free some space or write elsewhere",
+    errno.EFBIG: "the file is larger than this system or process allows; write elsewhere",
+    errno.EROFS: "the file system is read-only; write elsewhere",
+    errno.EIO: "the device reported an input/output error; write elsewhere",
+}
 
 
 @contextmanager
@@ -267,13 +301,16 @@ def atomic_write(path: PathLike, mode: str = "w", encoding: str | None = "utf-8"
             fd = -1
             yield fh
         os.replace(tmp, p)
-    except BaseException:
+    except BaseException as e:
         if fd >= 0:
             os.close(fd)
         try:
             os.unlink(tmp)
         except FileNotFoundError:
             pass
+        if isinstance(e, OSError) and e.errno in _NO_ROOM:
+            raise OutputError(f"{p}: could not be written ({e.strerror or e}): {_NO_ROOM[e.errno]}; nothing was "
+                              f"written there") from None
         raise
 
 

@@ -2010,10 +2010,31 @@ def _prepared(likelihood: Likelihood | None, network: Network, data: CodedData, 
     return likelihood
 
 
-def check_possible(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> None:
+def zero_sources(network: Network, given: str | None) -> tuple[str, str]:
+    """``(under what, what to check)`` for a message about rows of probability 0: the fixed CPTs
+    only when the network has some, the impossible cells only when it declares some, and
+    ``given`` (the CPTs the caller evaluates, e.g. "the CPTs of --params")."""
+    under, check = [], []
+    if network.fixed_names:
+        under.append("the fixed CPTs")
+        check.append("the fixed tables")
+    if any(n.impossible for n in network.nodes if n.fixed is None):
+        under.append("the impossible cells")
+        check.append("the impossible cells")
+    if given and network.free_names:
+        under.append(given)
+        check.append(given)
+    if not under:
+        under, check = ["the CPTs"], ["the CPTs"]
+    return " and ".join(under), ", ".join(check)
+
+
+def check_possible(lik: Likelihood, probs: Mapping[str, np.ndarray], *, given: str | None = "the CPTs given") -> None:
     """Raise ImpossibleDataError naming the rows with probability zero under ``probs``.
 
-    The per-row pass (a separate compiled program) runs only when the total is not finite.
+    ``given`` says where the free nodes' CPTs come from (the message names the fixed CPTs only
+    when the network has some). The per-row pass (a separate compiled program) runs only when
+    the total is not finite.
     """
     total, _ = lik.expected_counts(probs)
     if math.isfinite(total):
@@ -2024,9 +2045,10 @@ def check_possible(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> None:
         from .data import decode
         df = decode(lik.network, lik.data.codes[bad[:3]])
         shown = "; ".join(", ".join(f"{c}={v}" for c, v in r.items() if v is not None) for r in df.to_dict("records"))
+        under, check = zero_sources(lik.network, given)
         raise ImpossibleDataError(
-            f"{lik.data.source}: {bad.size} distinct row(s) have probability 0 under the fixed CPTs "
-            f"(log-likelihood -inf), e.g. [{shown}]; check the fixed tables or the records")
+            f"{lik.data.source}: {bad.size} distinct row(s) have probability 0 under {under} "
+            f"(log-likelihood -inf), e.g. [{shown}]; check {check} or the records")
 
 
 def score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray], *,

@@ -38,7 +38,7 @@ def table_too_large(entries: int, node: str, n_vars: int) -> str:
             f"({entries * 8 / 2 ** 30:.3g} GiB) when node {node!r} is summed out ({n_vars} nodes joined); "
             f"the limit is 2**27 = {MAX_TABLE_ENTRIES:,} entries: give the latent or often-missing nodes "
             f"fewer states, give nodes fewer parents, or record more of the hidden nodes")
-_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
+_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")  # matched whole (fullmatch: "$" would let a trailing newline through)
 _NODE_KEYS = {"states", "parents", "latent", "fixed", "cpd", "tied_to", "impossible", "increasing_with"}
 # the forms a CPT may take (``cpd = "..."``; docs/user-guide.md "Structured CPTs"): the full table
 # (softmax per row), the causal-independence forms and the multinomial logistic form
@@ -401,7 +401,7 @@ def parse_network(doc: Mapping[str, Any], *, source: str = "<network>") -> Netwo
     fixed_raw: dict[str, Any] = {}
     impossible_raw: dict[str, Any] = {}
     for name, spec in nodes_doc.items():
-        if not _NAME.match(name):
+        if not isinstance(name, str) or not _NAME.fullmatch(name):
             raise NetworkError(f"{source}: node name {name!r} is not an identifier (letters, digits, _; not starting with a digit)")
         if not isinstance(spec, Mapping):
             raise NetworkError(f"{source}: nodes.{name} must be a table with states = [...]")

@@ -43,6 +43,9 @@ from .errors import PriorError
 from .network import SUM_TOL, Network
 
 #: the kinds of prior entry, by their file key
+#: Most pseudo-counts one node's prior may add up to: 2**53, as for the records
+#: (adfit.data.MAX_TOTAL_COUNT; IEEE 754 binary64 counts whole numbers exactly up to there).
+MAX_TOTAL_PSEUDO_COUNT = 2.0 ** 53
 KINDS = ("pseudo_counts", "equivalent_sample_size", "alpha", "table")
 _DEFAULT_KEYS = {"pseudo_counts", "equivalent_sample_size", "alpha"}
 _NODE_KEYS = {"pseudo_counts", "equivalent_sample_size", "alpha", "table", "strength"}
@@ -212,6 +215,14 @@ class Prior:
                 out[name] = _resolve(self.default, network, name, f"{self.source}: [default] (node {name!r})")
             else:
                 out[name] = np.zeros(network.cpt_shape(name))
+            with np.errstate(over="ignore"):
+                total = float(out[name].sum())
+            if not total <= MAX_TOTAL_PSEUDO_COUNT:
+                where = f"[nodes.{name}]" if name in own else f"[default] (node {name!r})"
+                shown = "more than 1.8e308 (float64 overflows)" if not math.isfinite(total) else f"{total:.4g}"
+                raise PriorError(f"{self.source}: {where}: the pseudo-counts add up to {shown}, more than 2**53 = "
+                                 f"{MAX_TOTAL_PSEUDO_COUNT:.4g} imagined records, beyond which float64 no longer counts "
+                                 f"them exactly; give smaller pseudo-counts (a few per cell is common practice)")
         return out
 
     def to_dict(self) -> dict[str, Any]:

@@ -154,17 +154,62 @@ def test_folders_links_devices_and_unwritable_places_are_refused_before_any_work
     assert_refused(work, ["demo", "-q", "--out", work / "demo"], "symbolic link")
 
 
-@pytest.mark.skipif(os.geteuid() == 0, reason="root can write into a read-only folder anyway")
-def test_a_read_only_folder_is_refused_before_the_work(inputs, tmp_path):
-    n, data = inputs / "n.toml", inputs / "d.csv"
+def _uncreatable_folder(tmp_path: Path) -> Path | None:
+    """A folder in which this process cannot create a file: a read-only folder for an ordinary user;
+    for root (who writes anyway, os.access says yes) a folder of a read-only or virtual file system
+    (/sys, /proc), tried by creating a file in it here, outside adfit."""
     ro = tmp_path / "ro"
     ro.mkdir()
     ro.chmod(0o555)
+    for folder in (ro, Path("/sys"), Path("/proc")):
+        probe = folder / f".adfit-test-probe-{os.getpid()}"
+        try:
+            fd = os.open(probe, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+        except OSError:
+            return folder
+        os.close(fd)
+        os.unlink(probe)
+    return None
+
+
+def test_a_folder_where_no_file_can_be_created_is_refused_before_the_work(inputs, tmp_path):
+    n, data = inputs / "n.toml", inputs / "d.csv"
+    # a path whose folder is a regular file: refused for everyone, root included
+    assert_refused(inputs, ["em", n, data, "--out", data / "r.json"], "d.csv is a file, not a folder")
+    assert_refused(inputs, ["impute", n, data, "--params", inputs / "r.json", "--out", inputs / "r.json" / "i.csv"],
+                   "is a file, not a folder")
+    folder = _uncreatable_folder(tmp_path)
     try:
-        assert_refused(tmp_path, ["em", n, data, "--out", ro / "r.json"], "not writable")
-        assert_refused(tmp_path, ["demo", "-q", "--out", ro / "sub"], "not writable")
+        if folder is None:
+            pytest.skip("every folder tried accepts new files")
+        assert_refused(tmp_path, ["em", n, data, "--out", folder / "r.json"], str(folder))
+        if folder.parent == tmp_path:  # the read-only folder of an ordinary user
+            assert_refused(tmp_path, ["demo", "-q", "--out", folder / "sub"], "not writable")
     finally:
-        ro.chmod(0o755)
+        (tmp_path / "ro").chmod(0o755)
+
+
+def test_a_write_that_runs_out_of_room_is_one_line_and_leaves_nothing(inputs, tmp_path):
+    # RLIMIT_FSIZE (POSIX setrlimit) caps the size of any file the process writes, root's too: a
+    # write past it fails with EFBIG, as one past a full disk fails with ENOSPC (Python ignores
+    # SIGXFSZ, so the write returns the error). The result JSON of the tiny fit is > 2 000 bytes.
+    import adfit
+
+    out = tmp_path / "r.json"
+    out.write_text("old")
+    env = {**os.environ, "PYTHONPATH": str(Path(adfit.__file__).parents[1]), "ADFIT_COMPILE_CACHE": "0"}
+    cap = 2000
+    script = ("import resource, sys; resource.setrlimit(resource.RLIMIT_FSIZE, (%d, %d)); "
+              "from adfit.cli import main; sys.argv = ['adfit'] + sys.argv[1:]; main()") % (cap, cap)
+    proc = subprocess.run([sys.executable, "-c", script, "em", str(inputs / "n.toml"), str(inputs / "d.csv"),
+                           "--out", str(out)], capture_output=True, text=True, env=env, timeout=300)
+    assert proc.returncode == 1, proc.stderr
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith(f"adfit: error: {out}: could not be written (File too large)"), proc.stderr
+    assert out.read_text() == "old" and sorted(p.name for p in tmp_path.iterdir()) == ["r.json"]
+    # the control: without the cap the same command writes the file, larger than the cap
+    r = cli(["em", inputs / "n.toml", inputs / "d.csv", "--out", out])
+    assert r.exit_code == 0 and out.stat().st_size > cap, r.output
 
 
 def test_check_output_paths_from_python_names_the_keyword(tmp_path):

@@ -355,3 +355,107 @@ def test_a_cpt_beyond_the_table_limit_is_refused_when_the_network_is_read(tmp_pa
     # 6 parents: 8**6 x 2 = 524 288 entries, accepted
     p.write_text(text + "[nodes.c]\nstates = [\"a\", \"b\"]\nparents = [" + ", ".join(f'"p{i}"' for i in range(6)) + "]\n")
     assert load_network(p).cpt_shape("c") == (8,) * 6 + (2,)
+
+
+# ------------------------------------------------------------------ 7. names, counts past float64, impossible records
+def test_a_node_name_with_a_trailing_newline_is_refused(tmp_path):
+    # a quoted TOML key may hold "\n" (TOML 1.0, basic strings; tomllib is the oracle of what is
+    # read); a regex anchored with "$" lets a final newline through, so "wear\n" was accepted
+    import tomllib
+
+    from adfit.errors import NetworkError
+    from adfit.network import load_network
+
+    for key in ('"wear\\n"', '"wear\\r"', '"wear\\t"', '"we ar"'):
+        p = tmp_path / "nl.toml"
+        p.write_text(f'[nodes.{key}]\nstates = ["light", "heavy"]\n')
+        (name,) = tomllib.loads(p.read_text())["nodes"]
+        assert name != name.strip() or " " in name
+        with pytest.raises(NetworkError) as e:
+            load_network(p)
+        assert str(e.value) == (f"{p}: node name {name!r} is not an identifier (letters, digits, _; "
+                                f"not starting with a digit)"), str(e.value)
+    p.write_text('[nodes."wear_2"]\nstates = ["light", "heavy"]\n')  # the control: a quoted identifier
+    assert load_network(p).names == ("wear_2",)
+
+
+def test_counts_beyond_two_to_the_53_are_refused_in_every_engine(valid, tmp_path):
+    # IEEE 754 binary64 has a 53-bit significand: 2**53 + 1 is not representable, so counts past
+    # 2**53 are no longer whole numbers of records; a total near 1e308 overflows to inf (numpy)
+    import numpy as np
+
+    from adfit.data import MAX_TOTAL_COUNT
+
+    assert float(2 ** 53) + 1.0 == float(2 ** 53) and MAX_TOTAL_COUNT == 2.0 ** 53
+    with np.errstate(over="ignore"):
+        assert np.isinf(np.sum([1e308, 1e308]))
+    n = valid / "n.toml"
+    one = tmp_path / "one.csv"  # a single count past the limit: named by its line
+    one.write_text("wear,failure,n\nlight,no,2\nheavy,yes,1e308\n")
+    total = tmp_path / "total.csv"  # each count below it, their total above it
+    total.write_text("wear,failure,n\nlight,no,4e15\nheavy,yes,4e15\n,no,4e15\n")
+    for engine in ("pandas", "stream", "duckdb"):
+        r = cli(["score", n, one, "--count-column", "n", "--params", valid / "fit.json", "--engine", engine])
+        assert one_line_error(r) and "count '1e308' is more than 2**53" in r.output, (engine, r.output)
+        assert f"{one}: line 3 (data row 2), column 'n'" in r.output, (engine, r.output)
+        r = cli(["score", n, total, "--count-column", "n", "--params", valid / "fit.json", "--engine", engine])
+        assert one_line_error(r) and f"{total}: the record counts add up to 1.2e+16, more than 2**53" in r.output, (
+            engine, r.output)
+    for cmd in (["fit", n, total, "--count-column", "n", "--out", tmp_path / "o.json"],
+                ["em", n, total, "--count-column", "n", "--out", tmp_path / "o.json"],
+                ["gaps", n, total, "--count-column", "n"]):
+        r = cli(cmd)
+        assert one_line_error(r) and "more than 2**53" in r.output, (cmd[0], r.output)
+    assert not (tmp_path / "o.json").exists()
+    # the control: 2**52 records in all are accepted and scored (the limit is not below it)
+    ok = tmp_path / "ok.csv"
+    ok.write_text(f"wear,failure,n\nlight,no,{2 ** 51}\nheavy,yes,{2 ** 51}\n")
+    r = cli(["score", n, ok, "--count-column", "n", "--params", valid / "fit.json"])
+    assert r.exit_code == 0 and f"over {2.0 ** 52:g} records" in r.output, r.output
+
+
+def test_pseudo_counts_beyond_two_to_the_53_are_refused(valid, tmp_path):
+    n, data = valid / "n.toml", valid / "d.csv"
+    for text, words in [
+        ("[nodes.wear]\npseudo_counts = [[1e308, 1e308, 1.0]]\n", "[nodes.wear]: the pseudo-counts add up to more than 1.8e308"),
+        ("[default]\nequivalent_sample_size = 1e300\n", "[default] (node 'wear'): the pseudo-counts add up to 1e+300"),
+        ("[nodes.failure]\ntable = [[0.5, 0.5], [0.5, 0.5], [0.5, 0.5]]\nstrength = 4e15\n",
+         "[nodes.failure]: the pseudo-counts add up to 1.2e+16"),
+    ]:
+        p = tmp_path / "p.toml"
+        p.write_text(text)
+        for cmd in ("fit", "em"):
+            r = cli([cmd, n, data, "--prior", p, "--out", tmp_path / "o.json"])
+            assert one_line_error(r) and words in r.output and "more than 2**53" in r.output, (cmd, text, r.output)
+            assert not (tmp_path / "o.json").exists()
+    p.write_text("[default]\nequivalent_sample_size = 1e15\n")  # the control: below the limit
+    assert cli(["em", n, data, "--prior", p, "--out", tmp_path / "o.json"]).exit_code == 0
+
+
+def test_impossible_records_name_fixed_cpts_only_when_the_network_has_them(valid, tmp_path):
+    # failure | heavy set to (1, 0): the record (heavy, yes) of d.csv has probability 0 under it,
+    # as direct multiplication of the two CPT entries shows; the network has no fixed CPT
+    import json
+
+    doc = json.loads((valid / "fit.json").read_text())
+    doc["nodes"]["failure"]["table"][2] = [1.0, 0.0]
+    zero = tmp_path / "zero.json"
+    zero.write_text(json.dumps(doc))
+    assert doc["nodes"]["wear"]["table"][0][2] * doc["nodes"]["failure"]["table"][2][1] == 0.0
+    n, data = valid / "n.toml", valid / "d.csv"
+    for args, words in [
+        (["score", n, data, "--params", zero], "have probability 0 under the CPTs of --params"),
+        (["em", n, data, "--init", zero, "--out", tmp_path / "o.json"], "have probability 0 under the starting values"),
+        (["impute", n, data, "--params", zero, "--out", tmp_path / "o.csv"], "has probability 0 under the CPTs"),
+    ]:
+        r = cli(args)
+        assert one_line_error(r) and words in r.output and "wear=heavy, failure=yes" in r.output, r.output
+        assert "fixed CPTs" not in r.output, r.output
+    # a network with a fixed CPT: the fixed CPTs are named
+    fixed = tmp_path / "fixed.toml"
+    fixed.write_text('[nodes.wear]\nstates = ["light", "medium", "heavy"]\nfixed = [[0.5, 0.5, 0.0]]\n'
+                     '[nodes.failure]\nstates = ["no", "yes"]\nparents = ["wear"]\n')
+    r = cli(["em", fixed, data, "--out", tmp_path / "o.json"])
+    assert one_line_error(r) and "under the fixed CPTs and the starting values" in r.output, r.output
+    r = cli(["fit", fixed, data, "--out", tmp_path / "o.json"])
+    assert one_line_error(r) and "under the fixed CPTs and the first start" in r.output, r.output
