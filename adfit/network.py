@@ -133,7 +133,10 @@ class Network:
         try:
             return self._index[name]
         except KeyError:
-            raise NetworkError(f"unknown node {name!r}; the network has: {', '.join(self.names)}") from None
+            from .errors import did_you_mean
+
+            raise NetworkError(f"unknown node {name!r}; {did_you_mean(name, self.names)}"
+                               f"the network has: {', '.join(self.names)}") from None
 
     def node(self, name: str) -> Node:
         return self.nodes[self.index(name)]

@@ -6,8 +6,8 @@ the page as a ``data:`` URI), readable on a laptop screen and printable. :func:`
 adds the data-dependent part (the gaps overview, when the records are given) and writes the page
 atomically.
 
-Sections, in this order (their ``id`` in brackets); each is present, except the sixth when it
-would be empty:
+Sections, in this order (their ``id`` in brackets); each is present, except "Further sections"
+when it would be empty:
 
 1. What was fitted (``fitted``): the network drawn in layers by topological depth (latent nodes
    with a dashed outline, fixed CPTs shaded; the legend is in the figure), records, gaps,
@@ -20,10 +20,13 @@ would be empty:
 4. EM cross-check (``em-check``): the verdict and the three runs side by side.
 5. Gaps and complete cases (``gaps``): the missing-data overview (needs the records) and the
    complete-case comparison as a plot of both estimates per entry.
-6. Model assessment (``assessment``): AIC/BIC and cross-validation.
-7. Further sections (``other``): anything else the result holds, shown as recorded (left out,
+6. Missing-not-at-random sensitivity (``sensitivity``): with ``--sensitivity FILE`` (from
+   ``adfit sensitivity``), each target against the log odds with the band of its intervals, MAR
+   and the tipping point marked, the table of refits and the analysis' cautions.
+7. Model assessment (``assessment``): AIC/BIC and cross-validation.
+8. Further sections (``other``): anything else the result holds, shown as recorded (left out,
    heading and all, when there is nothing else).
-8. Cautions (``cautions``).
+9. Cautions (``cautions``).
 
 A section that the result lacks is still there, saying plainly what is absent and which option
 produces it.
@@ -54,7 +57,8 @@ from .network import Network
 from .result import FORMAT, FitResult, result_from_dict, upgrade_keys
 
 __all__ = ["render_report", "write_report", "load_result_doc", "network_figure", "convergence_figure",
-           "gaps_figure", "complete_case_figure", "network_layers", "SECTIONS", "error_bar_flags", "LATENT_CAUTION", "PROB_DECIMALS",
+           "gaps_figure", "complete_case_figure", "sensitivity_figure", "network_layers", "SECTIONS",
+           "error_bar_flags", "LATENT_CAUTION", "PROB_DECIMALS",
            "LOGLIK_DECIMALS", "SCI_DIGITS", "fmt_prob", "fmt_loglik", "fmt_sci", "fmt_count", "fmt_share",
            "REPORT_CAUTIONS"]
 
@@ -65,6 +69,7 @@ SECTIONS: tuple[tuple[str, str], ...] = (
     ("cpts", "Estimated CPTs"),
     ("em-check", "EM cross-check"),
     ("gaps", "Gaps and complete cases"),
+    ("sensitivity", "Missing-not-at-random sensitivity"),
     ("assessment", "Model assessment"),
     ("other", "Further sections"),
     ("cautions", "Cautions"),
@@ -1362,6 +1367,107 @@ def _complete_case(doc: Mapping[str, Any], cc: Mapping[str, Any]) -> str:
     return "".join(parts)
 
 
+#: at most this many targets are drawn in the sensitivity figure (all are in its table)
+MAX_SENSITIVITY_PANELS = 6
+
+
+@_plain_labels
+def sensitivity_figure(doc: Mapping[str, Any]):
+    """Each target against log odds: the estimate, the band of its intervals, MAR (odds 1)
+    marked, and the threshold and tipping point when the analysis has them."""
+    targets = list(doc.get("targets") or [])[:MAX_SENSITIVITY_PANELS]
+    rows = sorted(doc["rows"], key=lambda r: _f(r.get("odds")))
+    x = np.log([_f(r.get("odds")) for r in rows])
+    n = max(1, len(targets))
+    cols = min(n, 3)
+    nr = math.ceil(n / cols)
+    fig = _figure(3.3 * cols + 0.4, 2.7 * nr + 0.3)
+    tip = doc.get("tipping_point") if isinstance(doc.get("tipping_point"), Mapping) else None
+    for i, t in enumerate(targets):
+        ax = fig.add_subplot(nr, cols, i + 1)
+        e = [r["targets"][t] for r in rows]
+        y = np.array([_f(v.get("value")) for v in e])
+        iv = [v.get("interval") for v in e]
+        if all(isinstance(b, (list, tuple)) and len(b) == 2 for b in iv):
+            ax.fill_between(x, [_f(b[0]) for b in iv], [_f(b[1]) for b in iv], color=SHADE, lw=0,
+                            label=f"{100 * _f(doc.get('level', 0.95)):.0f}% interval")
+        ax.plot(x, y, "-o", color=INK, ms=3.5, lw=1.2, label="estimate")
+        ax.axvline(0.0, color="#7a4b00", ls="--", lw=0.9)
+        ax.text(0.0, 0.98, " MAR", transform=ax.get_xaxis_transform(), va="top", fontsize=8, color="#7a4b00")
+        if tip and tip.get("target") == t:
+            ax.axhline(_f(tip.get("threshold")), color="#2f5f8a", ls=":", lw=0.9, label="threshold")
+            if tip.get("crossed"):
+                ax.plot([_f(tip.get("log_odds"))], [_f(tip.get("threshold"))], "D", color="#2f5f8a", ms=5,
+                        label=f"tipping point, odds {_f(tip.get('odds')):.3g}")
+        ax.set_title(t, fontsize=9)
+        ax.set_xticks(x, [f"{math.exp(v):.3g}" for v in x], fontsize=8)
+        ax.tick_params(axis="y", labelsize=8)
+        ax.set_xlabel("odds (log scale)", fontsize=8.5)
+        ax.grid(True, color="#e6e6e6", lw=0.6)
+        if i == 0:
+            ax.legend(fontsize=7, loc="best", frameon=False)
+    fig.tight_layout()
+    return fig
+
+
+def _section_sensitivity(sens: Mapping[str, Any] | None) -> str:
+    if sens is None:
+        return _sec("sensitivity", _absent(
+            "No sensitivity analysis: run adfit sensitivity NETWORK DATA --node X --state S --out sens.json, then "
+            "adfit report RESULT --sensitivity sens.json, to see how far the estimates move if the gaps of X "
+            "depend on its own value (missing not at random)."))
+    shifts = sens.get("shifts") or [{"node": sens.get("node"), "state": sens.get("state")}]
+    pred = sens.get("predictors") or []
+    parts = [_note(
+        "Each row refits the network assuming that the odds that a cell of "
+        + " and ".join(f"{s.get('node')} is missing are multiplied by the row's odds when its true value is "
+                       f"{s.get('state')}" for s in shifts)
+        + (f", given {', '.join(map(str, pred))}" if pred else "")
+        + " (a selection model; odds 1 is MAR, the fit above). The odds are assumptions, not estimates.")]
+    targets = list(sens.get("targets") or [])
+    caption = "Targets against the assumed odds (log scale); the band is the interval at each odds."
+    if len(targets) > MAX_SENSITIVITY_PANELS:
+        caption += f" The first {MAX_SENSITIVITY_PANELS} of {len(targets)} targets are drawn; the table has all."
+    parts.append(_img(sensitivity_figure(sens), "sensitivity of the targets to the assumed odds", caption))
+    rows = sorted(sens["rows"], key=lambda r: _f(r.get("odds")))
+
+    def cell(e: Mapping[str, Any]) -> str:
+        iv = e.get("interval")
+        txt = fmt_prob(e.get("value"))
+        if isinstance(iv, (list, tuple)) and len(iv) == 2:
+            txt += f" [{fmt_prob(iv[0])}, {fmt_prob(iv[1])}]"
+        return txt
+
+    parts.append(_table(
+        ["odds", "log-likelihood (selection model)", "log-likelihood (cells)", "converged"] + targets,
+        [[f"{_f(r.get('odds')):g}" + (" (MAR)" if _f(r.get("odds")) == 1 else ""), fmt_loglik(r.get("log_likelihood")),
+          fmt_loglik(r.get("log_likelihood_cells")), "yes" if r.get("converged") else "NO"]
+         + [cell(r["targets"][t]) for t in targets] for r in rows], cls="plain sensitivity"))
+    lls = [_f(r.get("log_likelihood")) for r in rows]
+    parts.append(_note(f"The selection-model log-likelihood spans {fmt_sci(max(lls) - min(lls))} across the grid: "
+                       "what little it varies comes from the network's own assumptions, not from evidence about "
+                       "why cells are missing; do not read it as an estimate of the odds."))
+    tip = sens.get("tipping_point")
+    if isinstance(tip, Mapping):
+        parts.append(f"<p>Tipping point: {esc(tip.get('note', ''))}.</p>")
+    for n in sens.get("notes") or []:
+        parts.append(_note(str(n)))
+    cautions = sens.get("cautions") or []
+    if cautions:
+        parts.append("<ul>" + "".join(f"<li>{esc(c)}</li>" for c in cautions) + "</ul>")
+    return _sec("sensitivity", "".join(parts))
+
+
+def check_sensitivity_matches(sens: Mapping[str, Any], network: Network, source: str) -> None:
+    """The sensitivity file must name nodes of the result's network (one-line ResultError)."""
+    names = [s.get("node") for s in sens.get("shifts") or [{"node": sens.get("node")}]]
+    names += [t.split("=", 1)[0] for t in sens.get("targets") or []]
+    for n in names:
+        if n not in network:
+            raise ResultError(f"{source}: node {n!r} is not in the result's network; give the sensitivity file "
+                              f"made with this network")
+
+
 def _section_assessment(doc: Mapping[str, Any]) -> str:
     parts = ["<h3>Information criteria</h3>"]
     ic = doc.get("information_criteria")
@@ -1554,7 +1660,8 @@ def load_result_doc(path: str | Path) -> dict[str, Any]:
 
 
 def render_report(result: Mapping[str, Any] | FitResult | str | Path, *, gaps: Any = None,
-                  title: str | None = None, source: str | None = None, data_note: str | None = None) -> str:
+                  title: str | None = None, source: str | None = None, data_note: str | None = None,
+                  sensitivity: Mapping[str, Any] | None = None) -> str:
     """The report as one HTML string.
 
     Args:
@@ -1564,6 +1671,7 @@ def render_report(result: Mapping[str, Any] | FitResult | str | Path, *, gaps: A
         title: the page title (default: from ``source``).
         source: where the result came from (shown in the header).
         data_note: a line shown above the gaps overview (e.g. that the records differ from the fit's).
+        sensitivity: an ``adfit-sensitivity/1`` document (:mod:`adfit.sensitivity`), or None.
 
     Raises:
         ResultError: not an ``adfit-result/1`` document, or its tables do not match its network.
@@ -1580,6 +1688,11 @@ def render_report(result: Mapping[str, Any] | FitResult | str | Path, *, gaps: A
     doc = upgrade_keys(doc)  # keys of older result files under their current names
     if gaps is not None and hasattr(gaps, "to_dict"):
         gaps = gaps.to_dict()
+    if sensitivity is not None:
+        from .sensitivity import validate_sensitivity_doc
+
+        validate_sensitivity_doc(sensitivity, "sensitivity")
+        check_sensitivity_matches(sensitivity, res.network, "sensitivity")
     other = _section_other(doc)
     body = [
         _section_fitted(doc, res, gaps),
@@ -1587,6 +1700,7 @@ def render_report(result: Mapping[str, Any] | FitResult | str | Path, *, gaps: A
         _section_cpts(doc, res),
         _section_em_check(doc),
         _section_gaps(doc, gaps, data_note),
+        _section_sensitivity(sensitivity),
         _section_assessment(doc),
         other,
         _section_cautions(doc, gaps, res.network),
@@ -1606,13 +1720,27 @@ def render_report(result: Mapping[str, Any] | FitResult | str | Path, *, gaps: A
 def write_report(out: str | Path, result: Mapping[str, Any] | FitResult | str | Path, *, data: Any = None,
                  missing: Iterable[str] | None = None, count_column: str | None = None,
                  ignore_columns: Iterable[str] = (), engine: str = "pandas", scheduler: str | None = None,
-                 top: int = 10, level: float = 0.05, title: str | None = None) -> Path:
+                 top: int = 10, level: float = 0.05, title: str | None = None,
+                 sensitivity: Any = None) -> Path:
     """Render the report and write it atomically to ``out``.
 
     With ``data`` (a path, DataFrame or :class:`adfit.data.CodedData`) the gaps overview
     (:func:`adfit.gaps.overview`) is computed from the records against the result's network.
+    ``sensitivity``: the path of an ``adfit sensitivity`` file (or its document, or a
+    :class:`adfit.sensitivity.SensitivityResult`) adds the sensitivity section.
     """
     out = Path(out)
+    sens_doc = None
+    if sensitivity is not None:
+        from .sensitivity import load_sensitivity
+
+        if isinstance(sensitivity, (str, Path)):
+            sens_doc = load_sensitivity(sensitivity)
+            sens_src = str(sensitivity)
+        else:
+            sens_doc = sensitivity.to_dict() if hasattr(sensitivity, "to_dict") else dict(sensitivity)
+            sens_src = "sensitivity"
+        sens_doc = json.loads(json.dumps(sens_doc))
     source = str(result) if isinstance(result, (str, Path)) else None
     if isinstance(result, (str, Path)):
         result = load_result_doc(result)
@@ -1636,7 +1764,10 @@ def write_report(out: str | Path, result: Mapping[str, Any] | FitResult | str | 
         if math.isfinite(fitted) and abs(coded.n_rows - fitted) > 1e-9 * max(1.0, fitted):
             note = (f"These records ({fmt_count(coded.n_rows)}) are not the {fmt_count(fitted)} the fit used: "
                     f"the overview describes the records given.")
-    text = render_report(result, gaps=gaps, title=title, source=source, data_note=note)
+    if sens_doc is not None:
+        doc0 = result if isinstance(result, Mapping) else result.to_dict()
+        check_sensitivity_matches(sens_doc, result_from_dict(doc0, source=source or "<result>").network, sens_src)
+    text = render_report(result, gaps=gaps, title=title, source=source, data_note=note, sensitivity=sens_doc)
     if out.is_dir():
         raise AdfitError(f"{out}: is a folder; give the report file name, e.g. --out report.html")
     with atomic_write(out) as fh:

@@ -136,6 +136,21 @@ class FitResult:
         return pd.DataFrame({"estimate": est.ravel(), "se": se.ravel(), "lower": lo.ravel(), "upper": hi.ravel()},
                             index=index)
 
+    def standard_errors(self, name: str) -> pd.DataFrame:
+        """The standard errors of ``name``'s CPT, laid out as :meth:`cpt` (rows: parent
+        configurations, columns: states); NaN where the result has none."""
+        return self._wide(name, "se")
+
+    def intervals(self, name: str) -> tuple[pd.DataFrame, pd.DataFrame]:
+        """``(lower, upper)``: the interval ends of ``name``'s CPT, each laid out as :meth:`cpt`;
+        NaN where the result has none."""
+        return self._wide(name, "lower"), self._wide(name, "upper")
+
+    def _wide(self, name: str, column: str) -> pd.DataFrame:
+        est = self.cpt(name)
+        values = self.table(name)[column].to_numpy(dtype=np.float64).reshape(est.shape)
+        return pd.DataFrame(values, index=est.index, columns=est.columns)
+
     # ------------------------------------------------------------------ serialisation
     def to_dict(self) -> dict[str, Any]:
         net = self.network

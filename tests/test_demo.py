@@ -290,3 +290,26 @@ def test_a_build_of_the_package_ships_the_demo_files(tmp_path):
     assert r.returncode == 0, r.stderr
     for name in (demo.NETWORK_FILE, demo.PRIOR_FILE, demo.DATA_FILE):
         assert (lib / "adfit" / "demo" / name).read_bytes() == demo.resource_bytes(name), name
+
+
+def test_demo_sensitivity_analysis(outcome):
+    # the demo's own question under missing-not-at-random gaps (adfit/sensitivity.py): odds 1 is
+    # the demo's MAR fit, so its value is the full-likelihood marginal reported above it
+    pytest.importorskip("adfit.sensitivity")
+    from adfit.sensitivity import load_sensitivity
+
+    doc = load_sensitivity(outcome.files["sensitivity"])
+    target = f"{demo.FOCUS_NODE}={demo.FOCUS_STATE}"
+    assert doc["node"] == demo.FOCUS_NODE and doc["predictors"] == [demo.SENSITIVITY_PREDICTOR]
+    vals = [r["targets"][target]["value"] for r in doc["rows"]]
+    mar = next(r for r in doc["rows"] if r["odds"] == 1)
+    assert mar["targets"][target]["value"] == pytest.approx(outcome.numbers["focus"]["full"], abs=1e-6)
+    assert all(a < b for a, b in zip(vals, vals[1:]))  # more heavy wear hidden in the gaps as the odds grow
+    assert all(r["converged"] for r in doc["rows"])
+    assert doc["tipping_point"]["threshold"] == pytest.approx(outcome.numbers["focus"]["complete_case"])
+    step = outcome.step("sensitivity")
+    assert step.status == "done" and "assumptions, not estimates" in step.note
+    assert "assumptions, not estimates" in outcome.format_text()
+    if "report" in outcome.files:
+        page = outcome.files["report"].read_text(encoding="utf-8")
+        assert 'id="sensitivity"' in page and "sensitivity of the targets" in page

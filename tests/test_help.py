@@ -24,7 +24,7 @@ def click_command(name):
 
 
 def test_every_known_command_is_covered():
-    assert {"fit", "em", "score", "gaps", "impute", "query", "show", "report", "demo"} <= set(COMMANDS)
+    assert {"fit", "em", "score", "gaps", "impute", "query", "show", "report", "demo", "sensitivity"} <= set(COMMANDS)
 
 
 def test_top_level_help_at_80_columns():

@@ -20,7 +20,7 @@ import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
 PACKAGE = ROOT / "adfit"
-COMMANDS = ["gaps", "em", "fit", "score", "show", "impute", "query", "demo", "report"]
+COMMANDS = ["gaps", "em", "fit", "score", "show", "impute", "query", "demo", "report", "sensitivity"]
 
 
 def python(code: str, *args: str, env: dict | None = None) -> subprocess.CompletedProcess:

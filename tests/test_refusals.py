@@ -58,6 +58,10 @@ def file_commands(d: Path, out: Path) -> list[tuple[str, list]]:
         ("query", ["query", "{n}", "--params", "{r}"]),
         ("report", ["report", "{r}", "--out", out]),
         ("report --data", ["report", "{r}", "--data", "{d}", "--out", out]),
+        ("sensitivity", ["sensitivity", "{n}", "{d}", "--node", "wear", "--state", "heavy", "--odds", "2",
+                         "--no-errors", "-q", "--out", out]),
+        ("sensitivity --prior", ["sensitivity", "{n}", "{d}", "--node", "wear", "--state", "heavy", "--odds", "2",
+                                 "--no-errors", "-q", "--prior", "{p}", "--out", out]),
     ]
 
 

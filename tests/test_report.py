@@ -207,9 +207,12 @@ def test_every_section_present_in_order(case):
     for sid, title in SECTIONS:
         if sid != "other":
             assert section(tree, sid).find("h2").text() == title
-    # the full case has every optional section, so none says it is absent
-    absent = [p.text() for p in tree.find_all("p", cls="absent")]
+    # the full case has every optional section of a fit result, so none says it is absent; the
+    # sensitivity section needs a separate file (adfit sensitivity) and names the commands
+    absent = [p.text() for sid, _ in SECTIONS if sid not in ("sensitivity", "other")
+              for p in section(tree, sid).find_all("p", cls="absent")]
     assert absent == [], absent
+    assert "adfit report RESULT --sensitivity" in section(tree, "sensitivity").find("p", cls="absent").text()
 
 
 def test_every_image_decodes(case):

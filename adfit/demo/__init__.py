@@ -12,7 +12,8 @@ never observed (a latent node); a few other cells are lost to sensor outages.
 :func:`run_demo` (the ``adfit demo`` command) writes the network, prior and records into a
 folder, looks at the gaps, fits the CPTs with an expert prior on ``oil_debris`` and several
 starts, cross-checks the fit with EM, adds error bars, compares with the complete-case fit,
-imputes the missing cells, and writes ``fit.json`` and the HTML report. Steps whose module is
+asks how far the answer would move if the gaps in ``bearing_wear`` were missing not at random
+(:mod:`adfit.sensitivity`), imputes the missing cells, and writes ``fit.json`` and the HTML report. Steps whose module is
 not part of this installation are skipped with a one-line note.
 
 Python API for the examples: :func:`load_demo` returns ``(network, prior, coded data)``;
@@ -49,12 +50,17 @@ DATA_FILE = "gearbox_records.csv"
 #: the files the demo writes besides those
 FIT_FILE = "fit.json"
 IMPUTED_FILE = "gearbox_imputed.csv"
+SENSITIVITY_FILE = "sensitivity.json"
 REPORT_FILE = "report.html"
 
 #: the quantity the summary talks about: the chance of heavy bearing wear in a quarter
 FOCUS_NODE, FOCUS_STATE = "bearing_wear", "heavy"
 #: the node that carries the expert table of the demo prior
 EXPERT_NODE = "oil_debris"
+#: the missing-not-at-random sensitivity analysis: the odds that an inspection record of heavy wear
+#: is missing, relative to the other states, given the vibration alarm (inspections follow alarms)
+SENSITIVITY_ODDS = (0.25, 0.5, 1.0, 2.0, 4.0)
+SENSITIVITY_PREDICTOR = "vibration_alarm"
 #: posterior draws per record in the imputed file (five imputations: common practice)
 IMPUTE_DRAWS = 5
 REPORT_TITLE = "adfit demo: wind-turbine gearbox fleet (simulated records)"
@@ -70,6 +76,7 @@ DESCRIPTIONS = {
     "data": "the records (simulated): empty cells are gaps",
     "fit": "the fitted CPTs with their checks (format adfit-result/1)",
     "imputed": "the records with each gap's most probable value, posterior probabilities and draws",
+    "sensitivity": "what if the gaps in bearing_wear were not at random: refits under assumed odds (adfit-sensitivity/1)",
     "report": "the report, one self-contained HTML page",
 }
 
@@ -377,7 +384,7 @@ class DemoOutcome:
             else:
                 lines.append(f"Gaps: no evidence that the gaps in {FOCUS_NODE} depend on the other columns.")
         for s in self.steps:
-            if s.name in ("fit", "em_check", "uncertainty", "imputation", "report") or s.status != "done":
+            if s.name in ("fit", "em_check", "uncertainty", "sensitivity", "imputation", "report") or s.status != "done":
                 if s.name in ("files", "write"):
                     continue
                 lines.append(f"{_STEP_TITLES.get(s.name, s.name)}: {s.note}")
@@ -413,6 +420,7 @@ class DemoOutcome:
 
 
 _STEP_TITLES = {"fit": "Fit", "em_check": "EM cross-check", "uncertainty": "Error bars",
+                "sensitivity": "Not at random?",
                 "complete_case": "Complete-case comparison", "imputation": "Imputation", "report": "Report",
                 "gaps": "Gaps", "files": "Files", "write": "Result"}
 
@@ -594,23 +602,30 @@ def run_demo(out_dir: str | Path = DEFAULT_OUT, *, restarts: int = DEFAULT_RESTA
             "largest_entry_change": cmp.max_abs_difference, "largest_entry_z": cmp.max_abs_z}
         timed("complete_case", "done", headline, t0)
 
-        # 7. imputation ----------------------------------------------------------------
+        # 7. missing-not-at-random sensitivity -------------------------------------------
+        t0 = time.perf_counter()
+        status, note = _sensitivity(result, coded, net, pseudo, cc_m, out / SENSITIVITY_FILE, rep, outcome)
+        if status == "done":
+            outcome.files["sensitivity"] = out / SENSITIVITY_FILE
+        timed("sensitivity", status, note, t0)
+
+        # 8. imputation ----------------------------------------------------------------
         t0 = time.perf_counter()
         status, note = _impute(result, coded, net, out / IMPUTED_FILE, outcome.files["data"], rep, seed)
         if status == "done":
             outcome.files["imputed"] = out / IMPUTED_FILE
         timed("imputation", status, note, t0)
 
-        # 8. the result file -------------------------------------------------------------
+        # 9. the result file -------------------------------------------------------------
         t0 = time.perf_counter()
         write_result(out / FIT_FILE, result)
         outcome.files["fit"] = out / FIT_FILE
         outcome.result = result
         timed("write", "done", f"wrote {FIT_FILE}", t0)
 
-        # 9. the report ----------------------------------------------------------------
+        # 10. the report ----------------------------------------------------------------
         t0 = time.perf_counter()
-        status, note = _report(out / FIT_FILE, coded, out / REPORT_FILE, rep)
+        status, note = _report(out / FIT_FILE, coded, out / REPORT_FILE, rep, outcome.files.get("sensitivity"))
         if status == "done":
             outcome.files["report"] = out / REPORT_FILE
         timed("report", status, note, t0)
@@ -698,15 +713,51 @@ def _impute(result: Any, coded: Any, network: Network, path: Path, data_path: Pa
                     f"the latent {', '.join(network.latent_names)} gets the same columns")
 
 
-def _report(result_path: Path, coded: Any, path: Path, rep: Reporter) -> tuple[str, str]:
+def _sensitivity(result: Any, coded: Any, network: Network, pseudo: Mapping[str, np.ndarray], threshold: float,
+                 path: Path, rep: Reporter, outcome: "DemoOutcome") -> tuple[str, str]:
+    """The sensitivity analysis on the demo's own question: how far would the chance of heavy wear
+    move if heavy wear were more (or less) often left uninspected than the alarm explains, and how
+    strong would that have to be for the full-likelihood estimate to reach the complete-case one?
+    Starts from the demo's fit (no new MAR fit)."""
+    fn = optional("sensitivity", "sensitivity_analysis")
+    if fn is None:
+        return "skipped", "skipped (adfit.sensitivity is not part of this installation)"
+    from ..sensitivity import Shift, write_sensitivity
+
+    target = f"{FOCUS_NODE}={FOCUS_STATE}"
+    with rep.stage("sensitivity to gaps missing not at random (refits under assumed odds)"):
+        sens = fn(network, coded, Shift(FOCUS_NODE, FOCUS_STATE), SENSITIVITY_ODDS, targets=[target],
+                  predictors=[SENSITIVITY_PREDICTOR], pseudo_counts=pseudo, start=result.probs, threshold=threshold)
+    write_sensitivity(path, sens)
+    vals = {r["odds"]: r["targets"][target] for r in sens.rows}
+    tip = sens.tipping_point or {}
+    outcome.numbers["sensitivity"] = {
+        "target": target, "odds": list(SENSITIVITY_ODDS), "values": [vals[o]["value"] for o in SENSITIVITY_ODDS],
+        "se": [vals[o]["se"] for o in SENSITIVITY_ODDS], "threshold": threshold,
+        "tipping_odds": tip.get("odds"), "tipping_note": tip.get("note"),
+        "converged": all(r["converged"] for r in sens.rows)}
+    lo, hi = min(SENSITIVITY_ODDS), max(SENSITIVITY_ODDS)
+    return "done", (f"wrote {path.name}: if heavy wear were {lo:g} to {hi:g} times as likely to go uninspected "
+                    f"(given the alarm), the chance of heavy wear would be {_pct(vals[lo]['value'])} to "
+                    f"{_pct(vals[hi]['value'])} instead of {_pct(vals[1.0]['value'])}; "
+                    + (f"it reaches the complete-case {_pct(threshold)} at odds {tip['odds']:.2g}"
+                       if tip.get("crossed") else f"it does not reach the complete-case {_pct(threshold)} within the grid")
+                    + "; the odds are assumptions, not estimates")
+
+
+def _report(result_path: Path, coded: Any, path: Path, rep: Reporter, sensitivity: Path | None = None) -> tuple[str, str]:
     """Write the HTML report when adfit.report is part of this installation."""
     fn = optional("report", "write_report")
     if fn is None:
         return "skipped", "skipped (adfit.report is not part of this installation)"
     with rep.stage("writing the report"):
-        fn(path, result_path, data=coded, title=REPORT_TITLE)
+        if sensitivity is not None:
+            fn(path, result_path, data=coded, title=REPORT_TITLE, sensitivity=sensitivity)
+        else:
+            fn(path, result_path, data=coded, title=REPORT_TITLE)
     return "done", (f"wrote {path.name}: the network, convergence, CPTs with error bars, EM check, gaps and "
-                    f"complete-case plots, cautions")
+                    f"complete-case plots, " + ("the not-at-random sensitivity, " if sensitivity is not None else "")
+                    + "cautions")
 
 
 __all__ = ["run_demo", "load_demo", "demo_network", "demo_prior", "demo_frame", "marginal", "write_demo_files",
