@@ -371,6 +371,10 @@ def fit_command(
     quiet: Annotated[bool, Flag("--quiet", "-q", help="Print only the file written and warnings.")] = False,
     verbose: Annotated[bool, Flag("--verbose", "-v", help="Print everything: each start, the intervals of every cell, "
                                                           "the EM runs side by side.")] = False,
+    latent_states: Annotated[Optional[str], typer.Option(
+        "--latent-states", rich_help_panel=CHECK_PANEL,
+        help="Choose the number of states of a latent node: NODE=2..6 (or NODE=2,3,5) fits each count with its "
+             "restarts, prints and stores an AIC/BIC table with class separation, keeps the lowest BIC.")] = None,
 ) -> None:
     """Fit the free CPTs by maximising the exact marginal likelihood of the observed cells.
 
@@ -402,9 +406,17 @@ def fit_command(
         from .network import load_network as _load
 
         _net = _load(network)  # sizes that cannot fit are refused before the records are read
+        sweep_node, sweep_ks = None, ()
+        if latent_states is not None:
+            from .statecount import parse_spec, with_states
+
+            sweep_node, sweep_ks = parse_spec(latent_states, _net)
+            _big = with_states(_net, sweep_node, max(sweep_ks))
+        else:
+            _big = _net
         if batch_size is not None and batch_size >= 1:
             check_batch_size(batch_size, len(_net))
-        check_restarts(restarts, sum(math.prod(_net.cpt_shape(v)) for v in _net.free_names))
+        check_restarts(restarts, sum(math.prod(_big.cpt_shape(v)) for v in _big.free_names))
         net, coded = read_inputs(network, data, missing=missing, count_column=count_column,
                                  ignore_columns=ignore_columns, engine=engine, scheduler=scheduler)
         check_folds(folds, float(coded.counts.sum()), len(coded.counts))
@@ -426,13 +438,42 @@ def fit_command(
 
         FitSettings(method=method, tol=tol, gtol=gtol, max_iter=max_iter, learning_rate=learning_rate,
                     l2=l2, batch_size=batch_size, kkt_tol=kkt_tol).validate()
+        sweep_section = None
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             with _progress(quiet, restarts) as (callback, reporter):
-                result = fit(net, coded, restarts=restarts, seed=seed, progress=callback, **fit_kwargs)
+                if sweep_node is None:
+                    result = fit(net, coded, restarts=restarts, seed=seed, progress=callback, **fit_kwargs)
+                else:
+                    from .statecount import sweep
+
+                    def fit_one(net_k, k):
+                        kw = dict(fit_kwargs)
+                        if prior is not None:
+                            from .priors import load_prior
+
+                            kw["prior"] = load_prior(prior, net_k)
+                        return fit(net_k, coded, restarts=restarts, seed=seed, progress=callback, **kw)
+
+                    result, sweep_section = sweep(net, coded, sweep_node, sweep_ks, fit_one=fit_one)
         for w in caught:
             if issubclass(w.category, UserWarning):
                 typer.echo(f"adfit: warning: {w.message}", err=True)
+        if sweep_section is not None:
+            # everything after the fit works on the chosen candidate's network
+            net = result.network
+            if prior is not None:
+                from .priors import load_prior
+
+                pri = load_prior(prior, net)
+                fit_kwargs["prior"] = pri
+                pseudo = pri.pseudo_counts(net)
+            result = result.with_extras(latent_states=sweep_section)
+            if not quiet:
+                from .statecount import format_table
+
+                typer.echo(format_table(sweep_section))
+                typer.echo("")
         # error bars first: the complete-case comparison reports differences in their units
         from .uncertainty import cli_errors
 

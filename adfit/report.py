@@ -109,7 +109,7 @@ _KNOWN_TOP = {"format", "method", "objective", "log_likelihood", "log_prior", "p
               "gradient_norm", "converged", "stop_reason", "iterations", "n_rows", "n_distinct", "seed",
               "settings", "history", "nodes", "network", "restarts", "best_start", "optima", "em_check",
               "complete_case", "information_criteria", "cross_validation", "prior", "gaps", "em",
-              "uncertainty", "identifiability", "stationarity", "starts_note"}
+              "uncertainty", "identifiability", "stationarity", "starts_note", "latent_states"}
 _KNOWN_NODE = {"states", "parents", "latent", "fixed", "table", "se", "interval", "se_status",
                "missing_information"}
 
@@ -1483,6 +1483,7 @@ def _section_assessment(doc: Mapping[str, Any]) -> str:
             parts.append(_note("The fit is MAP: log L is taken at the posterior mode, not at the maximum."))
     else:
         parts.append(_absent("No information criteria in the result (adfit fit records them)."))
+    parts.append(_latent_states(doc))
     parts.append("<h3>Cross-validation</h3>")
     cv = doc.get("cross_validation")
     if isinstance(cv, Mapping):
@@ -1504,6 +1505,36 @@ def _section_assessment(doc: Mapping[str, Any]) -> str:
     else:
         parts.append(_absent("No cross-validation was run: use adfit fit --folds K."))
     return _sec("assessment", "".join(parts))
+
+
+def _latent_states(doc: Mapping[str, Any]) -> str:
+    """The table of candidate numbers of states of a latent node (``fit --latent-states``)."""
+    sec = doc.get("latent_states")
+    latent = [n for n, d in ((doc.get("network") or {}).get("nodes") or {}).items()
+              if isinstance(d, Mapping) and d.get("latent")]
+    if not isinstance(sec, Mapping):
+        if not latent:
+            return ""
+        return ("<h3>Number of latent states</h3>"
+                + _note("One number of states was fitted for each latent node; adfit fit --latent-states "
+                        "NODE=2..6 fits several and compares them by BIC."))
+    rows = []
+    for c in sec.get("candidates") or []:
+        if not isinstance(c, Mapping):
+            continue
+        rows.append([_fmt_any(c.get("states")) + (" (chosen)" if c.get("chosen") else ""),
+                     fmt_loglik(c.get("log_likelihood")), _fmt_any(c.get("n_parameters")),
+                     fmt_loglik(c.get("aic")), fmt_loglik(c.get("bic")), fmt_prob(c.get("relative_entropy")),
+                     "yes" if c.get("converged") else "no"])
+    out = [f"<h3>Number of states of {esc(sec.get('node', ''))}</h3>",
+           _table(["states", "log-likelihood", "free parameters", "AIC", "BIC", "relative entropy",
+                   "stopping rule held"], rows, cls="plain latent-states"),
+           _note(f"The candidate with the lowest BIC ({_fmt_any(sec.get('chosen'))} states) was kept; the "
+                 "CPTs in this report are its estimates. Relative entropy (Ramaswamy et al. 1993) describes how "
+                 "sharply the records are assigned to states (1: with certainty, 0: not at all); it does not "
+                 "choose. A candidate with more parameters than the data identify may fit no better; read its "
+                 "error bars before trusting it. " + str(sec.get("definitions", "")) + ".")]
+    return "".join(out)
 
 
 def _section_other(doc: Mapping[str, Any]) -> str:

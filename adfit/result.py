@@ -388,7 +388,7 @@ _CORE = {"format", "method", "objective", "log_likelihood", "log_prior", "penalt
          "settings", "history", "nodes", "network"}
 # sections that other modules add (each a JSON object; their readers check what is inside)
 _SECTIONS = ("restarts", "prior", "em", "em_check", "uncertainty", "complete_case", "information_criteria",
-             "cross_validation")
+             "cross_validation", "latent_states")
 
 
 #: keys renamed since results were first written: (section, old key, new key); read either way
