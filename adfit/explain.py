@@ -15,6 +15,7 @@ P(node = state) (Pearl 1988, virtual evidence).
 
 from __future__ import annotations
 
+import functools
 import itertools
 import math
 from typing import Any, Mapping, Sequence
@@ -72,8 +73,10 @@ def joint_posterior(network: Network, probs: Mapping[str, np.ndarray], given: Ma
 
 
 # ----------------------------------------------------------------------------- max-product
-def _min_fill_order(hidden: Sequence[int], scopes: Sequence[Sequence[int]], cards: Sequence[int]) -> list[int]:
-    """Greedy min-fill order of ``hidden`` (ties: the smaller table, then network order)."""
+@functools.lru_cache(maxsize=256)
+def _min_fill_order(hidden: tuple[int, ...], scopes: tuple[tuple[int, ...], ...], cards: tuple[int, ...]) -> tuple[int, ...]:
+    """Greedy min-fill order of ``hidden`` (ties: the smaller table, then network order); cached,
+    so rows of a batch with the same evidence nodes share one order."""
     nbr = {v: set() for v in hidden}
     for sc in scopes:
         for a in sc:
@@ -92,7 +95,7 @@ def _min_fill_order(hidden: Sequence[int], scopes: Sequence[Sequence[int]], card
             nbr[b].add(a)
         left.remove(v)
         order.append(v)
-    return order
+    return tuple(order)
 
 
 def _aligned(scope: Sequence[int], arr: np.ndarray, union: Sequence[int], cards: Sequence[int]) -> np.ndarray:
@@ -124,7 +127,7 @@ def max_product(network: Network, probs: Mapping[str, np.ndarray], given: Mappin
                 factors.append(((), np.asarray(w[gidx[i]]), np.ones(())))
             else:
                 factors.append(((i,), w, np.ones_like(w)))
-    order = _min_fill_order(hidden, [f[0] for f in factors], cards)
+    order = _min_fill_order(tuple(hidden), tuple(f[0] for f in factors), tuple(cards))
     trace = []
     tol = math.log1p(-TIE_TOL)
     for v in order:
