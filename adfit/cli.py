@@ -235,7 +235,7 @@ def em_check_options(l2: float, network=None) -> None:
 
 
 def with_em_check(result, coded, *, pseudo_counts=None, seed: int = 0, max_iter: Optional[int] = None,
-                  show: bool = True):
+                  show: bool = True, likelihood=None):
     """For ``fit --em-check``: run the EM cross-check (each EM run capped at ``max_iter``
     iterations, default :data:`adfit.crosscheck.EM_MAX_ITER`), print its summary, return the
     result with the ``"em_check"`` section added (one call in the fit command, before writing
@@ -243,7 +243,7 @@ def with_em_check(result, coded, *, pseudo_counts=None, seed: int = 0, max_iter:
     from .crosscheck import EM_MAX_ITER, attach_em_check, format_em_check
 
     checked = attach_em_check(result, coded, pseudo_counts=pseudo_counts, seed=seed,
-                              max_iter=EM_MAX_ITER if max_iter is None else max_iter)
+                              max_iter=EM_MAX_ITER if max_iter is None else max_iter, likelihood=likelihood)
     if show:
         typer.echo(format_em_check(checked.extras["em_check"]))
     return checked
@@ -438,12 +438,18 @@ def fit_command(
 
         FitSettings(method=method, tol=tol, gtol=gtol, max_iter=max_iter, learning_rate=learning_rate,
                     l2=l2, batch_size=batch_size, kkt_tol=kkt_tol).validate()
+        from .likelihood import Likelihood
+
         sweep_section = None
+        # one plan and one compiled program for the fit, the error bars and the EM check (a
+        # sweep fits other networks: each fit, and the error bars after it, plan their own)
+        lik = Likelihood(net, coded) if sweep_node is None else None
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             with _progress(quiet, restarts) as (callback, reporter):
                 if sweep_node is None:
-                    result = fit(net, coded, restarts=restarts, seed=seed, progress=callback, **fit_kwargs)
+                    result = fit(net, coded, restarts=restarts, seed=seed, progress=callback, likelihood=lik,
+                                 **fit_kwargs)
                 else:
                     from .statecount import sweep
 
@@ -482,11 +488,12 @@ def fit_command(
             with _phase(quiet, "error bars"):
                 result = cli_errors(result, coded, pseudo_counts=pseudo, l2=l2, errors=errors, quiet=quiet,
                                     echo=lambda text, **kw: (typer.echo(text, **kw) if kw.get("err") or quiet
-                                                             else skipped.append(text)), show=False)
+                                                             else skipped.append(text)), show=False,
+                                    likelihood=lik)
         if em_check:
             with _phase(quiet, "EM check (from the fit's answer and from its own start)"):
                 result = with_em_check(result, coded, pseudo_counts=pseudo, seed=seed, max_iter=em_max_iter,
-                                       show=False)
+                                       show=False, likelihood=lik)
         later: list[str] = []  # what the requested comparisons print, after the summary
         if compare_complete_case:
             from .gaps import compare_complete_case as ccc

@@ -337,7 +337,8 @@ def _pseudo_for(result: Any, pseudo_counts: Mapping[str, np.ndarray] | None) -> 
 def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] | None = None, seed: int = 0,
              tol: float = 1e-10, gtol: float = 1e-9, max_iter: int = EM_MAX_ITER, ll_rtol: float = LL_RTOL,
              theta_atol: float = THETA_ATOL, missing: Iterable[str] | None = None,
-             count_column: str | None = None, ignore_columns: Iterable[str] = ()) -> dict[str, Any]:
+             count_column: str | None = None, ignore_columns: Iterable[str] = (),
+             likelihood: Any = None) -> dict[str, Any]:
     """Cross-check a fit (an :class:`adfit.result.FitResult`) against EM; JSON-ready dict.
 
     Args:
@@ -349,6 +350,9 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
         tol, gtol, max_iter: EM's stopping rule (:func:`adfit.em.em_fit`); ``max_iter`` caps
             each of the two EM runs (``fit --em-max-iter``).
         ll_rtol, theta_atol: the tolerances of the verdict (module docstring).
+        likelihood: a :class:`adfit.likelihood.Likelihood` of this network and data (the same
+            :class:`adfit.CodedData` object) to reuse for the three measurements by the JAX core
+            (by default one is built here).
 
     Raises:
         OptionError: the fit used an L2 penalty (EM has no M-step for it), or a MAP fit without
@@ -381,9 +385,9 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
     d_from_fit, w_from_fit = _delta(net, em_fit_start.probs, fit_probs, skip)
     d_own, w_own = _delta(net, own_aligned, fit_probs, skip)
 
-    from .likelihood import Likelihood
+    from .likelihood import _prepared
 
-    lik = Likelihood(net, coded)  # one plan for the three measurements
+    lik = _prepared(likelihood, net, coded, "em_check")  # one plan for the three measurements
     s_fit = _score(net, coded, fit_probs, pseudo, lik)
     s_ff = _score(net, coded, em_fit_start.probs, pseudo, lik)
     s_own = _score(net, coded, em_own.probs, pseudo, lik)

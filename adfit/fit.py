@@ -41,7 +41,7 @@ import optax
 from .data import HIDDEN, CodedData, load_data
 from .errors import (ConvergenceWarning, IdentifiabilityWarning, ImpossibleDataError, LocalOptimaWarning, NetworkError,
                      OptionError, PriorError, option)
-from .likelihood import (Likelihood, check_possible,
+from .likelihood import (Likelihood, _prepared, check_possible,
                          logits_from_probs, probs_from_logits)
 from .network import Network
 from .params import (FreeLayout, fixed_log_tables, free_layout, full_logits, full_probs, mask_pseudo,
@@ -1084,7 +1084,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         ignore_columns: Iterable[str] = (), route: str = "auto", batch_size: int | None = None,
         em_check: bool = False, em_max_iter: int | None = None,
         progress: Callable[[int, int, float, float], None] | None = None, warn: bool = True,
-        kkt_tol: float = KKT_TOL, saddle_check: bool = True) -> FitResult:
+        kkt_tol: float = KKT_TOL, saddle_check: bool = True, likelihood: Likelihood | None = None) -> FitResult:
     """Fit the free CPTs of ``network`` to ``data`` by maximising the marginal likelihood.
 
     Args:
@@ -1116,6 +1116,10 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         em_max_iter: with ``em_check``, the iteration cap of each EM run (default
             :data:`adfit.crosscheck.EM_MAX_ITER`).
         progress: called as ``progress(start, iteration, objective, gradient_norm)``.
+        likelihood: a :class:`adfit.likelihood.Likelihood` already built for this ``network``
+            and this ``data`` (``data`` the same :class:`adfit.CodedData` object), to reuse its
+            plan and compiled programs (a command builds one and passes it to the fit, the error
+            bars and the EM check); ``route`` is then the one it was built with.
 
     Returns:
         A frozen :class:`adfit.result.FitResult`. A :class:`ConvergenceWarning` is issued when
@@ -1146,7 +1150,10 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     if not network.free_names:
         raise OptionError("every CPT of the network is fixed; nothing to estimate (use `adfit score` instead)")
     t0 = time.perf_counter()
-    fitter = Fitter(network, coded, settings=settings, pseudo_counts=pseudo_counts, route=route)
+    if likelihood is not None:
+        likelihood = _prepared(likelihood, network, coded, "fit")
+    fitter = Fitter(network, coded, settings=settings, pseudo_counts=pseudo_counts, route=route,
+                    likelihood=likelihood)
     fitter.saddle_check = bool(saddle_check)
     rng = np.random.default_rng(seed)
     p0 = dict(init) if init is not None else complete_family_start(
@@ -1235,7 +1242,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         from .crosscheck import attach_em_check
 
         result = attach_em_check(result, coded, pseudo_counts=fitter.pseudo if is_map else None, seed=seed,
-                                 **({} if em_max_iter is None else {"max_iter": em_max_iter}))
+                                 likelihood=fitter.lik, **({} if em_max_iter is None else {"max_iter": em_max_iter}))
     if warn and not best.converged:
         warnings.warn(f"the fit did not converge ({best.stop_reason}); gradient norm {ev['gradient_norm']:.3g}. "
                       f"Raise --max-iter or check the model", ConvergenceWarning, stacklevel=2)

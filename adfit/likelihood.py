@@ -35,9 +35,14 @@ How a row is taken apart (the *plan*, built once per network and data, in plain 
   program serve rows of different missingness patterns.
 * **Barren nodes** (hidden, no observed descendant in the row) sum out to 1, so they do not
   change the value, but their expected counts are not 0 (the posterior of their parents times
-  their CPT), and EM steps and the identifiability checks use those counts; so they stay in
-  their components (a barren subtree under observed parents is a component of its own, with few
-  distinct instances).
+  their CPT), and EM steps and the identifiability checks use those counts. A barren *leaf*
+  whose hidden parents are not barren (the unasked items of a questionnaire) leaves its
+  component: its cell is coded SUMMED, an extra column of its CPT in the plan's flat layout that
+  holds the log of the row sum (log 1), so its family is a factor over the parents alone; the
+  gradient reaching that column is the parents' posterior, and the chain rule through the log
+  row sum turns it into theta(x | u) times that posterior (:func:`_widen_flat`; exact in both
+  modes of differentiation). Other barren nodes stay in their components (a barren subtree
+  under observed parents is a component of its own, with few distinct instances).
 * The route per component (enumerate, its own elimination program, or the whole row in the
   uniform program) is chosen by an estimated cost that includes compile and plan time;
   ``Plan.route`` and ``Plan.describe()`` say what was chosen.
@@ -99,6 +104,8 @@ SHARD_MIN_S = 0.005         # evaluations estimated longer than this are split o
 # distinct instances, and at most MAX_PATTERN_GROUPS such programs are made.
 MIN_PATTERN_ROWS = 1
 MAX_PATTERN_GROUPS = 1 << 16
+# Barren hidden leaves summed out of their components (False: kept, the full elimination).
+SUM_BARREN_LEAVES = True
 # Target number of float64 entries in the largest intermediate of one posterior chunk (~4 MB).
 CHUNK_BUDGET = 1 << 19
 
@@ -355,6 +362,8 @@ class GatheredBlock:
     cost: float = 0.0
     n_hidden: int = 0
     n_partial: int = 0
+    widen: tuple = ()    # barren leaves summed out: :func:`_widen_segments` (the plan's flat layout)
+    n_summed: int = 0    # (row, leaf) cells summed out that way
 
 
 @dataclass(frozen=True)
@@ -439,7 +448,8 @@ class Plan:
         for g in self.groups:
             if isinstance(g, GatheredBlock):
                 parts.append(f"observed families gathered: {g.n_rows} rows, {g.n_families} row-families, "
-                             f"{g.n_components} hidden components, {g.n_pruned} nodes barren in some rows")
+                             f"{g.n_components} hidden components, {g.n_pruned} nodes barren in some rows"
+                             + (f", {g.n_summed} barren leaf cells summed out" if g.n_summed else ""))
             elif isinstance(g, EnumBlock):
                 parts.append(f"enumerated components {g.A}x{g.m}: {g.n_components} components -> "
                              f"{g.n_instances} distinct, {g.n_types} types")
@@ -462,6 +472,153 @@ class Plan:
         if kinds == {"mixed"}:
             return "uniform evidence"
         return "hybrid (per-pattern + uniform evidence)"
+
+
+# --------------------------------------------------------------------------- barren leaves
+# A hidden leaf (a node without children) is barren: it sums out to 1. When none of its hidden
+# parents is barren too, it is taken out of its component: its cell is coded SUMMED (an extra
+# column of its CPT, the log of the row sum, log 1 for a CPT) and its family becomes a factor
+# over the parents alone. The gradient reaching that column is the parents' posterior P(u | row)
+# (times the weight), and the leaf's expected counts are theta(x | u) times it, which the chain
+# rule through the log row sum gives (:func:`_widen_flat`); so do the second derivatives.
+_CODE_CARDS: dict[int, tuple[Network, tuple[int, ...]]] = {}
+
+
+def _summed_leaves(network: Network, codes: np.ndarray) -> tuple[np.ndarray, tuple[int, ...]]:
+    """Codes with every removable barren leaf's cell set to its number of states (the extra
+    column of its widened CPT), and the nodes widened (those removed in some row).
+
+    A hidden leaf is removed in a row when each of its hidden parents has an observed descendant
+    in that row (is not barren itself); otherwise it stays in its component."""
+    n = len(network)
+    pa, kids = _st(network).parents, _st(network).children
+    cards = _st(network).cards
+    R = codes.shape[0]
+    some = codes.min(axis=0) < 0 if R else np.zeros(n, bool)
+    leaves = [v for v in range(n) if not kids[v] and some[v]]
+    if not leaves:
+        return codes, ()
+    out = None
+    widened = []
+    step = max(1024, PLAN_BLOCK // max(1, n))
+    for s0 in range(0, R, step):
+        blk = codes[s0:s0 + step]
+        hid = blk < 0
+        # observed or with an observed descendant, per node hidden somewhere (children first)
+        od: dict[int, np.ndarray] = {}
+        for u in reversed(range(n)):
+            if not some[u]:
+                continue
+            hit = ~hid[:, u]
+            for c in kids[u]:
+                if some[c]:
+                    hit = hit | od[c]
+                else:
+                    hit = np.ones(len(blk), bool)
+                    break
+            od[u] = hit
+        for v in leaves:
+            rm = hid[:, v].copy()
+            for u in pa[v]:
+                if some[u]:
+                    rm &= od[u]
+            if rm.any():
+                if out is None:
+                    out = codes.copy()
+                out[s0:s0 + step][rm, v] = cards[v]
+                widened.append(v)
+    if out is None:
+        return codes, ()
+    return out, tuple(sorted(set(widened)))
+
+
+def _widened_network(network: Network, widened: Sequence[int]) -> Network:
+    """A stand-in for ``network`` (an equal copy, another identity) whose flat layout gives each
+    node of ``widened`` one more column per CPT row (the SUMMED code): the plan of rows with
+    summed leaves is built on it, so that every index it computes lands in the widened vector."""
+    import copy
+
+    shadow = copy.copy(network)
+    cards = list(_st(network).cards)
+    pa = _st(network).parents
+    wide = set(widened)
+    offsets, strides = [], []
+    off = 0
+    for i in range(len(network)):
+        fam = tuple(pa[i]) + (i,)
+        st, s = {}, 1
+        for u in reversed(fam):
+            st[u] = s
+            s *= cards[u] + (1 if u == i and i in wide else 0)
+        offsets.append(off)
+        strides.append(st)
+        off += s
+    _LAYOUTS[id(shadow)] = (shadow, (tuple(offsets), tuple(strides), off))
+    _CODE_CARDS[id(shadow)] = (shadow, tuple(c + (1 if i in wide else 0) for i, c in enumerate(cards)))
+    return shadow
+
+
+def _code_cards(network: Network) -> tuple[int, ...]:
+    """Values a code of each node can take in a plan's rows (a widened node: one more)."""
+    hit = _CODE_CARDS.get(id(network))
+    if hit is not None and hit[0] is network:
+        return hit[1]
+    return _st(network).cards
+
+
+def _widen_segments(network: Network, widened: Sequence[int]) -> tuple[tuple[int, int, int], ...]:
+    """Static description of the widening: per node ``(size, rows, card or 0 when not widened)``."""
+    wide = set(widened)
+    out = []
+    for i, name in enumerate(network.names):
+        shape = network.cpt_shape(name)
+        size = math.prod(shape)
+        out.append((size, size // shape[-1], shape[-1] if i in wide else 0))
+    return tuple(out)
+
+
+def _widen_flat(groups: tuple, lc_flat):
+    """The log-CPTs in the plan's flat layout: a widened node's rows get the log of their sum
+    (log 1 for CPTs) as an extra column; unchanged when the plan widened no node."""
+    seg = groups[0].widen if groups and isinstance(groups[0], GatheredBlock) else ()
+    if not seg:
+        return lc_flat
+    pieces, off, start = [], 0, 0
+    for size, rows, card in seg:
+        if card:
+            if off > start:
+                pieces.append(lc_flat[start:off])
+            t = lc_flat[off:off + size].reshape(rows, card)
+            pieces.append(jnp.concatenate([t, _logsumexp_last(t, axis=1)[:, None]], axis=1).reshape(-1))
+            start = off + size
+        off += size
+    pieces.append(lc_flat[start:])
+    return jnp.concatenate(pieces)
+
+
+def _is_widened(groups: tuple) -> bool:
+    return bool(groups) and isinstance(groups[0], GatheredBlock) and bool(groups[0].widen)
+
+
+def _plan_flat(groups: tuple, logcpts: Sequence[jax.Array]) -> jax.Array:
+    """:func:`_flat` in the plan's layout (widened for summed barren leaves)."""
+    lc = jnp.concatenate([jnp.ravel(x) for x in logcpts])
+    return jnp.concatenate([_widen_flat(groups, lc), jnp.array([0.0, -jnp.inf], jnp.float64)])
+
+
+def _narrow_flat(groups: tuple, w: np.ndarray) -> np.ndarray:
+    """A flat vector of the plan's layout back in the network's (extra columns dropped)."""
+    if not _is_widened(groups):
+        return w
+    out, off = [], 0
+    for size, rows, card in groups[0].widen:
+        if card:
+            out.append(w[off:off + rows * (card + 1)].reshape(rows, card + 1)[:, :card].reshape(-1))
+            off += rows * (card + 1)
+        else:
+            out.append(w[off:off + size])
+            off += size
+    return np.concatenate(out)
 
 
 # --------------------------------------------------------------------------- rows -> components
@@ -682,7 +839,7 @@ def _type_instances(network: Network, typ: _Type, codes: np.ndarray, counts: np.
 def _type_instances_uncached(network: Network, typ: _Type, codes: np.ndarray, counts: np.ndarray, rows: np.ndarray):
     bd = list(typ.boundary)
     sub = codes[np.ix_(rows, bd)] if bd else np.zeros((len(rows), 0), np.int32)
-    first, inv = _distinct_rows(sub, [_st(network).cards[u] for u in bd])
+    first, inv = _distinct_rows(sub, [_code_cards(network)[u] for u in bd])
     w = np.bincount(inv, weights=counts[rows], minlength=len(first))
     return sub[first], w, inv
 
@@ -1135,16 +1292,22 @@ def build_plan(network: Network, data: CodedData, *, route: str = "auto",
     if route == "uniform" or R == 0:
         return _shard(_assemble(network, codes, counts, uniform=np.ones(R, bool), enum_types=[], prog_types=[],
                                 pruned=np.zeros(n, bool), chunk=chunk))
-    tlist, pruned, hidden_rows = _components(network, codes)
-    enum_types, prog_types, to_uniform = _choose_methods(network, codes, counts, tlist, route,
+    # barren leaves summed out (their cells coded SUMMED, their CPTs widened in the plan's layout)
+    acodes, widened = _summed_leaves(network, codes) if SUM_BARREN_LEAVES else (codes, ())
+    pnet = _widened_network(network, widened) if widened else network
+    tlist, pruned, hidden_rows = _components(pnet, acodes)
+    enum_types, prog_types, to_uniform = _choose_methods(pnet, acodes, counts, tlist, route,
                                                          min_pattern_rows, max_pattern_groups, hidden_rows)
     uniform = np.zeros(R, bool)
     for t in to_uniform:
         uniform[t.rows] = True
-    plan = _assemble(network, codes, counts, uniform=uniform, enum_types=enum_types, prog_types=prog_types,
-                     pruned=pruned, chunk=chunk)
+    plan = _assemble(pnet, acodes, counts, uniform=uniform, enum_types=enum_types, prog_types=prog_types,
+                     pruned=pruned, chunk=chunk, uniform_codes=codes,
+                     widen=_widen_segments(network, widened) if widened else ())
     if route == "auto" and plan.estimate is not None:
         # the whole data set as one uniform program, when that is cheaper (small data: compile)
+        if widened:  # the uniform program sums every hidden cell: the summary of the original codes
+            hidden_rows = np.stack([codes.max(axis=0) < 0, codes.min(axis=0) < 0])
         uni_gp = _group_plan(network, hidden_rows, kind="mixed", n_rows=R, keep_all=True)
         alt = COMPILE_TAPE + R * TAPE_PAD * uni_gp.cost * T_TAPE * PLAN_EVALUATIONS
         mine = plan.estimate["compile_s"] + plan.estimate["evaluation_s"] * PLAN_EVALUATIONS
@@ -1354,7 +1517,10 @@ def _pow2_clip(x: float, lo: int, hi: int) -> int:
 
 def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, uniform: np.ndarray,
               enum_types: Sequence[_Type], prog_types: Sequence[_Type], pruned: np.ndarray,
-              chunk: int | None) -> Plan:
+              chunk: int | None, uniform_codes: np.ndarray | None = None, widen: tuple = ()) -> Plan:
+    """The plan's blocks. ``codes`` may hold SUMMED leaf cells (``widen``, the layout of
+    ``network`` widened for them); the rows of the uniform program take ``uniform_codes`` (the
+    original codes: that program sums every hidden cell itself)."""
     n = len(network)
     R = len(codes)
     pa = _st(network).parents
@@ -1364,7 +1530,7 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
     blocks, arrays, weights, maps = [], [], [], []
     eval_s = compile_s = 0.0
     n_local = int(local.sum())
-    if n_local:
+    if n_local or widen:  # (a widened plan keeps its first block: it carries the widening)
         N = np.zeros(n_flat + 2)
         n_fam = 0
         unit = bool(np.all(counts == 1.0))
@@ -1400,7 +1566,12 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
                 N += np.bincount(idx.ravel(), weights=np.tile(cb_w, n), minlength=n_flat + 3)[:n_flat + 2]
                 n_fam += int(np.count_nonzero(idx <= n_flat))
         n_comp = sum(int(local[t.rows].sum()) for t in (*enum_types, *prog_types))
-        blocks.append(GatheredBlock(n_local, n_fam, int(pruned.sum()), n_comp))
+        n_summed = 0
+        if widen:
+            for v, (_, _, card) in enumerate(widen):
+                if card:
+                    n_summed += int(np.count_nonzero(local & (codes[:, v] == card)))
+        blocks.append(GatheredBlock(n_local, n_fam, int(pruned.sum()), n_comp, widen=widen, n_summed=n_summed))
         arrays.append(np.zeros(0, np.int32))
         weights.append(N)
         maps.append(None)
@@ -1474,10 +1645,11 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
     # whole rows with uniform evidence
     urows = np.flatnonzero(uniform)
     if len(urows):
-        gp = _group_plan(network, codes[urows] < 0, kind="mixed", n_rows=len(urows), keep_all=True)
+        ucodes = (codes if uniform_codes is None else uniform_codes)[urows]
+        gp = _group_plan(network, ucodes < 0, kind="mixed", n_rows=len(urows), keep_all=True)
         prog = _compile_program(network, gp, layout, TAPE_SLOTS, TAPE_FACTORS)
         width = _choose_width([prog], [len(urows)])
-        blk, arr, wts, starts = _tape_block(network, "mixed", [prog], [(codes[urows], counts[urows])], width,
+        blk, arr, wts, starts = _tape_block(network, "mixed", [prog], [(ucodes, counts[urows])], width,
                                             chunk, TAPE_SLOTS, TAPE_FACTORS)
         blocks.append(blk)
         arrays.append(arr)
@@ -1657,7 +1829,7 @@ def _loglik_logcpt(network: Network, groups: tuple, logcpts: tuple[jax.Array, ..
     """Weighted total log-likelihood; differentiable in both modes (chunks are recomputed in the
     backward pass, so memory stays that of one chunk). ``codes``/``weights``: a :class:`Shards`
     (``Likelihood._codes``) or one part of it; the parts run one after the other here."""
-    flat = _flat(logcpts)
+    flat = _plan_flat(groups, logcpts)
     total = jnp.zeros((), jnp.float64)
     for cs, ws in _parts(codes, weights):
         total = total + _loglik_part(network, groups, flat, cs, ws)
@@ -1709,7 +1881,12 @@ def _value_and_flat_expected_counts(network: Network, groups: tuple, lc_flat, co
 
 @partial(jax.jit, static_argnums=(0, 1))
 def _value_and_flat_counts(network: Network, groups: tuple, lc_flat: jax.Array, codes, weights):
-    flat = jnp.concatenate([lc_flat, jnp.array([0.0, -jnp.inf], jnp.float64)])
+    wide = _is_widened(groups)
+    if wide:  # summed barren leaves: their columns of log row sums, and the chain rule back
+        lc_w, back = jax.vjp(lambda x: _widen_flat(groups, x), lc_flat)
+    else:
+        lc_w = lc_flat
+    flat = jnp.concatenate([lc_w, jnp.array([0.0, -jnp.inf], jnp.float64)])
     total = jnp.zeros((), jnp.float64)
     grad = jnp.zeros_like(flat)
     for cs, ws in _parts(codes, weights):
@@ -1729,6 +1906,9 @@ def _value_and_flat_counts(network: Network, groups: tuple, lc_flat: jax.Array, 
             (val, g), _ = jax.lax.scan(body, (jnp.zeros((), jnp.float64), jnp.zeros_like(flat)), xs)
             total = total + val
             grad = grad + g
+    if wide:
+        (g,) = back(grad[:-2])
+        grad = jnp.concatenate([g, grad[-2:]])
     return total, grad
 
 
@@ -1736,7 +1916,7 @@ def _value_and_flat_counts(network: Network, groups: tuple, lc_flat: jax.Array, 
 def _rows_loglik(network: Network, groups: tuple, logcpts: tuple[jax.Array, ...], codes: tuple) -> tuple:
     """Per-instance log-likelihood of every block but the gathered one (flattened chunks; one
     part of a :class:`Shards`)."""
-    flat = _flat(logcpts)
+    flat = _plan_flat(groups, logcpts)
     out = []
     for blk, arr in zip(groups, codes):
         if isinstance(blk, GatheredBlock):
@@ -1928,7 +2108,7 @@ class Likelihood:
         for i, blk in enumerate(self.plan.groups):
             if isinstance(blk, GatheredBlock):
                 w = self._weights.parts[0][i] if isinstance(self._weights, Shards) else self._weights[i]
-                return np.asarray(w)[:layout_size(self.network)], self.plan.observed_rows
+                return _narrow_flat(self.plan.groups, np.asarray(w))[:layout_size(self.network)], self.plan.observed_rows
         return None
 
     def expected_counts_flat(self, lc_flat):

@@ -63,7 +63,7 @@ from scipy import stats
 
 from .data import CodedData, load_data
 from .errors import OptionError
-from .likelihood import Likelihood, _loglik_logcpt, check_possible
+from .likelihood import Likelihood, Shards, _run_parts, _value_and_flat_expected_counts, check_possible
 from .network import Network
 from .params import full_probs, mask_pseudo, pool_counts
 
@@ -243,8 +243,26 @@ def _objective(network: Network, groups, sizes: tuple[int, ...], phi, aux):
         pen = pen + jnp.sum((eta - jnp.mean(eta, axis=-1, keepdims=True)) ** 2)
     # a tied node's log-CPT is its source's (the same parameters in both families)
     lcs = tuple(own[network.tie_source(n.name) if n.fixed is None else n.name] for n in network.nodes)
-    ll = _loglik_logcpt(network, groups, lcs, codes, weights)
+    ll = _loglik_by_counts(network, groups, jnp.concatenate([jnp.ravel(x) for x in lcs]), codes, weights)
     return ll + lp - l2 * pen
+
+
+@partial(jax.custom_jvp, nondiff_argnums=(0, 1))
+def _loglik_by_counts(network: Network, groups, lc_flat, codes, weights):
+    """The log-likelihood of the flat log-CPTs, differentiated through the likelihood core's own
+    expected-counts program (its derivative: d ll = N . d log theta, Fisher's identity), so
+    that a Hessian-vector product is the forward-mode derivative of that program (the
+    enumerated components' gradient is written out there) instead of a second pass of autodiff
+    over the whole evaluation: the same numbers (tests/test_uncertainty.py), fewer operations."""
+    return _value_and_flat_expected_counts(network, groups, lc_flat, codes, weights)[0]
+
+
+@_loglik_by_counts.defjvp
+def _loglik_by_counts_jvp(network, groups, primals, tangents):
+    lc_flat, codes, weights = primals
+    v, g = _value_and_flat_expected_counts(network, groups, lc_flat, codes, weights)
+    # cells of log 0 (impossible, fixed zeros) have no count and may carry no finite tangent
+    return v, jnp.sum(jnp.where(jnp.isfinite(lc_flat), g[:-2] * tangents[0], 0.0))
 
 
 @partial(jax.jit, static_argnums=(0, 1, 2))
@@ -263,7 +281,8 @@ class _Problem:
     """The objective at an estimate in the coordinates, with batched Hessian-vector products."""
 
     def __init__(self, network: Network, data: CodedData, coordinates: Coordinates,
-                 pseudo: Mapping[str, np.ndarray], l2: float, batch: int, likelihood: Likelihood | None = None):
+                 pseudo: Mapping[str, np.ndarray], l2: float, batch: int, likelihood: Likelihood | None = None,
+                 rechunk: bool = True):
         self.network = network
         self.co = coordinates
         self.batch = max(1, min(batch, coordinates.size))
@@ -271,17 +290,39 @@ class _Problem:
         lik = likelihood if likelihood is not None else Likelihood(network, data)
         chunks = [c for c in (getattr(g, "chunk", None) for g in lik.plan.groups)
                   if isinstance(c, int) and 0 < c < (1 << 30)]
-        if chunks and self.batch > 1 and max(MIN_CHUNK, min(chunks) // self.batch) < min(chunks):
+        if rechunk and chunks and self.batch > 1 and max(MIN_CHUNK, min(chunks) // self.batch) < min(chunks):
             lik = Likelihood(network, data, chunk=max(MIN_CHUNK, min(chunks) // self.batch))
         self.lik = lik
         with np.errstate(divide="ignore"):
             fixed_lc = {n: jnp.asarray(np.log(network.fixed_table(n))) for n in network.fixed_names}
-        self.aux = ({k: jnp.asarray(v) for k, v in coordinates.base.items()},
-                    {k: jnp.asarray(v) for k, v in coordinates.index.items()},
-                    {k: jnp.asarray(np.asarray(pseudo[k], dtype=np.float64)) for k in network.free_names},
-                    fixed_lc, jnp.asarray(float(l2)), self.lik._codes, self.lik._weights)
+        base = {k: jnp.asarray(v) for k, v in coordinates.base.items()}
+        index = {k: jnp.asarray(v) for k, v in coordinates.index.items()}
+        pc = {k: jnp.asarray(np.asarray(pseudo[k], dtype=np.float64)) for k in network.free_names}
+        self.aux = (base, index, pc, fixed_lc, jnp.asarray(float(l2)), self.lik._codes, self.lik._weights)
+        # The Hessian-vector products of the parts of a sharded plan (equal shapes: one compiled
+        # program) run side by side in threads, one per core, and are added: the objective is a
+        # sum over the parts, the log-prior and the penalty counted in part 0 only. One program
+        # over all parts would run them one after the other on one core, and compile all of them.
+        codes, weights = self.lik._codes, self.lik._weights
+        self.part_aux = None
+        if isinstance(codes, Shards) and len(codes.parts) > 1:
+            zero_pc = {k: jnp.zeros_like(v) for k, v in pc.items()}
+            self.part_aux = [(base, index, pc if s == 0 else zero_pc, fixed_lc,
+                              jnp.asarray(float(l2) if s == 0 else 0.0), cs, ws)
+                             for s, (cs, ws) in enumerate(zip(codes.parts, weights.parts))]
         self.phi0 = jnp.zeros(coordinates.size)
         self.n_products = 0
+
+    def _hvp(self, vecs: jax.Array) -> np.ndarray:
+        if self.part_aux is None:
+            return np.asarray(_hvp_batch(self.network, self.lik.plan.groups, self.co.sizes, self.phi0, vecs, self.aux))
+        groups = self.lik.plan.groups
+        res = _run_parts(lambda aux: _hvp_batch(self.network, groups, self.co.sizes, self.phi0, vecs, aux),
+                         [(a,) for a in self.part_aux], (id(self.network), groups, self.co.sizes, "hvp"))
+        out = np.asarray(res[0]).copy()
+        for r in res[1:]:
+            out += np.asarray(r)
+        return out
 
     def value_and_grad(self, phi: np.ndarray | None = None) -> tuple[float, np.ndarray]:
         p = self.phi0 if phi is None else jnp.asarray(phi, dtype=jnp.float64)
@@ -301,8 +342,7 @@ class _Problem:
             B = self.batch if full_batches else min(self.batch, 1 << max(0, math.ceil(math.log2(w))))
             vecs = np.zeros((B, P))
             vecs[:w] = cols.T
-            hv = np.asarray(_hvp_batch(self.network, self.lik.plan.groups, self.co.sizes, self.phi0,
-                                       jnp.asarray(vecs), self.aux))
+            hv = self._hvp(jnp.asarray(vecs))
             out[:, s:s + w] = -hv[:w].T
             self.n_products += w
         return out
@@ -1099,17 +1139,22 @@ def gradient_seconds(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> float:
 
 
 def cli_errors(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] | None, l2: float,
-               errors: bool | None, quiet: bool, echo: Callable[..., None], show: bool = True) -> Any:
+               errors: bool | None, quiet: bool, echo: Callable[..., None], show: bool = True,
+               likelihood: Likelihood | None = None) -> Any:
     """For ``adfit fit``: attach error bars (by default when the free parameters are at most
     :data:`AUTO_MAX_PARAMETERS`; ``errors`` True forces, False skips) and print their summary
-    (``show`` False: print nothing but the warnings; the caller prints them in its own place)."""
+    (``show`` False: print nothing but the warnings; the caller prints them in its own place).
+    ``likelihood``: the command's :class:`Likelihood` of this network and data (the same
+    :class:`CodedData` object), reused instead of planning again."""
     if errors is False:
         return result
     P = result.network.n_free_parameters()
     if errors is None and P > AUTO_MAX_PARAMETERS:
         echo(f"error bars skipped: {P} free parameters > {AUTO_MAX_PARAMETERS} (use --errors to compute them anyway)")
         return result
-    lik = Likelihood(result.network, load_data(result.network, data))
+    from .likelihood import _prepared
+
+    lik = _prepared(likelihood, result.network, load_data(result.network, data), "cli_errors")
     if errors is None:
         t = gradient_seconds(lik, result.probs)
         est = P * HVP_COST * t

@@ -15,9 +15,14 @@ These are synthetic figures for speed, not accuracy.
            The printed log-likelihood must be the same in every run and for every checkout.
   phases   one process, no compilation cache: where the time of a score goes (import, read and
            reduce, likelihood plan, the impossible-row check, the score, a second score).
+  fit      `adfit fit NET CSV --out OUT -q` (default error bars: computed or skipped by the time
+           estimate; --fit-args adds options, e.g. "--errors"), a fresh process with the
+           compilation cache of its own: wall time, the lines it printed about error bars, and how
+           many likelihood plans the process built (counted by a wrapper around
+           ``adfit.likelihood.build_plan``).
 
-Usage:  python benchmarks/bench_commands.py [score] [phases] [--root CHECKOUT] [--repeat 3]
-                                            [--rows 100000] [--data-dir DIR]
+Usage:  python benchmarks/bench_commands.py [score] [phases] [fit] [--root CHECKOUT] [--repeat 3]
+                                            [--rows 100000] [--data-dir DIR] [--fit-args "..."]
 """
 
 from __future__ import annotations
@@ -124,12 +129,58 @@ print(json.dumps({"import": t1 - t0, "read": t2 - t1, "plan": t3 - t2, "check": 
 """
 
 
+FIT = r"""
+import sys, time
+t0 = time.perf_counter()
+import adfit.likelihood as L
+n_plans = [0]
+_orig = L.build_plan
+def counted(*a, **k):
+    n_plans[0] += 1
+    return _orig(*a, **k)
+L.build_plan = counted
+sys.argv = ['adfit', *sys.argv[1:]]
+from adfit.cli import main
+try:
+    main()
+except SystemExit as e:
+    code = e.code
+else:
+    code = 0
+print(f"BENCH plans={n_plans[0]} seconds={time.perf_counter() - t0:.2f} exit={code}", file=sys.stderr)
+"""
+
+
+def run_fit(root: str, files, extra: list[str]) -> dict:
+    net, csv, _ = files
+    out = os.path.join(tempfile.mkdtemp(prefix="adfit-fit-"), "fit.json")
+    cache = tempfile.mkdtemp(prefix="adfit-cc-")
+    env = {**os.environ, "ADFIT_COMPILE_CACHE": cache}
+    t = time.perf_counter()
+    r = subprocess.run([sys.executable, "-c", FIT, "fit", net, csv, "--out", out, *extra], cwd=root,
+                       capture_output=True, text=True, env=env)
+    dt = time.perf_counter() - t
+    shutil.rmtree(cache, ignore_errors=True)
+    text = r.stdout + r.stderr
+    bench = [ln for ln in text.splitlines() if ln.startswith("BENCH ")]
+    if r.returncode != 0 or not bench or "exit=0" not in bench[-1]:
+        raise SystemExit(f"adfit fit failed ({r.returncode}):\n{text[-3000:]}")
+    info = dict(kv.split("=") for kv in bench[-1].split()[1:])
+    with open(out) as fh:
+        res = json.load(fh)
+    errs = [ln.strip() for ln in text.splitlines() if "error bars" in ln.lower() or "standard error" in ln.lower()]
+    return {"wall": dt, "plans": int(info["plans"]), "log_likelihood": res.get("log_likelihood"),
+            "iterations": res.get("iterations"), "has_errors": "uncertainty" in (res.get("extras") or res),
+            "lines": errs[:3]}
+
+
 def main() -> None:
     ap = argparse.ArgumentParser()
-    ap.add_argument("what", nargs="*", default=["score", "phases"])
+    ap.add_argument("what", nargs="*", default=["score", "phases"])  # also: fit
     ap.add_argument("--root", default=os.path.dirname(HERE), help="checkout whose adfit is run")
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--rows", type=int, default=100_000)
+    ap.add_argument("--fit-args", default="", help="extra options of adfit fit (one string)")
     ap.add_argument("--data-dir", default=os.path.join(tempfile.gettempdir(), "adfit-bench-commands"))
     args = ap.parse_args()
     root = os.path.abspath(args.root)
@@ -150,6 +201,14 @@ def main() -> None:
               f"cold cache {cold:.1f} s, warm cache median {statistics.median(warm):.1f} s "
               f"(min {min(warm):.1f}, {args.repeat} runs); log-likelihood {out['log_likelihood']!r}, "
               f"gradient norm {out['gradient_norm']!r}  (load {load()})")
+    if "fit" in args.what:
+        f = run_fit(root, files, args.fit_args.split())
+        print(f"adfit fit {args.fit_args}, {args.rows:,} records, 37 nodes, 20 % MCAR, empty compilation cache: "
+              f"{f['wall']:.1f} s wall, {f['plans']} likelihood plan(s) built, {f['iterations']} iterations, "
+              f"log-likelihood {f['log_likelihood']!r}, error bars {'in the result' if f['has_errors'] else 'not in the result'}"
+              f"  (load {load()})")
+        for ln in f["lines"]:
+            print(f"  | {ln}")
     if "phases" in args.what:
         env = {**os.environ, "ADFIT_COMPILE_CACHE": "0"}
         r = subprocess.run([sys.executable, "-c", PHASES, *files], cwd=root, capture_output=True, text=True, env=env)

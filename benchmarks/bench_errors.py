@@ -18,7 +18,7 @@ Printed, each after a warm-up call that compiles the program:
   agreement     largest relative difference between the batched and the one-column columns
 
 Usage:  PYTHONPATH=. python benchmarks/bench_errors.py [--rows 100000] [--batch 32] [--sample 16]
-                                                     [--extra-batches 8,64] [--full-before]
+                                                     [--extra-batches 8,64] [--full-before] [--keep-chunks]
 """
 
 from __future__ import annotations
@@ -73,6 +73,8 @@ def main() -> None:
     ap.add_argument("--sample", type=int, default=16)
     ap.add_argument("--extra-batches", default="")
     ap.add_argument("--full-before", action="store_true")
+    ap.add_argument("--keep-chunks", action="store_true",
+                    help="also run the batched products on the prepared likelihood, without cutting its chunks")
     a = ap.parse_args()
     print(f"commit {commit()}, load at start {load()}, {os.cpu_count()} cores")
     net = local_network(37, seed=0)
@@ -103,8 +105,17 @@ def main() -> None:
         one.information_times(np.eye(co.size))
         print(f"one column at a time, all columns: {time.perf_counter() - t:.1f} s")
 
-    for b in [a.batch] + [int(x) for x in a.extra_batches.split(",") if x]:
-        pb = U._Problem(net, data, co, pseudo, 0.0, b, lik)
+    runs = [(b, True) for b in [a.batch] + [int(x) for x in a.extra_batches.split(",") if x]]
+    if a.keep_chunks:
+        runs.append((a.batch, False))
+    for b, rechunk in runs:
+        kw = {} if rechunk else {"rechunk": False}
+        t = time.perf_counter()
+        pb = U._Problem(net, data, co, pseudo, 0.0, b, lik, **kw)
+        t_setup = time.perf_counter() - t
+        print(f"batch {b}, {'row chunks cut by the batch (a plan of its own)' if pb.lik is not lik else 'the prepared likelihood as it is'}"
+              f", {'threads over ' + str(len(pb.part_aux)) + ' parts' if getattr(pb, 'part_aux', None) else 'one program'}: "
+              f"setup {t_setup:.2f} s", flush=True)
         t = time.perf_counter()
         pb.information_times(np.eye(co.size)[:, :pb.batch])
         t_c = time.perf_counter() - t

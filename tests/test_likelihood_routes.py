@@ -16,6 +16,7 @@ import adfit.likelihood as lk
 from adfit.data import HIDDEN, CodedData
 from adfit.likelihood import Likelihood, build_plan, logcpts_from_probs
 from adfit.network import network_from_dict
+from published import STOUFFER_TOBY_COUNTS, STOUFFER_TOBY_ITEMS
 from randomnets import random_network, random_probs, random_rows
 
 
@@ -220,3 +221,92 @@ def test_chunks_split_over_threads_give_the_same_results(monkeypatch):
     batched = jax.vmap(lambda s: lk._value_and_expected_counts(net, lik.plan.groups, tuple(s * x for x in lc),
                                                                  lik._codes, lik._weights)[0])(jnp.ones(2))
     np.testing.assert_allclose(np.asarray(batched), val, rtol=1e-12)
+
+
+# ============================================================================ barren leaves summed out
+def _barren_case(seed):
+    rng = np.random.default_rng(300 + seed)
+    net = random_network(rng, int(rng.integers(5, 8)), p_latent=0.3, p_edge=0.5)
+    return net, random_probs(net, rng), random_rows(net, rng, 90, 0.45)
+
+
+@pytest.mark.parametrize("seed", range(4))
+@pytest.mark.parametrize("route", ["auto", "pattern"])
+def test_summed_barren_leaves_equal_the_full_elimination(seed, route, monkeypatch):
+    """A hidden leaf whose hidden parents have observed descendants is summed out of its
+    component (its expected counts from its parents' posterior); value, expected counts, row
+    log-likelihoods and the complete-family counts equal the plan that keeps it (the full
+    elimination, itself checked against brute-force enumeration above) to 1e-10."""
+    net, probs, data = _barren_case(seed)
+    monkeypatch.setattr(lk, "SUM_BARREN_LEAVES", False)
+    full = Likelihood(net, data, route=route)
+    assert not lk._is_widened(full.plan.groups)
+    monkeypatch.setattr(lk, "SUM_BARREN_LEAVES", True)
+    lean = Likelihood(net, data, route=route)
+    assert lk._is_widened(lean.plan.groups)  # the case under test: some leaf cells summed out
+    v0, c0 = full.expected_counts(probs)
+    v1, c1 = lean.expected_counts(probs)
+    assert v1 == pytest.approx(v0, rel=1e-12)
+    for name in net.names:
+        np.testing.assert_allclose(c1[name], c0[name], rtol=1e-10, atol=1e-10)
+    np.testing.assert_allclose(lean.row_logliks(probs), full.row_logliks(probs), rtol=0, atol=1e-10)
+    np.testing.assert_array_equal(lean.observed_family_counts()[0], full.observed_family_counts()[0])
+
+
+def test_summed_barren_leaves_against_enumeration_and_in_forward_mode():
+    """The widened plan against brute force, and its forward-mode derivative (the product the
+    error bars use) against central finite differences of its reverse-mode counts."""
+    net, probs, data = _barren_case(1)
+    lik = check_against_oracle(net, probs, data)
+    assert lik.plan.groups[0].n_summed > 0
+    lc = jnp.concatenate([jnp.ravel(x) for x in logcpts_from_probs(net, probs)])
+    rng = np.random.default_rng(0)
+    d = jnp.asarray(rng.normal(size=lc.shape))
+
+    def counts(x):
+        return lik.expected_counts_flat(x)[1][:-2]
+
+    _, jv = jax.jvp(lambda x: lk._value_and_flat_counts(net, lik.plan.groups, x, lik._codes.parts[0],
+                                                         lik._weights.parts[0])[1][:-2], (lc,), (d,))
+    h = 1e-6
+    fd = (np.asarray(counts(lc + h * d)) - np.asarray(counts(lc - h * d))) / (2 * h)
+    np.testing.assert_allclose(np.asarray(jv), fd, rtol=1e-5, atol=1e-6 * np.abs(fd).max())
+
+
+def test_latent_class_with_unasked_items_is_enumerated_over_the_class_only():
+    """Stouffer & Toby's four items (tests/published.py) with the last two unasked in half of the
+    records: the unasked items are barren leaves, summed out, so each component is the class
+    alone (2 assignments); expected counts as by the full elimination, and the unasked items'
+    counts are theta(item | class) times the class posterior (checked directly)."""
+    nodes = {"cls": {"states": ["k1", "k2"], "latent": True}}
+    for it in STOUFFER_TOBY_ITEMS:
+        nodes[it] = {"states": ["+", "-"], "parents": ["cls"]}
+    net = network_from_dict(nodes)
+    rows, w = [], []
+    for k, c in enumerate(STOUFFER_TOBY_COUNTS):
+        bits = [(k >> (3 - j)) & 1 for j in range(4)]
+        rows.append([HIDDEN, *bits])
+        w.append(c)
+        rows.append([HIDDEN, bits[0], bits[1], HIDDEN, HIDDEN])
+        w.append(c)
+    data = CodedData(np.array(rows, np.int32), np.array(w, float))
+    rng = np.random.default_rng(5)
+    probs = random_probs(net, rng)
+    lik = check_against_oracle(net, probs, data)
+    assert {g.A for g in lik.plan.groups if isinstance(g, lk.EnumBlock)} == {2}
+    _, counts = lik.expected_counts(probs)
+    # direct: class posterior of each half-asked record, times theta(item | class)
+    post = np.zeros(2)
+    for r, c in zip(rows[1::2], w[1::2]):
+        p = probs["cls"] * probs[STOUFFER_TOBY_ITEMS[0]][:, r[1]] * probs[STOUFFER_TOBY_ITEMS[1]][:, r[2]]
+        post += c * p / p.sum()
+    full_rows = [r for r in rows[0::2]]
+    asked = np.zeros((2, 2))
+    for r, c in zip(full_rows, w[0::2]):
+        p = probs["cls"].copy()
+        for j, it in enumerate(STOUFFER_TOBY_ITEMS):
+            p = p * probs[it][:, r[1 + j]]
+        p = p / p.sum()
+        asked[:, r[3]] += c * p
+    np.testing.assert_allclose(counts[STOUFFER_TOBY_ITEMS[2]], asked + post[:, None] * probs[STOUFFER_TOBY_ITEMS[2]],
+                               rtol=1e-10)

@@ -129,3 +129,43 @@ def test_score_command_names_a_record_of_probability_zero(tmp_path, monkeypatch)
     n = load_network(tmp_path / "net.toml")
     with pytest.raises(ImpossibleDataError, match="have probability 0"):
         check_possible(Likelihood(n, load_data(n, tmp_path / "rec.csv")), {k: n.fixed_table(k) for k in n.names})
+
+
+def test_fit_command_builds_one_plan_for_fit_error_bars_and_em_check(tmp_path, monkeypatch):
+    """`adfit fit --errors --em-check` plans the likelihood once (the fit, the error bars and the
+    EM check's three measurements reuse it) and writes the same estimate as the library's fit
+    without a prepared likelihood; the answer is checked against the independent EM reference
+    by the command itself (verdict in the result)."""
+    (tmp_path / "net.toml").write_text(NET)
+    (tmp_path / "rec.csv").write_text("wear,failure\nlight,no\nheavy,yes\n,yes\nlight,\nheavy,no\nlight,no\n,no\n")
+    calls = _count_plans(monkeypatch)
+    out = tmp_path / "fit.json"
+    r = CliRunner().invoke(app, ["fit", str(tmp_path / "net.toml"), str(tmp_path / "rec.csv"), "--out", str(out),
+                                 "--errors", "--em-check", "-q"])
+    assert r.exit_code == 0, r.output
+    assert len(calls) == 1
+    from adfit.data import load_data
+    from adfit.fit import fit
+    from adfit.network import load_network
+    from adfit.result import load_result
+
+    n = load_network(tmp_path / "net.toml")
+    got = load_result(out, n)
+    assert got.extras["em_check"]["verdict"].startswith("agree")
+    assert "uncertainty" in got.extras
+    ref = fit(n, load_data(n, tmp_path / "rec.csv"), warn=False)
+    np.testing.assert_allclose(got.probs["failure"], ref.probs["failure"], rtol=0, atol=1e-12)
+
+
+def test_fit_and_em_check_refuse_a_likelihood_of_other_data():
+    from adfit.crosscheck import em_check
+    from adfit.fit import fit
+
+    net, probs, data, _ = _case()
+    other = CodedData(data.codes.copy(), data.counts.copy())
+    lik = Likelihood(net, other)
+    with pytest.raises(OptionError, match=r"fit: the likelihood= given was built for another data"):
+        fit(net, data, likelihood=lik, warn=False)
+    res = fit(net, other, likelihood=lik, warn=False)
+    with pytest.raises(OptionError, match=r"em_check: the likelihood= given was built for another data"):
+        em_check(res, data, likelihood=lik)
