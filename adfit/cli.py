@@ -391,7 +391,7 @@ def fit_command(
     """
     import warnings
 
-    from .errors import ConvergenceWarning
+    from .errors import ConvergenceWarning, OptionError
     from .fit import fit
     from .result import write_result
 
@@ -427,6 +427,11 @@ def fit_command(
             pri = load_prior(prior, net)
         if em_check:
             em_check_options(l2, _net)
+        if errors:
+            from .uncertainty import structure_refusal
+
+            if (refusal := structure_refusal(_net)) is not None:
+                raise OptionError(f"{refusal} (fit without --errors)")
         from .crosscheck import check_em_max_iter
 
         check_em_max_iter(em_max_iter)

@@ -169,10 +169,20 @@ def format_estimates(result: Any, names: Sequence[str] | None = None, *, digits:
         node = result.network.node(name)
         tag = " (fixed)" if node.fixed is not None else (" (latent)" if node.latent else "")
         head = f"P({name} | {', '.join(node.parents)}){tag}" if node.parents else f"P({name}){tag}"
+        extra = ""
+        sec = (result.extras.get("nodes") or {}).get(name) or {}
+        if isinstance(sec.get("parameters"), dict):  # a structured form: its own parameters too
+            from .forms import format_parameters
+
+            try:
+                head += f" ({sec.get('cpd')})" + (f", tied to {node.tied_to}" if node.tied_to else "")
+                extra = "\n" + format_parameters(result.network, name, sec["parameters"], digits=digits)
+            except (KeyError, TypeError, ValueError):
+                extra = ""
         df = result.cpt(name)
         with pd.option_context("display.width", 200, "display.max_columns", 40):
             body = df.to_string(float_format=lambda x: f"{x:.{digits}f}")
-        blocks.append(f"{head}\n{body}")
+        blocks.append(f"{head}\n{body}{extra}")
     return "\n\n".join(blocks)
 
 
