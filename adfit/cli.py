@@ -344,8 +344,19 @@ def format_cpts(result, *, digits: int = 3, names=None) -> str:
         node = result.network.node(name)
         df = result.cpt(name).round(digits)
         tag = " (fixed)" if node.fixed is not None else (" (latent)" if node.latent else "")
+        sec = (result.extras.get("nodes") or {}).get(name) or {}
+        if isinstance(sec.get("parameters"), dict):  # a structured form: its own parameters too
+            from .forms import format_parameters
+
+            try:
+                tag += f" ({sec.get('cpd')})" + (f", tied to {node.tied_to}" if node.tied_to else "")
+                extra = "\n" + format_parameters(result.network, name, sec["parameters"], digits=digits)
+            except (KeyError, TypeError, ValueError):
+                extra = ""
+        else:
+            extra = ""
         with pd.option_context("display.width", 200, "display.max_columns", 20):
-            blocks.append(f"P({name} | {', '.join(node.parents) or '-'}){tag}\n{df.to_string()}")
+            blocks.append(f"P({name} | {', '.join(node.parents) or '-'}){tag}\n{df.to_string()}{extra}")
     return "\n\n".join(blocks)
 
 
@@ -402,7 +413,7 @@ def fit_command(
     """
     import warnings
 
-    from .errors import ConvergenceWarning
+    from .errors import ConvergenceWarning, OptionError
     from .fit import fit
     from .result import write_result
 
@@ -438,6 +449,11 @@ def fit_command(
             pri = load_prior(prior, net)
         if em_check:
             em_check_options(l2, _net)
+        if errors:
+            from .uncertainty import structure_refusal
+
+            if (refusal := structure_refusal(_net)) is not None:
+                raise OptionError(f"{refusal} (fit without --errors)")
         from .crosscheck import check_em_max_iter
 
         check_em_max_iter(em_max_iter)

@@ -491,16 +491,25 @@ def _check_pseudo(network: Network, pseudo_counts: Mapping[str, Any] | None) -> 
             if np.any(a != 0):
                 raise PriorError(f"pseudo-counts given for node {name!r}, whose CPT is fixed; remove them")
             continue
-        shape = network.cpt_shape(name)
+        form = network.cpd_form(network.tie_source(name))
+        node = network.node(network.tie_source(name))
+        # a noisy node's pseudo-counts are on its cause distributions: one row per cause (the
+        # leak, then each parent's non-first states in order)
+        shape = ((1 + sum(network.node(p).card - 1 for p in node.parents), node.card)
+                 if form in ("noisy_or", "noisy_max") else network.cpt_shape(name))
         if a.shape != shape:
             raise PriorError(f"pseudo-counts of node {name!r} have shape {a.shape}, expected {shape}")
         if not np.all(np.isfinite(a)) or np.any(a < 0):
             raise PriorError(f"pseudo-counts of node {name!r} must be finite and >= 0 (Dirichlet alpha = c + 1 >= 1)")
-        form = network.cpd_form(name)
+        if form in ("noisy_or", "noisy_max"):
+            if np.any(a != 0):
+                out[name] = a
+            continue
         if form != "table":
             if np.any(a != 0):
                 raise PriorError(f"pseudo-counts given for node {name!r}, whose CPT has the {form} form: EM takes "
-                                 f"Dirichlet pseudo-counts on full tables only; remove them for this node")
+                                 f"Dirichlet pseudo-counts on full tables and noisy cause rows only; remove them "
+                                 f"for this node")
             continue
         if network.node(network.tie_source(name)).impossible:
             a = np.where(network.impossible_mask(name), 0.0, a)  # a cell fixed at 0 has no pseudo-count
@@ -508,11 +517,21 @@ def _check_pseudo(network: Network, pseudo_counts: Mapping[str, Any] | None) -> 
     return out
 
 
-def _log_prior(network: Network, probs: Mapping[str, np.ndarray], prior: Mapping[str, np.ndarray] | None) -> float:
+def _log_prior(network: Network, probs: Mapping[str, np.ndarray], prior: Mapping[str, np.ndarray] | None,
+               *, groups=None, params=None) -> float:
     if not prior:
         return 0.0
     total = 0.0
+    noisy = {}
+    for g in groups or ():
+        if g.noisy:
+            noisy.update({m: g for m in g.members})
     for name, c in prior.items():
+        if name in noisy:  # Dirichlet on the cause distributions (counted once, on the source)
+            g = noisy[name]
+            if name == g.source:
+                total += _forms.log_prior_noisy(g, params[g.source], _forms.pooled(g, prior))
+            continue
         th = probs[name]
         pos = c > 0
         if np.any(pos & (th <= 0)):
@@ -710,7 +729,7 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
             if bad.size:
                 raise ImpossibleDataError(_impossible_message(network, coded, bad))
         ll = _weighted_sum(row_ll, w)
-        lp = _log_prior(network, probs, prior)
+        lp = _log_prior(network, probs, prior, groups=None if plain else groups, params=params)
         obj = ll + lp
         trace.append(obj)
         resid = (stationarity_residual(network, counts, probs, prior) if plain
@@ -724,7 +743,7 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
             new = _mstep(network, counts, probs, prior)
         else:
             params = {g.source: _forms.mstep(g, _forms.pooled(g, counts), params[g.source],
-                                             _forms.pooled(g, prior) if g.kind == "table" else None)
+                                             _forms.pooled(g, prior) if g.kind != "logistic" else None)
                       for g in groups}
             new = _implied_probs(network, groups, params)
         steps.append(math.sqrt(sum(float(np.sum((new[m] - probs[m]) ** 2)) for m in network.free_names)))

@@ -301,6 +301,7 @@ def mstep(g: Group, counts: np.ndarray, par: Any, prior: np.ndarray | None = Non
         return _normalise(num, np.asarray(par))
     if g.noisy:
         leak_m, cause_m = expected_cause_counts(g, counts, par)
+        leak_m, cause_m = _with_prior(g, leak_m, cause_m, prior)
         leak = _normalise(leak_m, par["leak"])
         causes = []
         for c_old, cm in zip(par["causes"], cause_m):
@@ -310,6 +311,35 @@ def mstep(g: Group, counts: np.ndarray, par: Any, prior: np.ndarray | None = Non
             causes.append(c)
         return {"leak": leak, "causes": causes}
     return _newton(g, par, counts, NEWTON_STEPS, 1e-12 * max(1.0, float(np.sum(counts))))
+
+
+def _with_prior(g: Group, leak_m: np.ndarray, cause_m: Sequence[np.ndarray], prior: np.ndarray | None):
+    """Expected cause counts plus Dirichlet pseudo-counts on the cause distributions: ``prior``
+    has one row per cause (the leak, then each parent's non-first states in order), the MAP
+    M-step of the hidden-cause network (each cause distribution a Dirichlet row)."""
+    if prior is None or not np.any(prior):
+        return leak_m, list(cause_m)
+    prior = np.asarray(prior, dtype=np.float64).reshape(-1, g.card)
+    out, r = [], 1
+    for cm in cause_m:
+        add = np.zeros_like(cm)
+        add[1:] = prior[r:r + cm.shape[0] - 1]
+        out.append(cm + add)
+        r += cm.shape[0] - 1
+    return leak_m + prior[0], out
+
+
+def log_prior_noisy(g: Group, par: Mapping[str, Any], prior: np.ndarray | None) -> float:
+    """``Σ c log q`` over the cause distributions of a noisy group (−inf where c > 0 at q = 0)."""
+    if prior is None or not np.any(prior):
+        return 0.0
+    prior = np.asarray(prior, dtype=np.float64).reshape(-1, g.card)
+    rows = [par["leak"]] + [row for c in par["causes"] for row in c[1:]]
+    q = np.asarray(rows, dtype=np.float64)
+    pos = prior > 0
+    if np.any(pos & (q <= 0)):
+        return -math.inf
+    return float(np.sum(prior[pos] * np.log(q[pos])))
 
 
 def residual(g: Group, counts: np.ndarray, par: Any, prior: np.ndarray | None = None) -> np.ndarray:
@@ -325,6 +355,7 @@ def residual(g: Group, counts: np.ndarray, par: Any, prior: np.ndarray | None = 
         return (num - np.asarray(par) * num.sum(axis=-1, keepdims=True)).ravel()
     if g.noisy:
         leak_m, cause_m = expected_cause_counts(g, counts, par)
+        leak_m, cause_m = _with_prior(g, leak_m, cause_m, prior)
         parts = [leak_m - par["leak"] * leak_m.sum()]
         for c, cm in zip(par["causes"], cause_m):
             parts.append((cm[1:] - c[1:] * cm[1:].sum(axis=1, keepdims=True)).ravel())
@@ -347,7 +378,7 @@ def gradient_norm(network: Network, counts: Mapping[str, np.ndarray], params: Ma
 
 
 def _pooled_prior(g: Group, pseudo_counts: Mapping[str, np.ndarray] | None) -> np.ndarray | None:
-    if g.kind != "table":
+    if g.kind not in ("table", "noisy_or", "noisy_max"):
         return None
     return pooled(g, pseudo_counts)
 

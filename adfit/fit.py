@@ -44,7 +44,8 @@ from .errors import (ConvergenceWarning, IdentifiabilityWarning, ImpossibleDataE
 from .likelihood import (Likelihood, _prepared, check_possible,
                          logits_from_probs, probs_from_logits)
 from .network import Network
-from .params import (FreeLayout, fixed_log_tables, free_layout, full_logits, full_probs, mask_pseudo,
+from . import forms as _forms
+from .params import (FreeLayout, block_shape, estimated_starts, fixed_log_tables, free_layout, full_logits, full_probs, mask_pseudo,
                      objective_fg as _objective_fg, pool_counts)
 from .priors import describe_rows, prior_only_rows, resolve_pseudo_counts
 from .result import FitResult
@@ -83,7 +84,7 @@ AUTO_STARTS_SECONDS = 60.0
 # default starts run side by side only when one evaluation takes at least this long
 BATCH_MIN_EVAL_SECONDS = 0.01
 # the structured-CPT features the gradient fit estimates (Network.unsupported_structure)
-SUPPORTED_STRUCTURE = ("table", "tied", "impossible")
+SUPPORTED_STRUCTURE = ("table", "noisy_or", "noisy_max", "logistic", "tied", "impossible")
 # stop reasons of a stalled (not converged) quasi-Newton run, after which a boundary escape is tried
 STALL_REASONS = ("line search found no better point", "no further progress after rescaling")
 
@@ -136,6 +137,21 @@ def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) ->
             if c is not None and np.any(np.asarray(c, dtype=np.float64) > 0):
                 raise PriorError(f"node {name!r} is tied to {src!r} and shares its parameters: give the prior "
                                  f"on {src!r} only")
+            continue
+        if _forms.has_rows(network, name):
+            shape = block_shape(network, name)
+            if c is not None and np.any(np.asarray(c, dtype=np.float64) > 0):
+                if _forms.is_logistic(network, name):
+                    raise PriorError(f"node {name!r} has cpd = 'logistic': priors on its coefficients are not "
+                                     f"available yet; fit it without a prior on {name!r}")
+                c = np.asarray(c, dtype=np.float64)
+                if c.shape != shape:  # Dirichlet pseudo-counts on the cause rows (adfit.priors)
+                    raise PriorError(f"node {name!r} ({network.cpd_form(name)}): pseudo-counts have shape {c.shape}, "
+                                     f"expected {shape} (one row per cause: "
+                                     f"{', '.join(_forms.cause_row_labels(network, name))})")
+                out[name] = c
+                continue
+            out[name] = np.zeros(shape)
             continue
         out[name] = np.zeros(network.cpt_shape(name)) if c is None else np.asarray(c, dtype=np.float64)
     return mask_pseudo(network, out)
@@ -211,6 +227,9 @@ def kkt_ratios(network: Network, probs: Mapping[str, np.ndarray], counts: Mappin
     out = {}
     for name in network.estimated_names:
         th = np.asarray(probs[name], dtype=np.float64)
+        if _forms.is_logistic(network, name):  # coefficients: no simplex, the logit rule is the condition
+            out[name] = np.full(th.shape, np.nan)
+            continue
         a = np.asarray(counts[name], dtype=np.float64) + pseudo[name]
         mu = a.sum(axis=-1, keepdims=True)
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -259,6 +278,9 @@ def _cell_label(network: Network, name: str, flat: int) -> str:
     """``"node=state | parent=state, ..."`` for entry ``flat`` of the raveled CPT of ``name``."""
     node = network.node(name)
     row, col = divmod(int(flat), node.card)
+    if _forms.has_rows(network, name):  # a cell of a parameter row (adfit.forms)
+        kind = "coefficient row" if _forms.is_logistic(network, name) else "cause row"
+        return f"{name}={node.states[col]} in the {kind} {_forms.cause_row_labels(network, name)[row]}"
     cfg = network.parent_config_labels(name)[row]
     given = ", ".join(f"{p}={v}" for p, v in zip(node.parents, cfg))
     return f"{name}={node.states[col]}" + (f" | {given}" if given else "")
@@ -425,6 +447,10 @@ class Fitter:
         self.pseudo = _pseudo(network, pseudo_counts)
         self.n_total = float(data.n_rows)
         self.free = network.estimated_names  # tied nodes share their source's parameters
+        # logistic rows take no EM steps (coefficients have no closed-form M-step): the other
+        # nodes' EM steps with them held fixed still never lower the objective (a GEM step)
+        self.logistic = tuple(n for n in self.free if _forms.is_logistic(network, n))
+        self.em_free = tuple(n for n in self.free if n not in self.logistic)
         self.em_polish_steps = 0
         self.boundary_escapes = 0
         self.saddle_escapes = 0
@@ -456,6 +482,15 @@ class Fitter:
         d, state = _lbfgs_direction(memory, grad, state, params)
         return np.asarray(d), state
 
+    def logits_of(self, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+        """Logits of the estimated nodes (log-probabilities, row max shifted to 0; tied nodes
+        need no entry)."""
+        out = {}
+        for name in self.free:
+            lp = np.log(np.maximum(np.asarray(probs[name], dtype=np.float64), 1e-300))
+            out[name] = lp - lp.max(axis=-1, keepdims=True)
+        return out
+
     def probs(self, logits: Mapping[str, Any]) -> dict[str, np.ndarray]:
         """CPTs of every node from the estimated nodes' logits (impossible cells 0, ties filled)."""
         return probs_from_logits(self.network, full_logits(self.network, logits))
@@ -464,17 +499,34 @@ class Fitter:
         """Log-likelihood and expected counts at ``probs`` (CPTs of the estimated nodes, or of
         all), the constraints applied first (:func:`adfit.params.full_probs`) and the counts of
         tied families pooled into their source's (:func:`adfit.params.pool_counts`)."""
-        ll, counts = self.lik.expected_counts(full_probs(self.network, probs) if self.constrained else probs)
-        return ll, (pool_counts(self.network, counts) if self.constrained else counts)
+        ll, counts, _ = self.counts_and_families(probs)
+        return ll, counts
+
+    def counts_and_families(self, probs: Mapping[str, np.ndarray]):
+        """:meth:`counts`, and the CPT-shaped expected family counts of every node as the
+        likelihood gives them (before pooling ties or the chain rule onto cause rows)."""
+        if not self.constrained:
+            ll, counts = self.lik.expected_counts(probs)
+            return ll, counts, counts
+        ll, fam = self.lik.expected_counts(full_probs(self.network, probs))
+        return ll, pool_counts(self.network, fam, probs), fam
+
+    def tables(self, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+        """The CPT of every node from the fitter's parameters (cause rows imply their tables)."""
+        return full_probs(self.network, probs) if self.constrained else dict(probs)
 
     def evaluate(self, logits: Mapping[str, Any]) -> dict[str, Any]:
         """Log-likelihood, log-prior, penalty, gradient (∂F/∂η) and residuals at ``logits``."""
         probs = self.probs(logits)
-        ll, counts = self.counts(probs)
+        ll, counts, fam = self.counts_and_families(probs)
         g = objective_gradient(self.network, probs, counts, self.pseudo, logits, self.settings.l2)
         resid = 0.0
+        weights = self._logistic_weights(probs, fam) if self.logistic else {}
         for name in self.free:
-            denom = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
+            if name in weights:  # records the coefficient row serves
+                denom = weights[name][1][:, None]
+            else:
+                denom = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
             r = np.abs(g[name]) / np.maximum(denom, 1.0)
             resid = max(resid, float(r.max(initial=0.0)))
         lp = log_prior_value(probs, self.pseudo)
@@ -482,7 +534,7 @@ class Fitter:
         kkt = self.kkt(probs, counts) if self.settings.l2 == 0 else None
         return {"probs": probs, "log_likelihood": ll, "log_prior": lp, "penalty": pen,
                 "objective": ll + lp - pen, "grad": g, "gradient_norm": _norm(g),
-                "residual": resid, "counts": counts, "kkt": kkt,
+                "residual": resid, "counts": counts, "kkt": kkt, "family_counts": fam, "logistic_weights": weights,
                 "kkt_ratio": _max_finite(kkt) if kkt is not None else None}
 
     def kkt(self, probs: Mapping[str, np.ndarray], counts: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
@@ -493,7 +545,7 @@ class Fitter:
         more than about 1e-200."""
         r = kkt_ratios(self.network, probs, counts, self.pseudo)
         tiny = {}
-        for name in self.free:
+        for name in self.em_free:
             th = np.asarray(probs[name])
             mu = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
             t = (th <= KKT_TINY) & (mu >= KKT_MIN_WEIGHT)
@@ -515,6 +567,24 @@ class Fitter:
         """The simplex KKT condition at an evaluated point: every checked cell's ratio ≤ 1 + kkt_tol
         (always true with an L2 penalty, whose maximum is interior: the logit rule covers it)."""
         return ev.get("kkt_ratio") is None or not (ev["kkt_ratio"] > 1.0 + self.settings.kkt_tol)
+
+    def _logistic_weights(self, probs: Mapping[str, np.ndarray], fam: Mapping[str, np.ndarray]):
+        """Per logistic node: (complete-data information of each coefficient, records per row),
+        :func:`adfit.forms.logistic_weights`, from the family counts pooled over ties."""
+        out = {}
+        for name in self.logistic:
+            n = sum((np.asarray(fam[t]) for t in self.network.tied_names(name)), np.asarray(fam[name]))
+            table = _forms.implied_table(self.network, name, probs[name])
+            out[name] = _forms.logistic_weights(self.network, name, n, table)
+        return out
+
+    def _scale_at(self, ev: Mapping[str, Any]) -> dict[str, np.ndarray]:
+        """:meth:`_scale` at an evaluated point; a logistic node's coefficients are scaled by
+        1/sqrt(their complete-data information + ε)."""
+        out = self._scale(ev["counts"], ev["probs"])
+        for name, (info, _) in (ev.get("logistic_weights") or {}).items():
+            out[name] = 1.0 / np.sqrt(info + SCALE_EPS)
+        return out
 
     def _scale(self, counts: Mapping[str, np.ndarray], probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
         """Diagonal preconditioner: 1/sqrt(N(u)·θ(x|u) + ε) per logit.
@@ -621,7 +691,7 @@ class Fitter:
         objective beyond rounding (so a flat direction the data cannot identify, with curvature
         about zero, is never called one)."""
         lay = self.layout
-        scale = lay.flatten(self._scale(ev["counts"], ev["probs"]))
+        scale = lay.flatten(self._scale_at(ev))
         pseudo, l2, N = self.pseudo_flat, float(self.settings.l2), float(self.n_total)
         z0 = lay.flatten(logits) / scale
         f0 = -ev["objective"] / N
@@ -703,7 +773,7 @@ class Fitter:
                 changed = True
             if not changed:
                 return None
-            cand = logits_from_probs(self.network, new)
+            cand = self.logits_of(new)
             ev_c = self.evaluate(cand)
             if math.isfinite(ev_c["objective"]) and (best is None or ev_c["objective"] > best[1]["objective"]):
                 best = (cand, ev_c)
@@ -711,12 +781,12 @@ class Fitter:
             return best
         cur, logits = ev, None
         for _ in range(10 * EM_POLISH_STEPS):
-            new_probs = {}
-            for name in self.free:
+            new_probs = {n: cur["probs"][n] for n in self.logistic}
+            for name in self.em_free:
                 num = cur["counts"][name] + self.pseudo[name]
                 den = num.sum(axis=-1, keepdims=True)
                 new_probs[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), cur["probs"][name])
-            cand = logits_from_probs(self.network, new_probs)
+            cand = self.logits_of(new_probs)
             ev_c = self.evaluate(cand)
             if not (math.isfinite(ev_c["objective"]) and ev_c["objective"] >= cur["objective"]):
                 break
@@ -754,7 +824,7 @@ class Fitter:
             if ev["gradient_norm"] <= gtol_abs:
                 converged, stop_reason = True, "gradient norm below gtol"
                 break
-            scale = lay.flatten(self._scale(ev["counts"], ev["probs"]))
+            scale = lay.flatten(self._scale_at(ev))
             phase_len = PHASE_LENGTHS[min(n_phase, len(PHASE_LENGTHS) - 1)] if s.method == "lbfgs" else max_iter
             n_phase += 1
 
@@ -852,12 +922,12 @@ class Fitter:
                 # the objective (Dempster, Laird & Rubin 1977, Theorem 1) and set such cells to
                 # (near) zero at once; the next phase then resumes the quasi-Newton method.
                 for _ in range(EM_POLISH_STEPS):
-                    new_probs = {}
-                    for name in self.free:
+                    new_probs = {n: ev["probs"][n] for n in self.logistic}
+                    for name in self.em_free:
                         num = ev["counts"][name] + self.pseudo[name]
                         den = num.sum(axis=-1, keepdims=True)
                         new_probs[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), ev["probs"][name])
-                    cand = logits_from_probs(self.network, new_probs)
+                    cand = self.logits_of(new_probs)
                     ev_c = self.evaluate(cand)
                     if not (math.isfinite(ev_c["objective"]) and ev_c["objective"] >= ev["objective"] - 1e-12 * abs(ev["objective"])):
                         break
@@ -1003,7 +1073,7 @@ def em_burn_in(fitter: "Fitter", probs: Mapping[str, np.ndarray], steps: int) ->
     out = {k: np.asarray(v, dtype=np.float64) for k, v in probs.items()}
     for _ in range(int(steps)):
         _, counts = fitter.counts(out)
-        for name in fitter.free:
+        for name in getattr(fitter, "em_free", fitter.free):
             num = counts[name] + fitter.pseudo[name]
             den = num.sum(axis=-1, keepdims=True)
             out[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), out[name])
@@ -1048,9 +1118,33 @@ def check_impossible_cells(network: Network, data: CodedData) -> None:
                 f"records or the network")
 
 
+def _noisy_starts(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Starting CPTs with each noisy node's replaced by the cause rows read off it
+    (:func:`adfit.forms.start_rows`); cause rows given already (their shape) are kept."""
+    out = dict(probs)
+    for name in network.estimated_names:
+        if _forms.has_rows(network, name) and np.shape(out[name]) == tuple(network.cpt_shape(name)):
+            out[name] = _forms.start_rows(network, name, out[name])
+    return out
+
+
+def form_sections(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, dict[str, Any]]:
+    """``{name: {"cpd": form, "parameters": ...}}`` for every noisy node (tied copies included),
+    from the fitter's cause rows (:func:`adfit.forms.parameters_json`)."""
+    out = {}
+    for name in network.free_names:
+        if _forms.has_rows(network, name):
+            src = network.tie_source(name)
+            out[name] = {"cpd": network.cpd_form(src), "parameters": _forms.parameters_json(network, src, probs[src])}
+    return out
+
+
 def random_start(network: Network, rng: np.random.Generator) -> dict[str, np.ndarray]:
     out = {}
     for name in network.free_names:
+        if _forms.has_rows(network, name):
+            out[name] = _forms.random_rows(network, name, rng)
+            continue
         shape = network.cpt_shape(name)
         out[name] = rng.dirichlet(np.ones(shape[-1]), size=shape[:-1]).reshape(shape)
     for name in network.fixed_names:
@@ -1157,12 +1251,15 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     fitter.saddle_check = bool(saddle_check)
     rng = np.random.default_rng(seed)
     p0 = dict(init) if init is not None else complete_family_start(
-        network, coded, rng, fitter.pseudo, observed=fitter.lik.observed_family_counts())
+        network, coded, rng, {k: v for k, v in fitter.pseudo.items() if not _forms.has_rows(network, k)},
+        observed=fitter.lik.observed_family_counts())
     for name in network.fixed_names:
         p0[name] = network.fixed_table(name)
-    p0 = full_probs(network, p0)
+    p0 = _noisy_starts(network, p0)
+    p0 = estimated_starts(network, p0)
     check_impossible_cells(network, coded)
-    check_possible(fitter.lik, p0, given="the starting CPTs (init)" if init is not None else "the first start")
+    check_possible(fitter.lik, fitter.tables(p0),
+                   given="the starting CPTs (init)" if init is not None else "the first start")
     auto_starts = restarts is None
     latent = any(n.latent for n in network.nodes)
     batched = True
@@ -1173,6 +1270,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         batched = not (per_eval < BATCH_MIN_EVAL_SECONDS)
     else:
         starts_note = None
+    if fitter.layout.noisy:
+        batched = False  # the side-by-side program evaluates tables, not cause rows
     starts = [p0]
     for k in range(1, restarts):
         pk = random_start(network, rng)
@@ -1190,6 +1289,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     best_k = int(np.nanargmax([r.value if math.isfinite(r.value) else -np.inf for r in runs]))
     best = runs[best_k]
     ev = fitter.evaluate(best.logits)
+    tables = fitter.tables(ev["probs"])
     elapsed = time.perf_counter() - t0
     is_map = any(np.any(c > 0) for c in fitter.pseudo.values())
     restart_rows = [{"start": k, "kind": "complete-family counts" if k == 0 and init is None else ("given" if k == 0 else "random Dirichlet"),
@@ -1198,10 +1298,13 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     from .restarts import local_optima_message, restarts_report
 
     stationarity = stationarity_section(fitter, ev)
-    restarts_section = restarts_report(network, restart_rows, finals if finals is not None else [ev], best=best_k,
+    finals = finals if finals is not None else [ev]
+    if fitter.layout.noisy:  # the optima are compared on their CPTs (cause rows imply them)
+        finals = [{**f, "probs": fitter.tables(f["probs"]), "counts": f["family_counts"]} for f in finals]
+    restarts_section = restarts_report(network, restart_rows, finals, best=best_k,
                                        gtol_abs=gtol * coded.n_rows, ptol=ptol, batch_width=restart_stats.get("width", 1))
     result = FitResult(
-        network=network, method=method, objective="map" if is_map else "mle", probs=ev["probs"],
+        network=network, method=method, objective="map" if is_map else "mle", probs=tables,
         log_likelihood=ev["log_likelihood"], log_prior=ev["log_prior"], penalty=ev["penalty"],
         gradient_norm=ev["gradient_norm"], converged=best.converged, stop_reason=best.stop_reason,
         iterations=best.iterations, history={"objective": tuple(best.history_obj), "gradient_norm": tuple(best.history_gn)},
@@ -1214,10 +1317,12 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
                   **({"learning_rate": learning_rate} if method == "adam" else {}),
                   **({"batch_size": batch_size} if batch_size else {})},
         extras={"restarts": restarts_section, "best_start": best_k, "stationarity": stationarity,
-                **({"prior": prior_desc} if prior_desc else {})},
+                **({"prior": prior_desc} if prior_desc else {}),
+                **({"nodes": form_sections(network, ev["probs"])} if fitter.layout.noisy else {})},
     )
     if is_map:
-        parent_weight = {n: ev["counts"][n].sum(axis=-1) for n in network.estimated_names}
+        parent_weight = {n: ev["counts"][n].sum(axis=-1) for n in network.estimated_names
+                         if not _forms.has_rows(network, n)}
         only = prior_only_rows(network, parent_weight, fitter.pseudo)
         if only:
             labels = describe_rows(network, only)

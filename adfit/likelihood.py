@@ -2239,7 +2239,9 @@ def score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray], *,
     The gradient norm is that of the objective (log-likelihood plus log-prior when
     ``pseudo_counts`` are given): per free node the logit gradient is
     ``N(x,u) + c(x,u) - theta(x|u) (N(u) + c(u))`` in units of records (for a set of tied nodes,
-    one gradient with their counts added; impossible cells contribute 0).
+    one gradient with their counts added; impossible cells contribute 0). A noisy_or / noisy_max
+    / logistic node's gradient is taken w.r.t. the logits of its parameter rows, read off its
+    table (:func:`adfit.forms.rows_from_table`; no prior on them).
 
     ``likelihood``: a :class:`Likelihood` already built for this ``network`` and this ``data``
     (the same object), to reuse its plan and compiled program (a command that also checks or
@@ -2251,6 +2253,14 @@ def score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray], *,
     for name in network.estimated_names:  # a tied node's family counts add to its source's
         th = np.asarray(probs[name], dtype=np.float64)
         n_xu = sum((counts[t] for t in network.tied_names(name)), counts[name])
+        if network.cpd_form(name) in ("noisy_or", "noisy_max", "logistic"):
+            from . import forms
+
+            rows = forms.rows_from_table(network, name, th)
+            a = forms.virtual_counts(network, name, rows, n_xu)
+            g = a - rows * a.sum(axis=-1, keepdims=True)
+            gn2 += float(np.sum(g * g))
+            continue
         n_xu = n_xu + (0.0 if pseudo_counts is None or name not in pseudo_counts else pseudo_counts[name])
         g = n_xu - th * n_xu.sum(axis=-1, keepdims=True)
         gn2 += float(np.sum(g * g))

@@ -193,10 +193,17 @@ class Network:
 
     def n_free_parameters(self) -> int:
         """Free parameters of the estimated CPTs: (possible states − 1) per parent configuration
-        (``card − 1`` without impossible cells), counted once for a set of tied nodes."""
+        (``card − 1`` without impossible cells), counted once for a set of tied nodes. A node of
+        a structured form counts its form's parameters: noisy_or / noisy_max a leak and one
+        distribution per active parent state, logistic an intercept and one coefficient vector per
+        non-reference parent state, each with ``card − 1`` free entries."""
         total = 0
         for m in self.estimated_names:
             node = self.node(m)
+            if node.cpd in ("noisy_or", "noisy_max", "logistic"):
+                rows = 1 + sum(self.node(p).card - 1 for p in node.parents)
+                total += rows * (node.card - 1)
+                continue
             total += self.n_parent_configs(m) * (node.card - 1) - len(node.impossible)
         return total
 

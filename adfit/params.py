@@ -24,6 +24,17 @@ Constraints on tables (network keys ``tied_to`` and ``impossible``):
   gradient is 0 (its expected count is 0 and so is its pseudo-count, :func:`mask_pseudo`).
   Outside the head, :func:`full_logits` applies the same mask and fills in the tied nodes.
 
+Structured forms (network key ``cpd``, :mod:`adfit.forms`): a noisy_or / noisy_max node's block in
+the vector holds the softmax logits of its *cause rows* (the leak and one row per active parent
+state) instead of CPT rows; they join the other rows of their size in the softmax. Its CPT is
+implied by those rows (:func:`adfit.forms.implied_log_table`): the head appends the implied
+log-tables after the fixed nodes' log-tables, and ``full_index`` sends the node's (and its tied
+copies') entries of the likelihood layout there. The gradient w.r.t. the cause rows' log
+probabilities (their virtual counts) is the chain rule of the expected counts through the
+implied table (reverse mode in :func:`head_grad`; :func:`adfit.forms.virtual_counts` in
+:func:`head_grad_np`). Everything that works on rows of probabilities (the softmax, the prior
+as pseudo-counts, the KKT ratios, EM steps) then works on cause rows unchanged.
+
 Imports: this module depends on :mod:`adfit.likelihood` and :mod:`adfit.network` only; nothing
 here imports :mod:`adfit.fit`, which removes the former circle fit → restarts → fit.
 """
@@ -38,11 +49,13 @@ from typing import Any, Mapping
 from ._jax import jax, jnp  # first: float64 on (adfit/_jax.py)
 import numpy as np
 
+from . import forms as _forms
 from .likelihood import _value_and_flat_expected_counts
 from .network import Network
 
 __all__ = ["FreeLayout", "free_layout", "fixed_log_tables", "head", "head_grad", "head_np", "head_grad_np",
-           "objective_fg", "pool_counts", "full_logits", "full_probs", "mask_pseudo"]
+           "objective_fg", "pool_counts", "full_logits", "full_probs", "mask_pseudo", "block_shape",
+           "estimated_starts"]
 
 
 # --------------------------------------------------------------------------- the flat parameter vector
@@ -73,6 +86,10 @@ class FreeLayout:
     free_index: Any = None   # the free entries' positions in the likelihood's layout (None: all entries)
     tied: bool = False       # some node is tied to another: counts are pooled (bincount over full_index)
     mask: Any = None         # 0 / −inf per vector entry (impossible cells), None when there are none
+    noisy: tuple = ()        # (name, vector offset, cause-row shape, offset in the implied log-tables) per noisy node
+    n_fixed: int = 0         # entries of the fixed nodes' log-tables (the implied ones follow them)
+    network: Any = None      # the network (the noisy nodes' implied tables need it)
+    struct_sel: Any = None   # entries of the likelihood's layout taken from the implied log-tables
 
     def flatten(self, tree: Mapping[str, Any]) -> np.ndarray:
         """One float64 vector from CPT-shaped arrays of the free nodes (a new array)."""
@@ -97,13 +114,20 @@ def free_layout(network: Network) -> FreeLayout:
     return hit[1]
 
 
+def block_shape(network: Network, name: str) -> tuple[int, ...]:
+    """Shape of an estimated node's block of parameters: its CPT, or its cause rows (noisy forms)."""
+    if _forms.has_rows(network, name):
+        return tuple(_forms.cause_shape(network, name))
+    return tuple(network.cpt_shape(name))
+
+
 def _make_free_layout(network: Network) -> FreeLayout:
     names = tuple(network.estimated_names)
     free = set(names)
     shapes, offsets, by_card = [], [], {}
     off = 0
     for name in names:
-        sh = tuple(network.cpt_shape(name))
+        sh = block_shape(network, name)
         size = math.prod(sh)
         shapes.append(sh)
         offsets.append(off)
@@ -120,43 +144,68 @@ def _make_free_layout(network: Network) -> FreeLayout:
     if in_order and len(rows) == 1:
         rows = [(rows[0][0], None)]
     inverse = None if in_order else np.argsort(perm).astype(np.int32)
+    n_fixed = sum(math.prod(network.cpt_shape(n)) for n in network.fixed_names)
+    noisy, s_off = [], 0
+    for name, sh, o in zip(names, shapes, offsets):
+        if _forms.has_rows(network, name):
+            noisy.append((name, o, sh, s_off))
+            s_off += math.prod(network.cpt_shape(name))
+    noisy_at = {name: P + n_fixed + so for name, _, _, so in noisy}
     full, fixed_off, n_flat = [], 0, 0
     for node in network.nodes:
         size = math.prod(network.cpt_shape(node.name))
         n_flat += size
         src = network.tie_source(node.name) if node.fixed is None else node.name
-        if src in free:
+        if src in noisy_at:
+            full.append(np.arange(noisy_at[src], noisy_at[src] + size, dtype=np.int32))
+        elif src in free:
             o = offsets[names.index(src)]
             full.append(np.arange(o, o + size, dtype=np.int32))
         else:
             full.append(np.arange(P + fixed_off, P + fixed_off + size, dtype=np.int32))
             fixed_off += size
-    tied = len(names) < len(network.free_names)
+    # a gather with a transpose by sums: tied families, or cause rows (not in the likelihood layout)
+    tied = len(names) < len(network.free_names) or bool(noisy)
     full_index = None if fixed_off == 0 and not tied else np.concatenate(full)
     free_index = None if full_index is None else np.flatnonzero(full_index < P).astype(np.int32)
     mask = None
     if any(network.node(n).impossible for n in names):
-        mask = np.concatenate([np.where(network.impossible_mask(n).ravel(), -np.inf, 0.0) for n in names])
+        mask = np.concatenate([np.zeros(math.prod(sh)) if _forms.has_rows(network, n) else
+                               np.where(network.impossible_mask(n).ravel(), -np.inf, 0.0)
+                               for n, sh in zip(names, shapes)])
     return FreeLayout(names, tuple(shapes), tuple(offsets), P, n_flat, tuple(rows), inverse, full_index,
-                      None if inverse is None else perm.astype(np.int32), free_index, tied, mask)
+                      None if inverse is None else perm.astype(np.int32), free_index, tied, mask, tuple(noisy),
+                      n_fixed, network,
+                      None if not noisy else np.flatnonzero(full_index >= P + n_fixed).astype(np.int32))
 
 
-def pool_counts(network: Network, counts: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+def pool_counts(network: Network, counts: Mapping[str, np.ndarray],
+                probs: Mapping[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
     """Expected counts by estimated node (:attr:`Network.estimated_names`): each source's own
     plus those of the nodes tied to it (the derivative of log L w.r.t. the shared log θ); the
-    tied nodes keep their own family's counts under their own names (for reports)."""
-    if len(network.estimated_names) == len(network.free_names):
+    tied nodes keep their own family's counts under their own names (for reports).
+
+    A noisy node's entry becomes the virtual counts of its cause rows (∂ log L/∂ log v,
+    :func:`adfit.forms.virtual_counts`), which needs ``probs`` (its cause rows, as the fitter
+    holds them); its family counts stay available under the tied nodes' names only."""
+    noisy = [n for n in network.estimated_names if _forms.has_rows(network, n)]
+    if len(network.estimated_names) == len(network.free_names) and not noisy:
         return dict(counts)
     out = dict(counts)
     for name in network.estimated_names:
         for t in network.tied_names(name):
             out[name] = np.asarray(out[name], dtype=np.float64) + np.asarray(counts[t], dtype=np.float64)
+    if noisy:
+        if probs is None:
+            raise ValueError("pool_counts needs the cause rows (probs) of the noisy nodes")
+        for name in noisy:
+            out[name] = _forms.virtual_counts(network, name, probs[name], out[name])
     return out
 
 
 def full_logits(network: Network, logits: Mapping[str, Any]) -> dict[str, np.ndarray]:
     """Logits of every free node from those of the estimated ones: impossible cells at −∞, tied
-    nodes given their source's logits."""
+    nodes given their source's logits (a noisy node's are those of its cause rows)."""
     out = {}
     for name in network.free_names:
         src = network.tie_source(name)
@@ -167,9 +216,10 @@ def full_logits(network: Network, logits: Mapping[str, Any]) -> dict[str, np.nda
     return out
 
 
-def full_probs(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
-    """CPTs of every node with the constraints applied: tied nodes take their source's table;
-    impossible cells are set to 0 and their rows renormalised. Fixed nodes pass through."""
+def estimated_starts(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Probabilities in the fitter's own parameters for every free node (cause rows for noisy
+    nodes, CPTs otherwise), the constraints applied: tied nodes take their source's, impossible
+    cells are 0 and their rows renormalised. Fixed nodes pass through."""
     out = dict(probs)
     for name in network.free_names:
         src = network.tie_source(name)
@@ -178,6 +228,20 @@ def full_probs(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, n
             th = np.where(network.impossible_mask(src), 0.0, th)
             th = th / th.sum(axis=-1, keepdims=True)
         out[name] = th
+    return out
+
+
+def full_probs(network: Network, probs: Mapping[str, np.ndarray], *, cause_rows: bool = True) -> dict[str, np.ndarray]:
+    """CPTs of every node with the constraints applied: tied nodes take their source's table;
+    impossible cells are set to 0 and their rows renormalised; a noisy node's entry is its
+    cause rows (the fitter's parameters) and gets the table they imply
+    (:func:`adfit.forms.implied_table`), or with ``cause_rows=False`` is taken as its table
+    already. Fixed nodes pass through."""
+    out = estimated_starts(network, probs)
+    if cause_rows:
+        for name in network.free_names:
+            if _forms.has_rows(network, name):
+                out[name] = _forms.implied_table(network, network.tie_source(name), out[name])
     return out
 
 
@@ -201,6 +265,9 @@ def fixed_log_tables(network: Network) -> np.ndarray:
 
 
 # --------------------------------------------------------------------------- the fast objective
+_implied_log_table = jax.jit(_forms.implied_log_table, static_argnums=(0, 1))
+
+
 @partial(jax.jit, static_argnums=(0,))
 def head(network: Network, z, scale, pseudo, fixed_flat, l2):
     """Log-CPTs of all nodes (one flat vector in the likelihood's layout) and the prior/penalty
@@ -226,8 +293,11 @@ def head(network: Network, z, scale, pseudo, fixed_flat, l2):
     if lay.inverse is not None:
         lc = lc[lay.inverse]
     lp = jnp.sum(pseudo * lc) if lay.mask is None else jnp.sum(jnp.where(lay.mask == 0, pseudo * lc, 0.0))
-    full = lc if lay.full_index is None else jnp.concatenate([lc, fixed_flat])[lay.full_index]
-    return full, lp - l2 * pen
+    if lay.full_index is None:
+        return lc, lp - l2 * pen
+    src = [lc, fixed_flat] + [_forms.implied_log_table(network, name, lc[o:o + math.prod(sh)].reshape(sh)).reshape(-1)
+                              for name, o, sh, _ in lay.noisy]
+    return jnp.concatenate(src)[lay.full_index], lp - l2 * pen
 
 
 @partial(jax.jit, static_argnums=(0,))
@@ -270,8 +340,11 @@ def head_np(lay: FreeLayout, z: np.ndarray, scale: np.ndarray, pseudo: np.ndarra
     with np.errstate(invalid="ignore"):
         lp = float(np.dot(pseudo, lc)) if lay.mask is None else float(np.dot(np.where(lay.mask == 0, pseudo, 0.0),
                                                                             np.where(lay.mask == 0, lc, 0.0)))
-    full = lc if lay.full_index is None else np.concatenate([lc, fixed_flat])[lay.full_index]
-    return full, lp - l2 * pen, blocks
+    if lay.full_index is None:
+        return lc, lp - l2 * pen, (blocks, lc)
+    src = [lc, fixed_flat] + [np.asarray(_implied_log_table(lay.network, name, lc[o:o + math.prod(sh)].reshape(sh))).ravel()
+                              for name, o, sh, _ in lay.noisy]
+    return np.concatenate(src)[lay.full_index], lp - l2 * pen, (blocks, lc)
 
 
 def head_grad_np(lay: FreeLayout, blocks, scale: np.ndarray, pseudo: np.ndarray, l2: float, counts: np.ndarray,
@@ -279,9 +352,19 @@ def head_grad_np(lay: FreeLayout, blocks, scale: np.ndarray, pseudo: np.ndarray,
     """:func:`_head_grad` in closed form (numpy): with ``a = N(x,u) + c`` per CPT entry, the
     gradient of F w.r.t. the logits is ``a − θ Σ_x a − 2λ(η − mean η)`` per row (Fisher's
     identity, the prior, the penalty); times ``scale`` and ``−1/N``."""
+    blocks, lc = blocks
     if lay.tied:  # the transpose of the gather: tied families' counts added to their source's
         sel = lay.free_index
         c = np.bincount(lay.full_index[sel], weights=counts[sel], minlength=lay.size)
+        if lay.noisy:  # the implied tables' counts, by the chain rule onto the cause rows
+            s0 = lay.size + lay.n_fixed
+            ss = lay.struct_sel
+            sc = np.bincount(lay.full_index[ss] - s0, weights=counts[ss])
+            for name, o, sh, so in lay.noisy:
+                csh = tuple(lay.network.cpt_shape(name))
+                n = math.prod(sh)
+                c[o:o + n] += np.asarray(_forms._virtual_counts(
+                    lay.network, name, lc[o:o + n].reshape(sh), sc[so:so + math.prod(csh)].reshape(csh))).ravel()
     else:
         c = counts[:lay.n_flat] if lay.free_index is None else counts[lay.free_index]
     a = c + pseudo

@@ -208,13 +208,13 @@ class Prior:
         out: dict[str, np.ndarray] = {}
         for name in network.free_names:
             if network.node(name).tied_to is not None:
-                out[name] = np.zeros(network.cpt_shape(name))  # a tie takes its source's prior, once
+                out[name] = np.zeros(_shape(network, network.tie_source(name)))  # a tie takes its source's prior, once
             elif name in own:
                 out[name] = _resolve(own[name], network, name, f"{self.source}: [nodes.{name}]")
             elif self.default is not None:
                 out[name] = _resolve(self.default, network, name, f"{self.source}: [default] (node {name!r})")
             else:
-                out[name] = np.zeros(network.cpt_shape(name))
+                out[name] = np.zeros(_shape(network, name))
             with np.errstate(over="ignore"):
                 total = float(out[name].sum())
             if not total <= MAX_TOTAL_PSEUDO_COUNT:
@@ -358,9 +358,31 @@ def _as_cells(x: Any, what: str, where: str) -> Cells:
 
 
 # --------------------------------------------------------------------- resolution
+def _is_noisy(network: Network, name: str) -> bool:
+    return network.cpd_form(name) in ("noisy_or", "noisy_max")
+
+
+def _shape(network: Network, name: str) -> tuple[int, ...]:
+    """What a prior of ``name`` is shaped like: its CPT, or for a noisy_or / noisy_max node its
+    cause rows (the leak, then each parent's non-first states in order; docs/priors.md)."""
+    if _is_noisy(network, name):
+        node = network.node(name)
+        return (1 + sum(network.node(p).card - 1 for p in node.parents), node.card)
+    return tuple(network.cpt_shape(name))
+
+
+def _n_rows(network: Network, name: str) -> int:
+    return _shape(network, name)[0] if _is_noisy(network, name) else network.n_parent_configs(name)
+
+
 def _resolve(spec: PriorSpec, network: Network, name: str, where: str) -> np.ndarray:
-    shape = network.cpt_shape(name)
-    q, r = network.n_parent_configs(name), shape[-1]
+    if network.cpd_form(name) == "logistic":
+        if spec.kind == "pseudo_counts" and spec.value == 0.0:
+            return np.zeros(network.cpt_shape(name))
+        raise PriorError(f"{where}: node {name!r} has cpd = 'logistic': Dirichlet priors do not apply to its "
+                         f"coefficients (priors on them are not available yet); leave it out of the prior file")
+    shape = _shape(network, name)
+    q, r = _n_rows(network, name), shape[-1]
     if spec.kind == "pseudo_counts":
         c = _scalar_or_cells(spec, network, name, where, "pseudo_counts")
         _check_min(c, 0.0, network, name, where, "pseudo_counts",
@@ -393,7 +415,7 @@ def _resolve(spec: PriorSpec, network: Network, name: str, where: str) -> np.nda
 
 
 def _scalar_or_cells(spec: PriorSpec, network: Network, name: str, where: str, what: str) -> np.ndarray:
-    q, r = network.n_parent_configs(name), network.node(name).card
+    q, r = _n_rows(network, name), network.node(name).card
     if spec.cells is None:
         v = float(spec.value)  # type: ignore[arg-type]
         if not math.isfinite(v):
@@ -403,10 +425,16 @@ def _scalar_or_cells(spec: PriorSpec, network: Network, name: str, where: str, w
 
 
 def _cells_array(cells: Cells, network: Network, name: str, where: str, what: str) -> np.ndarray:
-    q, r = network.n_parent_configs(name), network.node(name).card
+    q, r = _n_rows(network, name), network.node(name).card
     lens = {len(row) for row in cells}
     if len(cells) != q or lens != {r}:
         got = f"{len(cells)} row(s) of {'/'.join(str(n) for n in sorted(lens))} entries"
+        if _is_noisy(network, name):
+            from .forms import cause_row_labels
+
+            raise PriorError(f"{where}: {what} has {got}, expected {q} row(s) of {r} entries for the "
+                             f"{network.cpd_form(name)} node {name!r} (one row per cause: "
+                             f"{', '.join(cause_row_labels(network, name))})")
         parents = ", ".join(network.node(name).parents) or "none"
         raise PriorError(f"{where}: {what} has {got}, expected {q} row(s) of {r} entries for node {name!r} "
                          f"(one row per parent configuration, last parent varying fastest; parents: {parents})")
@@ -428,6 +456,10 @@ def _check_min(a: np.ndarray, lo: float, network: Network, name: str, where: str
 
 
 def _cfg(network: Network, name: str, row: int) -> str:
+    if _is_noisy(network, name):
+        from .forms import cause_row_labels
+
+        return f"cause {cause_row_labels(network, name)[row]}"
     labels = network.parent_config_labels(name)[row]
     return ", ".join(f"{p}={s}" for p, s in zip(network.node(name).parents, labels)) or "no parents"
 
@@ -438,7 +470,7 @@ def resolve_pseudo_counts(prior: "Prior | Mapping[str, Any] | None", network: Ne
     zeros). Validates shapes and signs; raises :class:`PriorError`.
     """
     if prior is None:
-        return {n: np.zeros(network.cpt_shape(n)) for n in network.free_names}
+        return {n: np.zeros(_shape(network, network.tie_source(n))) for n in network.free_names}
     if isinstance(prior, Prior):
         return prior.pseudo_counts(network)
     if not isinstance(prior, Mapping):
@@ -453,7 +485,13 @@ def resolve_pseudo_counts(prior: "Prior | Mapping[str, Any] | None", network: Ne
         if a.ndim == 0:
             specs.append((str(name), PriorSpec("pseudo_counts", value=float(a))))
             continue
-        if a.ndim > 2 and name in network and a.shape != network.cpt_shape(name):
+        if name in network and _is_noisy(network, name) and a.shape != _shape(network, name):
+            from .forms import cause_row_labels
+
+            raise PriorError(f"{where}: pseudo-counts have shape {a.shape}, expected {_shape(network, name)} for the "
+                             f"{network.cpd_form(name)} node {name!r} (one row per cause: "
+                             f"{', '.join(cause_row_labels(network, name))})")
+        if a.ndim > 2 and name in network and a.shape != _shape(network, name):
             raise PriorError(f"{where}: pseudo-counts have shape {a.shape}, expected {network.cpt_shape(name)} "
                              f"(the CPT shape) or the 2-D table layout")
         specs.append((str(name), PriorSpec("pseudo_counts",

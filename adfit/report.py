@@ -105,7 +105,55 @@ _KNOWN_TOP = {"format", "method", "objective", "log_likelihood", "log_prior", "p
               "complete_case", "information_criteria", "cross_validation", "prior", "gaps", "em",
               "uncertainty", "identifiability", "stationarity", "starts_note", "latent_states"}
 _KNOWN_NODE = {"states", "parents", "latent", "fixed", "table", "se", "interval", "se_status",
-               "missing_information"}
+               "missing_information", "cpd", "parameters", "parameters_se", "parameters_interval",
+               "parameters_status"}
+
+
+def _param_leaves(doc: Any, path: tuple = ()) -> list[tuple[tuple, Any]]:
+    """(key path, value) of every number or list of numbers in a parameters layout."""
+    if isinstance(doc, Mapping):
+        return [x for k, v in doc.items() for x in _param_leaves(v, path + (str(k),))]
+    return [(path, doc)]
+
+
+def _parameters_table(name: str, sec: Mapping[str, Any]) -> str:
+    """A structured node's parameters (noisy: leak and strengths; logistic: coefficients), with
+    their standard errors and intervals when the result has them."""
+    doc = sec.get("parameters")
+    if not isinstance(doc, Mapping):
+        return ""
+    se = dict(_param_leaves(sec.get("parameters_se"))) if isinstance(sec.get("parameters_se"), Mapping) else {}
+    iv = sec.get("parameters_interval")
+    lo = dict(_param_leaves(iv[0])) if isinstance(iv, (list, tuple)) and len(iv) == 2 else {}
+    hi = dict(_param_leaves(iv[1])) if isinstance(iv, (list, tuple)) and len(iv) == 2 else {}
+
+    def cell(v: Any) -> str:
+        if isinstance(v, (list, tuple)):
+            return ", ".join(fmt_prob(x) for x in v)
+        return fmt_prob(v)
+
+    def label(path: tuple) -> str:
+        if path[0] in ("leak", "intercept"):
+            return path[0]
+        return f"{path[1]}={path[2]}" if len(path) >= 3 else ".".join(path)
+
+    rows = []
+    for path, v in _param_leaves(doc):
+        if path[0] == "coefficients" and isinstance(v, list) and not any(v):
+            continue  # a reference state: 0 by definition
+        def wrap(x: Any) -> str:
+            return f"({cell(x)})" if isinstance(x, (list, tuple)) else cell(x)
+
+        interval = f"{wrap(lo[path])} to {wrap(hi[path])}" if path in lo and path in hi else ""
+        rows.append(f"<tr><th scope=\"row\">{esc(label(path))}</th><td>{esc(cell(v))}</td>"
+                    f"<td>{esc(cell(se[path])) if se.get(path) is not None else ''}</td><td>{esc(interval)}</td></tr>")
+    kind = str(sec.get("cpd") or "structured")
+    what = ("log-odds against the first state" if kind == "logistic" else
+            "probabilities (noisy-OR: of the second state; noisy-MAX: per state)")
+    return (f'<table class="cpt-table params-table" data-node="{esc(name)}-parameters"><caption>{esc(kind)} '
+            f"parameters of {esc(name)} ({esc(what)}); the table above is the one they imply</caption>"
+            "<thead><tr><th>parameter</th><th>estimate</th><th>se</th><th>interval</th></tr></thead><tbody>"
+            + "".join(rows) + "</tbody></table>")
 
 
 # ============================================================================== number formats
@@ -1078,6 +1126,8 @@ def _cpt_block(net: Network, name: str, sec: Mapping[str, Any], excluded: set[in
         tags.append(f"tied to {node.tied_to}: the same parameters, estimated from both")
     if node.impossible:
         tags.append(f"{len(node.impossible)} cell(s) impossible by design, fixed at 0")
+    if isinstance(sec.get("cpd"), str) and sec.get("cpd") != "table":
+        tags.append(f"cpd {sec.get('cpd')}")
     head = f"P({name} | {', '.join(node.parents)})" if node.parents else f"P({name})"
     out = [f'<div class="cpt" id="cpt-{esc(name)}"><h3>{esc(head)}'
            + "".join(f' <span class="tag">{esc(t)}</span>' for t in tags) + "</h3>"]
@@ -1149,6 +1199,7 @@ def _cpt_block(net: Network, name: str, sec: Mapping[str, Any], excluded: set[in
         row.append("</tr>")
         out.append("".join(row))
     out.append("</tbody></table>")
+    out.append(_parameters_table(name, sec))
     foot = []
     if n_rows > shown:
         foot.append(f"The first {shown} of {n_rows} rows are shown; all are in the JSON.")

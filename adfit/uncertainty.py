@@ -65,7 +65,8 @@ from .data import CodedData, load_data
 from .errors import OptionError
 from .likelihood import Likelihood, _loglik_logcpt, check_possible
 from .network import Network
-from .params import full_probs, mask_pseudo, pool_counts
+from . import forms as _forms
+from .params import block_shape, full_probs, mask_pseudo, pool_counts
 
 #: default confidence level of the intervals
 LEVEL = 0.95
@@ -140,6 +141,9 @@ class Coordinates:
     n: Mapping[str, np.ndarray]
     base: Mapping[str, np.ndarray]
     index: Mapping[str, np.ndarray]
+    # logistic nodes: (N(u) pooled over ties, CPT-shaped; the implied table) for the
+    # complete-data information of their coefficient rows
+    logistic: Mapping[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
 
     @property
     def size(self) -> int:
@@ -153,7 +157,7 @@ class Coordinates:
             eta = np.array(self.base[name])
             eta[self.index[name]] += phi[off:off + s]
             off += s
-            out[name] = eta.reshape(self.network.cpt_shape(name))
+            out[name] = eta.reshape(block_shape(self.network, name))
         return out
 
     def probs_at(self, phi: np.ndarray) -> dict[str, np.ndarray]:
@@ -185,7 +189,8 @@ class Coordinates:
 
 
 def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
-                     n_cells: Mapping[str, np.ndarray]) -> Coordinates:
+                     n_cells: Mapping[str, np.ndarray],
+                     logistic: Mapping[str, tuple[np.ndarray, np.ndarray]] | None = None) -> Coordinates:
     """Reference states, boundary and no-data cells, and the coordinates, at an estimate.
 
     ``n_cells``: per estimated node, expected counts plus pseudo-counts (CPT-shaped; pooled over
@@ -199,7 +204,8 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
         th = np.asarray(probs[name], dtype=np.float64).reshape(-1, K)
         n = np.asarray(n_cells[name], dtype=np.float64).reshape(-1, K)
         nu = n.sum(axis=1)
-        imp = network.impossible_mask(name).reshape(-1, K)
+        imp = (np.zeros(th.shape, bool) if _forms.has_rows(network, name)
+               else network.impossible_mask(name).reshape(-1, K))
         ref = np.argmax(np.where(imp, -np.inf, n + 1e-12 * th), axis=1)  # most expected state; ties by the estimate
         status = np.full(th.shape, _INTERIOR, dtype=np.int64)
         status[n < BOUNDARY_COUNT * np.minimum(1.0, nu)[:, None]] = _BOUNDARY
@@ -207,6 +213,15 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
         status[nu < UNINFORMED_COUNT] = _NO_DATA
         status[imp] = _CONSTRAINED
         status[(imp.sum(axis=1) == K - 1)[:, None] & ~imp] = _CONSTRAINED
+        if logistic and name in logistic:
+            # coefficient rows: the first child state is the reference (its coefficient is 0 by
+            # definition), nothing is on a boundary; a row that serves no record has no data
+            n_u, _table = logistic[name]
+            served = _forms.row_sums(network, name, np.broadcast_to(n_u, _table.shape))[:, 0]
+            ref = np.zeros(th.shape[0], dtype=np.int64)
+            status = np.full(th.shape, _INTERIOR, dtype=np.int64)
+            status[served < UNINFORMED_COUNT] = _NO_DATA
+            status[:, 0] = _CONSTRAINED
         lt = np.log(np.maximum(th, _FLOOR))
         base = lt - lt[np.arange(len(ref)), ref][:, None]
         free_cells = []
@@ -219,7 +234,8 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
         ref_d[name], st_d[name], pr_d[name], n_d[name] = ref, status, th, n
         base_d[name] = base.reshape(-1)
         idx_d[name] = np.asarray(free_cells, dtype=np.int32)
-    return Coordinates(network, tuple(coords), tuple(sizes), ref_d, st_d, pr_d, n_d, base_d, idx_d)
+    return Coordinates(network, tuple(coords), tuple(sizes), ref_d, st_d, pr_d, n_d, base_d, idx_d,
+                       dict(logistic or {}))
 
 
 # --------------------------------------------------------------------------- the objective in JAX
@@ -236,6 +252,13 @@ def _objective(network: Network, groups, sizes: tuple[int, ...], phi, aux):
         if s:
             eta = eta.at[index[node.name]].add(phi[off:off + s])
         off += s
+        if _forms.has_rows(network, node.name):  # parameter rows: their table is implied
+            eta = eta.reshape(block_shape(network, node.name))
+            rows = jax.nn.log_softmax(eta, axis=-1)
+            own[node.name] = _forms.implied_log_table(network, node.name, rows)
+            lp = lp + jnp.sum(jnp.where(pseudo[node.name] > 0, pseudo[node.name] * rows, 0.0))
+            pen = pen + jnp.sum((eta - jnp.mean(eta, axis=-1, keepdims=True)) ** 2)
+            continue
         eta = eta.reshape(network.cpt_shape(node.name))
         lc = jax.nn.log_softmax(eta, axis=-1)
         own[node.name] = lc
@@ -353,9 +376,21 @@ def complete_information(co: Coordinates, l2: float = 0.0) -> dict[tuple[str, in
     (``n_u`` = expected count plus pseudo-counts of the parent configuration).
     """
     out = {}
+    lblocks = {}
+    for name, (n_u, table) in co.logistic.items():
+        # Σ_u X_ud N(u) (diag π_u − π_u π_uᵀ): the complete-data information of coefficient row d
+        cov = np.asarray(n_u)[..., None] * (np.einsum("...k,kl->...kl", table, np.eye(table.shape[-1]))
+                                            - table[..., :, None] * table[..., None, :])
+        lblocks[name] = _row_sums_matrix(co.network, name, cov)
     for (name, row), js in co.row_slices().items():
         K = co.network.node(name).card
         states = [co.coords[j][2] for j in js]
+        if name in lblocks:
+            blk = lblocks[name][row][np.ix_(states, states)]
+            if l2:
+                blk = blk + 2.0 * l2 * (np.eye(len(states)) - 1.0 / K)
+            out[(name, row)] = blk
+            continue
         th = co.probs[name][row, states]
         nu = co.n[name][row].sum()
         blk = nu * (np.diag(th) - np.outer(th, th))
@@ -363,6 +398,24 @@ def complete_information(co: Coordinates, l2: float = 0.0) -> dict[tuple[str, in
             blk = blk + 2.0 * l2 * (np.eye(len(states)) - 1.0 / K)
         out[(name, row)] = blk
     return out
+
+
+def _row_sums_matrix(network: Network, name: str, m: np.ndarray) -> np.ndarray:
+    """:func:`adfit.forms.row_sums` of a (*CPT rows, K, K) array: per coefficient row the sum
+    over the parent configurations it applies to (rows, K, K)."""
+    K = m.shape[-1]
+    flat = m.reshape(*m.shape[:-2], K * K)
+    R = _forms.cause_shape(network, name)[0]
+    k = flat.ndim - 1
+    out = np.empty((R, K * K))
+    out[0] = flat.reshape(-1, K * K).sum(axis=0)
+    r = 1
+    for i, p in enumerate(network.node(name).parents):
+        c = network.node(p).card
+        per = flat.sum(axis=tuple(j for j in range(k) if j != i))
+        out[r:r + c - 1] = per[1:]
+        r += c - 1
+    return out.reshape(R, K, K)
 
 
 def _block_matrix(co: Coordinates, blocks: Mapping[tuple[str, int], np.ndarray]) -> np.ndarray:
@@ -400,6 +453,10 @@ class Uncertainty:
     notes: tuple[str, ...] = ()
     wide: float = WIDE_WIDTH
     settings: Mapping[str, Any] = field(default_factory=dict)
+    # noisy nodes: the CPT the cause rows imply (``se`` etc. are on it, by the delta method) and
+    # the cause rows' own error bars {"se", "lower", "upper", "status"} (cause-row shaped)
+    tables: Mapping[str, np.ndarray] = field(default_factory=dict)
+    parameters: Mapping[str, Mapping[str, np.ndarray]] = field(default_factory=dict)
 
     # -- lists ---------------------------------------------------------------------------
     def _label(self, name: str, row: int) -> dict[str, str]:
@@ -418,7 +475,8 @@ class Uncertainty:
         K = self.network.node(name).card
         lo, hi = self.lower[name].reshape(-1, K)[u, k], self.upper[name].reshape(-1, K)[u, k]
         return {"node": name, "row": u, "parents": self._label(name, u), "state": self.network.node(name).states[k],
-                "estimate": float(self.coordinates.probs[name][u, k]), "interval": [float(lo), float(hi)],
+                "estimate": float(np.asarray(self.tables[name]).reshape(-1, K)[u, k] if name in self.tables
+                                  else self.coordinates.probs[name][u, k]), "interval": [float(lo), float(hi)],
                 "width": float(hi - lo), "status": STATUS[int(self.status[name].reshape(-1, K)[u, k])]}
 
     def wide_entries(self) -> list[dict[str, Any]]:
@@ -468,6 +526,20 @@ class Uncertainty:
                 "se_status": [[STATUS[int(c)] for c in row] for row in self.status[name].reshape(-1, K)],
                 "missing_information": self.missing.get(name),
             }
+            src = net.tie_source(name)
+            if src in self.parameters:
+                par = self.parameters[src]
+                st = par["status"]
+
+                def layout(a, src=src, reference=0.0):
+                    a = np.asarray(a, dtype=np.float64)
+                    return _nan_to_none(_forms.parameters_layout(net, src, np.where(np.isfinite(a), a, np.nan),
+                                                                 reference=reference))
+
+                out[name]["parameters_se"] = layout(par["se"], reference=None)
+                out[name]["parameters_interval"] = [layout(par["lower"]), layout(par["upper"])]
+                out[name]["parameters_status"] = {lab: [STATUS[int(c)] for c in row]
+                                                  for lab, row in zip(_forms.cause_row_labels(net, src), st)}
         return out
 
     def summary(self) -> dict[str, Any]:
@@ -533,6 +605,8 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
         converged: whether the fit's stopping rule held (a note is added when False).
         likelihood: a :class:`adfit.likelihood.Likelihood` of this network and data to reuse.
     """
+    if (refusal := structure_refusal(network)) is not None:
+        raise OptionError(refusal)
     if not (0 < level < 1):
         raise OptionError(f"level must be between 0 and 1 (e.g. 0.95), got {level}")
     if not (wide > 0):
@@ -550,8 +624,18 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     lik = likelihood if likelihood is not None else Likelihood(network, coded)
     check_possible(lik, full, given="the fitted CPTs")
     _, counts = lik.expected_counts(full)
-    counts = pool_counts(network, counts)
-    co = make_coordinates(network, full, {k: counts[k] + pseudo[k] for k in network.estimated_names})
+    # noisy nodes: the coordinates are on their cause rows, read off the (implied) table
+    noisy = [n for n in network.estimated_names if _forms.has_rows(network, n)]
+    rows_at = dict(full)
+    for n in noisy:
+        rows_at[n] = _forms.rows_from_table(network, n, full[n])
+    logistic = {}
+    for n in noisy:
+        if _forms.is_logistic(network, n):
+            fam = sum((np.asarray(counts[t]) for t in network.tied_names(n)), np.asarray(counts[n]))
+            logistic[n] = (fam.sum(axis=-1, keepdims=True), np.asarray(full[n], dtype=np.float64))
+    counts = pool_counts(network, counts, rows_at)
+    co = make_coordinates(network, rows_at, {k: counts[k] + pseudo[k] for k in network.estimated_names}, logistic)
     P = co.size
     if method == "auto":
         method = "dense" if P <= DENSE_MAX_PARAMETERS else "matrix-free"
@@ -561,7 +645,12 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     z = float(stats.norm.ppf(0.5 + level / 2))
     blocks = complete_information(co, l2)
     if P == 0:
-        sec = _with_tied(network, *_assemble(co, level, z, _CovBlocks(co, {}), np.zeros((0, 0)), blocks, wanted))
+        sec = _assemble(co, level, z, _CovBlocks(co, {}), np.zeros((0, 0)), blocks, wanted)
+        for n in noisy:
+            parts, _ = _noisy_tables(co, n, level, z, _CovBlocks(co, {}), sec[3][n], wanted)
+            for d, a in zip(sec, parts):
+                d[n] = a
+        sec = _with_tied(network, *sec)
         return Uncertainty(network, level, method, *sec, co, np.zeros(0), np.zeros(0), (),
                            {n: _missing_none(co, network.tie_source(n)) for n in network.free_names}, None, 0.0,
                            notes=tuple(notes + ["no coordinate is left to estimate (every row is on the boundary or has no data)"]),
@@ -590,14 +679,21 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
                      "(a saddle or an unconverged fit); the entries loading on those directions get no error bar")
     if gnorm > 1e-3 * max(1.0, math.sqrt(coded.n_rows)):
         notes.append(f"the gradient at the estimate is not small ({gnorm:.3g}); the error bars assume a maximum")
-    se, lower, upper, status = _with_tied(network, *_assemble(co, level, z, node_cov, flat_X, blocks, wanted))
+    se, lower, upper, status = _assemble(co, level, z, node_cov, flat_X, blocks, wanted)
+    param_status = dict(status)
+    tables, params_eb = {}, {}
+    for n in noisy:
+        params_eb[n] = {"se": se[n], "lower": lower[n], "upper": upper[n], "status": status[n]}
+        (se[n], lower[n], upper[n], status[n]), tables[n] = _noisy_tables(co, n, level, z, node_cov, status[n], wanted)
+    se, lower, upper, status = _with_tied(network, se, lower, upper, status)
+    tables = {m: tables[network.tie_source(m)] for m in network.free_names if network.tie_source(m) in tables}
     directions = _name_directions(co, all_rho, all_X, blocks, info)
-    missing_info = {n: _missing_fraction(co, network.tie_source(n), status, node_cov, blocks) if n in wanted
+    missing_info = {n: _missing_fraction(co, network.tie_source(n), param_status, node_cov, blocks) if n in wanted
                     else None for n in network.free_names}
     em_rate = (1.0 if np.any(all_rho <= FLAT_TOL) else float(np.clip(1.0 - all_rho.min(), 0.0, 1.0))) if len(all_rho) else None
     return Uncertainty(network, level, method, se, lower, upper, status, co, all_rho, ev, tuple(directions),
                        missing_info, em_rate, gnorm, info, cov, tuple(notes), wide,
-                       {"_pseudo": pseudo, "l2": l2, "hessian_vector_products": pb.n_products})
+                       {"_pseudo": pseudo, "l2": l2, "hessian_vector_products": pb.n_products}, tables, params_eb)
 
 
 def relabelable_latent(network: Network) -> list[str]:
@@ -642,8 +738,8 @@ def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) ->
     out = {}
     for name in network.free_names:
         c = None if pseudo_counts is None else pseudo_counts.get(name)
-        c = np.zeros(network.cpt_shape(name)) if c is None else np.broadcast_to(
-            np.asarray(c, dtype=np.float64), network.cpt_shape(name)).copy()
+        shape = block_shape(network, network.tie_source(name))  # cause rows for a noisy node
+        c = np.zeros(shape) if c is None else np.broadcast_to(np.asarray(c, dtype=np.float64), shape).copy()
         if not np.all(np.isfinite(c)) or np.any(c < 0):
             raise OptionError(f"node {name!r}: pseudo-counts must be finite and >= 0")
         out[name] = c
@@ -662,7 +758,7 @@ def _full_probs(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, 
         if a.shape != network.cpt_shape(n.name):
             raise OptionError(f"node {n.name!r}: CPT has shape {a.shape}, expected {network.cpt_shape(n.name)}")
         out[n.name] = a
-    return full_probs(network, out)
+    return full_probs(network, out, cause_rows=False)
 
 
 def _generalised_eigh(info: np.ndarray, M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -728,9 +824,24 @@ def _assemble(co: Coordinates, level: float, z: float, cov: _CovBlocks, flat_X: 
                     st[u, r] = _BOUNDARY if bnd.any() else st[u, r]
                     continue
                 states = [co.coords[j][2] for j in js]
-                G = th[u][:, None] * ((np.arange(K)[:, None] == np.asarray(states)[None, :]) - th[u, states][None, :])
                 Minv = np.linalg.inv(blocks[(name, u)])
                 S = cov.get(name, js)
+                if name in co.logistic:  # coefficients (log-odds): Wald on their own scale
+                    b = co.base[name].reshape(Q, K)[u]
+                    for i, k in enumerate(states):
+                        if flat_X.shape[1]:
+                            share = float(np.sum(flat_X[js[i]] ** 2)) / Minv[i, i] if Minv[i, i] > 0 else 1.0
+                            if share >= FLAT_SHARE_TOL:
+                                st[u, k] = _NOT_IDENTIFIED
+                                continue
+                        var = float(S[i, i])
+                        if not var >= 0:
+                            st[u, k] = _NOT_IDENTIFIED
+                            continue
+                        se[u, k] = math.sqrt(var)
+                        lo[u, k], hi[u, k] = b[k] - z * se[u, k], b[k] + z * se[u, k]
+                    continue
+                G = th[u][:, None] * ((np.arange(K)[:, None] == np.asarray(states)[None, :]) - th[u, states][None, :])
                 for k in range(K):
                     if bnd[k] or st[u, k] == _CONSTRAINED:
                         continue
@@ -753,13 +864,89 @@ def _assemble(co: Coordinates, level: float, z: float, cov: _CovBlocks, flat_X: 
                     lo[u, k] = _expit(lg - half)
                     hi[u, k] = _expit(lg + half)
             ni = st == _NOT_IDENTIFIED
-            lo[ni], hi[ni] = 0.0, 1.0
+            lo[ni], hi[ni] = (-np.inf, np.inf) if name in co.logistic else (0.0, 1.0)
             fixed = st == _CONSTRAINED  # fixed by the network's impossible cells: the point itself
-            lo[fixed] = hi[fixed] = th[fixed]
-        shape = net.cpt_shape(name)
+            lo[fixed] = hi[fixed] = (co.base[name].reshape(Q, K)[fixed] if name in co.logistic else th[fixed])
+            if name in co.logistic:
+                nd = st == _NO_DATA
+                lo[nd], hi[nd] = -np.inf, np.inf
+        shape = block_shape(net, name)
         se_d[name], lo_d[name], hi_d[name], st_d[name] = (se.reshape(shape), lo.reshape(shape), hi.reshape(shape),
                                                           st.reshape(shape))
     return se_d, lo_d, hi_d, st_d
+
+
+def _nan_to_none(doc: Any) -> Any:
+    """The parameters layout with NaN (no SE, an unbounded interval) as None."""
+    if isinstance(doc, dict):
+        return {k: _nan_to_none(v) for k, v in doc.items()}
+    if isinstance(doc, list):
+        return [_nan_to_none(v) for v in doc]
+    return None if isinstance(doc, float) and math.isnan(doc) else doc
+
+
+def _implied_tables_of(network: Network, name: str):
+    """The CPT (flat) as a function of the node's coordinates (JAX), for the delta method."""
+    def f(eta_flat):
+        rows = jax.nn.log_softmax(eta_flat.reshape(block_shape(network, name)), axis=-1)
+        return jnp.exp(_forms.implied_log_table(network, name, rows)).reshape(-1)
+    return f
+
+
+def _noisy_tables(co: Coordinates, name: str, level: float, z: float, cov: "_CovBlocks",
+                  param_status: np.ndarray, wanted: set[str]):
+    """SE, interval and status of every cell of a noisy node's implied CPT, by the delta method
+    from the covariance of its cause rows' coordinates: ``var θ = J S Jᵀ``, ``J = ∂θ/∂φ``
+    (exact, by forward-mode differentiation); the interval is Wald on the logit scale, as for
+    tables. A cell that depends on a not identified cause cell is not identified; a cell
+    whose every cause row has no data has none; cause cells on the boundary stay at their
+    estimate (the SE is conditional on them)."""
+    net = co.network
+    shape = tuple(net.cpt_shape(name))
+    K = shape[-1]
+    eta = jnp.asarray(co.base[name])
+    table = np.asarray(_implied_tables_of(net, name)(eta)).reshape(-1, K)
+    Q = table.shape[0]
+    se = np.full((Q, K), np.nan)
+    lo, hi = np.zeros((Q, K)), np.ones((Q, K))
+    st = np.full((Q, K), _INTERIOR, dtype=np.int64)
+    if name not in wanted:
+        st[:] = _NOT_COMPUTED
+        return (se.reshape(shape), np.full(shape, np.nan), np.full(shape, np.nan), st.reshape(shape)), table.reshape(shape)
+    J_all = np.asarray(jax.jacfwd(_implied_tables_of(net, name))(eta))  # (cells, block cells)
+    idx = co.index[name]
+    off = co.offsets()[name]
+    js = np.arange(off, off + len(idx))
+    J = J_all[:, idx] if len(idx) else np.zeros((Q * K, 0))
+    S = cov.get(name, js) if len(idx) else np.zeros((0, 0))
+    # which cause rows each CPT row uses: a cell depends on a cause cell where J_all is not 0
+    dep = np.abs(J_all) > 0
+    pst = param_status.reshape(-1)
+    bad = dep[:, pst == _NOT_IDENTIFIED].any(axis=1) if (pst == _NOT_IDENTIFIED).any() else np.zeros(Q * K, bool)
+    R = param_status.shape[0]
+    used = dep.reshape(Q * K, R, K).any(axis=2)                     # cells × cause rows
+    nodata = np.array([all((param_status[r] == _NO_DATA).any() for r in np.flatnonzero(used[c]))
+                       if used[c].any() else False for c in range(Q * K)])
+    var = np.einsum("ij,jk,ik->i", J, S, J) if J.shape[1] else np.zeros(Q * K)
+    for c in range(Q * K):
+        u, k = divmod(c, K)
+        t = float(table[u, k])
+        if nodata[c]:
+            st[u, k] = _NO_DATA
+            continue
+        if bad[c] or not (var[c] >= 0) or t <= 0 or t >= 1:
+            st[u, k] = _NOT_IDENTIFIED if (bad[c] or not var[c] >= 0) else _BOUNDARY
+            if st[u, k] == _BOUNDARY:
+                lo[u, k] = hi[u, k] = t
+            continue
+        s_ = math.sqrt(var[c])
+        se[u, k] = s_
+        lg = math.log(t) - math.log1p(-t)
+        half = z * s_ / (t * (1.0 - t))
+        lo[u, k], hi[u, k] = _expit(lg - half), _expit(lg + half)
+    ni = st == _NOT_IDENTIFIED
+    lo[ni], hi[ni] = 0.0, 1.0
+    return (se.reshape(shape), lo.reshape(shape), hi.reshape(shape), st.reshape(shape)), table.reshape(shape)
 
 
 def _expit(x: float) -> float:
@@ -818,6 +1005,13 @@ def _missing_fraction(co: Coordinates, name: str, status: Mapping[str, np.ndarra
                        "largest over the node's directions, mean over its identified directions, largest per row"}
 
 
+def _row_label(net: Network, name: str, u: int) -> dict[str, str]:
+    """The parent configuration of CPT row ``u``, or ``{"cause": label}`` for a cause row."""
+    if _forms.has_rows(net, name):
+        return {"cause": _forms.cause_row_labels(net, name)[u]}
+    return dict(zip(net.node(name).parents, net.parent_config_labels(name)[u]))
+
+
 def _name_directions(co: Coordinates, rho: np.ndarray, X: np.ndarray, blocks, info: np.ndarray | None) -> list[dict[str, Any]]:
     net = co.network
     rows = co.row_slices()
@@ -830,9 +1024,7 @@ def _name_directions(co: Coordinates, rho: np.ndarray, X: np.ndarray, blocks, in
         for (name, u), js in rows.items():
             s = float(x[js] @ blocks[(name, u)] @ x[js])
             if s >= NAME_SHARE:
-                shares.append({"node": name, "row": int(u),
-                               "parents": dict(zip(net.node(name).parents, net.parent_config_labels(name)[u])),
-                               "share": s})
+                shares.append({"node": name, "row": int(u), "parents": _row_label(net, name, int(u)), "share": s})
         shares.sort(key=lambda d: -d["share"])
         kind = "negative" if rho[i] < -FLAT_TOL else ("flat" if rho[i] <= FLAT_TOL else "weak")
         d = {"kind": kind, "relative_curvature": float(rho[i]), "fraction_missing": float(np.clip(1 - rho[i], 0, 1)),
@@ -1099,6 +1291,20 @@ def gradient_seconds(lik: Likelihood, probs: Mapping[str, np.ndarray]) -> float:
     return time.perf_counter() - t0
 
 
+#: what :func:`structure_refusal` lets through (the forms whose coordinates are CPT rows)
+SUPPORTED_STRUCTURE = ("table", "noisy_or", "noisy_max", "logistic", "tied", "impossible")
+
+
+def structure_refusal(network: Network) -> str | None:
+    """Why error bars cannot be computed for ``network`` (a logistic node: its coefficients
+    have no rows of probabilities for the coordinates below), or None."""
+    for n in network.nodes:
+        if n.fixed is None and n.cpd not in SUPPORTED_STRUCTURE:
+            return (f"error bars are not available yet for nodes.{n.name} (cpd = {n.cpd!r}); its estimates "
+                    f"come without standard errors or intervals")
+    return None
+
+
 def cli_errors(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] | None, l2: float,
                errors: bool | None, quiet: bool, echo: Callable[..., None],
                likelihood: Likelihood | None = None) -> Any:
@@ -1107,6 +1313,11 @@ def cli_errors(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray
     ``likelihood``: the command's :class:`Likelihood` of this network and data (the same
     :class:`CodedData` object), reused instead of planning again."""
     if errors is False:
+        return result
+    if (refusal := structure_refusal(result.network)) is not None:
+        if errors:
+            raise OptionError(f"{refusal} (fit without --errors)")
+        echo(f"error bars skipped: {refusal}")
         return result
     P = result.network.n_free_parameters()
     if errors is None and P > AUTO_MAX_PARAMETERS:

@@ -358,15 +358,20 @@ def test_impossible_cells_stay_exactly_zero_and_rows_renormalise():
 
 
 # --------------------------------------------------------------------------- refusals, results
-def test_monotone_nodes_and_priors_on_structured_forms_are_refused():
+def test_monotone_nodes_and_priors_on_logistic_nodes_are_refused():
     net = net_with({"states": ["s0", "s1"], "increasing_with": ["b"]})
     df = pd.DataFrame({"a": ["no", "yes"], "b": ["lo", "hi"], "y": ["s0", "s1"]})
     with pytest.raises(NetworkError, match=r"nodes.y.increasing_with: EM cannot estimate"):
         em_fit(net, df)
     net = net_with({"states": ["absent", "present"], "cpd": "noisy_or"})
     df["y"] = ["absent", "present"]
-    with pytest.raises(PriorError, match="whose CPT has the noisy_or form: EM takes Dirichlet pseudo-counts"):
+    # noisy nodes take pseudo-counts on their cause rows (leak, a=yes, b=mid, b=hi), not CPT-shaped
+    with pytest.raises(PriorError, match=r"pseudo-counts of node 'y' have shape \(2, 3, 2\), expected \(4, 2\)"):
         em_fit(net, df, pseudo_counts={"y": np.ones((2, 3, 2))})
+    lnet = net_with({"states": ["s0", "s1"], "cpd": "logistic"})
+    ldf = df.assign(y=["s0", "s1"])
+    with pytest.raises(PriorError, match="whose CPT has the logistic form: EM takes Dirichlet pseudo-counts"):
+        em_fit(lnet, ldf, pseudo_counts={"y": np.ones((2, 3, 2))})
     with pytest.raises(OptionError, match="EM starting parameters of node 'y': leak must be a probability"):
         em_fit(net, df, init_params={"y": {**TRUE_NOISY_OR, "leak": 1.5}})
 

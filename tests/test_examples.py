@@ -130,3 +130,29 @@ def test_water_quality(capsys):
     m = out["murky"]
     assert m["complete_case"] < m["full"]
     assert m["full"] == pytest.approx(float(ex.marginal(net, full.probs, "turbidity")[2]), abs=1e-12)
+
+
+# ------------------------------------------------------------------ pump seals (noisy-OR and a tie)
+def test_pump_seals_noisy_or(capsys):
+    from test_emforms import brute_force_loglik
+
+    ex = _load("pump_seals_noisy_or")
+    out = ex.main(["--inspections", "300", "--seed", "4"])
+    text = capsys.readouterr().out
+    assert "EM check: agree" in text and "lower is better" in text
+    df, noisy, table = out["data"], out["noisy"], out["table"]
+    df = df.replace("", None)
+    # the log-likelihood by brute force over the hidden cells (numpy/pandas, no adfit inference)
+    assert noisy.log_likelihood == pytest.approx(brute_force_loglik(noisy.network, noisy.probs, df), abs=1e-8)
+    # the noisy-OR is a sub-model of the full tables: its maximum cannot be higher
+    assert noisy.log_likelihood <= table.log_likelihood + 1e-6
+    # the implied table is Pearl's formula (1988, §4.3.2) at the reported parameters; the tie holds
+    par = noisy.extras["nodes"]["seal_a"]["parameters"]
+    for u in itertools.product((0, 1), repeat=3):
+        sound = (1 - par["leak"]) * math.prod(1 - par["strength"][c]["yes"] for c, on in zip(ex.CAUSES, u) if on)
+        np.testing.assert_allclose(noisy.probs["seal_a"][u], [sound, 1 - sound], atol=1e-12)
+    np.testing.assert_array_equal(noisy.probs["seal_a"], noisy.probs["seal_b"])
+    # BIC = −2 log L + k log n (Schwarz 1978), k = 3 causes + the seal's 1 leak + 3 strengths
+    ic = out["ic_noisy"]
+    assert ic.n_parameters == 3 + 4 and out["ic_table"].n_parameters == 3 + 2 * 8
+    assert ic.bic == pytest.approx(-2 * noisy.log_likelihood + 7 * math.log(len(df)), rel=1e-12)
