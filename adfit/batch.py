@@ -27,7 +27,7 @@ import numpy as np
 import pandas as pd
 
 from .data import HIDDEN
-from .errors import DataError, ImpossibleDataError, OptionError
+from .errors import DataError, ImpossibleDataError, OptionError, did_you_mean
 from .network import Network
 
 SEP = "__"
@@ -61,11 +61,12 @@ def read_batch(network: Network, path: str | Path, *, ignore_columns: Iterable[s
     for c in ignore:
         if c not in frame.columns:
             raise OptionError(f"--ignore-columns names {c!r}, which is not a column of {path}; "
-                              f"its columns are: {', '.join(map(str, frame.columns))}")
+                              f"{did_you_mean(c, list(map(str, frame.columns)))}its columns are: {', '.join(map(str, frame.columns))}")
     cols = [c for c in frame.columns if c not in ignore]
     for c in cols:
         if c not in network:
-            raise DataError(f"{path}: column {c!r} is not a node of the network; name it in --ignore-columns "
+            raise DataError(f"{path}: column {c!r} is not a node of the network; {did_you_mean(str(c), network.names)}"
+                            f"name it in --ignore-columns "
                             f"to carry it along, or rename it (the nodes are: {', '.join(network.names)})")
     if len(frame) == 0:
         raise DataError(f"{path}: no rows under the header; give one row of evidence per query")
@@ -91,7 +92,7 @@ def read_batch(network: Network, path: str | Path, *, ignore_columns: Iterable[s
             if c in hard:
                 if hard[c] not in states:
                     raise DataError(f"{locate(i)}, column {c!r}: {text!r} is not a state of {c!r} (its states are: "
-                                    f"{', '.join(states)}); write a state, STATE:WEIGHT,STATE:WEIGHT, or leave it empty")
+                                    f"{', '.join(states)}); {did_you_mean(hard[c], states)}write a state, STATE:WEIGHT,STATE:WEIGHT, or leave it empty")
                 codes[i, j] = states.index(hard[c])
             else:
                 weights[c][i] = [soft[c][s] for s in states]

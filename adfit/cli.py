@@ -235,7 +235,7 @@ def em_check_options(l2: float, network=None) -> None:
 
 
 def with_em_check(result, coded, *, pseudo_counts=None, seed: int = 0, max_iter: Optional[int] = None,
-                  likelihood=None):
+                  show: bool = True, likelihood=None):
     """For ``fit --em-check``: run the EM cross-check (each EM run capped at ``max_iter``
     iterations, default :data:`adfit.crosscheck.EM_MAX_ITER`), print its summary, return the
     result with the ``"em_check"`` section added (one call in the fit command, before writing
@@ -244,7 +244,8 @@ def with_em_check(result, coded, *, pseudo_counts=None, seed: int = 0, max_iter:
 
     checked = attach_em_check(result, coded, pseudo_counts=pseudo_counts, seed=seed,
                               max_iter=EM_MAX_ITER if max_iter is None else max_iter, likelihood=likelihood)
-    typer.echo(format_em_check(checked.extras["em_check"]))
+    if show:
+        typer.echo(format_em_check(checked.extras["em_check"]))
     return checked
 
 
@@ -335,31 +336,6 @@ def read_inputs(network: Path, data: Path, *, missing, count_column, ignore_colu
     return net, coded
 
 
-def format_cpts(result, *, digits: int = 3, names=None) -> str:
-    """The CPTs as plain text tables (rows: parent configurations, columns: states)."""
-    import pandas as pd
-
-    blocks = []
-    for name in names or result.network.names:
-        node = result.network.node(name)
-        df = result.cpt(name).round(digits)
-        tag = " (fixed)" if node.fixed is not None else (" (latent)" if node.latent else "")
-        sec = (result.extras.get("nodes") or {}).get(name) or {}
-        if isinstance(sec.get("parameters"), dict):  # a structured form: its own parameters too
-            from .forms import format_parameters
-
-            try:
-                tag += f" ({sec.get('cpd')})" + (f", tied to {node.tied_to}" if node.tied_to else "")
-                extra = "\n" + format_parameters(result.network, name, sec["parameters"], digits=digits)
-            except (KeyError, TypeError, ValueError):
-                extra = ""
-        else:
-            extra = ""
-        with pd.option_context("display.width", 200, "display.max_columns", 20):
-            blocks.append(f"P({name} | {', '.join(node.parents) or '-'}){tag}\n{df.to_string()}{extra}")
-    return "\n\n".join(blocks)
-
-
 @app.command("fit")
 def fit_command(
     network: NetworkArg,
@@ -393,6 +369,8 @@ def fit_command(
         "--errors/--no-errors", rich_help_panel=CHECK_PANEL, help="Standard errors, intervals and identifiability flags for every CPT entry "
                                      "(default: on up to 1000 free parameters and about 2 minutes estimated).")] = None,
     quiet: Annotated[bool, Flag("--quiet", "-q", help="Print only the file written and warnings.")] = False,
+    verbose: Annotated[bool, Flag("--verbose", "-v", help="Print everything: each start, the intervals of every cell, "
+                                                          "the EM runs side by side.")] = False,
     latent_states: Annotated[Optional[str], typer.Option(
         "--latent-states", rich_help_panel=CHECK_PANEL,
         help="Choose the number of states of a latent node: NODE=2..6 (or NODE=2,3,5) fits each count with its "
@@ -507,33 +485,28 @@ def fit_command(
 
                 typer.echo(format_table(sweep_section))
                 typer.echo("")
-        if not quiet:
-            typer.echo(result.summary())
-            typer.echo(f"elimination route: {result.settings.get('route')}")
-            section = result.extras.get("restarts")
-            if isinstance(section, dict) and section.get("n_starts", 1) > 1:  # however many fit() ran
-                from .restarts import format_optima
-
-                typer.echo(format_optima(section))
         # error bars first: the complete-case comparison reports differences in their units
         from .uncertainty import cli_errors
 
+        skipped: list[str] = []  # why error bars were skipped, printed with the summary
         if errors is not False:
             with _phase(quiet, "error bars"):
                 result = cli_errors(result, coded, pseudo_counts=pseudo, l2=l2, errors=errors, quiet=quiet,
-                                    echo=typer.echo, likelihood=lik)
+                                    echo=lambda text, **kw: (typer.echo(text, **kw) if kw.get("err") or quiet
+                                                             else skipped.append(text)), show=False,
+                                    likelihood=lik)
         if em_check:
             with _phase(quiet, "EM check (from the fit's answer and from its own start)"):
                 result = with_em_check(result, coded, pseudo_counts=pseudo, seed=seed, max_iter=em_max_iter,
-                                       likelihood=lik)
+                                       show=False, likelihood=lik)
+        later: list[str] = []  # what the requested comparisons print, after the summary
         if compare_complete_case:
             from .gaps import compare_complete_case as ccc
 
             with _phase(quiet, "complete-case fit"):
                 cmp = ccc(net, coded, full=result, seed=seed, **fit_kwargs)
             result = result.with_extras(complete_case=cmp.to_dict())
-            if not quiet:
-                typer.echo(cmp.format_text())
+            later.append(cmp.format_text())
         from .gaps import information_criteria
 
         ic = information_criteria(net, coded, result)
@@ -544,16 +517,51 @@ def fit_command(
             with _phase(quiet, f"cross-validation ({folds} folds)"):
                 cv = cross_validate(net, coded, folds=folds, seed=seed, **fit_kwargs)
             result = result.with_extras(cross_validation=cv.to_dict())
-            if not quiet:
-                typer.echo(cv.format_text())
+            later.append(cv.format_text())
         if not quiet:
-            typer.echo(ic.format_text())
-            typer.echo("")
-            typer.echo(format_cpts(result, names=net.free_names))
+            print_fit_summary(result, out=out, verbose=verbose, skipped=skipped, later=later)
         write_result(out, result)
         typer.echo(f"wrote {out}")
         if not quiet:
             typer.echo(CAUTION)
+
+
+def print_fit_summary(result, *, out: Path, verbose: bool, skipped=(), later=()) -> None:
+    """The terminal summary of ``adfit fit``: a few lines and the estimates by default; with
+    ``verbose`` also each start, the EM runs side by side, and the intervals of every cell
+    (after the estimates)."""
+    from .summary import detail_lines, format_estimates, short_summary
+
+    typer.echo(short_summary(result))
+    for line in skipped:
+        typer.echo(line)
+    if verbose:
+        typer.echo("")
+        typer.echo("\n".join(detail_lines(result)))
+        section = result.extras.get("restarts")
+        if isinstance(section, dict) and section.get("n_starts", 1) > 1:  # however many fit() ran
+            from .restarts import format_optima
+
+            typer.echo(format_optima(section))
+        if isinstance(result.extras.get("em_check"), dict):
+            from .crosscheck import format_em_check
+
+            typer.echo(format_em_check(result.extras["em_check"]))
+    for text in later:
+        typer.echo("")
+        typer.echo(text)
+    typer.echo("")
+    typer.echo(format_estimates(result, result.network.free_names))
+    unc = result.extras.get("uncertainty")
+    if verbose and isinstance(unc, dict):
+        from .uncertainty import format_uncertainty
+
+        typer.echo("")
+        typer.echo(format_uncertainty(unc, {n: result.extras["nodes"][n] for n in result.network.free_names},
+                                      network=result.network))
+    elif isinstance(unc, dict):
+        typer.echo("")
+        typer.echo(f"Standard errors and intervals of every cell: adfit show {out} (or fit --verbose).")
 
 
 def _reporter(quiet: bool):

@@ -318,7 +318,8 @@ def _em_side(em: EMResult, jax_score: Mapping[str, float], delta: float, where: 
         "objective_value": em.objective_value,
         "gradient_norm": jax_score["gradient_norm"],
         "em_gradient_norm": em.gradient_norm,
-        "jax_log_likelihood": jax_score["log_likelihood"],
+        # EM's CPTs scored again by the gradient fit's own inference (an independent recomputation)
+        "log_likelihood_recomputed": jax_score["log_likelihood"],
         "iterations": em.iterations,
         "converged": em.converged,
         "rate": None if math.isnan(em.rate) else em.rate,
@@ -438,12 +439,13 @@ def em_check(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] 
         higher = "equal"
         what = (f"CPT entries differ by up to {d_own:.3g}" if d_own > theta_atol else
                 f"the implied CPTs agree but form parameters (leak, strengths) differ by up to {d_par:.3g}")
-        detail = (f"same objective within {tol_obj:.3g} but {what}: "
+        detail = (f"same objective (they differ by {abs(diff):.3g}, tolerance {tol_obj:.3g}) but {what}: "
                   f"parameters not identified by the data (a flat ridge), or equally high optima")
     else:
         verdict = "agree"
         higher = "equal"
-        detail = f"same optimum: objectives within {tol_obj:.3g}, CPT entries within {theta_atol:g}"
+        detail = (f"same optimum: objectives differ by {abs(diff):.3g} (tolerance {tol_obj:.3g}), CPT entries by "
+                  f"up to {d_own:.3g} (tolerance {theta_atol:g})")
     others = [f"{_RUN_NAMES[n]} did not converge" for n in not_converged
               if not (n == "fit" and verdict == "fit-not-converged")
               and not (n == "em_from_fit" and verdict == "em-from-fit-not-converged")
@@ -500,12 +502,12 @@ def format_em_check(check: Mapping[str, Any]) -> str:
     lines = [
         f"EM check: {check['verdict']}: {meaning}",
         f"  {check['detail']}",
-        f"  {'':18s} {'objective':>18s} {'gradient norm':>14s} {'max |dtheta|':>13s} {'iterations':>10s} {'converged':>9s}",
-        f"  {'fit (' + str(f['method']) + ')':18s} {f['objective_value']:18.8f} {g(f['gradient_norm']):>14s} "
+        f"  {'':18s} {'objective':>14s} {'gradient norm':>14s} {'max |dtheta|':>13s} {'iterations':>10s} {'converged':>9s}",
+        f"  {'fit (' + str(f['method']) + ')':18s} {f['objective_value']:14,.2f} {g(f['gradient_norm']):>14s} "
         f"{'':>13s} {'':>10s} {yn(f.get('converged')):>9s}",
-        f"  {'EM from the fit':18s} {a['objective_value']:18.8f} {g(a['gradient_norm']):>14s} "
+        f"  {'EM from the fit':18s} {a['objective_value']:14,.2f} {g(a['gradient_norm']):>14s} "
         f"{g(a['max_abs_delta_theta']):>13s} {a['iterations']:>10d} {yn(a.get('converged')):>9s}",
-        f"  {'EM own start':18s} {b['objective_value']:18.8f} {g(b['gradient_norm']):>14s} "
+        f"  {'EM own start':18s} {b['objective_value']:14,.2f} {g(b['gradient_norm']):>14s} "
         f"{g(b['max_abs_delta_theta']):>13s} {b['iterations']:>10d} {yn(b.get('converged')):>9s}",
     ]
     moved = {k: v for k, v in check["latent_permutation"].items() if any(s != t for s, t in v.items())}

@@ -37,7 +37,7 @@ from typing import Any, Callable, Iterable, Iterator, Sequence
 import numpy as np
 import pandas as pd
 
-from .errors import DataError, option
+from .errors import DataError, did_you_mean, option
 from .network import Network
 from .rowkeys import KeyLayout, PackedRows, reduce_words
 
@@ -328,25 +328,11 @@ class LabelCoder:
 
 
 def similar_label(text: str, states: Sequence[str]) -> str | None:
-    """The one state that ``text`` resembles: the same but for case, or one character added,
-    removed or changed (edit distance 1); None when there is no such state or more than one."""
-    if not text:
-        return None
-    same_case = [s for s in states if s.lower() == text.lower()]
-    if len(same_case) == 1:
-        return same_case[0]
+    """The one state that ``text`` resembles (:func:`adfit.errors.similar_label`: the same but
+    for case, or one character added, removed or changed); None when there is none or several."""
+    from .errors import similar_label as _similar
 
-    def one_edit(a: str, b: str) -> bool:
-        if abs(len(a) - len(b)) > 1 or a == b:
-            return False
-        if len(a) == len(b):
-            return sum(x != y for x, y in zip(a, b)) == 1
-        if len(a) > len(b):
-            a, b = b, a
-        return any(b[:i] + b[i + 1:] == a for i in range(len(b)))
-
-    near = [s for s in states if one_edit(text.lower(), s.lower())]
-    return near[0] if len(near) == 1 else None
+    return _similar(text, states)
 
 
 def _count_problem(values: Any) -> tuple[np.ndarray, int | None, str]:
@@ -436,8 +422,8 @@ def check_columns(network: Network, columns: Sequence[str], *, count_column: str
         raise DataError(f"{source}: column(s) {dup} appear more than once; rename or remove the duplicates")
     for c in ignore:
         if c not in cols:
-            raise DataError(f"{source}: {option('ignore_columns')} names {c!r}, which is not a column of the data "
-                            f"(columns: {', '.join(cols)})")
+            raise DataError(f"{source}: {option('ignore_columns')} names {c!r}, which is not a column of the data; "
+                            f"{did_you_mean(c, cols)}columns: {', '.join(cols)}")
         if c in network and not network.node(c).latent:
             raise DataError(f"{source}: {option('ignore_columns')} names {c!r}, which is an observed node of the network; "
                             f"an observed node needs its column (declare it latent = true to leave it out)")
@@ -448,7 +434,8 @@ def check_columns(network: Network, columns: Sequence[str], *, count_column: str
             raise DataError(f"{source}: count column {count_column!r} is also a node of the network; "
                             f"rename the count column")
         if count_column not in cols:
-            raise DataError(f"{source}: count column {count_column!r} not found; columns are: {', '.join(cols)}")
+            raise DataError(f"{source}: count column {count_column!r} not found; "
+                            f"{did_you_mean(count_column, cols)}columns are: {', '.join(cols)}")
     for c in network.latent_names:
         if c in cols and c not in ignore:
             raise DataError(f"{source}: column {c!r} is a latent node, which is never observed; "
@@ -461,6 +448,10 @@ def check_columns(network: Network, columns: Sequence[str], *, count_column: str
         lower = {c.lower(): c for c in extra}
         near = [f"{lower[a.lower()]!r} for {a!r}" for a in absent if a.lower() in lower]
         hint = f" (names are case-sensitive: {', '.join(near)}?)" if near else ""
+        if not near:  # one character apart (Levenshtein distance 1)
+            close = [(similar_label(a, [str(c) for c in extra]), a) for a in absent]
+            near = [f"{c!r} for {a!r}" for c, a in close if c is not None]
+            hint = f" (did you mean {', '.join(near)}?)" if near else ""
         raise DataError(f"{source}: column(s) {absent} are missing{hint}; every non-latent node needs a column "
                         f"(declare a node latent = true if it is never observed)")
     if extra:

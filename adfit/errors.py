@@ -99,3 +99,39 @@ def option(keyword: str, value: str | None = None, *, many: bool = False) -> str
     if value is None:
         return f"{keyword}="
     return f"{keyword}={[v for v in value.split(',')] if many else value!r}"
+
+
+def spelled(cli: str, python: str) -> str:
+    """``cli`` inside a CLI command (:func:`cli_terms`), ``python`` everywhere else: for a value
+    whose two spellings differ by more than the option's name (``--given wear=heavy`` against
+    ``given={'wear': 'heavy'}``)."""
+    return cli if _CLI_TERMS.get() else python
+
+
+def similar_label(text: str, choices) -> str | None:
+    """The one choice that ``text`` resembles: the same but for case, or one character added,
+    removed or changed (Levenshtein distance 1, case ignored); None when there is no such choice
+    or more than one."""
+    if not text:
+        return None
+    same_case = [s for s in choices if s.lower() == text.lower() and s != text]
+    if len(same_case) == 1:
+        return same_case[0]
+
+    def one_edit(a: str, b: str) -> bool:
+        if abs(len(a) - len(b)) > 1 or a == b:
+            return False
+        if len(a) == len(b):
+            return sum(x != y for x, y in zip(a, b)) == 1
+        if len(a) > len(b):
+            a, b = b, a
+        return any(b[:i] + b[i + 1:] == a for i in range(len(b)))
+
+    near = [s for s in choices if one_edit(text.lower(), s.lower())]
+    return near[0] if len(near) == 1 else None
+
+
+def did_you_mean(text: str, choices) -> str:
+    """``"did you mean 'heavy'? "`` when ``text`` resembles one of ``choices`` (:func:`similar_label`), else ``""``."""
+    near = similar_label(str(text), [str(c) for c in choices])
+    return f"did you mean {near!r}? " if near is not None else ""

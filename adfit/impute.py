@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 
 from .data import HIDDEN, CodedData
-from .errors import DataError, ImpossibleDataError, OptionError
+from .errors import DataError, ImpossibleDataError, OptionError, did_you_mean, spelled
 from .network import Network
 
 #: Separator between a node name and the suffix of an added column.
@@ -248,7 +248,7 @@ def _check_nodes(network: Network, nodes: Iterable[str], what: str = "--nodes") 
     for v in names:
         if v not in network:
             raise OptionError(f"{what} names {v!r}, which is not a node of the network; "
-                              f"the nodes are: {', '.join(network.names)}")
+                              f"{did_you_mean(v, network.names)}the nodes are: {', '.join(network.names)}")
     return tuple(v for v in network.names if v in names)
 
 
@@ -488,7 +488,7 @@ def soft_weights(network: Network, node: str, text: str, *, option: str = "--giv
         state, w = (x.strip() for x in item.rsplit(":", 1))
         if state not in out:
             raise OptionError(f"{option} {node}={text}: node {node!r} has no state {state!r}; "
-                              f"its states are: {', '.join(states)}")
+                              f"{did_you_mean(state, states)}its states are: {', '.join(states)}")
         if state in seen:
             raise OptionError(f"{option} {node}={text}: state {state!r} is listed twice; give it once")
         seen.add(state)
@@ -523,7 +523,7 @@ def parse_evidence(network: Network, items: Sequence[str], *, option: str = "--g
             raise OptionError(f"{option} {item!r}: write NODE=STATE with both parts, e.g. {option} wear=heavy")
         if node not in network:
             raise OptionError(f"{option} {node}={value}: {node!r} is not a node of the network; "
-                              f"the nodes are: {', '.join(network.names)}")
+                              f"{did_you_mean(node, network.names)}the nodes are: {', '.join(network.names)}")
         if node in hard and hard[node] == value:
             continue
         if node in hard or node in soft:
@@ -579,13 +579,14 @@ def query(network: Network, probs: Mapping[str, np.ndarray], given: Mapping[str,
     check_soft(network, given, soft)
     codes = np.full((1, len(network)), HIDDEN, dtype=np.int32)
     for node, state in given.items():
+        where = spelled(f"--given {node}={state}", f"given={{{node!r}: {state!r}}}")
         if node not in network:
-            raise OptionError(f"--given {node}={state}: {node!r} is not a node of the network; "
-                              f"the nodes are: {', '.join(network.names)}")
+            raise OptionError(f"{where}: {node!r} is not a node of the network; "
+                              f"{did_you_mean(node, network.names)}the nodes are: {', '.join(network.names)}")
         states = network.node(node).states
         if state not in states:
-            raise OptionError(f"--given {node}={state}: node {node!r} has no state {state!r}; "
-                              f"its states are: {', '.join(states)}")
+            raise OptionError(f"{where}: node {node!r} has no state {state!r}; "
+                              f"{did_you_mean(state, states)}its states are: {', '.join(states)}")
         codes[0, network.index(node)] = states.index(state)
     if targets is None or len(targets) == 0:
         tg = [v for v in network.names if v not in given and v not in soft]
@@ -595,8 +596,8 @@ def query(network: Network, probs: Mapping[str, np.ndarray], given: Mapping[str,
         tg = list(dict.fromkeys(targets))
         for v in tg:
             if v not in network:
-                raise OptionError(f"--target {v}: {v!r} is not a node of the network; "
-                                  f"the nodes are: {', '.join(network.names)}")
+                raise OptionError(f"{spelled(f'--target {v}', f'targets=[{v!r}]')}: {v!r} is not a node of the "
+                                  f"network; {did_you_mean(v, network.names)}the nodes are: {', '.join(network.names)}")
             if v in given:
                 raise OptionError(f"--target {v}: the node is also given (--given {v}={given[v]}); "
                                   f"its posterior is that state; drop one of the two")
@@ -615,14 +616,14 @@ def check_soft(network: Network, given: Mapping[str, str], soft: Mapping[str, Ma
     for node, ws in soft.items():
         if node not in network:
             raise OptionError(f"{option} {node}=...: {node!r} is not a node of the network; "
-                              f"the nodes are: {', '.join(network.names)}")
+                              f"{did_you_mean(node, network.names)}the nodes are: {', '.join(network.names)}")
         if node in given:
             raise OptionError(f"{option} gives node {node!r} twice (a state and weights); give it once")
         states = network.node(node).states
         for s_, w in ws.items():
             if s_ not in states:
                 raise OptionError(f"{option} {node}=...: node {node!r} has no state {s_!r}; "
-                                  f"its states are: {', '.join(states)}")
+                                  f"{did_you_mean(s_, states)}its states are: {', '.join(states)}")
             if not (math.isfinite(float(w)) and float(w) >= 0):
                 raise OptionError(f"{option} {node}=...: the weight of {s_!r} is {w!r}; give a finite number >= 0")
         if not any(float(w) > 0 for w in ws.values()):

@@ -91,6 +91,8 @@ class Network:
 
     nodes: tuple[Node, ...]
     _index: Mapping[str, int] = field(default=None, compare=False, hash=False, repr=False)  # type: ignore[assignment]
+    #: ``[network] title = "..."`` of the file: names the network in reports (not part of its identity)
+    title: str | None = field(default=None, compare=False, hash=False)
 
     def __post_init__(self) -> None:
         index: dict[str, int] = {}
@@ -131,7 +133,10 @@ class Network:
         try:
             return self._index[name]
         except KeyError:
-            raise NetworkError(f"unknown node {name!r}; the network has: {', '.join(self.names)}") from None
+            from .errors import did_you_mean
+
+            raise NetworkError(f"unknown node {name!r}; {did_you_mean(name, self.names)}"
+                               f"the network has: {', '.join(self.names)}") from None
 
     def node(self, name: str) -> Node:
         return self.nodes[self.index(name)]
@@ -255,7 +260,7 @@ class Network:
             if n.increasing_with and n.tied_to is None:
                 d["increasing_with"] = list(n.increasing_with)
             nodes[n.name] = d
-        return {"nodes": nodes}
+        return ({"network": {"title": self.title}} if self.title else {}) | {"nodes": nodes}
 
     # ----------------------------------------------------------------- structured CPTs
     def cpd_form(self, name: str) -> str:
@@ -394,6 +399,10 @@ def parse_network(doc: Mapping[str, Any], *, source: str = "<network>") -> Netwo
         raise NetworkError(f"{source}: unknown top-level key(s) {sorted(extra)}; only [nodes.NAME] tables are allowed")
     if "network" in doc and not isinstance(doc["network"], Mapping):
         raise NetworkError(f"{source}: 'network' must be a table ([network]) of descriptive keys")
+    title = (doc.get("network") or {}).get("title")
+    if title is not None and not (isinstance(title, str) and title.strip()):
+        raise NetworkError(f"{source}: [network] title must be a non-empty string, e.g. title = \"Gearbox fleet\"")
+    title = title.strip() if title else None
     nodes_doc = doc["nodes"]
     if not isinstance(nodes_doc, Mapping) or not nodes_doc:
         raise NetworkError(f"{source}: [nodes] must contain at least one [nodes.NAME] table")
@@ -475,7 +484,7 @@ def parse_network(doc: Mapping[str, Any], *, source: str = "<network>") -> Netwo
         net = Network(tuple(replace(n, impossible=_parse_impossible(net, n, impossible_raw[n.name], source))
                             if n.name in impossible_raw else n for n in net.nodes))
     _check_structure(net, source)
-    return net
+    return replace(net, title=title) if title else net
 
 
 def _parse_impossible(net: Network, node: Node, raw: Any, source: str) -> tuple[tuple[int, int], ...]:

@@ -6,11 +6,12 @@ the page as a ``data:`` URI), readable on a laptop screen and printable. :func:`
 adds the data-dependent part (the gaps overview, when the records are given) and writes the page
 atomically.
 
-Sections, always present, in this order (their ``id`` in brackets):
+Sections, in this order (their ``id`` in brackets); each is present, except "Further sections"
+when it would be empty:
 
 1. What was fitted (``fitted``): the network drawn in layers by topological depth (latent nodes
    with a dashed outline, fixed CPTs shaded; the legend is in the figure), records, gaps,
-   objective, prior, settings.
+   objective, prior; the optimiser's settings and the prior as read folded under a ``<details>``.
 2. Convergence (``convergence``): objective, shortfall below the best objective and gradient
    norm per iteration (the last two on log scales), for each start whose history the result
    holds; the table of starts.
@@ -23,7 +24,8 @@ Sections, always present, in this order (their ``id`` in brackets):
    ``adfit sensitivity``), each target against the log odds with the band of its intervals, MAR
    and the tipping point marked, the table of refits and the analysis' cautions.
 7. Model assessment (``assessment``): AIC/BIC and cross-validation.
-8. Further sections (``other``): anything else the result holds, shown as recorded.
+8. Further sections (``other``): anything else the result holds, shown as recorded (left out,
+   heading and all, when there is nothing else).
 9. Cautions (``cautions``).
 
 A section that the result lacks is still there, saying plainly what is absent and which option
@@ -52,10 +54,11 @@ import numpy as np
 from .errors import AdfitError, ResultError
 from .io import atomic_write
 from .network import Network
-from .result import FORMAT, FitResult, result_from_dict
+from .result import FORMAT, FitResult, result_from_dict, upgrade_keys
 
 __all__ = ["render_report", "write_report", "load_result_doc", "network_figure", "convergence_figure",
-           "gaps_figure", "complete_case_figure", "sensitivity_figure", "network_layers", "SECTIONS", "PROB_DECIMALS",
+           "gaps_figure", "complete_case_figure", "sensitivity_figure", "network_layers", "SECTIONS",
+           "error_bar_flags", "LATENT_CAUTION", "PROB_DECIMALS",
            "LOGLIK_DECIMALS", "SCI_DIGITS", "fmt_prob", "fmt_loglik", "fmt_sci", "fmt_count", "fmt_share",
            "REPORT_CAUTIONS"]
 
@@ -85,14 +88,17 @@ DPI = 144
 SHADE = "#d4d4d4"      # fill of a node with a fixed CPT
 INK = "#222222"
 
+#: the caution on latent states (shown only when the network has a latent node)
+LATENT_CAUTION = ("The states of a latent node are labels chosen by the fit; their meaning comes from the CPTs of its "
+                  "children, not from their names.")
+
 REPORT_CAUTIONS: tuple[str, ...] = (
     "The estimates rest on the network structure as given: a missing or wrong arrow changes them, and no part "
     "of this report tests the structure.",
     "The full-likelihood fit treats the gaps as missing at random (MAR): whether a cell is missing may depend on "
     "what was observed, not on the missing value itself. Missing not at random (MNAR) cannot be detected from "
     "the data; if it is plausible, the estimates may be biased.",
-    "The states of a latent node are labels chosen by the fit; their meaning comes from the CPTs of its "
-    "children, not from their names.",
+    LATENT_CAUTION,
     "Standard errors and intervals, where shown, are large-sample approximations; with few records in a parent "
     "configuration, or estimates near 0 or 1, they can be far off. A MAP fit depends on its prior.",
     "This report supports, and does not replace, engineering or clinical judgement. Local codes, regulations "
@@ -537,6 +543,11 @@ def _starts(doc: Mapping[str, Any]) -> tuple[list[Mapping[str, Any]], Any, int |
     return starts, optima, best_i
 
 
+def _start_no(k: Any) -> Any:
+    """A start as people count it: the result numbers starts from 0, the page from 1."""
+    return int(k) + 1 if isinstance(k, (int, float)) and not isinstance(k, bool) else k
+
+
 def _history_of(sec: Any) -> tuple[list[float], list[float]] | None:
     if not isinstance(sec, Mapping):
         return None
@@ -560,7 +571,7 @@ def convergence_histories(doc: Mapping[str, Any]) -> tuple[list[tuple[str, list[
         k = s.get("start", i)
         is_best = best is not None and k == best
         kind = f" ({s['kind']})" if isinstance(s.get("kind"), str) else ""
-        out.append((f"start {k}{kind}" + (", best" if is_best else ""), h[0], h[1], is_best))
+        out.append((f"start {_start_no(k)}{kind}" + (", best" if is_best else ""), h[0], h[1], is_best))
     if out:
         missing = len(starts) - len(out)
         note = f"Histories of all {len(out)} starts." if not missing else \
@@ -569,7 +580,7 @@ def convergence_histories(doc: Mapping[str, Any]) -> tuple[list[tuple[str, list[
     h = _history_of(doc.get("history"))
     if h is None:
         return [], "The result holds no per-iteration history."
-    label = f"start {best} (best)" if best is not None else "the returned fit"
+    label = f"start {_start_no(best)} (best)" if best is not None else "the returned fit"
     if len(starts) > 1:
         note = (f"Only the best start's history is in the result ({len(starts)} starts were run; their final "
                 f"values are in the table below).")
@@ -826,8 +837,9 @@ def _section_fitted(doc: Mapping[str, Any], res: FitResult, gaps: Mapping[str, A
     parts.append("</div></div>")
     settings = doc.get("settings")
     if isinstance(settings, Mapping) and settings:
-        parts.append("<h3>Settings</h3>" + _kv(((str(k), _fmt_any(v) if not isinstance(v, (dict, list)) else _short(v))
-                                                  for k, v in settings.items()), cls="kv small"))
+        parts.append("<details class=\"settings\"><summary>Settings of the optimiser (as recorded in the result)"
+                     "</summary>" + _kv(((str(k), _fmt_any(v) if not isinstance(v, (dict, list)) else _short(v))
+                                         for k, v in settings.items()), cls="kv small") + "</details>")
     return _sec("fitted", "".join(parts))
 
 
@@ -867,12 +879,11 @@ def _prior_brief(doc: Mapping[str, Any]) -> str:
     tot = pr.get("total_pseudo_counts")
     if isinstance(tot, Mapping):
         pairs.append(("pseudo-counts per node", esc(", ".join(f"{k} {_fmt_any(v)}" for k, v in tot.items()))))
-    if pr.get("spec") is not None:
-        pairs.append(("specification", _render_any(pr["spec"], 2)))
-    for k, v in pr.items():
-        if k not in {"source", "objective", "total_pseudo_counts", "spec"}:
-            pairs.append((str(k), _render_any(v, 2)))
-    return _kv(pairs, raw=True)
+    rest = [(str(k), _render_any(v, 2)) for k, v in pr.items()
+            if k not in {"source", "objective", "total_pseudo_counts", "spec"}]
+    folded = ([("specification", _render_any(pr["spec"], 2))] if pr.get("spec") is not None else []) + rest
+    return _kv(pairs, raw=True) + ("<details class=\"prior-spec\"><summary>The prior as read from its file</summary>"
+                                   + _kv(folded, raw=True) + "</details>" if folded else "")
 
 
 def _section_convergence(doc: Mapping[str, Any]) -> str:
@@ -899,7 +910,7 @@ def _section_convergence(doc: Mapping[str, Any]) -> str:
         for i, s in enumerate(starts):
             k = s.get("start", i)
             mark = " (best)" if best is not None and k == best else ""
-            rows.append([esc(f"{k}{mark}"), esc(s.get("kind", "")), esc(fmt_loglik(s.get("objective"))),
+            rows.append([esc(f"{_start_no(k)}{mark}"), esc(s.get("kind", "")), esc(fmt_loglik(s.get("objective"))),
                          esc(_fmt_any(s.get("iterations"))),
                          esc("yes" if s.get("converged") else "no") if "converged" in s else "",
                          esc(fmt_sci(s.get("gradient_norm")))]
@@ -923,7 +934,9 @@ def _section_convergence(doc: Mapping[str, Any]) -> str:
         parts.append(_absent("The result lists no starts (one start, or a result written before starts were "
                              "recorded); use fit --restarts N to try several."))
     if optima is not None:
-        parts.append("<h3>Optima found</h3>" + _optima(optima, doc.get("restarts")))
+        nodes = (doc.get("network") or {}).get("nodes") if isinstance(doc.get("network"), Mapping) else None
+        latent = not isinstance(nodes, Mapping) or any(isinstance(n, Mapping) and n.get("latent") for n in nodes.values())
+        parts.append("<h3>Optima found</h3>" + _optima(optima, doc.get("restarts"), latent))
     em = doc.get("em")
     if isinstance(em, Mapping):
         pairs = []
@@ -944,7 +957,7 @@ def _section_convergence(doc: Mapping[str, Any]) -> str:
     return _sec("convergence", "".join(parts))
 
 
-def _optima(optima: Any, section: Any) -> str:
+def _optima(optima: Any, section: Any, latent: bool = True) -> str:
     """The distinct optima reached by the starts (adfit.restarts), best first."""
     if not (isinstance(optima, list) and all(isinstance(o, Mapping) for o in optima)):
         return _render_any(optima)
@@ -971,7 +984,7 @@ def _optima(optima: Any, section: Any) -> str:
         k = o.get("optimum", i)
         num = int(k) + 1 if isinstance(k, (int, float)) and not isinstance(k, bool) else k
         rows.append([_fmt_any(num), fmt_loglik(o.get("objective")), fmt_loglik(o.get("log_likelihood")),
-                     ", ".join(str(x) for x in o.get("starts") or []),
+                     ", ".join(str(_start_no(x)) for x in o.get("starts") or []),
                      "best" if i == 0 else fmt_sci(o.get("max_abs_delta_theta")),
                      "yes" if o.get("same_objective_as_best") else "no",
                      "yes" if o.get("stationary") else "no", fmt_sci(o.get("gradient_norm"))])
@@ -984,11 +997,12 @@ def _optima(optima: Any, section: Any) -> str:
     if isinstance(tol, Mapping):
         parts.append(_note(f"Two starts reach the same optimum when their objectives agree within "
                            f"{fmt_sci(tol.get('objective_rtol'))} x max(1, |objective|) and every CPT entry within "
-                           f"{fmt_sci(tol.get('theta_atol'))} after the latent states are relabelled."))
+                           f"{fmt_sci(tol.get('theta_atol'))}" + (" after the latent states are relabelled."
+                                                                   if latent else ".")))
     unconv = [u for u in (sec.get("not_converged") or []) if isinstance(u, Mapping)]
     if unconv:
         parts.append(_note("Did not converge (not counted as optima): " + "; ".join(
-            f"start {_fmt_any(u.get('start'))} at objective {fmt_loglik(u.get('objective'))}, gradient norm "
+            f"start {_fmt_any(_start_no(u.get('start')))} at objective {fmt_loglik(u.get('objective'))}, gradient norm "
             f"{fmt_sci(u.get('gradient_norm'))}" + (" (above the best converged objective)" if u.get("above_best") else "")
             for u in unconv) + "."))
     if sec.get("n_failed"):
@@ -1577,21 +1591,43 @@ def _latent_states(doc: Mapping[str, Any]) -> str:
 def _section_other(doc: Mapping[str, Any]) -> str:
     extra = [k for k in doc if k not in _KNOWN_TOP]
     if not extra:
-        return _sec("other", _note("The result holds no further sections."))
+        return ""  # no heading without content
     parts = [_note("Sections of the result that this report does not interpret, shown as recorded.")]
     for k in extra:
         parts.append(f"<h3>{esc(k)}</h3>" + _render_any(doc[k]))
     return _sec("other", "".join(parts))
 
 
-def _section_cautions(doc: Mapping[str, Any], gaps: Mapping[str, Any] | None) -> str:
-    items = list(REPORT_CAUTIONS)
+def _section_cautions(doc: Mapping[str, Any], gaps: Mapping[str, Any] | None, net: Network | None = None) -> str:
+    items = [c for c in REPORT_CAUTIONS if c != LATENT_CAUTION or net is None or net.latent_names]
     if doc.get("objective") == "map":
         items.insert(3, "This is a MAP fit: the prior's pseudo-counts pull the estimates towards the prior, most "
                         "where a parent configuration has few records.")
     if not doc.get("converged"):
         items.insert(0, "The fit did NOT meet its stopping rule: the CPTs may not be at a maximum.")
     return _sec("cautions", "<ul>" + "".join(f"<li>{esc(t)}</li>" for t in items) + "</ul>")
+
+
+def error_bar_flags(unc: Mapping[str, Any]) -> str:
+    """The error bars' flags counted in a few words (the report's top line): every kind that
+    needs care, or that none does."""
+    def n_of(key: str) -> int:
+        v = unc.get(key)
+        return len(v) if isinstance(v, list) else 0
+
+    kinds = [d.get("kind") for d in unc.get("directions") or [] if isinstance(d, Mapping)]
+    wide = [e for e in unc.get("wide_entries") or []
+            if isinstance(e, Mapping) and e.get("status") in ("interior", "boundary")]
+    counts = [(kinds.count("negative"), "direction(s) of negative curvature"),
+              (kinds.count("flat"), "flat direction(s)"),
+              (kinds.count("weak"), "weakly identified direction(s)"),
+              (n_of("not_identified"), "CPT row(s) not identified"),
+              (n_of("no_data_rows"), "CPT row(s) without records"),
+              (n_of("prior_only_rows"), "CPT row(s) informed by the prior only"),
+              (n_of("boundary_entries"), "cell(s) on the boundary"),
+              (len(wide), f"interval(s) wider than {_fmt_any(unc.get('wide_threshold', 0.5))}")]
+    shown = [f"{n} {what}" for n, what in counts if n]
+    return ", ".join(shown) if shown else "every free entry identified, no weak direction or wide interval"
 
 
 def _glance(doc: Mapping[str, Any], gaps: Mapping[str, Any] | None) -> str:
@@ -1605,9 +1641,7 @@ def _glance(doc: Mapping[str, Any], gaps: Mapping[str, Any] | None) -> str:
                      if rej in (True, False, None) else "MCAR: ?")
     unc = doc.get("uncertainty")
     if isinstance(unc, Mapping):
-        bad = len(unc.get("not_identified") or []) + len(unc.get("no_data_rows") or [])
-        items.append("error bars: " + (f"{bad} CPT row(s) not identified or without data" if bad else
-                                       "every row identified"))
+        items.append("error bars: " + error_bar_flags(unc))
     else:
         items.append("error bars: none in the result")
     cc = doc.get("complete_case")
@@ -1733,6 +1767,7 @@ def render_report(result: Mapping[str, Any] | FitResult | str | Path, *, gaps: A
         doc = result
     src = source or "<result>"
     res = result_from_dict(doc, source=src)
+    doc = upgrade_keys(doc)  # keys of older result files under their current names
     if gaps is not None and hasattr(gaps, "to_dict"):
         gaps = gaps.to_dict()
     if sensitivity is not None:
@@ -1740,6 +1775,7 @@ def render_report(result: Mapping[str, Any] | FitResult | str | Path, *, gaps: A
 
         validate_sensitivity_doc(sensitivity, "sensitivity")
         check_sensitivity_matches(sensitivity, res.network, "sensitivity")
+    other = _section_other(doc)
     body = [
         _section_fitted(doc, res, gaps),
         _section_convergence(doc),
@@ -1748,12 +1784,13 @@ def render_report(result: Mapping[str, Any] | FitResult | str | Path, *, gaps: A
         _section_gaps(doc, gaps, data_note),
         _section_sensitivity(sensitivity),
         _section_assessment(doc),
-        _section_other(doc),
-        _section_cautions(doc, gaps),
+        other,
+        _section_cautions(doc, gaps, res.network),
     ]
-    title = title or f"adfit report: {Path(src).name if source else 'fit'}"
+    title = title or res.network.title or f"adfit report: {Path(src).name if source else 'fit'}"
     stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
-    nav = "<nav><ol>" + "".join(f'<li><a href="#{sid}">{esc(t)}</a></li>' for sid, t in SECTIONS) + "</ol></nav>"
+    nav = "<nav><ol>" + "".join(f'<li><a href="#{sid}">{esc(t)}</a></li>' for sid, t in SECTIONS
+                                if sid != "other" or other) + "</ol></nav>"
     head = (f"<h1>{esc(title)}</h1><p class=\"meta\">Result {esc(src)}; {esc(doc.get('method', ''))} "
             f"{esc(str(doc.get('objective', '')).upper())}; written by adfit {esc(_version())} on {esc(stamp)}.</p>")
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"

@@ -627,26 +627,26 @@ def format_optima(section: Mapping[str, Any]) -> str:
     n_conv = section.get("n_converged", K)
     lines = [f"starts: {K}"
              + (f" ({section['batch_width']} evaluated together)" if section.get("batch_width", 1) > 1 else "")
-             + f"; {n_conv} converged; {len(opt)} distinct optim{'um' if len(opt) == 1 else 'a'} among them (objectives "
-             f"within {tol['objective_rtol']:g} x max(1, |objective|), CPT entries within {tol['theta_atol']:g} "
-             f"after relabelling latent states)"]
+             + f"; {n_conv} converged; {len(opt)} distinct optim{'um' if len(opt) == 1 else 'a'} among them (two starts "
+             f"count as one optimum when their objectives agree to {tol['objective_rtol']:g} x max(1, |objective|) "
+             f"and their CPT entries to {tol['theta_atol']:g}, latent states relabelled)"]
     if opt:
         lines.append(f"  {section['starts_at_best_objective']} of the {n_conv} converged starts reached the best "
-                     f"objective {opt[0]['objective']:.8f}"
-                     + (f" (within {section['best_objective_tolerance']:.3g})"
+                     f"objective {opt[0]['objective']:,.2f}"
+                     + (f" (to a tolerance of {section['best_objective_tolerance']:.3g})"
                         if section.get("best_objective_tolerance") is not None else ""))
-        lines.append(f"  {'#':>3s} {'objective':>18s} {'log-likelihood':>18s} {'starts':>6s} {'max |dtheta|':>12s} "
+        lines.append(f"  {'optimum':>7s} {'objective':>14s} {'log-likelihood':>14s} {'starts':>6s} {'max |dtheta|':>12s} "
                      f"{'stationary':>10s} {'gradient norm':>13s}")
     for o in opt:
         dt = "best" if o["optimum"] == 0 else f"{o['max_abs_delta_theta']:.3g}"
-        lines.append(f"  {o['optimum'] + 1:>3d} {o['objective']:18.8f} {o['log_likelihood']:18.8f} {o['count']:>6d} "
+        lines.append(f"  {o['optimum'] + 1:>7d} {o['objective']:14,.2f} {o['log_likelihood']:14,.2f} {o['count']:>6d} "
                      f"{dt:>12s} {'yes' if o['stationary'] else 'no':>10s} {o['gradient_norm']:13.3e}")
     ties = [o for o in opt[1:] if o["same_objective_as_best"]]
     if ties:
         lines.append(f"  {len(ties)} other optim{'um has' if len(ties) == 1 else 'a have'} the best objective with "
                      f"different CPTs: parameters not identified by the data (a flat ridge) or equally high optima")
     for u in section.get("not_converged") or []:
-        lines.append(f"  start {u['start'] + 1} did not converge (not an optimum): objective {u['objective']:.8f}, "
+        lines.append(f"  start {u['start'] + 1} did not converge (not an optimum): objective {u['objective']:,.2f}, "
                      f"gradient norm {u['gradient_norm']:.3e}" + ("; above the best converged objective" if u.get("above_best") else ""))
     if section.get("n_failed"):
         lines.append(f"  {section['n_failed']} start(s) ended with a non-finite objective")

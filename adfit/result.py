@@ -136,6 +136,21 @@ class FitResult:
         return pd.DataFrame({"estimate": est.ravel(), "se": se.ravel(), "lower": lo.ravel(), "upper": hi.ravel()},
                             index=index)
 
+    def standard_errors(self, name: str) -> pd.DataFrame:
+        """The standard errors of ``name``'s CPT, laid out as :meth:`cpt` (rows: parent
+        configurations, columns: states); NaN where the result has none."""
+        return self._wide(name, "se")
+
+    def intervals(self, name: str) -> tuple[pd.DataFrame, pd.DataFrame]:
+        """``(lower, upper)``: the interval ends of ``name``'s CPT, each laid out as :meth:`cpt`;
+        NaN where the result has none."""
+        return self._wide(name, "lower"), self._wide(name, "upper")
+
+    def _wide(self, name: str, column: str) -> pd.DataFrame:
+        est = self.cpt(name)
+        values = self.table(name)[column].to_numpy(dtype=np.float64).reshape(est.shape)
+        return pd.DataFrame(values, index=est.index, columns=est.columns)
+
     # ------------------------------------------------------------------ serialisation
     def to_dict(self) -> dict[str, Any]:
         net = self.network
@@ -179,10 +194,10 @@ class FitResult:
     def summary(self) -> str:
         """A few plain lines for the terminal."""
         lines = [
-            f"method {self.method} ({self.objective.upper()}), {self.n_rows:g} records, {self.n_distinct} distinct rows",
-            f"log-likelihood {self.log_likelihood:.6f}"
-            + (f", log-prior {self.log_prior:.6f}" if self.objective == "map" else "")
-            + (f", penalty {self.penalty:.6f}" if self.penalty else ""),
+            f"method {self.method} ({self.objective.upper()}), {self.n_rows:,g} records, {self.n_distinct:,} distinct rows",
+            f"log-likelihood {self.log_likelihood:,.2f}"
+            + (f", log-prior {self.log_prior:,.2f}" if self.objective == "map" else "")
+            + (f", penalty {self.penalty:,.2f}" if self.penalty else ""),
             f"gradient norm {self.gradient_norm:.3e} (records), iterations {self.iterations}, "
             + ("converged" if self.converged else f"NOT converged ({self.stop_reason})"),
         ]
@@ -376,6 +391,31 @@ _SECTIONS = ("restarts", "prior", "em", "em_check", "uncertainty", "complete_cas
              "cross_validation", "latent_states")
 
 
+#: keys renamed since results were first written: (section, old key, new key); read either way
+RENAMED_KEYS: tuple[tuple[tuple[str, ...], str, str], ...] = (
+    (("em_check", "em_from_fit"), "jax_log_likelihood", "log_likelihood_recomputed"),
+    (("em_check", "em_own_start"), "jax_log_likelihood", "log_likelihood_recomputed"),
+)
+
+
+def upgrade_keys(doc: Mapping[str, Any]) -> Mapping[str, Any]:
+    """``doc`` with the keys of older result files under their current names (a copy where
+    something was renamed; ``doc`` itself otherwise)."""
+    out: Any = doc
+    for path, old, new in RENAMED_KEYS:
+        sec: Any = out
+        for k in path:
+            sec = sec.get(k) if isinstance(sec, Mapping) else None
+        if isinstance(sec, Mapping) and old in sec and new not in sec:
+            if out is doc:
+                out = json.loads(json.dumps(doc))
+            sec = out
+            for k in path:
+                sec = sec[k]
+            sec[new] = sec.pop(old)
+    return out
+
+
 def result_from_dict(doc: Mapping[str, Any], *, network: Network | None = None, source: str = "<result>") -> FitResult:
     """Rebuild a :class:`FitResult` from its JSON form.
 
@@ -383,6 +423,7 @@ def result_from_dict(doc: Mapping[str, Any], *, network: Network | None = None, 
     otherwise the network embedded in the file is used.
     """
     validate_result_doc(doc, source)
+    doc = upgrade_keys(doc)
     nodes = doc["nodes"]
     if network is None:
         if "network" not in doc:

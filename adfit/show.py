@@ -42,7 +42,10 @@ def check_nodes(result: FitResult, nodes: Sequence[str] | None) -> tuple[str, ..
         return result.network.names
     for n in nodes:
         if n not in result.network:
-            raise OptionError(f"--node {n!r}: not a node of the network; nodes are {', '.join(result.network.names)}")
+            from .errors import did_you_mean, spelled
+
+            raise OptionError(f"{spelled(f'--node {n}', f'nodes=[{n!r}]')}: not a node of the network; "
+                              f"{did_you_mean(n, result.network.names)}nodes are {', '.join(result.network.names)}")
     return tuple(nodes)
 
 

@@ -1222,8 +1222,7 @@ def format_uncertainty(summary: Mapping[str, Any], nodes: Mapping[str, Mapping[s
     """Plain lines for the terminal: method, EM rate, per-node missing information, the flags
     and (when ``network`` and ``nodes`` are given) the interval tables."""
     pct = f"{100 * summary['level']:g}%"
-    lines = [f"error bars: {pct} intervals on the logit scale, {summary['n_coordinates']} coordinates "
-             f"({summary['method']} observed information)"]
+    lines = [f"error bars: {pct} intervals (Wald on the logit scale, from the observed information)"]
     if summary.get("em_rate") is not None:
         lines.append(f"largest fraction of missing information (EM rate) {summary['em_rate']:.4f}")
     if nodes:
@@ -1277,7 +1276,8 @@ def format_uncertainty(summary: Mapping[str, Any], nodes: Mapping[str, Mapping[s
                      if node.parents else pd.Index(["(none)"], name="parents"))
             df = pd.DataFrame(cells, index=index, columns=pd.Index(list(node.states), name=name))
             with pd.option_context("display.width", 200, "display.max_columns", 20):
-                lines.append(f"\n{pct} intervals for P({name} | {', '.join(node.parents) or '-'})"
+                given = f" | {', '.join(node.parents)}" if node.parents else ""
+                lines.append(f"\n{pct} intervals for P({name}{given})"
                              f" (* boundary, ? not identified, - no data, = fixed by the network)\n{df.to_string()}")
     return "\n".join(lines)
 
@@ -1306,10 +1306,11 @@ def structure_refusal(network: Network) -> str | None:
 
 
 def cli_errors(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray] | None, l2: float,
-               errors: bool | None, quiet: bool, echo: Callable[..., None],
+               errors: bool | None, quiet: bool, echo: Callable[..., None], show: bool = True,
                likelihood: Likelihood | None = None) -> Any:
     """For ``adfit fit``: attach error bars (by default when the free parameters are at most
-    :data:`AUTO_MAX_PARAMETERS`; ``errors`` True forces, False skips) and print their summary.
+    :data:`AUTO_MAX_PARAMETERS`; ``errors`` True forces, False skips) and print their summary
+    (``show`` False: print nothing but the warnings; the caller prints them in its own place).
     ``likelihood``: the command's :class:`Likelihood` of this network and data (the same
     :class:`CodedData` object), reused instead of planning again."""
     if errors is False:
@@ -1337,11 +1338,11 @@ def cli_errors(result: Any, data: Any, *, pseudo_counts: Mapping[str, np.ndarray
     summary = out.extras["uncertainty"]
     if result.converged and not out.converged:
         echo(f"adfit: warning: not converged: {out.stop_reason}", err=True)
-    if not quiet:
+    if not quiet and show:
         echo("")
         echo(format_uncertainty(summary, {n: out.extras["nodes"][n] for n in result.network.free_names},
                                 network=result.network))
-    elif summary["not_identified"] or any(d["kind"] != "weak" for d in summary["directions"]):
+    elif quiet and (summary["not_identified"] or any(d["kind"] != "weak" for d in summary["directions"])):
         echo("adfit: warning: some CPT entries are not identified by the data (see \"uncertainty\" in the result)",
              err=True)
     return out

@@ -10,12 +10,29 @@ from typer.testing import CliRunner
 
 from adfit.cli import app
 
-COMMANDS = ["fit", "em", "score", "gaps", "impute", "query", "show", "report", "demo", "sensitivity"]
+def _group():
+    import typer.main
+    return typer.main.get_command(app)
+
+
+#: every command of the app (a new command is covered without editing this file)
+COMMANDS = sorted(_group().commands)
 
 
 def click_command(name):
-    import typer.main
-    return typer.main.get_command(app).commands[name]
+    return _group().commands[name]
+
+
+def test_every_known_command_is_covered():
+    assert {"fit", "em", "score", "gaps", "impute", "query", "show", "report", "demo", "sensitivity"} <= set(COMMANDS)
+
+
+def test_top_level_help_at_80_columns():
+    r = CliRunner().invoke(app, ["--help"], env={"COLUMNS": "80", "TERM": "dumb"})
+    assert r.exit_code == 0, r.output
+    assert max(len(x) for x in r.output.splitlines()) <= 80
+    for name in COMMANDS:
+        assert re.search(rf"\b{name}\b", r.output), name
 
 
 @pytest.mark.parametrize("name", COMMANDS)

@@ -388,3 +388,19 @@ def test_structured_nodes_are_refused_by_estimators_that_cannot_fit_them_yet():
         fit(net, df)
     with pytest.raises(NetworkError, match="nodes.gauge.increasing_with: EM cannot estimate this structured CPT yet"):
         em_fit(net, df)
+
+
+def test_network_title_is_read_kept_out_of_identity_and_embedded(tmp_path):
+    from adfit.errors import NetworkError
+    from adfit.network import parse_network
+
+    body = {"nodes": {"a": {"states": ["x", "y"]}}}
+    net = parse_network({"network": {"title": "  Gearbox fleet "}, **body})
+    assert net.title == "Gearbox fleet"
+    plain = parse_network(body)
+    assert plain.title is None and net == plain and hash(net) == hash(plain)  # same network, whatever its title
+    assert parse_network(net.to_dict()).title == "Gearbox fleet"  # embedded in result files and read back
+    assert "network" not in plain.to_dict()
+    for bad in (3, "", "  "):
+        with pytest.raises(NetworkError, match=r"\[network\] title must be a non-empty string"):
+            parse_network({"network": {"title": bad}, **body})

@@ -201,12 +201,16 @@ def test_page_parses_and_needs_nothing_from_outside(case):
 def test_every_section_present_in_order(case):
     tree = case["tree"]
     found = [n.attrs["id"] for n in tree.find_all("section")]
-    assert found == [sid for sid, _ in SECTIONS]
+    # "Further sections" only when the result holds sections the report does not interpret
+    assert found == [sid for sid, _ in SECTIONS if sid != "other"]
+    assert "Further sections" not in case["text"]  # no hollow heading, in the page or its contents list
     for sid, title in SECTIONS:
-        assert section(tree, sid).find("h2").text() == title
+        if sid != "other":
+            assert section(tree, sid).find("h2").text() == title
     # the full case has every optional section of a fit result, so none says it is absent; the
     # sensitivity section needs a separate file (adfit sensitivity) and names the commands
-    absent = [p.text() for sid, _ in SECTIONS if sid != "sensitivity" for p in section(tree, sid).find_all("p", cls="absent")]
+    absent = [p.text() for sid, _ in SECTIONS if sid not in ("sensitivity", "other")
+              for p in section(tree, sid).find_all("p", cls="absent")]
     assert absent == [], absent
     assert "adfit report RESULT --sensitivity" in section(tree, "sensitivity").find("p", cls="absent").text()
 
@@ -452,7 +456,8 @@ def test_absent_sections_say_what_to_run(case):
         for k in ("se", "interval", "se_status", "missing_information"):
             sec.pop(k, None)
     tree = parse(render_report(doc))
-    absent = {sid: " ".join(p.text() for p in section(tree, sid).find_all("p", cls="absent")) for sid, _ in SECTIONS}
+    absent = {sid: " ".join(p.text() for p in section(tree, sid).find_all("p", cls="absent")) for sid, _ in SECTIONS
+              if sid != "other"}
     assert "No EM cross-check was run: use adfit fit --em-check." in absent["em-check"]
     assert "--compare-complete-case" in absent["gaps"] and "--data" in absent["gaps"]
     assert "--folds" in absent["assessment"] and "No information criteria" in absent["assessment"]
@@ -577,6 +582,16 @@ def _chromium() -> str | None:
     return None
 
 
+# Errors are caught from the first moment the page is parsed (a listener in <head>, capturing, so
+# that a resource that fails to load counts too); after the load event the page writes what it
+# saw into a <div> that --dump-dom prints.
+TRAP = """<script>
+window.__errors = [];
+window.addEventListener('error', function (e) {
+  window.__errors.push(e.message || ('failed to load ' + ((e.target && (e.target.src || e.target.href)) || '?')));
+}, true);
+</script>"""
+
 CHECK = """<script>
 window.addEventListener('load', function () {
   var bad = 0, n = 0;
@@ -584,16 +599,22 @@ window.addEventListener('load', function () {
     n++; var im = document.images[i];
     if (!im.complete || im.naturalWidth === 0) bad++;
   }
+  var heads = [];
+  document.querySelectorAll('section').forEach(function (s) {
+    var h = s.querySelector('h2');
+    if (h && h.getBoundingClientRect().height > 0) heads.push(s.id);
+  });
   var out = document.createElement('div');
   out.id = 'render-check';
-  out.textContent = 'images=' + n + ' broken=' + bad + ' sections=' + document.querySelectorAll('section').length
-                    + ' width=' + document.documentElement.scrollWidth;
+  out.textContent = 'images=' + n + ' broken=' + bad + ' sections=' + heads.join(',')
+                    + ' width=' + document.documentElement.scrollWidth
+                    + ' errors=' + window.__errors.length + ' [' + window.__errors.join(' | ') + ']';
   document.body.appendChild(out);
 });
 </script>"""
 
 
-@pytest.mark.skipif(_chromium() is None, reason="no Chromium installed")
+@pytest.mark.skipif(_chromium() is None, reason="no Chromium installed (.ci/run installs it as root)")
 def test_renders_in_headless_chromium(case, tmp_path):
     from PIL import Image
 
@@ -602,15 +623,23 @@ def test_renders_in_headless_chromium(case, tmp_path):
              "--disable-component-update", "--disable-sync", f"--user-data-dir={tmp_path / 'profile'}",
              "--window-size=1200,2000"]
     checked = tmp_path / "checked.html"
-    checked.write_text(case["text"].replace("</body>", CHECK + "</body>"), encoding="utf-8")
+    page = case["text"].replace("<head>", "<head>" + TRAP, 1).replace("</body>", CHECK + "</body>")
+    checked.write_text(page, encoding="utf-8")
     dom = subprocess.run([exe, *flags, "--virtual-time-budget=5000", "--dump-dom", checked.as_uri()],
                          capture_output=True, text=True, timeout=120)
     assert dom.returncode == 0, dom.stderr[-2000:]
-    m = re.search(r"images=(\d+) broken=(\d+) sections=(\d+) width=(\d+)", dom.stdout)
+    m = re.search(r"images=(\d+) broken=(\d+) sections=([\w,-]*) width=(\d+) errors=(\d+) \[(.*?)\]", dom.stdout)
     assert m, dom.stdout[-500:]
-    images, broken, sections, width = map(int, m.groups())
-    assert (images, broken, sections) == (4, 0, len(SECTIONS))
+    images, broken = int(m.group(1)), int(m.group(2))
+    shown, width, n_errors = m.group(3).split(","), int(m.group(4)), int(m.group(5))
+    assert n_errors == 0, m.group(6)  # no script error and no resource that failed to load
+    assert (images, broken) == (4, 0)
+    # every section of the page is laid out with a visible heading, in order
+    assert shown == [sid for sid, _ in SECTIONS if sid != "other"]
     assert width <= 1200  # nothing wider than the window: no sideways scrolling on a laptop
+    # the key content is in the DOM the browser built: the estimates, the verdict, the cautions
+    assert 'class="glance"' in dom.stdout and 'class="verdict"' in dom.stdout and "cpt-table" in dom.stdout
+    assert "missing at random (MAR)" in dom.stdout
     shot = tmp_path / "page.png"
     r = subprocess.run([exe, *flags, f"--screenshot={shot}", case["html"].as_uri()], capture_output=True,
                        text=True, timeout=120)
@@ -619,6 +648,13 @@ def test_renders_in_headless_chromium(case, tmp_path):
         assert im.size == (1200, 2000)
         px = np.asarray(im.convert("L"), dtype=float)
     assert (px < 128).mean() > 0.01  # text and figures drawn, not a blank page
+    # a page with a script error is caught (the check can fail)
+    broken_page = tmp_path / "broken.html"
+    broken_page.write_text(page.replace("</body>", "<script>undefined_function();</script></body>"), encoding="utf-8")
+    dom = subprocess.run([exe, *flags, "--virtual-time-budget=5000", "--dump-dom", broken_page.as_uri()],
+                         capture_output=True, text=True, timeout=120)
+    m = re.search(r"errors=(\d+)", dom.stdout)
+    assert m and int(m.group(1)) == 1, dom.stdout[-500:]
 
 
 def test_report_sets_unconverged_starts_apart_and_explains_the_new_verdicts(case):
@@ -639,7 +675,8 @@ def test_report_sets_unconverged_starts_apart_and_explains_the_new_verdicts(case
     doc["em_check"]["verdict"] = "em-own-start-not-converged"
     conv = section(parse(render_report(doc)), "convergence")
     text = conv.text()
-    assert "1 of 2 starts converged" in text and "Did not converge (not counted as optima): start 1" in text
+    # starts numbered from 1 on the page (the result numbers them from 0)
+    assert "1 of 2 starts converged" in text and "Did not converge (not counted as optima): start 2" in text
     cells = [td.text() for td in conv.find("table", cls="starts").find("tbody").find_all("tr")[1].find_all("td")]
     assert "none (did not converge)" in cells
     for verdict, meaning in VERDICT_MEANING.items():
@@ -649,3 +686,59 @@ def test_report_sets_unconverged_starts_apart_and_explains_the_new_verdicts(case
     doc["em_check"]["verdict"] = "not-converged"  # a result of an earlier version
     p = section(parse(render_report(doc)), "em-check").find("p", cls="verdict").text()
     assert "earlier version" in p
+
+
+# ============================================================================ practitioner's page
+def test_top_line_counts_every_error_bar_flag(case):
+    from adfit.report import error_bar_flags
+
+    doc = copy.deepcopy(case["doc"])
+    unc = doc["uncertainty"]
+    unc["directions"] = [{"kind": "weak", "relative_curvature": 1e-3, "rows": []}] * 3
+    unc["wide_entries"] = [{"node": "item1", "row": 0, "parents": {}, "state": "+", "width": 0.7,
+                            "status": "interior"}] * 12
+    unc["not_identified"] = unc["no_data_rows"] = unc["boundary_entries"] = unc["prior_only_rows"] = []
+    glance = parse(render_report(doc)).find("p", cls="glance").text()
+    assert "3 weakly identified direction(s)" in glance and "12 interval(s) wider than 0.5" in glance
+    assert "identified, no weak" not in glance  # never "all is well" beside flags
+    unc["directions"], unc["wide_entries"] = [], []
+    assert error_bar_flags(unc) == "every free entry identified, no weak direction or wide interval"
+    # a not-identified cell's wide interval is counted as not identified, not as wide
+    unc["not_identified"] = [{"node": "item1", "row": 0, "parents": {}}]
+    unc["wide_entries"] = [{"status": "not identified", "width": 1.0}]
+    assert error_bar_flags(unc) == "1 CPT row(s) not identified"
+
+
+def test_network_title_names_the_page_and_settings_are_folded(case, tmp_path):
+    doc = copy.deepcopy(case["doc"])
+    doc["network"]["network"] = {"title": "Role conflict survey"}
+    tree = parse(render_report(doc, source="fit.json"))
+    assert tree.find("h1").text() == "Role conflict survey" and tree.find("title").text() == "Role conflict survey"
+    assert parse(render_report(doc, title="Given")).find("h1").text() == "Given"  # --title wins
+    # internal settings only inside a folded <details> element
+    fitted = section(tree, "fitted")
+    det = fitted.find("details", cls="settings")
+    assert det is not None and "tol" in det.text()
+    assert not [h for h in fitted.find_all("h3") if h.text() == "Settings"]
+
+
+def test_latent_caution_only_with_a_latent_node(case):
+    from adfit.report import LATENT_CAUTION
+
+    assert LATENT_CAUTION in section(case["tree"], "cautions").text()  # the case has latent nodes
+    doc = copy.deepcopy(case["doc"])
+    for sec in (doc["network"]["nodes"], doc["nodes"]):
+        sec.pop("audit")
+        sec["cls"]["latent"] = False
+    for key in ("restarts", "best_start", "em_check", "complete_case", "cross_validation"):
+        doc.pop(key, None)  # sections recorded for the latent fit
+    doc["uncertainty"]["latent"] = {}
+    tree = parse(render_report(doc))
+    assert LATENT_CAUTION not in section(tree, "cautions").text()
+    assert "relabel" not in tree.text()
+
+
+def test_starts_are_numbered_from_one(case):
+    rows = section(case["tree"], "convergence").find("table", cls="starts").find("tbody").find_all("tr")
+    firsts = [tr.find_all("td")[0].text().split()[0] for tr in rows]
+    assert firsts == [str(k + 1) for k in range(len(rows))]

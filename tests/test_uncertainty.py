@@ -390,9 +390,14 @@ def test_cli_fit_prints_error_bars_and_no_errors_skips(tmp_path, monkeypatch):
     (tmp_path / "d.csv").write_text("\n".join(rows) + "\n")
     runner = CliRunner()
     args = ["fit", str(tmp_path / "net.toml"), str(tmp_path / "d.csv"), "--out", str(tmp_path / "f.json")]
-    r = runner.invoke(app, args)
+    r = runner.invoke(app, args + ["--verbose"])
     assert r.exit_code == 0, r.output
     assert "error bars: 95% intervals" in r.output and "intervals for P(y | x)" in r.output
+    # estimates first, then intervals
+    assert r.output.index("\nP(y | x)") < r.output.index("intervals for P(y | x)")
+    short = runner.invoke(app, args)
+    assert short.exit_code == 0, short.output
+    assert "Error bars: 95% intervals" in short.output and "intervals for P(y | x)" not in short.output
     doc = json.loads((tmp_path / "f.json").read_text())
     # x is complete: SE of P(x = yes) = sqrt(p(1 − p)/n), n = 20, p = 0.5 (binomial)
     assert doc["nodes"]["x"]["se"][0][1] == pytest.approx(math.sqrt(0.25 / 20), rel=1e-6)
