@@ -343,14 +343,14 @@ def fit_command(
     out: Annotated[Path, typer.Option("--out", help="Result file to write (JSON, format adfit-result/1).")],
     method: Annotated[str, typer.Option("--method", rich_help_panel=OPT_PANEL, help="Optimiser: lbfgs (default) or adam.")] = "lbfgs",
     seed: Annotated[int, typer.Option("--seed", rich_help_panel=OPT_PANEL, help="Seed of the random starts (results are reproducible).")] = 0,
-    restarts: Annotated[Optional[int], typer.Option("--restarts", rich_help_panel=OPT_PANEL, help="Number of starts: complete-family counts, then random Dirichlet draws (with latent nodes after 10 EM steps); the best is kept. Default: 1, or 4 when the network has latent nodes.")] = None,
+    restarts: Annotated[Optional[int], typer.Option("--restarts", rich_help_panel=OPT_PANEL, help="Number of starts; the best is kept. Default: 1, or 4 when the network has latent nodes (see the user guide).")] = None,
     tol: Annotated[float, typer.Option("--tol", rich_help_panel=OPT_PANEL, help="Relative change of the objective that counts as flat (with a residual below sqrt(tol)).")] = 1e-10,
     gtol: Annotated[float, typer.Option("--gtol", rich_help_panel=OPT_PANEL, help="Stop when the gradient norm (records) is below gtol x number of records.")] = 1e-9,
     max_iter: Annotated[int, typer.Option("--max-iter", rich_help_panel=OPT_PANEL, help="Most iterations per start.")] = 1000,
-    kkt_tol: Annotated[float, typer.Option("--kkt-tol", rich_help_panel=OPT_PANEL, help="A maximum needs every cell's KKT ratio (N+c)/(p(N(u)+sum c)) <= 1 + this; a cell above it near 0 is a false boundary the fit moves off.")] = 1e-3,
+    kkt_tol: Annotated[float, typer.Option("--kkt-tol", rich_help_panel=OPT_PANEL, help="KKT check: at a maximum every cell's ratio is at most 1 + this (see the user guide).")] = 1e-3,
     learning_rate: Annotated[float, typer.Option("--learning-rate", rich_help_panel=OPT_PANEL, help="Step size of Adam (with --method adam).")] = 0.05,
     batch_size: Annotated[Optional[int], typer.Option(
-        "--batch-size", rich_help_panel=OPT_PANEL, help="With --method adam: minibatch gradients from this many sampled distinct rows per step (very large data); the full-data gradient norm is reported at the end.")] = None,
+        "--batch-size", rich_help_panel=OPT_PANEL, help="With --method adam: distinct rows sampled per step (very large data).")] = None,
     prior: Annotated[Optional[Path], typer.Option(
         "--prior", help="Prior file (TOML): Dirichlet pseudo-counts, BDeu equivalent sample size or expert tables; gives MAP estimates.",
         parser=InputFile("prior file"))] = None,
@@ -360,14 +360,14 @@ def fit_command(
     ignore_columns: IgnoreOpt = None,
     engine: EngineOpt = "pandas",
     scheduler: SchedulerOpt = None,
-    em_check: Annotated[bool, Flag("--em-check", rich_help_panel=CHECK_PANEL, help="Cross-check the fit with the independent EM reference.")] = False,
+    em_check: Annotated[bool, Flag("--em-check/--no-em-check", rich_help_panel=CHECK_PANEL, help="Cross-check the fit with the independent EM reference.")] = False,
     em_max_iter: Annotated[int, typer.Option("--em-max-iter", rich_help_panel=CHECK_PANEL, help="With --em-check: most iterations of each EM run (from the fit's answer, from its own start).")] = 5000,
     compare_complete_case: Annotated[bool, Flag(
         "--compare-complete-case", rich_help_panel=CHECK_PANEL, help="Also fit on the complete rows only and compare every CPT entry.")] = False,
     folds: Annotated[int, typer.Option("--folds", rich_help_panel=CHECK_PANEL, help="K-fold cross-validation of the held-out marginal log-likelihood (0: off).")] = 0,
     errors: Annotated[Optional[bool], Flag(
-        "--errors/--no-errors", rich_help_panel=CHECK_PANEL, help="Standard errors, intervals and identifiability flags for every CPT entry "
-                                     "(default: on up to 1000 free parameters and about 2 minutes estimated).")] = None,
+        "--errors/--no-errors", rich_help_panel=CHECK_PANEL, help="Error bars and identifiability flags for every CPT entry "
+                                     "(default: on when small: up to 1000 free parameters, about 2 minutes).")] = None,
     quiet: Annotated[bool, Flag("--quiet", "-q", help="Print only the file written and warnings.")] = False,
     verbose: Annotated[bool, Flag("--verbose", "-v", help="Print everything: each start, the intervals of every cell, "
                                                           "the EM runs side by side.")] = False,

@@ -63,7 +63,7 @@ from scipy import stats
 
 from .data import CodedData, load_data
 from .errors import OptionError
-from .likelihood import Likelihood, Shards, _run_parts, _value_and_flat_expected_counts, check_possible
+from .likelihood import Likelihood, _loglik_logcpt, check_possible
 from .network import Network
 from . import forms as _forms
 from .params import block_shape, full_probs, mask_pseudo, pool_counts
@@ -266,26 +266,8 @@ def _objective(network: Network, groups, sizes: tuple[int, ...], phi, aux):
         pen = pen + jnp.sum((eta - jnp.mean(eta, axis=-1, keepdims=True)) ** 2)
     # a tied node's log-CPT is its source's (the same parameters in both families)
     lcs = tuple(own[network.tie_source(n.name) if n.fixed is None else n.name] for n in network.nodes)
-    ll = _loglik_by_counts(network, groups, jnp.concatenate([jnp.ravel(x) for x in lcs]), codes, weights)
+    ll = _loglik_logcpt(network, groups, lcs, codes, weights)
     return ll + lp - l2 * pen
-
-
-@partial(jax.custom_jvp, nondiff_argnums=(0, 1))
-def _loglik_by_counts(network: Network, groups, lc_flat, codes, weights):
-    """The log-likelihood of the flat log-CPTs, differentiated through the likelihood core's own
-    expected-counts program (its derivative: d ll = N . d log theta, Fisher's identity), so
-    that a Hessian-vector product is the forward-mode derivative of that program (the
-    enumerated components' gradient is written out there) instead of a second pass of autodiff
-    over the whole evaluation: the same numbers (tests/test_uncertainty.py), fewer operations."""
-    return _value_and_flat_expected_counts(network, groups, lc_flat, codes, weights)[0]
-
-
-@_loglik_by_counts.defjvp
-def _loglik_by_counts_jvp(network, groups, primals, tangents):
-    lc_flat, codes, weights = primals
-    v, g = _value_and_flat_expected_counts(network, groups, lc_flat, codes, weights)
-    # cells of log 0 (impossible, fixed zeros) have no count and may carry no finite tangent
-    return v, jnp.sum(jnp.where(jnp.isfinite(lc_flat), g[:-2] * tangents[0], 0.0))
 
 
 @partial(jax.jit, static_argnums=(0, 1, 2))
@@ -318,34 +300,12 @@ class _Problem:
         self.lik = lik
         with np.errstate(divide="ignore"):
             fixed_lc = {n: jnp.asarray(np.log(network.fixed_table(n))) for n in network.fixed_names}
-        base = {k: jnp.asarray(v) for k, v in coordinates.base.items()}
-        index = {k: jnp.asarray(v) for k, v in coordinates.index.items()}
-        pc = {k: jnp.asarray(np.asarray(pseudo[k], dtype=np.float64)) for k in network.free_names}
-        self.aux = (base, index, pc, fixed_lc, jnp.asarray(float(l2)), self.lik._codes, self.lik._weights)
-        # The Hessian-vector products of the parts of a sharded plan (equal shapes: one compiled
-        # program) run side by side in threads, one per core, and are added: the objective is a
-        # sum over the parts, the log-prior and the penalty counted in part 0 only. One program
-        # over all parts would run them one after the other on one core, and compile all of them.
-        codes, weights = self.lik._codes, self.lik._weights
-        self.part_aux = None
-        if isinstance(codes, Shards) and len(codes.parts) > 1:
-            zero_pc = {k: jnp.zeros_like(v) for k, v in pc.items()}
-            self.part_aux = [(base, index, pc if s == 0 else zero_pc, fixed_lc,
-                              jnp.asarray(float(l2) if s == 0 else 0.0), cs, ws)
-                             for s, (cs, ws) in enumerate(zip(codes.parts, weights.parts))]
+        self.aux = ({k: jnp.asarray(v) for k, v in coordinates.base.items()},
+                    {k: jnp.asarray(v) for k, v in coordinates.index.items()},
+                    {k: jnp.asarray(np.asarray(pseudo[k], dtype=np.float64)) for k in network.free_names},
+                    fixed_lc, jnp.asarray(float(l2)), self.lik._codes, self.lik._weights)
         self.phi0 = jnp.zeros(coordinates.size)
         self.n_products = 0
-
-    def _hvp(self, vecs: jax.Array) -> np.ndarray:
-        if self.part_aux is None:
-            return np.asarray(_hvp_batch(self.network, self.lik.plan.groups, self.co.sizes, self.phi0, vecs, self.aux))
-        groups = self.lik.plan.groups
-        res = _run_parts(lambda aux: _hvp_batch(self.network, groups, self.co.sizes, self.phi0, vecs, aux),
-                         [(a,) for a in self.part_aux], (id(self.network), groups, self.co.sizes, "hvp"))
-        out = np.asarray(res[0]).copy()
-        for r in res[1:]:
-            out += np.asarray(r)
-        return out
 
     def value_and_grad(self, phi: np.ndarray | None = None) -> tuple[float, np.ndarray]:
         p = self.phi0 if phi is None else jnp.asarray(phi, dtype=jnp.float64)
@@ -365,7 +325,8 @@ class _Problem:
             B = self.batch if full_batches else min(self.batch, 1 << max(0, math.ceil(math.log2(w))))
             vecs = np.zeros((B, P))
             vecs[:w] = cols.T
-            hv = self._hvp(jnp.asarray(vecs))
+            hv = np.asarray(_hvp_batch(self.network, self.lik.plan.groups, self.co.sizes, self.phi0,
+                                       jnp.asarray(vecs), self.aux))
             out[:, s:s + w] = -hv[:w].T
             self.n_products += w
         return out

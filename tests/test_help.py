@@ -52,3 +52,11 @@ def test_help_at_80_columns_shows_every_option_whole(name):
         if "<bool>" in line:
             assert "--help" in line, (name, line)   # click's own help option only
     assert "Caution" in r.output or "caution" in r.output.lower(), name
+
+
+def test_on_off_options_are_flag_pairs():
+    # --em-check true is not how a flag is given: the help shows --em-check / --no-em-check
+    r = CliRunner().invoke(app, ["fit", "--help"], env={"COLUMNS": "80", "TERM": "dumb"})
+    assert "--em-check" in r.output and "--no-em-check" in r.output
+    params = {p.name: p for p in click_command("fit").params}
+    assert params["em_check"].is_flag and params["em_check"].secondary_opts == ["--no-em-check"]

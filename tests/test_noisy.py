@@ -267,6 +267,27 @@ def test_cli_round_trip_writes_the_parameters_and_their_error_bars(tmp_path):
     hi_se = y["parameters_se"]["strength"]["b"]["hi"]  # b is observed: this strength is identified
     assert y["parameters_status"]["b=hi"] == ["interior", "interior"] and hi_se > 0
     assert f"{y['parameters']['strength']['b']['hi']:.4f}" in page and f"{hi_se:.4f}" in page
+    # in a real browser (when one is installed; .ci/run installs Chromium as root): the page
+    # builds without script errors and the parameters' table is laid out
+    from test_report import TRAP, _chromium
+
+    exe = _chromium()
+    if exe is not None:
+        import subprocess
+
+        probe = tmp_path / "probe.html"
+        probe.write_text(page.replace("<head>", "<head>" + TRAP, 1).replace(
+            "</body>", "<script>window.addEventListener('load', function () { var t = document.querySelector("
+                       "'table.params-table'); var d = document.createElement('div'); d.id = 'probe'; "
+                       "d.textContent = 'params=' + (t ? t.getBoundingClientRect().height : -1) + ' errors=' + "
+                       "window.__errors.length; document.body.appendChild(d); });</script></body>"), encoding="utf-8")
+        dom = subprocess.run([exe, "--headless", "--no-sandbox", "--disable-gpu", "--no-first-run",
+                              f"--user-data-dir={tmp_path / 'profile'}", "--virtual-time-budget=5000", "--dump-dom",
+                              probe.as_uri()], capture_output=True, text=True, timeout=120)
+        import re
+
+        m = re.search(r"params=([\d.-]+) errors=(\d+)", dom.stdout)
+        assert m and float(m.group(1)) > 0 and int(m.group(2)) == 0, dom.stdout[-500:]
     # a parameter the data do not pin down (with a latent parent) has no SE, and says so
     for key, st in y["parameters_status"].items():
         assert set(st) <= {"interior", "not identified", "boundary", "no data"}, key

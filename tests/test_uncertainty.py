@@ -19,7 +19,6 @@ from adfit.data import CodedData, encode_frame
 from adfit.errors import OptionError
 from adfit.fit import fit
 from adfit.likelihood import Likelihood
-import adfit.uncertainty as U
 from adfit.network import network_from_dict
 from adfit.result import FitResult, load_result, write_result
 from adfit.uncertainty import (attach_uncertainty, compute_uncertainty, interval_frames, make_coordinates,
@@ -267,28 +266,6 @@ def test_batched_information_equals_one_column_at_a_time(batch):
     many, co = observed_information(net, data, probs, pseudo_counts=pseudo, l2=0.3, batch=batch)
     assert co.coords == co1.coords and co.size % batch != 0  # a padded last batch is exercised
     assert np.abs(one).max() > 1.0  # not a trivially small matrix
-    np.testing.assert_allclose(many, one, rtol=1e-10, atol=1e-10 * np.abs(one).max())
-
-
-def test_sharded_information_in_threads_equals_one_program(monkeypatch):
-    """With the plan cut into parts (one per core), the Hessian-vector products of the parts run
-    in threads and are added (the prior and the penalty counted once): the same matrix, to
-    rounding, as one column at a time on the unsharded plan, which finite differences pin above."""
-    import adfit.likelihood as L
-
-    net, data, probs = _random_case(2)
-    pseudo = {n: np.full(net.cpt_shape(n), 0.7) for n in net.free_names}
-    one, _ = observed_information(net, data, probs, pseudo_counts=pseudo, l2=0.3, batch=1)
-    monkeypatch.setenv("ADFIT_THREADS", "2")
-    monkeypatch.setattr(L, "SHARD_MIN_S", 0.0)
-    lik = Likelihood(net, data)
-    assert len(lik._codes.parts) == 2  # the case under test: a sharded plan
-    full = {**probs}
-    _, counts = lik.expected_counts(full)
-    co = make_coordinates(net, full, {k: counts[k] + pseudo[k] for k in net.estimated_names})
-    pb = U._Problem(net, data, co, pseudo, 0.3, 4, lik)
-    assert pb.part_aux is not None and len(pb.part_aux) == 2
-    many = pb.dense_information()
     np.testing.assert_allclose(many, one, rtol=1e-10, atol=1e-10 * np.abs(one).max())
 
 
