@@ -483,13 +483,8 @@ class Fitter:
         return np.asarray(d), state
 
     def logits_of(self, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
-        """Logits of the estimated nodes (log-probabilities, row max shifted to 0; tied nodes
-        need no entry)."""
-        out = {}
-        for name in self.free:
-            lp = np.log(np.maximum(np.asarray(probs[name], dtype=np.float64), 1e-300))
-            out[name] = lp - lp.max(axis=-1, keepdims=True)
-        return out
+        """Logits of the estimated nodes (tied nodes need no entry)."""
+        return logits_from_probs(self.network, probs, names=self.free)
 
     def probs(self, logits: Mapping[str, Any]) -> dict[str, np.ndarray]:
         """CPTs of every node from the estimated nodes' logits (impossible cells 0, ties filled)."""
@@ -499,17 +494,19 @@ class Fitter:
         """Log-likelihood and expected counts at ``probs`` (CPTs of the estimated nodes, or of
         all), the constraints applied first (:func:`adfit.params.full_probs`) and the counts of
         tied families pooled into their source's (:func:`adfit.params.pool_counts`)."""
-        ll, counts, _ = self.counts_and_families(probs)
+        ll, counts, _, _ = self.counts_and_families(probs)
         return ll, counts
 
     def counts_and_families(self, probs: Mapping[str, np.ndarray]):
-        """:meth:`counts`, and the CPT-shaped expected family counts of every node as the
-        likelihood gives them (before pooling ties or the chain rule onto cause rows)."""
+        """:meth:`counts`, the CPT-shaped expected family counts of every node as the likelihood
+        gives them (before pooling ties or the chain rule onto parameter rows), and the CPTs
+        they were evaluated at (:meth:`tables`)."""
         if not self.constrained:
             ll, counts = self.lik.expected_counts(probs)
-            return ll, counts, counts
-        ll, fam = self.lik.expected_counts(full_probs(self.network, probs))
-        return ll, pool_counts(self.network, fam, probs), fam
+            return ll, counts, counts, probs
+        tables = full_probs(self.network, probs)
+        ll, fam = self.lik.expected_counts(tables)
+        return ll, pool_counts(self.network, fam, probs), fam, tables
 
     def tables(self, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
         """The CPT of every node from the fitter's parameters (cause rows imply their tables)."""
@@ -518,10 +515,10 @@ class Fitter:
     def evaluate(self, logits: Mapping[str, Any]) -> dict[str, Any]:
         """Log-likelihood, log-prior, penalty, gradient (∂F/∂η) and residuals at ``logits``."""
         probs = self.probs(logits)
-        ll, counts, fam = self.counts_and_families(probs)
+        ll, counts, fam, tables = self.counts_and_families(probs)
         g = objective_gradient(self.network, probs, counts, self.pseudo, logits, self.settings.l2)
         resid = 0.0
-        weights = self._logistic_weights(probs, fam) if self.logistic else {}
+        weights = self._logistic_weights(tables, fam) if self.logistic else {}
         for name in self.free:
             if name in weights:  # records the coefficient row serves
                 denom = weights[name][1][:, None]
@@ -534,7 +531,8 @@ class Fitter:
         kkt = self.kkt(probs, counts) if self.settings.l2 == 0 else None
         return {"probs": probs, "log_likelihood": ll, "log_prior": lp, "penalty": pen,
                 "objective": ll + lp - pen, "grad": g, "gradient_norm": _norm(g),
-                "residual": resid, "counts": counts, "kkt": kkt, "family_counts": fam, "logistic_weights": weights,
+                "residual": resid, "counts": counts, "kkt": kkt, "family_counts": fam, "tables": tables,
+                "logistic_weights": weights,
                 "kkt_ratio": _max_finite(kkt) if kkt is not None else None}
 
     def kkt(self, probs: Mapping[str, np.ndarray], counts: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
@@ -568,14 +566,14 @@ class Fitter:
         (always true with an L2 penalty, whose maximum is interior: the logit rule covers it)."""
         return ev.get("kkt_ratio") is None or not (ev["kkt_ratio"] > 1.0 + self.settings.kkt_tol)
 
-    def _logistic_weights(self, probs: Mapping[str, np.ndarray], fam: Mapping[str, np.ndarray]):
+    def _logistic_weights(self, tables: Mapping[str, np.ndarray], fam: Mapping[str, np.ndarray]):
         """Per logistic node: (complete-data information of each coefficient, records per row),
-        :func:`adfit.forms.logistic_weights`, from the family counts pooled over ties."""
+        :func:`adfit.forms.logistic_weights`, at its CPT (``tables``) from the family counts
+        pooled over ties."""
         out = {}
         for name in self.logistic:
             n = sum((np.asarray(fam[t]) for t in self.network.tied_names(name)), np.asarray(fam[name]))
-            table = _forms.implied_table(self.network, name, probs[name])
-            out[name] = _forms.logistic_weights(self.network, name, n, table)
+            out[name] = _forms.logistic_weights(self.network, name, n, tables[name])
         return out
 
     def _scale_at(self, ev: Mapping[str, Any]) -> dict[str, np.ndarray]:
@@ -1073,7 +1071,7 @@ def em_burn_in(fitter: "Fitter", probs: Mapping[str, np.ndarray], steps: int) ->
     out = {k: np.asarray(v, dtype=np.float64) for k, v in probs.items()}
     for _ in range(int(steps)):
         _, counts = fitter.counts(out)
-        for name in getattr(fitter, "em_free", fitter.free):
+        for name in fitter.em_free:
             num = counts[name] + fitter.pseudo[name]
             den = num.sum(axis=-1, keepdims=True)
             out[name] = np.where(den > 0, num / np.where(den > 0, den, 1.0), out[name])
@@ -1118,9 +1116,9 @@ def check_impossible_cells(network: Network, data: CodedData) -> None:
                 f"records or the network")
 
 
-def _noisy_starts(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
-    """Starting CPTs with each noisy node's replaced by the cause rows read off it
-    (:func:`adfit.forms.start_rows`); cause rows given already (their shape) are kept."""
+def _row_form_starts(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Starting CPTs with each noisy or logistic node's replaced by the parameter rows read off
+    it (:func:`adfit.forms.start_rows`); rows given already (their shape) are kept."""
     out = dict(probs)
     for name in network.estimated_names:
         if _forms.has_rows(network, name) and np.shape(out[name]) == tuple(network.cpt_shape(name)):
@@ -1129,8 +1127,8 @@ def _noisy_starts(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str
 
 
 def form_sections(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, dict[str, Any]]:
-    """``{name: {"cpd": form, "parameters": ...}}`` for every noisy node (tied copies included),
-    from the fitter's cause rows (:func:`adfit.forms.parameters_json`)."""
+    """``{name: {"cpd": form, "parameters": ...}}`` for every noisy or logistic node (tied copies
+    included), from the fitter's parameter rows (:func:`adfit.forms.parameters_json`)."""
     out = {}
     for name in network.free_names:
         if _forms.has_rows(network, name):
@@ -1255,7 +1253,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         observed=fitter.lik.observed_family_counts())
     for name in network.fixed_names:
         p0[name] = network.fixed_table(name)
-    p0 = _noisy_starts(network, p0)
+    p0 = _row_form_starts(network, p0)
     p0 = estimated_starts(network, p0)
     check_impossible_cells(network, coded)
     check_possible(fitter.lik, fitter.tables(p0),
@@ -1270,8 +1268,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
         batched = not (per_eval < BATCH_MIN_EVAL_SECONDS)
     else:
         starts_note = None
-    if fitter.layout.noisy:
-        batched = False  # the side-by-side program evaluates tables, not cause rows
+    if fitter.layout.implied:
+        batched = False  # the side-by-side program evaluates tables, not parameter rows
     starts = [p0]
     for k in range(1, restarts):
         pk = random_start(network, rng)
@@ -1289,7 +1287,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
     best_k = int(np.nanargmax([r.value if math.isfinite(r.value) else -np.inf for r in runs]))
     best = runs[best_k]
     ev = fitter.evaluate(best.logits)
-    tables = fitter.tables(ev["probs"])
+    tables = ev["tables"]
     elapsed = time.perf_counter() - t0
     is_map = any(np.any(c > 0) for c in fitter.pseudo.values())
     restart_rows = [{"start": k, "kind": "complete-family counts" if k == 0 and init is None else ("given" if k == 0 else "random Dirichlet"),
@@ -1299,8 +1297,8 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
 
     stationarity = stationarity_section(fitter, ev)
     finals = finals if finals is not None else [ev]
-    if fitter.layout.noisy:  # the optima are compared on their CPTs (cause rows imply them)
-        finals = [{**f, "probs": fitter.tables(f["probs"]), "counts": f["family_counts"]} for f in finals]
+    if fitter.layout.implied:  # the optima are compared on their CPTs (parameter rows imply them)
+        finals = [{**f, "probs": f["tables"], "counts": f["family_counts"]} for f in finals]
     restarts_section = restarts_report(network, restart_rows, finals, best=best_k,
                                        gtol_abs=gtol * coded.n_rows, ptol=ptol, batch_width=restart_stats.get("width", 1))
     result = FitResult(
@@ -1318,7 +1316,7 @@ def fit(network: Network, data: Any, *, method: str = "lbfgs", seed: int = 0, re
                   **({"batch_size": batch_size} if batch_size else {})},
         extras={"restarts": restarts_section, "best_start": best_k, "stationarity": stationarity,
                 **({"prior": prior_desc} if prior_desc else {}),
-                **({"nodes": form_sections(network, ev["probs"])} if fitter.layout.noisy else {})},
+                **({"nodes": form_sections(network, ev["probs"])} if fitter.layout.implied else {})},
     )
     if is_map:
         parent_weight = {n: ev["counts"][n].sum(axis=-1) for n in network.estimated_names

@@ -123,19 +123,6 @@ def _linear_jax(network: Network, name: str, rows):
     return out
 
 
-def _linear_np(network: Network, name: str, rows: np.ndarray) -> np.ndarray:
-    """:func:`_linear_jax` in numpy."""
-    K = network.node(name).card
-    shape = tuple(network.cpt_shape(name))
-    out = np.broadcast_to(rows[0], shape).copy()
-    for i, (r0, c) in enumerate(_spans(network, name)):
-        f = np.concatenate([np.zeros((1, K)), rows[r0:r0 + c]], axis=0)
-        bshape = [1] * (len(shape) - 1) + [K]
-        bshape[i] = c + 1
-        out = out + f.reshape(bshape)
-    return out
-
-
 def implied_log_table(network: Network, name: str, logv):
     """log P(child | parents) (CPT-shaped, JAX) from the log parameter rows ``logv`` (rows,
     card): the cause rows of a noisy node, or for a logistic node the softmax rows whose logs
@@ -164,27 +151,17 @@ def implied_log_table(network: Network, name: str, logv):
     return jnp.where(live, logC + jnp.log(-jnp.expm1(safe)), -jnp.inf)
 
 
+#: :func:`implied_log_table` compiled once per (network, node)
+implied_log_table_jit = jax.jit(implied_log_table, static_argnums=(0, 1))
+
+
 def implied_table(network: Network, name: str, v: np.ndarray) -> np.ndarray:
-    """P(child | parents) (CPT-shaped, numpy) from the parameter rows ``v`` (rows, card)."""
-    node = network.node(name)
-    K = node.card
-    v = np.asarray(v, dtype=np.float64)
-    if is_logistic(network, name):
-        with np.errstate(divide="ignore"):
-            eta = _linear_np(network, name, np.log(v))
-        e = np.exp(eta - eta.max(axis=-1, keepdims=True))
-        return e / e.sum(axis=-1, keepdims=True)
+    """P(child | parents) (CPT-shaped, numpy) from the parameter rows ``v`` (rows, card): the
+    exponential of :func:`implied_log_table` (compiled), so that the fit's head and every
+    table read off the parameters are one computation."""
     with np.errstate(divide="ignore"):
-        logQ = np.log(np.cumsum(v, axis=-1))[:, :K - 1]
-    shape = tuple(network.cpt_shape(name))
-    logC = np.broadcast_to(logQ[0], (*shape[:-1], K - 1)).copy()
-    for i, (r0, c) in enumerate(_spans(network, name)):
-        f = np.concatenate([np.zeros((1, K - 1)), logQ[r0:r0 + c]], axis=0)
-        bshape = [1] * (len(shape) - 1) + [K - 1]
-        bshape[i] = c + 1
-        logC = logC + f.reshape(bshape)
-    C = np.concatenate([np.exp(logC), np.ones((*shape[:-1], 1))], axis=-1)
-    return np.maximum(np.diff(C, axis=-1, prepend=0.0), 0.0)
+        logv = np.log(np.asarray(v, dtype=np.float64))
+    return np.exp(np.asarray(implied_log_table_jit(network, name, logv)))
 
 
 @partial(jax.jit, static_argnums=(0, 1))

@@ -69,7 +69,7 @@ import math
 import os
 from dataclasses import dataclass
 from functools import partial
-from typing import Any, Mapping, Sequence
+from typing import Any, Iterable, Mapping, Sequence
 
 import numpy as np
 
@@ -2169,10 +2169,11 @@ def probs_from_logits(network: Network, logits: Mapping[str, jax.Array]) -> dict
     return out
 
 
-def logits_from_probs(network: Network, probs: Mapping[str, np.ndarray], floor: float = 1e-300) -> dict[str, jax.Array]:
-    """Logits (log-probabilities, row max shifted to 0) of the free nodes."""
+def logits_from_probs(network: Network, probs: Mapping[str, np.ndarray], floor: float = 1e-300, *,
+                      names: Iterable[str] | None = None) -> dict[str, jax.Array]:
+    """Logits (log-probabilities, row max shifted to 0) of the free nodes (or of ``names``)."""
     out = {}
-    for name in network.free_names:
+    for name in (network.free_names if names is None else names):
         lp = np.log(np.maximum(np.asarray(probs[name], dtype=np.float64), floor))
         out[name] = lp - lp.max(axis=-1, keepdims=True)
     return out

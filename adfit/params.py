@@ -86,9 +86,10 @@ class FreeLayout:
     free_index: Any = None   # the free entries' positions in the likelihood's layout (None: all entries)
     tied: bool = False       # some node is tied to another: counts are pooled (bincount over full_index)
     mask: Any = None         # 0 / −inf per vector entry (impossible cells), None when there are none
-    noisy: tuple = ()        # (name, vector offset, cause-row shape, offset in the implied log-tables) per noisy node
+    implied: tuple = ()      # (name, vector offset, row-block shape, offset in the implied log-tables) per node
+                             # whose table its parameter rows imply (noisy_or, noisy_max, logistic)
     n_fixed: int = 0         # entries of the fixed nodes' log-tables (the implied ones follow them)
-    network: Any = None      # the network (the noisy nodes' implied tables need it)
+    network: Any = None      # the network (the implied tables need it)
     struct_sel: Any = None   # entries of the likelihood's layout taken from the implied log-tables
 
     def flatten(self, tree: Mapping[str, Any]) -> np.ndarray:
@@ -265,7 +266,7 @@ def fixed_log_tables(network: Network) -> np.ndarray:
 
 
 # --------------------------------------------------------------------------- the fast objective
-_implied_log_table = jax.jit(_forms.implied_log_table, static_argnums=(0, 1))
+_implied_log_table = _forms.implied_log_table_jit
 
 
 @partial(jax.jit, static_argnums=(0,))
@@ -296,7 +297,7 @@ def head(network: Network, z, scale, pseudo, fixed_flat, l2):
     if lay.full_index is None:
         return lc, lp - l2 * pen
     src = [lc, fixed_flat] + [_forms.implied_log_table(network, name, lc[o:o + math.prod(sh)].reshape(sh)).reshape(-1)
-                              for name, o, sh, _ in lay.noisy]
+                              for name, o, sh, _ in lay.implied]
     return jnp.concatenate(src)[lay.full_index], lp - l2 * pen
 
 
@@ -343,7 +344,7 @@ def head_np(lay: FreeLayout, z: np.ndarray, scale: np.ndarray, pseudo: np.ndarra
     if lay.full_index is None:
         return lc, lp - l2 * pen, (blocks, lc)
     src = [lc, fixed_flat] + [np.asarray(_implied_log_table(lay.network, name, lc[o:o + math.prod(sh)].reshape(sh))).ravel()
-                              for name, o, sh, _ in lay.noisy]
+                              for name, o, sh, _ in lay.implied]
     return np.concatenate(src)[lay.full_index], lp - l2 * pen, (blocks, lc)
 
 
@@ -356,11 +357,11 @@ def head_grad_np(lay: FreeLayout, blocks, scale: np.ndarray, pseudo: np.ndarray,
     if lay.tied:  # the transpose of the gather: tied families' counts added to their source's
         sel = lay.free_index
         c = np.bincount(lay.full_index[sel], weights=counts[sel], minlength=lay.size)
-        if lay.noisy:  # the implied tables' counts, by the chain rule onto the cause rows
+        if lay.implied:  # the implied tables' counts, by the chain rule onto the parameter rows
             s0 = lay.size + lay.n_fixed
             ss = lay.struct_sel
             sc = np.bincount(lay.full_index[ss] - s0, weights=counts[ss])
-            for name, o, sh, so in lay.noisy:
+            for name, o, sh, so in lay.implied:
                 csh = tuple(lay.network.cpt_shape(name))
                 n = math.prod(sh)
                 c[o:o + n] += np.asarray(_forms._virtual_counts(

@@ -453,8 +453,8 @@ class Uncertainty:
     notes: tuple[str, ...] = ()
     wide: float = WIDE_WIDTH
     settings: Mapping[str, Any] = field(default_factory=dict)
-    # noisy nodes: the CPT the cause rows imply (``se`` etc. are on it, by the delta method) and
-    # the cause rows' own error bars {"se", "lower", "upper", "status"} (cause-row shaped)
+    # noisy and logistic nodes: the CPT the parameter rows imply (``se`` etc. are on it, by the delta method) and
+    # the parameter rows' own error bars {"se", "lower", "upper", "status"} (row-block shaped)
     tables: Mapping[str, np.ndarray] = field(default_factory=dict)
     parameters: Mapping[str, Mapping[str, np.ndarray]] = field(default_factory=dict)
 
@@ -624,13 +624,13 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     lik = likelihood if likelihood is not None else Likelihood(network, coded)
     check_possible(lik, full, given="the fitted CPTs")
     _, counts = lik.expected_counts(full)
-    # noisy nodes: the coordinates are on their cause rows, read off the (implied) table
-    noisy = [n for n in network.estimated_names if _forms.has_rows(network, n)]
+    # noisy and logistic nodes: the coordinates are on their parameter rows, read off the (implied) table
+    row_nodes = [n for n in network.estimated_names if _forms.has_rows(network, n)]
     rows_at = dict(full)
-    for n in noisy:
+    for n in row_nodes:
         rows_at[n] = _forms.rows_from_table(network, n, full[n])
     logistic = {}
-    for n in noisy:
+    for n in row_nodes:
         if _forms.is_logistic(network, n):
             fam = sum((np.asarray(counts[t]) for t in network.tied_names(n)), np.asarray(counts[n]))
             logistic[n] = (fam.sum(axis=-1, keepdims=True), np.asarray(full[n], dtype=np.float64))
@@ -646,8 +646,8 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     blocks = complete_information(co, l2)
     if P == 0:
         sec = _assemble(co, level, z, _CovBlocks(co, {}), np.zeros((0, 0)), blocks, wanted)
-        for n in noisy:
-            parts, _ = _noisy_tables(co, n, level, z, _CovBlocks(co, {}), sec[3][n], wanted)
+        for n in row_nodes:
+            parts, _ = _implied_table_errors(co, n, level, z, _CovBlocks(co, {}), sec[3][n], wanted)
             for d, a in zip(sec, parts):
                 d[n] = a
         sec = _with_tied(network, *sec)
@@ -682,9 +682,9 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     se, lower, upper, status = _assemble(co, level, z, node_cov, flat_X, blocks, wanted)
     param_status = dict(status)
     tables, params_eb = {}, {}
-    for n in noisy:
+    for n in row_nodes:
         params_eb[n] = {"se": se[n], "lower": lower[n], "upper": upper[n], "status": status[n]}
-        (se[n], lower[n], upper[n], status[n]), tables[n] = _noisy_tables(co, n, level, z, node_cov, status[n], wanted)
+        (se[n], lower[n], upper[n], status[n]), tables[n] = _implied_table_errors(co, n, level, z, node_cov, status[n], wanted)
     se, lower, upper, status = _with_tied(network, se, lower, upper, status)
     tables = {m: tables[network.tie_source(m)] for m in network.free_names if network.tie_source(m) in tables}
     directions = _name_directions(co, all_rho, all_X, blocks, info)
@@ -893,9 +893,9 @@ def _implied_tables_of(network: Network, name: str):
     return f
 
 
-def _noisy_tables(co: Coordinates, name: str, level: float, z: float, cov: "_CovBlocks",
+def _implied_table_errors(co: Coordinates, name: str, level: float, z: float, cov: "_CovBlocks",
                   param_status: np.ndarray, wanted: set[str]):
-    """SE, interval and status of every cell of a noisy node's implied CPT, by the delta method
+    """SE, interval and status of every cell of a noisy or logistic node's implied CPT, by the delta method
     from the covariance of its cause rows' coordinates: ``var θ = J S Jᵀ``, ``J = ∂θ/∂φ``
     (exact, by forward-mode differentiation); the interval is Wald on the logit scale, as for
     tables. A cell that depends on a not identified cause cell is not identified; a cell

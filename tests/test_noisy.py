@@ -122,7 +122,7 @@ def test_head_in_jax_and_numpy_agree_and_gradient_matches_finite_differences():
     df = simulate(net, truth, 300, seed=5, missing={"a": 0.3, "b": 0.2, "y": 0.2})
     f, _ = _fitter(net, df)
     lay = free_layout(net)
-    assert [n for n, *_ in lay.noisy] == ["y"]
+    assert [n for n, *_ in lay.implied] == ["y"]
     rng = np.random.default_rng(0)
     z = rng.normal(size=lay.size)
     scale = rng.uniform(0.5, 2.0, size=lay.size)
