@@ -4,8 +4,13 @@ This module shares nothing with the JAX core (:mod:`adfit.likelihood`): it has i
 elimination order, its own junction tree and its own message passing, so that agreement between
 EM and the gradient fit is a real check.
 
-E-step. Distinct data rows are grouped by their pattern of hidden cells (missing cells and the
-latent nodes); patterns with few rows are pooled into one group. Per group one junction tree is
+E-step. A distinct row whose hidden cells (missing cells and the latent nodes) have few joint
+assignments once its hidden leaves are left out (at most ``ENUM_MAX``; a hidden node without
+children sums out to 1) is summed by enumeration: the assignments of all such rows lie in one
+array, and one E-step over them is a few gathers of log-CPT entries per node, a segmented
+log-sum-exp per row and one ``bincount`` per node (:class:`_Enumerated`), whatever the number of
+missingness patterns. The other rows are grouped by their pattern of hidden cells; patterns
+with few rows are pooled into one group. Per group one junction tree is
 built over the nodes not observed in every row of the group, from a greedy min-fill elimination
 order: eliminating ``x`` makes the cluster ``{x} ∪ neighbours(x)``, whose parent is the cluster of
 the first-eliminated node of its separator. Every CPT, indexed by the values of the nodes
@@ -262,10 +267,174 @@ def _rescale(msg: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return msg / safe, logs
 
 
-class EStep:
-    """Exact expected counts for one network and one data set, by junction-tree passes.
+# =============================================================================== enumerated rows
+#: a row whose hidden cells (hidden leaves left out) have at most this many joint assignments is
+#: summed by enumeration (all its rows in one set of array operations) instead of a junction tree;
+#: 0 turns enumeration off (every row goes to the junction trees)
+ENUM_MAX = 256
+#: most (completion, node) index entries kept for the enumerated rows (int32 each: 128 MB);
+#: rows past it (the most expensive first) go to the junction trees
+ENUM_ENTRIES = 1 << 25
 
-    Build once (the plan: patterns, elimination orders, junction trees, index arrays) and call
+
+@dataclass(frozen=True)
+class _Enumerated:
+    """The rows summed by enumeration of their hidden assignments, all rows at once.
+
+    Every row lists its *completions*: the joint assignments of its hidden cells, hidden leaves
+    (nodes without children) left out. A hidden leaf sums out to 1 (Σ_x θ(x | u) = 1), so it
+    does not change the row's likelihood, and its expected counts are ``θ(x | u)`` times the
+    posterior of its parents ``u`` (all observed or enumerated: a leaf is nobody's parent). The
+    completions of all rows lie in one array, each row's in one contiguous segment; per node the
+    flat CPT index of every completion is precomputed, so one E-step is a few gathers, a
+    segmented log-sum-exp (log space: nothing underflows) and one ``bincount`` per node, with no
+    Python loop over rows or patterns.
+
+    Per node ``v`` (index arrays into the completions, or into the rows for ``const``):
+    ``full[v] = (sel, idx)``: completions in which ``v``'s family has an enumerated member
+    (``sel`` None: every completion), ``idx`` the flat CPT index; ``const[v] = (rows, idx)``: rows in
+    which ``v``'s family is observed throughout (one index per row); ``leaf[v] = (sel, prow)``:
+    completions of rows in which ``v`` is a hidden leaf, ``prow`` the flat index of its parents'
+    configuration (its CPT row).
+    """
+
+    rows: np.ndarray        # indices (into the distinct rows) of the enumerated rows
+    weights: np.ndarray     # their counts
+    starts: np.ndarray      # first completion of each row (len(rows),)
+    seg: np.ndarray         # row (position in ``rows``) of each completion
+    full: tuple             # per node: (sel or None, idx) or None
+    const: tuple            # per node: (rows, idx) or None
+    leaf: tuple             # per node: (sel, prow) or None
+
+    @property
+    def n_completions(self) -> int:
+        return int(self.seg.size)
+
+
+def _flat_family_index(network: Network, v: int, cols: Sequence[np.ndarray], sel: np.ndarray | None = None,
+                       with_child: bool = True) -> np.ndarray:
+    """Flat index (C order) into the CPT of ``v`` (or, without the child, its row) of the family
+    values in the columns ``cols`` (one array per node), at the positions ``sel`` (None: all)."""
+    fam = network.parent_indices[v] + ((v,) if with_child else ())
+    size = len(cols[0]) if sel is None else len(sel)
+    flat = np.zeros(size, dtype=np.int64)
+    for u in fam:
+        flat *= network.cards[u]
+        flat += cols[u] if sel is None else cols[u][sel]
+    return flat.astype(np.int32) if math.prod(network.cpt_shape(network.names[v])) < 2 ** 31 else flat
+
+
+def _split_enumerated(network: Network, codes: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Which rows to enumerate: ``(rows, enumerated cells (rows, n) bool, completions per row)``."""
+    n = len(network)
+    hid = codes == HIDDEN
+    if ENUM_MAX < 1 or codes.shape[0] == 0:
+        return np.zeros(0, dtype=np.int64), np.zeros((0, n), dtype=bool), np.zeros(0, dtype=np.int64)
+    is_leaf = np.array([not ch for ch in network.children], dtype=bool)
+    enum = hid & ~is_leaf[None, :]
+    log_m = enum @ np.log(np.asarray(network.cards, dtype=np.float64))
+    cand = np.flatnonzero(log_m <= math.log(ENUM_MAX) + 1e-9)
+    sizes = np.where(enum[cand], np.asarray(network.cards), 1).prod(axis=1).astype(np.int64)
+    order = np.argsort(sizes, kind="stable")  # cheapest rows first, as many as the budget holds
+    keep = order[np.cumsum(sizes[order]) * n <= ENUM_ENTRIES]
+    keep = np.sort(keep)
+    return cand[keep], enum[cand[keep]], sizes[keep]
+
+
+def _enumerated_plan(network: Network, rows: np.ndarray, codes: np.ndarray, enum: np.ndarray,
+                     sizes: np.ndarray, weights: np.ndarray) -> _Enumerated:
+    """Completions of the rows ``rows`` (their codes ``codes``, enumerated cells ``enum``)."""
+    n = len(network)
+    cards = np.asarray(network.cards, dtype=np.int64)
+    r = rows.size
+    starts = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
+    total = int(sizes.sum())
+    seg = np.repeat(np.arange(r), sizes)
+    local = np.arange(total, dtype=np.int64) - starts[seg]
+    # mixed radix over each row's enumerated cells, in node order (first node fastest)
+    stride = np.cumprod(np.where(enum, cards, 1), axis=1)
+    stride = np.concatenate([np.ones((r, 1), dtype=np.int64), stride[:, :-1]], axis=1)
+    cols = []  # the completions' value of every node, one column per node
+    for j in range(n):
+        col = codes[seg, j].astype(np.int64)
+        on = np.flatnonzero(enum[seg, j])
+        col[on] = (local[on] // stride[seg[on], j]) % cards[j]
+        cols.append(col)
+    hid = codes == HIDDEN
+    leaf = hid & ~enum                           # hidden leaves, summed out
+    rcols = [codes[:, j].astype(np.int64) for j in range(n)]
+    full, const, leaves = [], [], []
+    for v in range(n):
+        fam = list(network.parent_indices[v]) + [v]
+        touch = enum[:, fam].any(axis=1) & ~leaf[:, v]   # rows whose family of v has an enumerated cell
+        obs = ~hid[:, fam].any(axis=1)                    # rows whose family of v is observed
+        if touch.any():
+            sel_c = touch[seg]
+            sel = None if sel_c.all() else np.flatnonzero(sel_c)
+            full.append((sel, _flat_family_index(network, v, cols, sel)))
+        else:
+            full.append(None)
+        if obs.any():
+            rs = np.flatnonzero(obs)
+            const.append((rs, _flat_family_index(network, v, rcols, rs)))
+        else:
+            const.append(None)
+        if leaf[:, v].any():
+            sel = np.flatnonzero(leaf[seg, v])
+            leaves.append((sel, _flat_family_index(network, v, cols, sel, with_child=False)))
+        else:
+            leaves.append(None)
+    return _Enumerated(rows, weights, starts, seg, tuple(full), tuple(const), tuple(leaves))
+
+
+def _enumerated_pass(network: Network, ep: _Enumerated, tables: Sequence[np.ndarray],
+                     counts: dict[str, np.ndarray]) -> np.ndarray:
+    """One E-step over the enumerated rows: adds their expected counts, returns their log-likelihoods."""
+    n_rows = ep.rows.size
+    with np.errstate(divide="ignore"):
+        logt = [np.log(t.reshape(-1)) for t in tables]
+    logp = np.zeros(ep.n_completions)
+    rowc = np.zeros(n_rows)
+    for v in range(len(network)):
+        if ep.full[v] is not None:
+            sel, idx = ep.full[v]
+            if sel is None:
+                logp += logt[v][idx]
+            else:
+                logp[sel] += logt[v][idx]      # each completion once per node: no repeated index
+        if ep.const[v] is not None:
+            rs, idx = ep.const[v]
+            rowc[rs] += logt[v][idx]
+    mx = np.maximum.reduceat(logp, ep.starts)
+    mx = np.where(np.isfinite(mx), mx, 0.0)
+    p = np.exp(logp - mx[ep.seg])
+    s = np.add.reduceat(p, ep.starts)
+    with np.errstate(divide="ignore"):
+        ll = rowc + mx + np.log(s)
+    ok = np.isfinite(ll)
+    weff = np.where(ok, ep.weights, 0.0)
+    post = p * np.where(ok, weff / np.where(s > 0, s, 1.0), 0.0)[ep.seg]
+    for v, name in enumerate(network.names):
+        tab = counts[name].reshape(-1)
+        if ep.full[v] is not None:
+            sel, idx = ep.full[v]
+            tab += np.bincount(idx, weights=post if sel is None else post[sel], minlength=tab.size)
+        if ep.const[v] is not None:
+            rs, idx = ep.const[v]
+            tab += np.bincount(idx, weights=weff[rs], minlength=tab.size)
+        if ep.leaf[v] is not None:
+            sel, prow = ep.leaf[v]
+            card = network.cards[v]
+            per_row = np.bincount(prow, weights=post[sel], minlength=tab.size // card)
+            tab += (per_row[:, None] * tables[v].reshape(-1, card)).reshape(-1)
+    return np.where(ok, ll, -np.inf)
+
+
+class EStep:
+    """Exact expected counts for one network and one data set, by enumeration of the cheap rows'
+    hidden assignments (``enumerated``) and junction-tree passes over the others (``patterns``).
+
+    Build once (the plan: completions, patterns, elimination orders, junction trees, index arrays) and call
     :meth:`__call__` for each parameter value.
     """
 
@@ -276,11 +445,19 @@ class EStep:
         if codes.ndim != 2 or codes.shape[1] != len(network):
             raise OptionError(f"{data.source}: coded data has shape {codes.shape}, expected (rows, {len(network)})")
         w_all = np.asarray(data.counts, dtype=np.float64)
-        keys, inverse = np.unique(codes == HIDDEN, axis=0, return_inverse=True)
-        inverse = inverse.reshape(-1)
-        sizes = np.bincount(inverse, minlength=keys.shape[0])
-        groups = [np.flatnonzero(inverse == k) for k in np.flatnonzero(sizes >= MIN_GROUP_ROWS)]
-        rare = np.flatnonzero(sizes[inverse] < MIN_GROUP_ROWS)
+        # rows with few hidden assignments: enumerated, all at once; the others: junction trees
+        e_rows, e_cells, e_sizes = _split_enumerated(network, codes)
+        self.enumerated: _Enumerated | None = (
+            _enumerated_plan(network, e_rows, codes[e_rows], e_cells, e_sizes, w_all[e_rows]) if e_rows.size else None)
+        rest = np.setdiff1d(np.arange(codes.shape[0]), e_rows)
+        if rest.size:
+            keys, inverse = np.unique(codes[rest] == HIDDEN, axis=0, return_inverse=True)
+            inverse = inverse.reshape(-1)
+            sizes = np.bincount(inverse, minlength=keys.shape[0])
+        else:
+            inverse = sizes = np.zeros(0, dtype=np.int64)
+        groups = [rest[inverse == k] for k in np.flatnonzero(sizes >= MIN_GROUP_ROWS)]
+        rare = rest[sizes[inverse] < MIN_GROUP_ROWS]
         if rare.size:
             # rare patterns share one group with evidence indicators, unless that makes the
             # junction tree too wide (then each keeps its own, narrower tree)
@@ -288,7 +465,7 @@ class EStep:
             if _largest_cluster(network, pooled) <= POOL_MAX_WIDTH:
                 groups.append(rare)
             else:
-                groups.extend(np.flatnonzero(inverse == k) for k in np.flatnonzero(sizes < MIN_GROUP_ROWS))
+                groups.extend(rest[inverse == k] for k in np.flatnonzero(sizes < MIN_GROUP_ROWS))
         self.patterns: list[_PatternPlan] = []
         for rows in groups:
             first = _pattern_plan(network, rows, codes[rows], w_all[rows])
@@ -318,6 +495,8 @@ class EStep:
         tables = [np.asarray(probs[name], dtype=np.float64) for name in net.names]
         counts = {name: c.copy() for name, c in self._complete.items()}
         row_ll = np.zeros(self.data.n_distinct)
+        if self.enumerated is not None:
+            row_ll[self.enumerated.rows] = _enumerated_pass(net, self.enumerated, tables, counts)
         for pp in self.patterns:
             ll = self._pattern(pp, tables, counts, cards)
             row_ll[pp.rows] = ll
