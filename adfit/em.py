@@ -753,7 +753,7 @@ class EMResult:
             stationarity residual <= gtol · records) before ``max_iter``.
         rate: observed rate of convergence, the ratio of successive parameter changes (2-norm
             over the free entries) at the last pair of changes not dominated by rounding; NaN
-            when EM stopped too early to tell.
+            when EM stopped too early to tell, or ran accelerated (``accelerate``).
         uninformed: per free node, table-row indices (0-based, network row order) whose
             parent configuration has expected count 0: not informed by the data (kept at their
             start value, or at the prior's mode under MAP).
@@ -843,7 +843,7 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
            max_iter: int = 5000, seed: int = 0, missing: Iterable[str] | None = None,
            count_column: str | None = None, ignore_columns: Iterable[str] = (),
            callback: Callable[[int, dict[str, np.ndarray]], None] | None = None,
-           init_params: Mapping[str, Mapping[str, Any]] | None = None) -> EMResult:
+           init_params: Mapping[str, Mapping[str, Any]] | None = None, accelerate: bool = False) -> EMResult:
     """Fit the free CPTs by EM (maximum likelihood, or MAP with ``pseudo_counts``).
 
     Args:
@@ -865,6 +865,11 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
             the result file's layout, by node name; a structured node without them starts from
             the parameters read off its table in ``init`` (which must then be of its form), or
             at random.
+        accelerate: squared extrapolation (SQUAREM, Varadhan & Roland 2008) between EM steps,
+            each extrapolated point kept only if its objective is at least that of the EM step
+            before it (so the objective still never falls: :func:`_squarem`); the fixed points
+            are EM's. Networks whose CPTs are all plain tables only (structured CPTs: plain EM).
+            ``max_iter`` then caps the E-steps, and ``iterations`` counts them.
 
     Structured CPTs (``cpd``, ``tied_to``, ``impossible``) are estimated by their own M-steps
     (:mod:`adfit.emforms`); monotone nodes (``increasing_with``) are refused: the M-step under
@@ -901,7 +906,11 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
     steps: list[float] = []
     converged = False
     it = 0
-    while True:
+    rate = None
+    if accelerate and plain:
+        probs, counts, ll, lp, resid, it, converged, rate = _squarem(
+            network, coded, estep, probs, prior, tol, gtol, max_iter, trace, steps, callback)
+    while rate is None:
         counts, row_ll = estep(probs)
         if it == 0:
             bad = np.flatnonzero(np.isneginf(row_ll) & (w > 0))
@@ -937,7 +946,7 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
         trace=trace,
         iterations=it,
         converged=converged,
-        rate=_rate(steps),
+        rate=_rate(steps) if rate is None else rate,
         uninformed=_uninformed(network, counts) if plain else _uninformed_groups(groups, counts),
         stationarity=resid,
         gradient_norm=(stationarity_residual(network, counts, probs, prior, norm="l2") if plain
@@ -948,6 +957,101 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
         n_records=n_rec,
         parameters={} if plain else _parameters_json(network, groups, params),
     )
+
+
+#: SQUAREM: most extrapolated points tried per cycle before falling back to the plain EM step
+SQUAREM_TRIES = 3
+
+
+def _squarem(network: Network, coded: CodedData, estep: EStep, probs: dict[str, np.ndarray],
+             prior: Mapping[str, np.ndarray] | None, tol: float, gtol: float, max_iter: int,
+             trace: list[float], steps: list[float],
+             callback: Callable[[int, dict[str, np.ndarray]], None] | None) -> tuple:
+    """EM with squared extrapolation (SQUAREM; Varadhan & Roland 2008, Scand. J. Stat. 35, scheme S3).
+
+    A cycle from ``θ0`` (its E-step done) takes the EM step ``θ1 = M(θ0)`` (an E-step at ``θ1``)
+    and ``θ2 = M(θ1)``; with ``r = θ1 − θ0``, ``v = θ2 − 2θ1 + θ0`` and the step length
+    ``α = −‖r‖/‖v‖`` (at most −1) it tries ``θ' = θ0 − 2αr + α²v``. ``θ'`` is kept only if it is a
+    set of distributions (no negative entry: ``r`` and ``v`` have zero row sums) whose objective
+    is at least the objective at ``θ1``; otherwise ``α`` moves halfway to −1, and after
+    ``SQUAREM_TRIES`` tries ``α = −1``, i.e. ``θ' = θ2``, the plain EM step, whose objective is at
+    least that at ``θ1`` by EM's monotonicity. So the objective at successive iterates never
+    falls, and a fixed point of the cycle is a fixed point of EM.
+
+    The stopping rule is EM's (module docstring) on the objective at the cycles' starting points
+    and the stationarity residual there. ``trace`` gets the objective at every kept iterate
+    (``θ1`` and ``θ'`` of each cycle), ``steps`` the parameter change to each. The rate of plain
+    EM is not observed (NaN): the extrapolation removes the slow directions from the iterates,
+    so the ratio of successive changes no longer tends to the largest fraction of missing
+    information (measured: 0.67 against plain EM's 0.9986 on a three-class model).
+    """
+    w = np.asarray(coded.counts, dtype=np.float64)
+    n_rec = float(w.sum())
+    free = network.free_names
+
+    def evaluate(th):
+        counts, row_ll = estep(th)
+        ll = _weighted_sum(row_ll, w)
+        lp = _log_prior(network, th, prior)
+        return counts, row_ll, ll, lp, stationarity_residual(network, counts, th, prior)
+
+    def norm(d):
+        return math.sqrt(sum(float(np.sum(d[m] ** 2)) for m in free))
+
+    counts, row_ll, ll, lp, resid = evaluate(probs)
+    bad = np.flatnonzero(np.isneginf(row_ll) & (w > 0))
+    if bad.size:
+        raise ImpossibleDataError(_impossible_message(network, coded, bad))
+    trace.append(ll + lp)
+    starts = [ll + lp]   # the objective at the start of each cycle
+    n_e = 0
+    rate = math.nan
+    while True:
+        obj0 = ll + lp
+        if (len(starts) >= 2 and _remaining_gain(starts) <= tol * max(1.0, abs(obj0))
+                and resid <= gtol * max(1.0, n_rec)):
+            return probs, counts, ll, lp, resid, n_e, True, rate
+        if n_e >= max_iter:
+            return probs, counts, ll, lp, resid, n_e, False, rate
+        th0 = probs
+        th1 = _mstep(network, counts, th0, prior)
+        n_e += 1
+        c1, _, ll1, lp1, res1 = evaluate(th1)
+        obj1 = ll1 + lp1
+        trace.append(obj1)
+        steps.append(norm({m: th1[m] - th0[m] for m in free}))
+        if callback is not None:
+            callback(n_e, th1)
+        if n_e >= max_iter or not math.isfinite(obj1):
+            return th1, c1, ll1, lp1, res1, n_e, False, rate
+        th2 = _mstep(network, c1, th1, prior)
+        r = {m: th1[m] - th0[m] for m in free}
+        v = {m: th2[m] - th1[m] - r[m] for m in free}
+        nr, nv = norm(r), norm(v)
+        alpha = min(-nr / nv, -1.0) if nv > 0 else -1.0
+        for k in range(SQUAREM_TRIES + 1):
+            if k == SQUAREM_TRIES or alpha >= -1.0:
+                alpha, cand = -1.0, th2
+            else:
+                cand = dict(th2)
+                cand.update({m: th0[m] - 2.0 * alpha * r[m] + alpha * alpha * v[m] for m in free})
+                if any(np.any(cand[m] < 0) for m in free):
+                    alpha = (alpha - 1.0) / 2.0
+                    continue
+                cand.update({m: cand[m] / cand[m].sum(axis=-1, keepdims=True) for m in free})
+            n_e += 1
+            cc, _, llc, lpc, resc = evaluate(cand)
+            if alpha == -1.0 or llc + lpc >= obj1 or n_e >= max_iter:
+                break
+            alpha = (alpha - 1.0) / 2.0
+        if llc + lpc < obj1 and alpha != -1.0:  # the cap came first: stay at θ1
+            return th1, c1, ll1, lp1, res1, n_e, False, rate
+        probs, counts, ll, lp, resid = cand, cc, llc, lpc, resc
+        trace.append(ll + lp)
+        steps.append(norm({m: cand[m] - th1[m] for m in free}))
+        starts.append(ll + lp)
+        if callback is not None:
+            callback(n_e, probs)
 
 
 def _start_params(network: Network, groups: Sequence[_forms.Group], init: Mapping[str, np.ndarray] | None,

@@ -315,6 +315,58 @@ def test_em_objective_never_falls(route, monkeypatch):
             assert np.all(np.diff(tr) >= -1e-11 * np.maximum(1.0, np.abs(tr[1:])))
 
 
+def test_accelerated_em_reaches_the_published_optimum_monotonely():
+    # SQUAREM (Varadhan & Roland 2008) on Goodman's (1974) two-class model of the Stouffer-Toby
+    # data (published values from memory, 3 decimals, as in test_stouffer_toby_latent_class):
+    # the same optimum as plain EM from the same start, the objective never falls, fewer E-steps
+    net, df = stouffer_toby()
+    data = encode_frame(net, df, count_column="count")
+    for seed in range(3):
+        plain = em_fit(net, data, seed=seed)
+        fast = em_fit(net, data, seed=seed, accelerate=True)
+        assert plain.converged and fast.converged
+        assert fast.objective_value == pytest.approx(plain.objective_value, rel=1e-12, abs=1e-9)
+        for m in net.free_names:
+            np.testing.assert_allclose(fast.probs[m], plain.probs[m], atol=1e-6)
+        tr = np.array(fast.trace)
+        assert np.all(np.diff(tr) >= -1e-12 * np.abs(tr[1:]))
+        assert fast.iterations < plain.iterations / 2 and math.isnan(fast.rate)
+        assert fast.stationarity <= 1e-9 * 216
+    p_plus = np.array([[fast.probs[f"item{j + 1}"][k, 0] for j in range(4)] for k in range(2)])
+    assert _align_two_classes(fast.probs["cls"], p_plus, STOUFFER_TOBY_CLASS_SIZES, STOUFFER_TOBY_P_PLUS) < 6e-4
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_accelerated_em_is_monotone_and_stays_at_a_fixed_point(seed):
+    # on random networks with gaps (and the three-class Stouffer-Toby model, where plain EM
+    # crawls at rate ~0.999): the objective never falls under extrapolation; started at plain
+    # EM's converged answer (a fixed point), accelerated EM does not move from it
+    if seed == 3:
+        net, df = stouffer_toby(3)
+        data = encode_frame(net, df, count_column="count")
+    else:
+        net, data, _ = random_case(seed, n_nodes=5, n_rows=200, p_missing=0.4)
+    fast = em_fit(net, data, seed=seed, accelerate=True, max_iter=20000)
+    tr = np.array(fast.trace)
+    assert fast.converged and np.all(np.diff(tr) >= -1e-12 * np.abs(tr[1:]))
+    plain = em_fit(net, data, seed=seed, max_iter=20000)
+    assert plain.converged and fast.iterations < plain.iterations
+    again = em_fit(net, data, init=plain.probs, accelerate=True, max_iter=50)
+    assert again.converged and again.objective_value >= plain.objective_value - 1e-9
+    # (three classes on four items lie on a flat ridge, docs/performance.md: EM's stopping rule
+    # there leaves the parameters free to about 1e-6 along it)
+    for m in net.free_names:
+        np.testing.assert_allclose(again.probs[m], plain.probs[m], atol=1e-5 if seed == 3 else 1e-7)
+
+
+def test_accelerated_em_cap_counts_e_steps():
+    net, df = stouffer_toby(3)
+    data = encode_frame(net, df, count_column="count")
+    seen = []
+    res = em_fit(net, data, seed=0, accelerate=True, max_iter=7, callback=lambda k, p: seen.append(k))
+    assert not res.converged and res.iterations == 7 and seen and max(seen) <= 7
+
+
 def test_no_underflow_on_long_rows():
     # 1200 binary items under one latent class: each row's probability is far below the
     # smallest float64 (about 2^-1200), so messages must be rescaled; closed form by logsumexp
