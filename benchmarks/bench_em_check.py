@@ -1,0 +1,170 @@
+"""What the EM cross-check costs beside the fit it checks (``fit --em-check``), before and after.
+
+For each workload, in one process and one after the other: the fit (``adfit.fit.fit`` with its
+defaults, the likelihood's plan built once beforehand and shared, as the CLI does), then
+``adfit.crosscheck.em_check`` of that fit (its two EM runs plus the three measurements by the
+JAX core) twice:
+
+* **before**: the EM reference as it was: every row through the junction trees
+  (``adfit.em.ENUM_MAX = 0``) and plain EM steps (``accelerate=False``);
+* **after**: the present defaults: rows with few hidden assignments enumerated all at once, and
+  both EM runs with squared extrapolation (SQUAREM).
+
+It prints the wall time of each, the E-steps and the E-step's cost by itself (the mean of a few
+calls at the fit's answer), each run's iterations, and the verdicts (they must agree: both
+versions have the same fixed points and stopping rule). The target of issue 13: the check costs
+at most as much as the fit.
+
+Workloads (seeded, synthetic: they measure speed, not accuracy):
+
+* ``latent15``: the 15-node banded network of ``workloads.local_network`` (seed 3: two latent
+  nodes, with 2 and 3 states and three observed children each), 20 000 records sampled from
+  random CPTs, 20 % of the observed cells missing completely at random;
+* ``lcm``: the latent class model of ``workloads.latent_class_workload`` (4 classes, 20 binary
+  items, planned missingness) at 20 000 records.
+
+    python benchmarks/bench_em_check.py                  # both, before and after
+    python benchmarks/bench_em_check.py --only lcm --skip-before
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import subprocess
+import sys
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from workloads import coded, latent_class_workload, local_network, mask_mcar, random_cpts, sample  # noqa: E402
+
+import adfit.em as em  # noqa: E402
+from adfit.crosscheck import em_check  # noqa: E402
+from adfit.fit import fit  # noqa: E402
+from adfit.likelihood import Likelihood  # noqa: E402
+
+
+def workload(name: str, n_rows: int):
+    if name == "latent15":
+        net = local_network(15, seed=3, n_latent=2)
+        x = sample(net, random_cpts(net, seed=1), n_rows, seed=2)
+        return net, coded(net, mask_mcar(net, x, 0.2, seed=3))
+    if name == "lcm":
+        return latent_class_workload(n_rows)
+    raise SystemExit(f"unknown workload {name!r}")
+
+
+def _commit() -> str:
+    root = Path(__file__).resolve().parents[1]
+    try:
+        c = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=root, capture_output=True, text=True).stdout
+        dirty = subprocess.run(["git", "status", "--porcelain", "--untracked-files=no"], cwd=root,
+                               capture_output=True, text=True).stdout.strip()
+        return c.strip() + (" (with uncommitted changes)" if dirty else "")
+    except OSError:
+        return "unknown"
+
+
+def _log(msg: str) -> None:
+    print(f"  [{time.strftime('%H:%M:%S')}] {msg}", file=sys.stderr, flush=True)
+
+
+def run_check(net, data, result, lik, *, enum_max: int, accelerate: bool, max_iter: int) -> dict:
+    saved = em.ENUM_MAX
+    em.ENUM_MAX = enum_max
+    calls = {"n": 0, "t": 0.0}
+    base = em.EStep
+
+    class Counted(base):
+        def __call__(self, probs):
+            t = time.perf_counter()
+            try:
+                return super().__call__(probs)
+            finally:
+                calls["n"] += 1
+                calls["t"] += time.perf_counter() - t
+
+    em.EStep = Counted
+    try:
+        t = time.perf_counter()
+        chk = em_check(result, data, likelihood=lik, accelerate=accelerate, max_iter=max_iter)
+        wall = time.perf_counter() - t
+        es = base(net, data)
+        t = time.perf_counter()
+        for _ in range(3):
+            es(result.probs)
+        per = (time.perf_counter() - t) / 3
+    finally:
+        em.EStep = base
+        em.ENUM_MAX = saved
+    return {"wall": wall, "estep": per, "calls": calls["n"], "estep_total": calls["t"], "check": chk}
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--only", choices=["latent15", "lcm"], action="append")
+    ap.add_argument("--rows", type=int, default=20_000)
+    ap.add_argument("--skip-before", action="store_true", help="time only the present version")
+    ap.add_argument("--max-iter", type=int, default=5000, help="iteration cap of each EM run (fit --em-max-iter)")
+    args = ap.parse_args(argv)
+    u = platform.uname()
+    print(f"# commit {_commit()}; {u.system} {u.machine}, {os.cpu_count()} CPUs, python {platform.python_version()}, "
+          f"numpy {np.__version__}")
+    rows = []
+    for name in args.only or ["latent15", "lcm"]:
+        net, data = workload(name, args.rows)
+        load0 = os.getloadavg()
+        _log(f"{name}: plan and fit")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            t = time.perf_counter()
+            lik = Likelihood(net, data)
+            plan_s = time.perf_counter() - t
+            t = time.perf_counter()
+            res = fit(net, data, warn=False, likelihood=lik)
+            fit_s = time.perf_counter() - t
+        _log(f"{name}: fit {fit_s:.1f} s (plan {plan_s:.1f} s), converged {res.converged}")
+        versions = [("after", em.ENUM_MAX, True)]
+        if not args.skip_before:
+            versions.append(("before", 0, False))
+        out = {}
+        for label, enum_max, acc in versions:
+            _log(f"{name}: EM check, {label}")
+            out[label] = run_check(net, data, res, lik, enum_max=enum_max, accelerate=acc, max_iter=args.max_iter)
+            c = out[label]["check"]
+            _log(f"{name}: {label}: {out[label]['wall']:.1f} s, verdict {c['verdict']}")
+        load1 = os.getloadavg()
+        print(f"# {name}: {len(net)} nodes, {data.n_rows:.0f} records, {data.n_distinct} distinct; load average "
+              f"(1, 5, 15 min) {load0[0]:.2f} {load0[1]:.2f} {load0[2]:.2f} -> {load1[0]:.2f} {load1[1]:.2f} "
+              f"{load1[2]:.2f}; fit {fit_s:.1f} s (plan {plan_s:.1f} s, beforehand), converged {res.converged}")
+        for label, r in out.items():
+            c = r["check"]
+            a, b = c["em_from_fit"], c["em_own_start"]
+            rows.append(f"| {name} | {label} | {fit_s:.1f} s | **{r['wall']:.1f} s** | {r['wall'] / fit_s:.2f} | "
+                        f"{r['estep'] * 1e3:.1f} ms | {r['calls']} | {r['estep_total']:.1f} s | "
+                        f"{a['iterations']} ({'yes' if a['converged'] else 'no'}) | "
+                        f"{b['iterations']} ({'yes' if b['converged'] else 'no'}) | {c['verdict']} | "
+                        f"{b['objective_value'] - c['fit']['objective_value']:+.2e} |")
+        if len(out) == 2:
+            e0, e1 = out["before"]["estep"], out["after"]["estep"]
+            print(f"# {name}: E-step before / after {e0 / e1:.1f}x; check before / after "
+                  f"{out['before']['wall'] / out['after']['wall']:.1f}x; verdicts "
+                  f"{out['before']['check']['verdict']} / {out['after']['check']['verdict']}")
+        sys.stdout.flush()
+    print()
+    print("| workload | version | fit | EM check | check / fit | one E-step | E-steps | in E-steps | "
+          "EM from the fit: iterations (converged) | EM own start: iterations (converged) | verdict | "
+          "own start − fit objective |")
+    print("|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---|---:|")
+    for r in rows:
+        print(r)
+
+
+if __name__ == "__main__":
+    main()
