@@ -6,6 +6,12 @@ Two EM runs (:mod:`adfit.em`, plain numpy, its own inference) are set beside the
   CPTs stay within ``theta_atol`` and its objective does not rise by more than the tolerance);
 * **EM from its own start** (a seeded random start): an independent search for the optimum.
 
+Both runs take EM steps with squared extrapolation between them (SQUAREM, :func:`adfit.em.em_fit`
+with ``accelerate``; plain EM steps for structured CPTs): an extrapolated point is kept only if
+its objective is at least that of the EM step before it, so the fixed points, the stopping rule
+and the monotone objective are EM's, at several times fewer E-steps where EM crawls;
+``max_iter`` caps each run's E-steps. Such runs report no rate of convergence (null).
+
 For each of the three points the log-likelihood, the objective and the gradient norm are
 reported; the gradient norm is taken by the JAX core (:func:`adfit.likelihood.score`) at every
 point, and EM's own Fisher-identity residual is given beside it (the two must match).
