@@ -349,20 +349,21 @@ def _enumerated_plan(network: Network, rows: np.ndarray, codes: np.ndarray, enum
     r = rows.size
     starts = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
     total = int(sizes.sum())
-    seg = np.repeat(np.arange(r), sizes)
+    seg = np.repeat(np.arange(r, dtype=np.int32 if r < 2 ** 31 else np.int64), sizes)
     local = np.arange(total, dtype=np.int64) - starts[seg]
     # mixed radix over each row's enumerated cells, in node order (first node fastest)
     stride = np.cumprod(np.where(enum, cards, 1), axis=1)
     stride = np.concatenate([np.ones((r, 1), dtype=np.int64), stride[:, :-1]], axis=1)
     cols = []  # the completions' value of every node, one column per node
     for j in range(n):
-        col = codes[seg, j].astype(np.int64)
+        col = codes[seg, j].astype(np.int32)
         on = np.flatnonzero(enum[seg, j])
         col[on] = (local[on] // stride[seg[on], j]) % cards[j]
         cols.append(col)
     hid = codes == HIDDEN
     leaf = hid & ~enum                           # hidden leaves, summed out
-    rcols = [codes[:, j].astype(np.int64) for j in range(n)]
+    rcols = [codes[:, j].astype(np.int32) for j in range(n)]
+    small = np.int32 if total < 2 ** 31 else np.int64  # positions of completions (index arrays kept)
     full, const, leaves = [], [], []
     for v in range(n):
         fam = list(network.parent_indices[v]) + [v]
@@ -370,7 +371,7 @@ def _enumerated_plan(network: Network, rows: np.ndarray, codes: np.ndarray, enum
         obs = ~hid[:, fam].any(axis=1)                    # rows whose family of v is observed
         if touch.any():
             sel_c = touch[seg]
-            sel = None if sel_c.all() else np.flatnonzero(sel_c)
+            sel = None if sel_c.all() else np.flatnonzero(sel_c).astype(small)
             full.append((sel, _flat_family_index(network, v, cols, sel)))
         else:
             full.append(None)
@@ -380,7 +381,7 @@ def _enumerated_plan(network: Network, rows: np.ndarray, codes: np.ndarray, enum
         else:
             const.append(None)
         if leaf[:, v].any():
-            sel = np.flatnonzero(leaf[seg, v])
+            sel = np.flatnonzero(leaf[seg, v]).astype(small)
             leaves.append((sel, _flat_family_index(network, v, cols, sel, with_child=False)))
         else:
             leaves.append(None)
