@@ -569,8 +569,11 @@ def _check_structure(net: Network, source: str) -> None:
             raise NetworkError(f"{key}.impossible is not available with cpd = {n.cpd!r} (its cells follow from "
                                f"the strengths); use cpd = 'table' or 'logistic'")
         if n.increasing_with:
-            if n.cpd not in ("table", "logistic"):
-                raise NetworkError(f"{key}.increasing_with is available with cpd = 'table' or 'logistic' only")
+            if n.cpd == "logistic":
+                raise NetworkError(f"{key}.increasing_with with cpd = 'logistic' is not estimated yet (monotone "
+                                   f"coefficients); use cpd = 'table' with increasing_with, or drop one of the keys")
+            if n.cpd != "table":
+                raise NetworkError(f"{key}.increasing_with is available with cpd = 'table' only")
             for p in n.increasing_with:
                 if p not in n.parents:
                     raise NetworkError(f"{key}.increasing_with names {p!r}, which is not a parent of {n.name!r} "

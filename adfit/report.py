@@ -112,7 +112,7 @@ _KNOWN_TOP = {"format", "method", "objective", "log_likelihood", "log_prior", "p
               "uncertainty", "identifiability", "stationarity", "starts_note", "latent_states"}
 _KNOWN_NODE = {"states", "parents", "latent", "fixed", "table", "se", "interval", "se_status",
                "missing_information", "cpd", "parameters", "parameters_se", "parameters_interval",
-               "parameters_status"}
+               "parameters_status", "increasing_with", "binding"}
 
 
 def _param_leaves(doc: Any, path: tuple = ()) -> list[tuple[tuple, Any]]:
