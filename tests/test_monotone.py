@@ -233,6 +233,11 @@ def test_refusals_are_one_line_and_name_the_key():
     with pytest.raises(NetworkError, match="increasing_with with cpd = 'logistic' is not estimated yet"):
         network_from_dict({"wear": {"states": LEVELS}, "gauge": {"states": C_STATES, "parents": ["wear"],
                                                                   "cpd": "logistic", "increasing_with": ["wear"]}})
+    both = network_from_dict({"wear": {"states": LEVELS}, "gauge": {
+        "states": C_STATES, "parents": ["wear"], "increasing_with": ["wear"],
+        "impossible": [{"given": {"wear": "low"}, "state": "failed"}]}})
+    with pytest.raises(NetworkError, match="nodes.gauge.impossible cannot be combined with increasing_with"):
+        quiet_fit(both, pd.DataFrame({"wear": ["low", "high"], "gauge": ["ok", "failed"]}))
     from adfit.priors import prior_from_dict
 
     net = net_ab()
