@@ -151,7 +151,8 @@ class Accumulator:
         self.words, self.counts, _ = reduce_words(words, self.layout.spans, counts, inverse=False, runs=True)
 
     def result(self) -> tuple[np.ndarray, np.ndarray]:
-        """``(distinct code rows int32, counts)`` in lexicographic order."""
+        """``(distinct code rows, counts)`` in lexicographic order (codes of the layout's
+        :attr:`~adfit.rowkeys.KeyLayout.code_dtype`)."""
         self._merge()
         return self.layout.unpack(self.words), self.counts
 

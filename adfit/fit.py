@@ -1030,7 +1030,7 @@ def complete_family_counts(network: Network, data: CodedData, names: Iterable[st
             stride = 1
             for u, card in zip(reversed(fam), reversed(shape)):
                 bad |= hid[u]
-                idx += stride * cT[u]
+                idx += np.multiply(cT[u], stride, dtype=np.intp)  # widened: the codes may be int8
                 stride *= card
             ok = ~bad
             if ok.all():
