@@ -152,8 +152,10 @@ def test_likelihood_on_int8_codes_equals_enumeration_and_em():
     rng = np.random.default_rng(3)
     probs = _probs(WIDE8, rng)
     x = _sample(WIDE8, probs, 3000, rng)
+    full = x.copy()
     x[rng.random(x.shape) < 0.3] = HIDDEN
     x[:, WIDE8.index("h")] = HIDDEN
+    x[:, :2] = full[:, :2]   # a and b always observed: the uniform program indexes d's CPT by a*48 + b*12
     d, c, _ = reduce_rows(x, None, WIDE8.cards)
     data = CodedData(d, c)
     assert data.codes.dtype == np.int8
@@ -195,3 +197,30 @@ def test_likelihood_on_int16_codes_complete_data_closed_form_and_enumeration():
     for route in ("auto", "uniform"):
         got = Likelihood(WIDE16, CodedData(d2, c2), route=route).row_logliks(probs)
         np.testing.assert_allclose(got, oracle, rtol=0, atol=1e-10)
+
+
+# a barren leaf of 127 states: its summed code (127, the extra column of its widened CPT) is
+# the largest int8; its widened CPT has 4*4*128 cells, index a*512 + b*128 + f.
+LEAF127 = _net({"a": (4, (), {}), "b": (4, ("a",), {}), "f": (127, ("a", "b"), {}), "c": (3, ("b",), {})})
+
+
+def test_a_summed_127_state_leaf_in_int8_codes_equals_enumeration():
+    # Oracle: brute-force enumeration (the leaf summed out or not, the value is the same sum).
+    rng = np.random.default_rng(5)
+    probs = _probs(LEAF127, rng)
+    x = _sample(LEAF127, probs, 400, rng)
+    x[rng.random(x.shape) < np.array([0.2, 0.2, 0.4, 0.2])] = HIDDEN
+    x[:20, LEAF127.index("f")] = HIDDEN
+    x[:20, LEAF127.index("a")] = HIDDEN        # a hidden, b observed: f is summed out of these rows
+    x[20:30, LEAF127.index("f")] = 126         # the largest state, observed
+    d, c, _ = reduce_rows(x, None, LEAF127.cards)
+    assert d.dtype == np.int8
+    oracle = np.array([brute_force_row(LEAF127, probs, r) for r in d.tolist()])
+    em_counts, em_ll = em.expected_counts(LEAF127, probs, CodedData(d, c))
+    for route in ("auto", "pattern"):
+        lik = Likelihood(LEAF127, CodedData(d, c), route=route)
+        np.testing.assert_allclose(lik.row_logliks(probs), oracle, rtol=0, atol=1e-10)
+        ll, counts = lik.expected_counts(probs)
+        assert float(ll) == pytest.approx(float(oracle @ c), rel=1e-12) == em_ll
+        for name in LEAF127.names:   # the summed leaf's expected counts: theta times the parents' posterior
+            np.testing.assert_allclose(np.asarray(counts[name]), em_counts[name], rtol=1e-9, atol=1e-9)
