@@ -501,6 +501,10 @@ def _check_pseudo(network: Network, pseudo_counts: Mapping[str, Any] | None) -> 
                  if form in ("noisy_or", "noisy_max", "logistic") else network.cpt_shape(name))
         if form == "logistic" and a.shape == network.cpt_shape(name) and not np.any(a):
             continue  # no prior, in the CPT's shape
+        if a.shape != shape and form == "logistic":
+            raise PriorError(f"the prior of the logistic node {name!r} has shape {a.shape}; it takes the precisions "
+                             f"1/sd^2 of a normal prior on its coefficients, shape {shape} (the intercept row, then "
+                             f"each parent's non-first states; adfit.priors.Prior.pseudo_counts gives them)")
         if a.shape != shape:
             raise PriorError(f"pseudo-counts of node {name!r} have shape {a.shape}, expected {shape}")
         if not np.all(np.isfinite(a)) or np.any(a < 0):
