@@ -259,3 +259,24 @@ def test_cli_fit_with_a_normal_prior_and_a_bad_one(tmp_path):
     line = [x for x in r.output.splitlines() if "coefficient_sd" in x]
     assert len(line) == 1 and str(bad) in line[0] and "[nodes.y]" in line[0]
     assert not (tmp_path / "r2.json").exists()
+
+
+def test_impossible_cells_on_noisy_nodes_are_refused_with_the_reason_and_on_logistic_nodes_by_the_gradient_fit():
+    from adfit.errors import NetworkError
+    from adfit.network import parse_network
+
+    # noisy-OR (Pearl 1988, §4.3.2): P(absent | a, b) = (1 − leak)(1 − s_a)(1 − s_b); a zero at
+    # (a=yes, b=hi, absent) needs leak, s_a or s_b = 1, which zeroes other configurations' cells too
+    imp = [{"given": {"a": "yes", "b": "hi"}, "state": "absent"}]
+    with pytest.raises(NetworkError) as e:
+        net_with({"states": ["absent", "present"], "cpd": "noisy_or", "impossible": imp})
+    msg = str(e.value)
+    assert "\n" not in msg and "nodes.y.impossible" in msg and "sets cells of other parent configurations" in msg
+    # a logistic node with an impossible cell: EM estimates it (tests/test_emforms.py); the
+    # gradient fit says it does not yet, in one line, instead of failing inside numpy
+    net = parse_network({"nodes": {"a": {"states": ["no", "yes"]}, "b": {"states": ["lo", "mid", "hi"]},
+                                   "y": {"states": ["low", "mid", "high"], "parents": ["a", "b"], "cpd": "logistic",
+                                         "impossible": [{"given": {"a": "no", "b": "lo"}, "state": "high"}]}}})
+    df = pd.DataFrame({"a": ["no", "yes"], "b": ["lo", "hi"], "y": ["low", "high"]})
+    with pytest.raises(NetworkError, match=r"nodes.y.impossible: the gradient fit does not estimate"):
+        fit(net, df)
