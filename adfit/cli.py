@@ -71,7 +71,8 @@ class InputFile:
 
 
 # Shared option declarations (reuse these in every command that reads data).
-NetworkArg = Annotated[Path, typer.Argument(help="Network file (TOML): [nodes.NAME] tables with states, parents, latent, fixed.",
+NetworkArg = Annotated[Path, typer.Argument(help=("Network file (TOML): one [nodes.NAME] table per node with states and parents; optional keys "
+                                                  "latent, fixed, cpd, tied_to, impossible, increasing_with (docs/user-guide.md)."),
                                             parser=InputFile("network file"))]
 DataArg = Annotated[Path, typer.Argument(help="Records: a CSV or Parquet file (or a folder or glob pattern of such files), one column per non-latent node.")]
 MissingOpt = Annotated[Optional[list[str]], typer.Option(
