@@ -1606,8 +1606,12 @@ def _section_other(doc: Mapping[str, Any]) -> str:
 def _section_cautions(doc: Mapping[str, Any], gaps: Mapping[str, Any] | None, net: Network | None = None) -> str:
     items = [c for c in REPORT_CAUTIONS if c != LATENT_CAUTION or net is None or net.latent_names]
     if doc.get("objective") == "map":
-        items.insert(3, "This is a MAP fit: the prior's pseudo-counts pull the estimates towards the prior, most "
-                        "where a parent configuration has few records."
+        pr = doc.get("prior") if isinstance(doc.get("prior"), Mapping) else {}
+        only_normal = bool(pr.get("coefficient_prior_sd")) and not any(
+            (v or 0) > 0 for v in (pr.get("total_pseudo_counts") or {}).values())
+        items.insert(3, ("This is a MAP fit." if only_normal else
+                         "This is a MAP fit: the prior's pseudo-counts pull the estimates towards the prior, most "
+                         "where a parent configuration has few records.")
                      + (" A normal prior pulls logistic coefficients towards 0 (no effect), most where a parent "
                         "state has few records; the error bars include its curvature."
                         if isinstance(doc.get("prior"), Mapping) and doc["prior"].get("coefficient_prior_sd") else ""))
