@@ -71,7 +71,8 @@ class InputFile:
 
 
 # Shared option declarations (reuse these in every command that reads data).
-NetworkArg = Annotated[Path, typer.Argument(help="Network file (TOML): [nodes.NAME] tables with states, parents, latent, fixed.",
+NetworkArg = Annotated[Path, typer.Argument(help=("Network file (TOML): one [nodes.NAME] table per node with states and parents; optional keys "
+                                                  "latent, fixed, cpd, tied_to, impossible, increasing_with (docs/user-guide.md)."),
                                             parser=InputFile("network file"))]
 DataArg = Annotated[Path, typer.Argument(help="Records: a CSV or Parquet file (or a folder or glob pattern of such files), one column per non-latent node.")]
 MissingOpt = Annotated[Optional[list[str]], typer.Option(
@@ -258,7 +259,7 @@ def em_command(
     count_column: CountOpt = None,
     ignore_columns: IgnoreOpt = None,
     prior: Annotated[Optional[Path], typer.Option(
-        "--prior", help="Prior file (TOML, Dirichlet pseudo-counts): EM then finds the MAP estimate.",
+        "--prior", help="Prior file (TOML: Dirichlet pseudo-counts; coefficient_sd on logistic nodes): EM then finds the MAP estimate.",
         parser=InputFile("prior file"))] = None,
     init: Annotated[Optional[Path], typer.Option(
         "--init", help="Start from the CPTs of a result file (default: a seeded random start).",
@@ -352,7 +353,7 @@ def fit_command(
     batch_size: Annotated[Optional[int], typer.Option(
         "--batch-size", rich_help_panel=OPT_PANEL, help="With --method adam: distinct rows sampled per step (very large data).")] = None,
     prior: Annotated[Optional[Path], typer.Option(
-        "--prior", help="Prior file (TOML): Dirichlet pseudo-counts, BDeu equivalent sample size or expert tables; gives MAP estimates.",
+        "--prior", help="Prior file (TOML): Dirichlet pseudo-counts, BDeu equivalent sample size or expert tables; a normal prior (coefficient_sd) on logistic coefficients; gives MAP estimates.",
         parser=InputFile("prior file"))] = None,
     l2: Annotated[float, typer.Option("--l2", help="L2 penalty lambda on the logits (row mean removed).")] = 0.0,
     missing: MissingOpt = None,

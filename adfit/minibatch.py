@@ -76,9 +76,10 @@ def run_minibatch(fitter, logits0: Mapping[str, np.ndarray], *, batch_size: int,
         codes = data.codes[idx]
         w = np.full(batch_size, N / batch_size)
         if B > batch_size:  # pad to whole chunks with weight 0
-            codes = np.concatenate([codes, np.full((B - batch_size, codes.shape[1]), HIDDEN, np.int32)])
+            codes = np.concatenate([codes, np.full((B - batch_size, codes.shape[1]), HIDDEN, codes.dtype)])
             w = np.concatenate([w, np.zeros(B - batch_size)])
-        c = jnp.asarray(codes.reshape(n_chunks, gp.chunk, -1))
+        # int32 for the program, which computes flat indices from the codes (int8 would wrap)
+        c = jnp.asarray(codes.reshape(n_chunks, gp.chunk, -1).astype(np.int32))
         ww = jnp.asarray(w.reshape(n_chunks, gp.chunk))
         f, g = _objective_fg(network, groups, z, ones, pseudo, fitter.fixed_flat, l2, n_total, (c,), (ww,))
         updates, state = opt.update(g, state, z)

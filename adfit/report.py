@@ -112,7 +112,7 @@ _KNOWN_TOP = {"format", "method", "objective", "log_likelihood", "log_prior", "p
               "uncertainty", "identifiability", "stationarity", "starts_note", "latent_states"}
 _KNOWN_NODE = {"states", "parents", "latent", "fixed", "table", "se", "interval", "se_status",
                "missing_information", "cpd", "parameters", "parameters_se", "parameters_interval",
-               "parameters_status"}
+               "parameters_status", "increasing_with", "binding"}
 
 
 def _param_leaves(doc: Any, path: tuple = ()) -> list[tuple[tuple, Any]]:
@@ -141,6 +141,8 @@ def _parameters_table(name: str, sec: Mapping[str, Any]) -> str:
     def label(path: tuple) -> str:
         if path[0] in ("leak", "intercept"):
             return path[0]
+        if path[0] == "fraction" and len(path) == 2:  # a monotone node's fraction
+            return path[1]
         return f"{path[1]}={path[2]}" if len(path) >= 3 else ".".join(path)
 
     rows = []
@@ -156,10 +158,25 @@ def _parameters_table(name: str, sec: Mapping[str, Any]) -> str:
     kind = str(sec.get("cpd") or "structured")
     what = ("log-odds against the first state" if kind == "logistic" else
             "probabilities (noisy-OR: of the second state; noisy-MAX: per state)")
+    if sec.get("increasing_with"):
+        kind = "monotone (increasing with " + ", ".join(map(str, sec["increasing_with"])) + ")"
+        what = "fractions: 1 = the constraint against one state lower binds, 0 = the cell is 0"
     return (f'<table class="cpt-table params-table" data-node="{esc(name)}-parameters"><caption>{esc(kind)} '
             f"parameters of {esc(name)} ({esc(what)}); the table above is the one they imply</caption>"
             "<thead><tr><th>parameter</th><th>estimate</th><th>se</th><th>interval</th></tr></thead><tbody>"
-            + "".join(rows) + "</tbody></table>")
+            + "".join(rows) + "</tbody></table>" + _binding_list(sec))
+
+
+def _binding_list(sec: Mapping[str, Any]) -> str:
+    """A monotone node's binding constraints (the result's ``"binding"``), one line each."""
+    lines = sec.get("binding")
+    if not sec.get("increasing_with"):
+        return ""
+    if not lines:
+        return "<p class=\"binding\">No monotonicity constraint binds at the estimate.</p>"
+    return ("<p class=\"binding\">Binding constraints at the estimate (the data pull the other way; the "
+            "estimate sits on the constraint):</p><ul class=\"binding\">"
+            + "".join(f"<li>{esc(str(x))}</li>" for x in lines) + "</ul>")
 
 
 # ============================================================================== number formats
@@ -879,8 +896,13 @@ def _prior_brief(doc: Mapping[str, Any]) -> str:
     tot = pr.get("total_pseudo_counts")
     if isinstance(tot, Mapping):
         pairs.append(("pseudo-counts per node", esc(", ".join(f"{k} {_fmt_any(v)}" for k, v in tot.items()))))
+    sds = pr.get("coefficient_prior_sd")
+    if isinstance(sds, Mapping) and sds:
+        pairs.append(("normal prior on logistic coefficients (sd, log-odds)",
+                      esc("; ".join(f"{k}: " + ", ".join(f"{kk.replace('_sd', '')} {_fmt_any(vv)}" for kk, vv in v.items())
+                                    for k, v in sds.items() if isinstance(v, Mapping)))))
     rest = [(str(k), _render_any(v, 2)) for k, v in pr.items()
-            if k not in {"source", "objective", "total_pseudo_counts", "spec"}]
+            if k not in {"source", "objective", "total_pseudo_counts", "spec", "coefficient_prior_sd"}]
     folded = ([("specification", _render_any(pr["spec"], 2))] if pr.get("spec") is not None else []) + rest
     return _kv(pairs, raw=True) + ("<details class=\"prior-spec\"><summary>The prior as read from its file</summary>"
                                    + _kv(folded, raw=True) + "</details>" if folded else "")
@@ -1601,8 +1623,15 @@ def _section_other(doc: Mapping[str, Any]) -> str:
 def _section_cautions(doc: Mapping[str, Any], gaps: Mapping[str, Any] | None, net: Network | None = None) -> str:
     items = [c for c in REPORT_CAUTIONS if c != LATENT_CAUTION or net is None or net.latent_names]
     if doc.get("objective") == "map":
-        items.insert(3, "This is a MAP fit: the prior's pseudo-counts pull the estimates towards the prior, most "
-                        "where a parent configuration has few records.")
+        pr = doc.get("prior") if isinstance(doc.get("prior"), Mapping) else {}
+        only_normal = bool(pr.get("coefficient_prior_sd")) and not any(
+            (v or 0) > 0 for v in (pr.get("total_pseudo_counts") or {}).values())
+        items.insert(3, ("This is a MAP fit." if only_normal else
+                         "This is a MAP fit: the prior's pseudo-counts pull the estimates towards the prior, most "
+                         "where a parent configuration has few records.")
+                     + (" A normal prior pulls logistic coefficients towards 0 (no effect), most where a parent "
+                        "state has few records; the error bars include its curvature."
+                        if isinstance(doc.get("prior"), Mapping) and doc["prior"].get("coefficient_prior_sd") else ""))
     if not doc.get("converged"):
         items.insert(0, "The fit did NOT meet its stopping rule: the CPTs may not be at a maximum.")
     return _sec("cautions", "<ul>" + "".join(f"<li>{esc(t)}</li>" for t in items) + "</ul>")

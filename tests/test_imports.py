@@ -134,14 +134,34 @@ def test_the_cache_can_still_be_switched_off(tmp_path):
 
 
 def _package_imports() -> dict[str, set[str]]:
-    """adfit module -> the adfit modules it imports, at its top or inside functions (ast)."""
+    """adfit module -> the adfit modules it imports, at its top or inside functions (ast).
+
+    Modules of a subpackage are named with dots (``likelihood.plan``; its ``__init__`` is
+    ``likelihood``). Inside a subpackage an import names the submodule it reads; from outside,
+    importing any part of a subpackage runs its ``__init__``, so the edge goes to the package."""
     graph = {}
-    for path in PACKAGE.glob("*.py"):
+    for path in sorted(PACKAGE.rglob("*.py")):
+        parts = path.relative_to(PACKAGE).with_suffix("").parts
+        name = ".".join(parts[:-1] if parts[-1] == "__init__" else parts)
+        if not name:
+            continue
+        here = parts[:-1]  # the package the module is in, relative to adfit
         deps = set()
         for node in ast.walk(ast.parse(path.read_text())):
-            if isinstance(node, ast.ImportFrom) and node.level == 1:
-                deps.update([node.module.split(".")[0]] if node.module else [a.name for a in node.names])
-        graph[path.stem] = deps
+            if not (isinstance(node, ast.ImportFrom) and node.level >= 1):
+                continue
+            base = here[:len(here) - (node.level - 1)] if node.level > 1 else here
+            targets = [(*base, *node.module.split("."))] if node.module else [(*base, a.name) for a in node.names]
+            for t in targets:
+                if t and t[0] != (here[:1] or ("",))[0]:
+                    t = t[:1]  # from outside a subpackage: its __init__ runs
+                mod = ".".join(t)
+                while mod and not ((PACKAGE / mod.replace(".", "/")).with_suffix(".py").exists()
+                                   or (PACKAGE / mod.replace(".", "/") / "__init__.py").exists()):
+                    mod = mod.rpartition(".")[0]  # "from .x import name": the module x
+                if mod and mod != name:
+                    deps.add(mod)
+        graph[name] = deps
     return graph
 
 
@@ -167,6 +187,9 @@ def test_no_import_circles_between_modules():
     assert "fit" not in graph["restarts"] | graph["minibatch"]
     # the EM reference (with its structured M-steps) shares nothing with the JAX core
     core = {"_jax", "likelihood", "params", "fit", "restarts", "minibatch", "uncertainty", "crosscheck"}
+    core |= {m for m in graph if m.startswith("likelihood.")}
+    assert {"likelihood", "likelihood.plan", "likelihood.api"} <= set(graph)  # the subpackage is seen
+    assert "likelihood.plan" in graph["likelihood.api"] and "likelihood" in graph["fit"]
     for mod in ("em", "emforms"):
         reach, todo = set(), [mod]
         while todo:
@@ -175,3 +198,41 @@ def test_no_import_circles_between_modules():
                     reach.add(dep)
                     todo.append(dep)
         assert not reach & core, (mod, reach & core)
+
+
+def test_every_name_taken_from_the_likelihood_package_is_there():
+    """adfit/likelihood/ was one module: every name that a module, test, benchmark or example
+    imports from ``adfit.likelihood`` (``from adfit.likelihood import x``, ``from .likelihood
+    import x``) is an attribute of the package."""
+    import adfit.likelihood as lk
+    wanted = set()
+    for folder in ("adfit", "tests", "benchmarks", "examples"):
+        for path in sorted((ROOT / folder).rglob("*.py")):
+            for node in ast.walk(ast.parse(path.read_text())):
+                if isinstance(node, ast.ImportFrom) and (node.module or "").split(".")[-1] == "likelihood" \
+                        and (node.level == 1 or node.module == "adfit.likelihood"):
+                    wanted.update((a.name, path.name) for a in node.names)
+    assert {("Likelihood", "fit.py"), ("_group_plan", "minibatch.py")} <= wanted  # the scan sees imports
+    missing = sorted((name, where) for name, where in wanted if not hasattr(lk, name))
+    assert missing == []
+
+
+def test_a_name_set_on_the_likelihood_package_reaches_every_file_that_reads_it(monkeypatch):
+    """Tests and benchmarks set tunables and wrap functions on the package (as on the former single
+    module); each file of the core holds its own binding, and every one of them must follow."""
+    import adfit.likelihood as lk
+    from adfit.likelihood import api, plan, posteriors, settings, sharding
+    real = lk.build_plan
+    monkeypatch.setattr(lk, "SUM_BARREN_LEAVES", False)
+    monkeypatch.setattr(lk, "SHARD_MIN_S", 123.0)
+
+    def fake(*a, **k):
+        raise AssertionError("not called")
+    monkeypatch.setattr(lk, "build_plan", fake)
+    assert plan.SUM_BARREN_LEAVES is False and settings.SUM_BARREN_LEAVES is False
+    assert sharding.SHARD_MIN_S == 123.0 and lk.SHARD_MIN_S == 123.0
+    assert plan.build_plan is fake and api.build_plan is fake and posteriors.build_plan is fake
+    monkeypatch.undo()
+    assert plan.SUM_BARREN_LEAVES is True and settings.SUM_BARREN_LEAVES is True and lk.SUM_BARREN_LEAVES is True
+    assert api.build_plan is real and posteriors.build_plan is real and lk.build_plan is real
+    assert sharding.SHARD_MIN_S == settings.SHARD_MIN_S != 123.0
