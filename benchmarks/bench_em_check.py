@@ -80,6 +80,10 @@ def workload(name: str, n_rows: int):
         return net, coded(net, mask_mcar(net, x, 0.2, seed=3))
     if name == "lcm":
         return latent_class_workload(n_rows)
+    if name == "net37":  # no latent node: workloads.local_network(37), 20 % MCAR (as bench_em_vs_lbfgs)
+        net = local_network(37, seed=0)
+        x = sample(net, random_cpts(net, seed=1), n_rows, seed=2)
+        return net, coded(net, mask_mcar(net, x, 0.2, seed=3))
     raise SystemExit(f"unknown workload {name!r}")
 
 
@@ -136,12 +140,7 @@ def estep_only(names, n_rows: int) -> None:
           "E-step before | E-step after | ratio | max rel. count difference | load |")
     print("|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---|")
     for name in names:
-        if name == "net37":
-            net = local_network(37, seed=0)
-            x = sample(net, random_cpts(net, seed=1), n_rows, seed=2)
-            data = coded(net, mask_mcar(net, x, 0.2, seed=3))
-        else:
-            net, data = workload(name, n_rows)
+        net, data = workload(name, n_rows)
         p = em.random_start(net, 0)
         load0 = os.getloadavg()[0]
         got = {}
@@ -202,21 +201,21 @@ def main(argv=None):
         out = {}
         for label, enum_max, acc in versions:
             _log(f"{name}: EM check, {label}")
-            out[label] = run_check(net, data, res, lik, enum_max=enum_max, accelerate=acc, max_iter=args.max_iter)
-            c = out[label]["check"]
-            _log(f"{name}: {label}: {out[label]['wall']:.1f} s, verdict {c['verdict']}")
-        load1 = os.getloadavg()
-        print(f"# {name}: {len(net)} nodes, {data.n_rows:.0f} records, {data.n_distinct} distinct; load average "
-              f"(1, 5, 15 min) {load0[0]:.2f} {load0[1]:.2f} {load0[2]:.2f} -> {load1[0]:.2f} {load1[1]:.2f} "
-              f"{load1[2]:.2f}; fit {fit_s:.1f} s (plan {plan_s:.1f} s, beforehand), converged {res.converged}")
-        for label, r in out.items():
+            r = out[label] = run_check(net, data, res, lik, enum_max=enum_max, accelerate=acc, max_iter=args.max_iter)
             c = r["check"]
             a, b = c["em_from_fit"], c["em_own_start"]
+            load1 = os.getloadavg()
             rows.append(f"| {name} | {label} | {fit_s:.1f} s | **{r['wall']:.1f} s** | {r['wall'] / fit_s:.2f} | "
                         f"{r['estep'] * 1e3:.1f} ms | {r['calls']} | {r['estep_total']:.1f} s | "
                         f"{a['iterations']} ({'yes' if a['converged'] else 'no'}) | "
                         f"{b['iterations']} ({'yes' if b['converged'] else 'no'}) | {c['verdict']} | "
-                        f"{b['objective_value'] - c['fit']['objective_value']:+.2e} |")
+                        f"{b['objective_value'] - c['fit']['objective_value']:+.2e} | "
+                        f"{load0[0]:.2f} → {load1[0]:.2f} |")
+            print("#", rows[-1], flush=True)  # as soon as it is known (the table follows at the end)
+            _log(f"{name}: {label}: {r['wall']:.1f} s, verdict {c['verdict']}")
+        print(f"# {name}: {len(net)} nodes, {data.n_rows:.0f} records, {data.n_distinct} distinct; load average "
+              f"(1, 5, 15 min) {load0[0]:.2f} {load0[1]:.2f} {load0[2]:.2f} -> {load1[0]:.2f} {load1[1]:.2f} "
+              f"{load1[2]:.2f}; fit {fit_s:.1f} s (plan {plan_s:.1f} s, beforehand), converged {res.converged}")
         if len(out) == 2:
             e0, e1 = out["before"]["estep"], out["after"]["estep"]
             print(f"# {name}: E-step before / after {e0 / e1:.1f}x; check before / after "
@@ -226,8 +225,8 @@ def main(argv=None):
     print()
     print("| workload | version | fit | EM check | check / fit | one E-step | E-steps | in E-steps | "
           "EM from the fit: iterations (converged) | EM own start: iterations (converged) | verdict | "
-          "own start − fit objective |")
-    print("|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---|---:|")
+          "own start − fit objective | load (1 min) |")
+    print("|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---|---:|---|")
     for r in rows:
         print(r)
 
