@@ -469,11 +469,6 @@ class Fitter:
         refusal = network.unsupported_structure(SUPPORTED_STRUCTURE, what="the gradient fit")
         if refusal is not None:
             raise NetworkError(refusal)
-        for name in network.estimated_names:
-            if _forms.is_logistic(network, name) and network.node(name).impossible:
-                raise NetworkError(f"nodes.{name}.impossible: the gradient fit does not estimate impossible cells on a "
-                                   f"logistic node yet (its softmax would need the cells masked and its coefficients "
-                                   f"read around them); the EM reference does (adfit em), or use cpd = 'table'")
         self.network = network
         self.data = data
         self.settings = settings
