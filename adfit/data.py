@@ -39,7 +39,7 @@ import pandas as pd
 
 from .errors import DataError, did_you_mean, option
 from .network import Network
-from .rowkeys import KeyLayout, PackedRows, reduce_words
+from .rowkeys import KeyLayout, PackedRows, code_dtype, reduce_words
 
 HIDDEN = -1
 #: Most records a data set may count in all (its weights added up): 2**53, beyond which float64
@@ -59,7 +59,9 @@ class CodedData:
     """Distinct coded rows with their counts.
 
     Attributes:
-        codes: int32 array ``(n_distinct, n_nodes)``, network node order, ``-1`` = hidden.
+        codes: integer array ``(n_distinct, n_nodes)``, network node order, ``-1`` = hidden. Read
+            and validated data hold the network's :func:`codes_dtype` (int8 up to 127 states,
+            int16 beyond); any signed integer type is accepted, so widen before arithmetic.
         counts: float64 array ``(n_distinct,)`` of positive (possibly fractional) weights.
         inverse: for each input row, the index of its distinct row (None when the input was
             streamed or pre-aggregated without keeping row order).
@@ -89,6 +91,12 @@ class CodedData:
         """Rows with every non-latent cell observed."""
         obs = [network.index(n) for n in network.observed_names]
         return self.subset(np.all(self.codes[:, obs] != HIDDEN, axis=1))
+
+
+def codes_dtype(network: Network) -> np.dtype:
+    """The integer type of ``network``'s coded data (:func:`adfit.rowkeys.code_dtype` of its
+    numbers of states): int8 up to 127 states per node, int16 up to 32 767, else int32."""
+    return code_dtype(network.cards)
 
 
 # ------------------------------------------------------------------ reduction
@@ -267,14 +275,14 @@ class LabelCoder:
                     f"node {name!r} has the state {clash[0]!r}, which is also a missing-value marker; "
                     f"choose the markers with {option('missing')} (for example {option('missing', '?', many=True)}) so that it is read as a state")
             self._lookup[name] = {s: i for i, s in enumerate(node.states)}
-        # dtype of the codes that code() returns: room for UNKNOWN (-2) .. the largest state index
-        cards = [network.node(n).card for n in network.observed_names]
-        self.dtype = np.dtype(np.int8) if max(cards, default=1) <= 126 else np.dtype(np.int32)
+        # dtype of the codes that code() returns (UNKNOWN, -2, .. the largest state index): the
+        # network's code dtype, so that coded columns go into the code matrix without a cast
+        self.dtype = codes_dtype(network)
 
     def code(self, name: str, values: Any) -> np.ndarray:
         """Codes of one column: state index, HIDDEN for a gap, UNKNOWN for a foreign label.
 
-        The dtype is :attr:`dtype` (int8 unless a node has more than 125 states).
+        The dtype is :attr:`dtype` (:func:`codes_dtype`: int8 unless a node has more than 127 states).
         """
         return self.prepare(name, values).codes()
 
@@ -466,7 +474,7 @@ def code_columns(network: Network, coder: LabelCoder, get: Callable[[str], Any],
     """Code the columns of one table (or chunk) of ``n`` rows; ``get(name)`` returns a column.
 
     Returns ``(rows, weights)`` with one entry per record (weights None without a count column):
-    ``rows`` is the int32 code matrix ``(n, n_nodes)``, or with ``packed=True`` the rows packed
+    ``rows`` is the code matrix ``(n, n_nodes)`` (:func:`codes_dtype`), or with ``packed=True`` the rows packed
     into int64 words (:class:`~adfit.rowkeys.PackedRows`; no code matrix is built: less memory),
     written into ``out`` (an int64 ``(k, n)`` array or view) when given.
     Raises DataError for the earliest row holding an unknown label or an invalid count (within a
@@ -491,7 +499,7 @@ def code_columns(network: Network, coder: LabelCoder, get: Callable[[str], Any],
     first.raise_if_any()
     if packed:
         return key_layout(tuple(network.cards)).pack_prepared(columns, n, out=out), weights
-    rows = np.full((n, len(network)), HIDDEN, dtype=np.int32)
+    rows = np.full((n, len(network)), HIDDEN, dtype=codes_dtype(network))
     for j, c in enumerate(columns):
         if c is not None:
             rows[:, j] = c.codes()
@@ -983,8 +991,9 @@ def validate_coded(network: Network, data: CodedData) -> CodedData:
     check_total_count(counts, src)
     if not _codes_in_range(network, codes):
         _raise_first_bad_code(network, codes, src)  # a column-by-column search, to name the first bad cell
-    if codes.dtype != np.int32 or counts.dtype != np.float64:
-        return CodedData(codes.astype(np.int32), counts.astype(np.float64), data.inverse, data.source)
+    dtype = codes_dtype(network)  # the codes are in range, so the cast to the narrower type is exact
+    if codes.dtype != dtype or counts.dtype != np.float64:
+        return CodedData(codes.astype(dtype), counts.astype(np.float64), data.inverse, data.source)
     return data
 
 

@@ -37,7 +37,7 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 import pandas as pd
 
-from .data import (HIDDEN, UNKNOWN, CodedData, LabelCoder, _count_problem, _csv_error, check_columns, check_total_count, code_columns,
+from .data import (HIDDEN, UNKNOWN, CodedData, LabelCoder, _count_problem, _csv_error, _release_arrow_memory, check_columns, check_total_count, code_columns,
                    check_parquet_types, common_columns, csv_header, csv_leading_empty_lines, encode_frame, first_error, iter_csv_batches, iter_parquet_batches,
                    key_layout, load_files, locator, parquet_names, resolve_inputs)
 from .rowkeys import PackedRows, reduce_words
@@ -151,7 +151,8 @@ class Accumulator:
         self.words, self.counts, _ = reduce_words(words, self.layout.spans, counts, inverse=False, runs=True)
 
     def result(self) -> tuple[np.ndarray, np.ndarray]:
-        """``(distinct code rows int32, counts)`` in lexicographic order."""
+        """``(distinct code rows, counts)`` in lexicographic order (codes of the layout's
+        :attr:`~adfit.rowkeys.KeyLayout.code_dtype`)."""
         self._merge()
         return self.layout.unpack(self.words), self.counts
 
@@ -395,7 +396,7 @@ def reduce_duckdb(plan: ReadPlan, *, memory_limit: str | None = None, threads: i
             kinds = {c: _SQL_KIND.get(t) for c, t in zip(names, types)}
             if any(k is None for k in kinds.values()):
                 return _reduce_duckdb_raw(plan, sql, src, where, cols)
-            words, weights = _duckdb_groups(plan, sql, src, where, cols, kinds)
+            words, weights = _duckdb_groups(plan, sql, src, where, cols, kinds, release=con.close)
         finally:
             con.close()  # DuckDB's memory goes before adfit sorts the groups
     finally:
@@ -412,9 +413,14 @@ def reduce_duckdb(plan: ReadPlan, *, memory_limit: str | None = None, threads: i
 
 
 def _duckdb_groups(plan: ReadPlan, sql, src: str, where: str, cols: dict[str, str],
-                   kinds: dict[str, str]) -> tuple[np.ndarray, np.ndarray]:
+                   kinds: dict[str, str], release=lambda: None) -> tuple[np.ndarray, np.ndarray]:
     """The groups of rows by their words: ``(words (k, m), weights (m,))`` (sorted when
-    :data:`DUCKDB_ORDER`); raises DataError naming the earliest bad cell."""
+    :data:`DUCKDB_ORDER`); raises DataError naming the earliest bad cell.
+
+    ``release`` (closing the connection) is called once the groups are fetched and checked:
+    DuckDB's memory (its hash tables and sorted runs, about half a GB on 10 M distinct rows) is
+    gone before the groups are copied out of the Arrow table, and each word's column is dropped
+    from the table once copied (measured in docs/performance.md, "Lean codes")."""
     net = plan.network
     layout = key_layout(tuple(net.cards))
     names = list(kinds)
@@ -447,21 +453,27 @@ def _duckdb_groups(plan: ReadPlan, sql, src: str, where: str, cols: dict[str, st
                                                if v is not None}, True)
         if suspects:
             break
-    weights = table.column("n").to_numpy().astype(np.float64)
+    w = None
     if plan.count_column is not None:
         w, bad, _ = _count_problem(table.column("k"))
         if bad is not None:
             suspects.append(plan.count_column)
-        weights = weights * w
     if suspects:
         _first_bad(plan, [c for c in plan.read if c in suspects])  # raises with the earliest bad cell
         raise DataError(f"{plan.source}: column(s) {suspects} hold values that cannot be read; check them")
+    release()
+    weights = table.column("n").to_numpy().astype(np.float64)
+    if w is not None:
+        weights = weights * w
+    table = table.drop_columns([c for c in ("n", "k") if c in table.column_names])
     words = np.empty((layout.k, table.num_rows), dtype=np.int64)
     for i in range(layout.k):
         offset = 0
         for chunk in table.column(f"w{i}").chunks:  # one copy, chunk by chunk
             words[i, offset:offset + len(chunk)] = chunk.to_numpy()
             offset += len(chunk)
+        table = table.drop_columns([f"w{i}"])  # its buffers go as soon as they are copied
+    _release_arrow_memory()
     return words, weights
 
 

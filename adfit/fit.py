@@ -457,7 +457,8 @@ class Fitter:
         self.saddle_check = True
         # a saddle needs hidden cells: with every cell observed the log-likelihood is concave in
         # the logits (a sum of linear terms minus log-sum-exps)
-        self.has_hidden = bool(np.any(np.asarray(data.codes) < 0))
+        codes = np.asarray(data.codes)  # (a reduction: no boolean matrix of the size of the codes)
+        self.has_hidden = bool(codes.size) and int(codes.min()) < 0
         with np.errstate(divide="ignore"):
             self.fixed_lc = {n: jnp.asarray(np.log(network.fixed_table(n))) for n in network.fixed_names}
         # the optimiser's flat vectors (FreeLayout): pseudo-counts and the fixed nodes' log-tables
@@ -1030,7 +1031,7 @@ def complete_family_counts(network: Network, data: CodedData, names: Iterable[st
             stride = 1
             for u, card in zip(reversed(fam), reversed(shape)):
                 bad |= hid[u]
-                idx += stride * cT[u]
+                idx += np.multiply(cT[u], stride, dtype=np.intp)  # widened: the codes may be int8
                 stride *= card
             ok = ~bad
             if ok.all():

@@ -74,14 +74,23 @@ def _block_size(n_rows: int) -> int:
 
 
 def _blocks(codes: np.ndarray, block: int):
-    """Yield ``(start, padded block of codes, n_real)``; padding rows are all hidden (P = 1)."""
+    """Yield ``(start, padded block of codes, n_real)``; padding rows are all hidden (P = 1). The
+    blocks are int32 (the posterior program computes flat table indices from the codes); the
+    whole matrix stays in its own (small) type."""
     n, m = codes.shape
     for start in range(0, n, block):
-        part = codes[start:start + block]
+        part = np.ascontiguousarray(codes[start:start + block], dtype=np.int32)
         k = part.shape[0]
         if k < block:
             part = np.concatenate([part, np.full((block - k, m), HIDDEN, dtype=np.int32)])
         yield start, part, k
+
+
+def _as_codes(codes: np.ndarray) -> np.ndarray:
+    """A code matrix as it is when its type is a signed integer (no copy of a large matrix),
+    else as int32 (lists, unsigned or other integer input)."""
+    codes = np.asarray(codes)
+    return codes if codes.dtype.kind == "i" else codes.astype(np.int32)
 
 
 def row_posteriors(network: Network, probs: Mapping[str, np.ndarray], codes: np.ndarray, *,
@@ -104,7 +113,7 @@ def row_posteriors(network: Network, probs: Mapping[str, np.ndarray], codes: np.
     """
     from .likelihood import posterior_marginals
 
-    codes = np.ascontiguousarray(codes, dtype=np.int32)
+    codes = _as_codes(codes)
     n = codes.shape[0]
     block = _block_size(n) if block is None else int(block)
     ll = np.empty(n)
@@ -159,7 +168,7 @@ def draw_hidden(network: Network, probs: Mapping[str, np.ndarray], codes: np.nda
     """
     if draws < 1:
         raise OptionError(f"the number of draws must be at least 1, got {draws}")
-    codes = np.ascontiguousarray(codes, dtype=np.int32)
+    codes = _as_codes(codes)
     names = list(network.names if nodes is None else nodes)
     idx = sorted(network.index(v) for v in names)
     rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
@@ -169,7 +178,7 @@ def draw_hidden(network: Network, probs: Mapping[str, np.ndarray], codes: np.nda
     block = _block_size(total) if block is None else int(block)
     per = max(1, block // draws)  # records per block
     for start in range(0, n, per):
-        work = np.repeat(codes[start:start + per], draws, axis=0)
+        work = np.repeat(codes[start:start + per], draws, axis=0).astype(np.int32)
         for j in idx:
             hid = work[:, j] == HIDDEN
             if hid.any():
@@ -277,8 +286,8 @@ def impute(network: Network, probs: Mapping[str, np.ndarray], data: CodedData, *
         raise OptionError(f"--draws must be 0 or more, got {draws}")
     sel = default_nodes(network, data) if nodes is None else _check_nodes(network, nodes)
     inv = np.asarray(data.inverse, dtype=np.int64)
-    codes = np.asarray(data.codes, dtype=np.int32)
-    rec_codes = codes[inv]
+    codes = _as_codes(data.codes)
+    rec_codes = codes[inv]  # one row per record, in the codes' own (small) type
     need = np.zeros(0, dtype=np.int64)
     if draws:
         cols = [network.index(v) for v in sel]
@@ -308,7 +317,7 @@ def impute(network: Network, probs: Mapping[str, np.ndarray], data: CodedData, *
     drawn: dict[str, np.ndarray] = {}
     if draws:
         for v in sel:
-            drawn[v] = np.repeat(rec_codes[:, network.index(v)][:, None], draws, axis=1)
+            drawn[v] = np.repeat(rec_codes[:, network.index(v)][:, None].astype(np.int32), draws, axis=1)
         if need.size:
             d = draw_hidden(network, probs, rec_codes[need], draws, seed=seed, nodes=sel, block=block)
             for v in sel:

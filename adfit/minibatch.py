@@ -73,7 +73,7 @@ def run_minibatch(fitter, logits0: Mapping[str, np.ndarray], *, batch_size: int,
     n_total = jnp.asarray(N)
     for it in range(1, max_iter + 1):
         idx = rng.choice(len(p), size=batch_size, p=p)
-        codes = data.codes[idx]
+        codes = data.codes[idx].astype(np.int32)  # the program computes flat indices from the codes: int32, not the data's int8
         w = np.full(batch_size, N / batch_size)
         if B > batch_size:  # pad to whole chunks with weight 0
             codes = np.concatenate([codes, np.full((B - batch_size, codes.shape[1]), HIDDEN, np.int32)])

@@ -39,6 +39,19 @@ _UNPACK_BLOCK = 1 << 12  # rows per block when unpacking
 _SAMPLE = 4096           # rows sampled to choose between hashing and sorting
 
 
+def code_dtype(cards: Sequence[int]) -> np.dtype:
+    """The smallest signed integer type that holds the codes of nodes of ``cards``: ``-1`` (hidden),
+    ``-2`` (a foreign label, while coding), the states ``0 .. card - 1`` and ``card`` itself (the
+    likelihood plan's code of a summed barren leaf). int8 up to 127 states, int16 up to 32 767,
+    else int32. Arithmetic on codes (strides, packed keys, flat indices) must widen them first."""
+    top = max((int(c) for c in cards), default=1)
+    if top <= np.iinfo(np.int8).max:
+        return np.dtype(np.int8)
+    if top <= np.iinfo(np.int16).max:
+        return np.dtype(np.int16)
+    return np.dtype(np.int32)
+
+
 class PackedRows(NamedTuple):
     """Coded rows packed into words: ``words`` is int64 ``(k, n)`` (one contiguous row per word)."""
 
@@ -72,7 +85,7 @@ class KeyLayout:
             self.word[a:b] = w
             for j in range(b - 2, a - 1, -1):
                 self.mult[j] = self.mult[j + 1] * self.bases[j + 1]
-        self.code_dtype = np.dtype(np.int8) if max(self.bases, default=1) <= 127 else np.dtype(np.int32)
+        self.code_dtype = code_dtype(cards)
         self._tables: list[tuple[int, int, int, int, np.ndarray]] | None = None
 
     @property
@@ -171,14 +184,15 @@ class KeyLayout:
         return self._tables
 
     def unpack(self, words: np.ndarray) -> np.ndarray:
-        """int32 codes ``(n, n_nodes)`` of words ``(k, n)`` (inverse of :meth:`pack`).
+        """Codes ``(n, n_nodes)`` of words ``(k, n)`` (inverse of :meth:`pack`), of dtype
+        :attr:`code_dtype` (:func:`code_dtype`: int8 up to 127 states).
 
         Block by block: each group's digit picks its cells from a small table into a block of
-        small-integer codes, and the block is copied (widened to int32) into the result.
+        codes, and the block is copied into the result.
         """
         words = np.asarray(words, dtype=np.int64)
         n = words.shape[1]
-        out = np.empty((n, len(self.bases)), dtype=np.int32)
+        out = np.empty((n, len(self.bases)), dtype=self.code_dtype)
         if n == 0 or not self.bases:
             return out
         tables = self._digit_tables()

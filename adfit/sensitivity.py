@@ -188,8 +188,9 @@ def augment_network(network: Network, shifts: Sequence[Shift], predictors: Seque
 
 def augment_data(network: Network, coded: CodedData, shifts: Sequence[Shift]) -> CodedData:
     """The records with the indicators' columns (always observed: 1 where the node's cell is missing)."""
-    cols = [(coded.codes[:, network.index(s.node)] == HIDDEN).astype(np.int32) for s in shifts]
-    codes = np.concatenate([coded.codes, np.stack(cols, axis=1)], axis=1).astype(np.int32)
+    dtype = coded.codes.dtype if coded.codes.dtype.kind == "i" else np.dtype(np.int32)  # the data's own (small) type
+    cols = [(coded.codes[:, network.index(s.node)] == HIDDEN).astype(dtype) for s in shifts]
+    codes = np.concatenate([coded.codes.astype(dtype, copy=False), np.stack(cols, axis=1)], axis=1)
     return CodedData(codes, coded.counts, None, coded.source)
 
 

@@ -100,7 +100,7 @@ def test_penguins_csv_equals_parquet_equals_frame(tmp_path, penguins):
         np.testing.assert_array_equal(a.codes, x.codes)
         np.testing.assert_array_equal(a.counts, x.counts)
         np.testing.assert_array_equal(a.inverse, x.inverse)
-    assert a.codes.dtype == np.int32 and a.counts.dtype == np.float64
+    assert a.codes.dtype == np.int8 and a.counts.dtype == np.float64
 
 
 def test_pre_aggregated_penguins_equal_raw(penguins):
@@ -393,7 +393,7 @@ def test_files_with_different_headers(tmp_path):
 def test_coded_data_is_validated():
     good = CodedData(np.array([[0, 1, -1, 2]], np.int64), np.array([3]), None, "<coded>")
     cd = load_data(NET, good)
-    assert cd.codes.dtype == np.int32 and cd.counts.dtype == np.float64
+    assert cd.codes.dtype == np.int8 and cd.counts.dtype == np.float64
     bad = [
         (CodedData(np.zeros((1, 3), np.int32), np.ones(1)), "shape"),
         (CodedData(np.array([[0, 3, -1, 0]], np.int32), np.ones(1)), "node 'wear': code 3"),
@@ -462,7 +462,7 @@ def test_ready_made_codes_are_checked_blockwise_and_the_first_bad_cell_is_named(
                              "b": {"states": ["u", "v"], "parents": ["a", "h"]}})
     monkeypatch.setattr(data_mod, "VALIDATE_BLOCK", 3 * 7)  # blocks of 7 rows: bad cells in later blocks too
     rng = np.random.default_rng(0)
-    good = np.stack([rng.integers(-1, 3, 50), np.full(50, HIDDEN), rng.integers(-1, 2, 50)], axis=1).astype(np.int32)
+    good = np.stack([rng.integers(-1, 3, 50), np.full(50, HIDDEN), rng.integers(-1, 2, 50)], axis=1).astype(np.int8)  # the network's code type: no copy
     assert load_data(net, CodedData(good, np.ones(50))).codes is good
     for j, row, code in [(0, 31, 3), (2, 44, -2), (2, 7, 2), (0, 49, -5)]:
         bad = good.copy()

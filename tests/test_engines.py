@@ -64,7 +64,7 @@ def one_line(e) -> str:
 def same(a, b):
     np.testing.assert_array_equal(a.codes, b.codes)
     np.testing.assert_array_equal(a.counts, b.counts)
-    assert a.codes.dtype == b.codes.dtype == np.int32 and a.counts.dtype == b.counts.dtype == np.float64
+    assert a.codes.dtype == b.codes.dtype == np.int8 and a.counts.dtype == b.counts.dtype == np.float64
 
 
 @pytest.fixture(scope="module")
@@ -416,7 +416,7 @@ def test_keys_wider_than_63_bits_every_engine_matches_numpy_unique(wide_files, c
     ref_rows, ref_inv, ref_counts = np.unique(x, axis=0, return_inverse=True, return_counts=True)
     np.testing.assert_array_equal(got.codes, ref_rows)
     np.testing.assert_array_equal(got.counts, ref_counts.astype(float))
-    assert got.codes.dtype == np.int32 and got.n_rows == len(x) and got.n_distinct < len(x)
+    assert got.codes.dtype == np.int8 and got.n_rows == len(x) and got.n_distinct < len(x)
     if engine == "pandas":
         np.testing.assert_array_equal(got.inverse, ref_inv.reshape(-1))
     else:

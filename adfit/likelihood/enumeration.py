@@ -30,7 +30,7 @@ def _enum_tables(network: Network, typ: _Type, bcodes: np.ndarray, layout) -> np
             if u in hpos:
                 asg[:, j] += strides[v][u] * digits[:, hpos[u]]
             else:
-                obs[:, j] += strides[v][u] * bcodes[:, bpos[u]]
+                obs[:, j] += np.multiply(bcodes[:, bpos[u]], strides[v][u], dtype=np.int64)
     return obs[:, None, :] + asg[None, :, :]
 
 

@@ -274,6 +274,8 @@ def _expand(arr: jax.Array, scope: Sequence[int], union: Sequence[int], cards: S
 def _group_rows_loglik(gp: GroupPlan, cards: tuple[int, ...], logcpts: Sequence[jax.Array],
                        codes: jax.Array, indicators: Mapping[int, jax.Array] | None = None) -> jax.Array:
     """Per-row log-likelihood of one chunk of one group: shape (rows,)."""
+    if codes.dtype.itemsize < 4:  # flat indices from int8/int16 codes would wrap (JAX keeps their type)
+        codes = codes.astype(jnp.int32)
     rows = codes.shape[0]
     total = jnp.zeros(rows, dtype=jnp.float64)
     for node, fam in gp.log_terms:

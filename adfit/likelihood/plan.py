@@ -11,7 +11,7 @@ from typing import Sequence
 
 import numpy as np
 
-from ..data import CodedData, HIDDEN
+from ..data import CodedData, HIDDEN, codes_dtype
 from ..errors import OptionError
 from ..network import Network
 from .barren import _summed_leaves, _widen_segments, _widened_network
@@ -29,6 +29,17 @@ from .tape import (_choose_width, _compile_program, _pack, _pow2_clip, _split_cl
 
 
 # --------------------------------------------------------------------------- choosing the route
+def _plan_codes(network: Network, codes) -> np.ndarray:
+    """The data's codes as the plan reads them: in their own signed type when it holds every
+    code of ``network`` and the SUMMED code (``card``) of a barren leaf (no copy of a large
+    matrix: read data are int8 up to 127 states), else in the network's code type or wider.
+    Every index computed from them (strides, flat offsets) is widened to int64 first."""
+    codes = np.asarray(codes)
+    need = codes_dtype(network)
+    dtype = np.promote_types(codes.dtype, need) if codes.dtype.kind == "i" else np.dtype(np.int32)
+    return np.ascontiguousarray(codes, dtype=dtype)
+
+
 def build_plan(network: Network, data: CodedData, *, route: str = "auto",
                min_pattern_rows: int | None = None, max_pattern_groups: int | None = None,
                chunk: int | None = None, for_posteriors: bool = False) -> Plan:
@@ -51,7 +62,7 @@ def build_plan(network: Network, data: CodedData, *, route: str = "auto",
         raise OptionError(f"route must be 'auto', 'uniform' or 'pattern', got {route!r}")
     min_pattern_rows = MIN_PATTERN_ROWS if min_pattern_rows is None else int(min_pattern_rows)
     max_pattern_groups = MAX_PATTERN_GROUPS if max_pattern_groups is None else int(max_pattern_groups)
-    codes = np.ascontiguousarray(data.codes, dtype=np.int32)
+    codes = _plan_codes(network, data.codes)
     counts = np.asarray(data.counts, dtype=np.float64)
     n = len(network)
     R = len(codes)
@@ -212,7 +223,7 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
                 iv = idx[v]
                 np.add(cbT[v], offsets[v], out=iv, dtype=np.int64)  # the node's own stride is 1
                 for u in fam[:-1]:
-                    iv += strides[v][u] * cbT[u]
+                    iv += np.multiply(cbT[u], strides[v][u], dtype=np.int64)  # widened: int8 codes
                 bad = not_local
                 for u in fam:
                     if h_any[u]:
@@ -337,5 +348,5 @@ def _posterior_plan(network: Network, codes: np.ndarray, counts: np.ndarray, chu
     pad = n_chunks * c - len(rows)
     idx = np.concatenate([rows, np.full(pad, rows[0] if len(rows) else 0, dtype=rows.dtype)])
     w = np.concatenate([counts, np.zeros(pad)])
-    return Plan(network, (gp,), (codes[idx].reshape(n_chunks, c, n),), (w.reshape(n_chunks, c),), len(codes),
+    return Plan(network, (gp,), (codes[idx].astype(np.int32).reshape(n_chunks, c, n),), (w.reshape(n_chunks, c),), len(codes),
                 rows=(rows,))

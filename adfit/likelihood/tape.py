@@ -256,10 +256,10 @@ def _bases(network: Network, gp: GroupPlan, codes: np.ndarray, layout) -> np.nda
     out = np.zeros((len(codes), len(gp.factors) + len(gp.log_terms)), np.int64)
     for fid, f in enumerate(gp.factors):
         for u in f.obs:
-            out[:, fid] += strides[f.node][u] * codes[:, u]
+            out[:, fid] += np.multiply(codes[:, u], strides[f.node][u], dtype=np.int64)
     for j, (node, fam) in enumerate(gp.log_terms):
         for u in fam:
-            out[:, len(gp.factors) + j] += strides[node][u] * codes[:, u]
+            out[:, len(gp.factors) + j] += np.multiply(codes[:, u], strides[node][u], dtype=np.int64)
     return out
 
 
