@@ -14,7 +14,8 @@ trees built the same plan, so every number computed from it is the same.
   big37   37-node random network, 10 000 000 rows with gaps in 5 columns missing at random
           (the chance of a gap depends on an always-observed column), kept as rows with count
           1, as ``bench_scale.py parquet-fit`` does (its fit is mostly this plan). The codes are
-          written once into --data-dir (1.5 GB) and memory-mapped by every process.
+          written once into --data-dir (int32, 1.5 GB) and read by every process in the
+          network's own code type (int8 here, where the tree has one).
 
 The data are seeded random networks and CPTs (benchmarks/workloads.py): they measure speed,
 not accuracy.
@@ -110,8 +111,12 @@ def child(what: str, arg: str) -> None:
     else:
         from adfit.data import CodedData
         net = local_network(37, seed=0)
-        codes = np.load(arg, mmap_mode="r")
-        codes = np.array(codes)  # in memory, as after reading a file
+        try:  # the network's small integer type, as read and validated data hold it
+            from adfit.data import codes_dtype
+            dtype = codes_dtype(net)
+        except ImportError:  # a tree from before lean codes: int32
+            dtype = np.int32
+        codes = np.array(np.load(arg, mmap_mode="r"), dtype=dtype)  # in memory, as after reading a file
         data = CodedData(codes, np.ones(len(codes)), None, arg)
     from adfit.likelihood import build_plan
     t, c = time.perf_counter(), time.process_time()
