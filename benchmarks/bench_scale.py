@@ -211,12 +211,17 @@ def child_parquet_fit_only(path: str, net_path: str) -> None:
     net = network_from_dict(json.loads(open(net_path).read()))
     spent = _timed_phases(fit_module)
     pf = pq.ParquetFile(path)
-    codes = np.empty((pf.metadata.num_rows, len(net)), np.int32)
+    try:  # the network's code type (int8 here); int32 for a checkout from before lean codes
+        from adfit.data import codes_dtype
+        dtype = codes_dtype(net)
+    except ImportError:
+        dtype = np.dtype(np.int32)
+    codes = np.empty((pf.metadata.num_rows, len(net)), dtype)
     r = 0
     for b in pf.iter_batches(batch_size=1_000_000):
         for j, name in enumerate(net.names):
             col = b.column(name)
-            codes[r:r + len(b), j] = np.asarray(col.fill_null(-1).to_numpy(zero_copy_only=False), dtype=np.int32)
+            codes[r:r + len(b), j] = np.asarray(col.fill_null(-1).to_numpy(zero_copy_only=False), dtype=dtype)
         r += len(b)
     data = CodedData(codes, np.ones(len(codes)), None, path)
     rss_data = peak_rss_gb()
@@ -224,7 +229,7 @@ def child_parquet_fit_only(path: str, net_path: str) -> None:
     t1 = time.perf_counter()
     res = fit(net, data, warn=False, progress=lambda k, it, o, g: marks.append(time.perf_counter() - t1))
     t_fit = time.perf_counter() - t1
-    print(json.dumps({"rows": len(codes), "rss_data_gb": rss_data, "fit_s": t_fit, "iterations": res.iterations,
+    print(json.dumps({"rows": len(codes), "codes_dtype": str(codes.dtype), "rss_data_gb": rss_data, "fit_s": t_fit, "iterations": res.iterations,
                       "converged": res.converged, "log_likelihood": res.log_likelihood,
                       "phases": _phase_fields(spent, t_fit, marks[0] if marks else None),
                       "peak_rss_gb": peak_rss_gb(), "load": load()}))
@@ -344,7 +349,7 @@ def main() -> None:
         r = run_child(["parquet-fit", path, net_path])
         print(f"\n== the fit alone on {args.rows_parquet:,} rows (read into codes without reduction, count 1 each): "
               f"{r['fit_s']:.1f} s, {r['iterations']} iterations, converged={r['converged']}, log-likelihood "
-              f"{r['log_likelihood']:.6f}; peak RSS {r['peak_rss_gb']:.2f} GB (the codes alone {r['rss_data_gb']:.2f} GB)  "
+              f"{r['log_likelihood']:.6f}; peak RSS {r['peak_rss_gb']:.2f} GB (the {r.get('codes_dtype', 'int32')} codes alone {r['rss_data_gb']:.2f} GB)  "
               f"(load {r['load']})")
         _print_phases(r["phases"])
 
