@@ -259,7 +259,7 @@ def em_command(
     count_column: CountOpt = None,
     ignore_columns: IgnoreOpt = None,
     prior: Annotated[Optional[Path], typer.Option(
-        "--prior", help="Prior file (TOML, Dirichlet pseudo-counts): EM then finds the MAP estimate.",
+        "--prior", help="Prior file (TOML: Dirichlet pseudo-counts; coefficient_sd on logistic nodes): EM then finds the MAP estimate.",
         parser=InputFile("prior file"))] = None,
     init: Annotated[Optional[Path], typer.Option(
         "--init", help="Start from the CPTs of a result file (default: a seeded random start).",
@@ -353,7 +353,7 @@ def fit_command(
     batch_size: Annotated[Optional[int], typer.Option(
         "--batch-size", rich_help_panel=OPT_PANEL, help="With --method adam: distinct rows sampled per step (very large data).")] = None,
     prior: Annotated[Optional[Path], typer.Option(
-        "--prior", help="Prior file (TOML): Dirichlet pseudo-counts, BDeu equivalent sample size or expert tables; gives MAP estimates.",
+        "--prior", help="Prior file (TOML): Dirichlet pseudo-counts, BDeu equivalent sample size or expert tables; a normal prior (coefficient_sd) on logistic coefficients; gives MAP estimates.",
         parser=InputFile("prior file"))] = None,
     l2: Annotated[float, typer.Option("--l2", help="L2 penalty lambda on the logits (row mean removed).")] = 0.0,
     missing: MissingOpt = None,

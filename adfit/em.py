@@ -495,13 +495,28 @@ def _check_pseudo(network: Network, pseudo_counts: Mapping[str, Any] | None) -> 
         node = network.node(network.tie_source(name))
         # a noisy node's pseudo-counts are on its cause distributions: one row per cause (the
         # leak, then each parent's non-first states in order)
+        # (a logistic node's: the precisions 1/sd² of a normal prior on its coefficients, one row for
+        # the intercepts and one per parent's non-first state, the same rows)
         shape = ((1 + sum(network.node(p).card - 1 for p in node.parents), node.card)
-                 if form in ("noisy_or", "noisy_max") else network.cpt_shape(name))
+                 if form in ("noisy_or", "noisy_max", "logistic") else network.cpt_shape(name))
+        if form == "logistic" and a.shape == network.cpt_shape(name) and not np.any(a):
+            continue  # no prior, in the CPT's shape
+        if a.shape != shape and form == "logistic":
+            raise PriorError(f"the prior of the logistic node {name!r} has shape {a.shape}; it takes the precisions "
+                             f"1/sd^2 of a normal prior on its coefficients, shape {shape} (the intercept row, then "
+                             f"each parent's non-first states; adfit.priors.Prior.pseudo_counts gives them)")
         if a.shape != shape:
             raise PriorError(f"pseudo-counts of node {name!r} have shape {a.shape}, expected {shape}")
         if not np.all(np.isfinite(a)) or np.any(a < 0):
             raise PriorError(f"pseudo-counts of node {name!r} must be finite and >= 0 (Dirichlet alpha = c + 1 >= 1)")
         if form in ("noisy_or", "noisy_max"):
+            if np.any(a != 0):
+                out[name] = a
+            continue
+        if form == "logistic":
+            if np.any(a[:, 0] != 0):
+                raise PriorError(f"prior of the logistic node {name!r}: the first (reference) state's column of "
+                                 f"its precisions must be 0 (its coefficients are 0 by definition)")
             if np.any(a != 0):
                 out[name] = a
             continue
@@ -522,11 +537,18 @@ def _log_prior(network: Network, probs: Mapping[str, np.ndarray], prior: Mapping
     if not prior:
         return 0.0
     total = 0.0
-    noisy = {}
+    noisy, logistic = {}, {}
     for g in groups or ():
         if g.noisy:
             noisy.update({m: g for m in g.members})
+        elif g.kind == "logistic":
+            logistic.update({m: g for m in g.members})
     for name, c in prior.items():
+        if name in logistic:  # a normal prior on the coefficients (counted once, on the source)
+            g = logistic[name]
+            if name == g.source:
+                total += _forms.log_prior_logistic(g, params[g.source], c)
+            continue
         if name in noisy:  # Dirichlet on the cause distributions (counted once, on the source)
             g = noisy[name]
             if name == g.source:
@@ -743,7 +765,7 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
             new = _mstep(network, counts, probs, prior)
         else:
             params = {g.source: _forms.mstep(g, _forms.pooled(g, counts), params[g.source],
-                                             _forms.pooled(g, prior) if g.kind != "logistic" else None)
+                                             _forms._pooled_prior(g, prior))
                       for g in groups}
             new = _implied_probs(network, groups, params)
         steps.append(math.sqrt(sum(float(np.sum((new[m] - probs[m]) ** 2)) for m in network.free_names)))

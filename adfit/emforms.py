@@ -259,16 +259,30 @@ def _logistic_grad_hess(X: np.ndarray, p: np.ndarray, N: np.ndarray) -> tuple[np
     return Gr[:, 1:], H
 
 
-def _newton(g: Group, B: np.ndarray, N: np.ndarray, steps: int, gtol: float) -> np.ndarray:
-    """Newton steps on ``Σ N log softmax(X B)`` from ``B``, each halved until the objective rises."""
+def _ridge(B: np.ndarray, prec: np.ndarray | None) -> float:
+    """``−½ Σ prec · B²``: the log-density of independent normals N(0, 1/prec) on the
+    coefficients, up to its constant (``prec`` (D, K), 0 where there is no prior)."""
+    return 0.0 if prec is None else -0.5 * float(np.sum(prec * B * B))
+
+
+def _newton(g: Group, B: np.ndarray, N: np.ndarray, steps: int, gtol: float,
+            prec: np.ndarray | None = None) -> np.ndarray:
+    """Newton steps on ``Σ N log softmax(X B) − ½ Σ prec·B²`` from ``B`` (``prec``: the
+    precisions 1/sd² of a normal prior on the coefficients, or None), each halved until the
+    objective rises (a GEM step on the MAP objective)."""
     X = g.design()
     mask = _mask2(g)
     N = np.asarray(N, dtype=np.float64).reshape(g.n_rows, g.card)
     B = np.array(B, dtype=np.float64)
+    if prec is not None:
+        prec = np.asarray(prec, dtype=np.float64).reshape(B.shape)
     logp, p = _masked_softmax(X @ B, mask)
-    q = float(_wsum(N, logp))
+    q = float(_wsum(N, logp)) + _ridge(B, prec)
     for _ in range(steps):
         grad, negH = _logistic_grad_hess(X, p, N)
+        if prec is not None:  # the prior's gradient −prec·B and curvature diag(prec)
+            grad = grad - prec[:, 1:] * B[:, 1:]
+            negH = negH + np.diag(prec[:, 1:].ravel())
         if not np.max(np.abs(grad), initial=0.0) > gtol:
             break
         d = np.linalg.lstsq(negH, grad.ravel(), rcond=None)[0].reshape(grad.shape)
@@ -279,7 +293,7 @@ def _newton(g: Group, B: np.ndarray, N: np.ndarray, steps: int, gtol: float) -> 
             Bn = B.copy()
             Bn[:, 1:] += t * d
             lpn, pn = _masked_softmax(X @ Bn, mask)
-            qn = float(_wsum(N, lpn))
+            qn = float(_wsum(N, lpn)) + _ridge(Bn, prec)
             if qn >= q:
                 B, logp, p, moved = Bn, lpn, pn, qn > q
                 q = qn
@@ -293,7 +307,9 @@ def _newton(g: Group, B: np.ndarray, N: np.ndarray, steps: int, gtol: float) -> 
 # =============================================================================== M-step, residual
 def mstep(g: Group, counts: np.ndarray, par: Any, prior: np.ndarray | None = None) -> Any:
     """New parameters of group ``g`` from its pooled expected counts (and pooled pseudo-counts of
-    a table form). A row, cause distribution or coefficient the counts do not reach keeps its value."""
+    a table or noisy form; for a logistic form ``prior`` holds the precisions 1/sd² of a normal
+    prior on its coefficients, shaped like ``B``). A row, cause distribution or coefficient the
+    counts do not reach keeps its value (without a prior)."""
     if g.kind == "table":
         num = counts + (prior if prior is not None else 0.0)
         if g.mask is not None:
@@ -310,7 +326,8 @@ def mstep(g: Group, counts: np.ndarray, par: Any, prior: np.ndarray | None = Non
             c[0, 0] = 1.0
             causes.append(c)
         return {"leak": leak, "causes": causes}
-    return _newton(g, par, counts, NEWTON_STEPS, 1e-12 * max(1.0, float(np.sum(counts))))
+    return _newton(g, par, counts, NEWTON_STEPS, 1e-12 * max(1.0, float(np.sum(counts))),
+                   None if prior is None or not np.any(prior) else prior)
 
 
 def _with_prior(g: Group, leak_m: np.ndarray, cause_m: Sequence[np.ndarray], prior: np.ndarray | None):
@@ -346,8 +363,8 @@ def residual(g: Group, counts: np.ndarray, par: Any, prior: np.ndarray | None = 
     """The gradient of the log-likelihood (plus log-prior) in the group's own coordinates, records:
     per table row (or cause distribution) ``N + c − θ Σ(N + c)`` (the logit gradient; for the noisy
     forms that of the augmented network's cause CPTs, by Fisher's identity the gradient of the
-    marginal likelihood); for the logistic form ``X'(N̂ − N̂(u) π)`` in the non-reference
-    coefficients. Flat array."""
+    marginal likelihood); for the logistic form ``X'(N̂ − N̂(u) π) − prec·B`` in the
+    non-reference coefficients (``prior``: the precisions of a normal prior, or None). Flat array."""
     if g.kind == "table":
         num = counts + (prior if prior is not None else 0.0)
         if g.mask is not None:
@@ -363,6 +380,9 @@ def residual(g: Group, counts: np.ndarray, par: Any, prior: np.ndarray | None = 
     X = g.design()
     _, p = _masked_softmax(X @ par, _mask2(g))
     grad, _ = _logistic_grad_hess(X, p, np.asarray(counts, dtype=np.float64).reshape(g.n_rows, g.card))
+    if prior is not None and np.any(prior):  # a normal prior on the coefficients: −prec·B
+        prec = np.asarray(prior, dtype=np.float64).reshape(np.shape(par))
+        grad = grad - prec[:, 1:] * np.asarray(par)[:, 1:]
     return grad.ravel()
 
 
@@ -378,9 +398,15 @@ def gradient_norm(network: Network, counts: Mapping[str, np.ndarray], params: Ma
 
 
 def _pooled_prior(g: Group, pseudo_counts: Mapping[str, np.ndarray] | None) -> np.ndarray | None:
-    if g.kind not in ("table", "noisy_or", "noisy_max"):
-        return None
+    if g.kind == "logistic":  # the precisions of its coefficients: on the source only (a tie shares them)
+        return None if pseudo_counts is None or g.source not in pseudo_counts else \
+            np.asarray(pseudo_counts[g.source], dtype=np.float64)
     return pooled(g, pseudo_counts)
+
+
+def log_prior_logistic(g: Group, B: np.ndarray, prior: np.ndarray | None) -> float:
+    """``−½ Σ prec · β²`` over a logistic group's coefficients ``B`` (``prior``: the precisions)."""
+    return _ridge(np.asarray(B, dtype=np.float64), None if prior is None else np.asarray(prior, dtype=np.float64))
 
 
 def uninformed_rows(g: Group, counts: np.ndarray) -> list[int]:

@@ -45,7 +45,7 @@ from .likelihood import (Likelihood, _prepared, check_possible,
                          logits_from_probs, probs_from_logits)
 from .network import Network
 from . import forms as _forms
-from .params import (FreeLayout, block_shape, estimated_starts, fixed_log_tables, free_layout, full_logits, full_probs, mask_pseudo,
+from .params import (FreeLayout, block_shape, coefficient_log_prior, coefficient_log_prior_grad, estimated_starts, fixed_log_tables, free_layout, full_logits, full_probs, mask_pseudo,
                      objective_fg as _objective_fg, pool_counts)
 from .priors import describe_rows, prior_only_rows, resolve_pseudo_counts
 from .result import FitResult
@@ -141,10 +141,14 @@ def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) ->
         if _forms.has_rows(network, name):
             shape = block_shape(network, name)
             if c is not None and np.any(np.asarray(c, dtype=np.float64) > 0):
-                if _forms.is_logistic(network, name):
-                    raise PriorError(f"node {name!r} has cpd = 'logistic': priors on its coefficients are not "
-                                     f"available yet; fit it without a prior on {name!r}")
                 c = np.asarray(c, dtype=np.float64)
+                if _forms.is_logistic(network, name):  # precisions 1/sd² of a normal prior on the coefficients
+                    if c.shape != shape or not np.all(np.isfinite(c)) or np.any(c < 0) or np.any(c[:, 0] != 0):
+                        raise PriorError(f"node {name!r} (logistic): the prior's precisions 1/sd^2 must be finite, "
+                                         f">= 0, shaped {shape} (rows: {', '.join(_forms.cause_row_labels(network, name))}) "
+                                         f"with 0 in the first (reference) state's column")
+                    out[name] = c
+                    continue
                 if c.shape != shape:  # Dirichlet pseudo-counts on the cause rows (adfit.priors)
                     raise PriorError(f"node {name!r} ({network.cpd_form(name)}): pseudo-counts have shape {c.shape}, "
                                      f"expected {shape} (one row per cause: "
@@ -157,9 +161,31 @@ def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) ->
     return mask_pseudo(network, out)
 
 
-def log_prior_value(probs: Mapping[str, np.ndarray], pseudo: Mapping[str, np.ndarray]) -> float:
-    """Σ c·log θ with 0·log 0 = 0."""
+def dirichlet_part(network: Network, pseudo: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """The prior arrays with a logistic node's (the precisions of its coefficients) set to 0:
+    what enters wherever pseudo-counts act as imagined records (EM steps, row weights)."""
+    return {k: (np.zeros_like(v) if _forms.is_logistic(network, k) else v) for k, v in pseudo.items()}
+
+
+def coefficient_prior_value(network: Network, logits: Mapping[str, Any], pseudo: Mapping[str, np.ndarray]) -> float:
+    """``−½ Σ (β/sd)²`` over the logistic nodes (``pseudo``'s entries there are the precisions
+    ``1/sd²``; ``β`` their coefficients read off the logits of their parameter rows)."""
     tot = 0.0
+    for name in network.estimated_names:
+        if _forms.is_logistic(network, name) and name in pseudo and np.any(pseudo[name] > 0):
+            tot += float(coefficient_log_prior(np.asarray(logits[name], dtype=np.float64), pseudo[name]))
+    return tot
+
+
+def log_prior_value(probs: Mapping[str, np.ndarray], pseudo: Mapping[str, np.ndarray],
+                    network: Network | None = None, logits: Mapping[str, Any] | None = None) -> float:
+    """Σ c·log θ with 0·log 0 = 0, plus (with ``network`` and ``logits``) the normal prior
+    ``−½ Σ (β/sd)²`` of the logistic nodes (:func:`coefficient_prior_value`)."""
+    tot = 0.0
+    if network is not None:
+        if logits is not None:
+            tot += coefficient_prior_value(network, logits, pseudo)
+        pseudo = dirichlet_part(network, pseudo)
     for name, c in pseudo.items():
         th = np.asarray(probs[name])
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -191,9 +217,12 @@ def objective_gradient(network: Network, probs: Mapping[str, np.ndarray], counts
     tied nodes, :func:`adfit.params.pool_counts`)."""
     g = {}
     for name in network.estimated_names:
-        n_xu = counts[name] + pseudo[name]
+        logistic = _forms.is_logistic(network, name)
+        n_xu = counts[name] + (0.0 if logistic else pseudo[name])
         th = np.asarray(probs[name])
         gi = n_xu - th * n_xu.sum(axis=-1, keepdims=True)
+        if logistic and logits is not None and np.any(pseudo[name] > 0):  # the normal prior on the coefficients
+            gi = gi + coefficient_log_prior_grad(np.asarray(logits[name], dtype=np.float64), pseudo[name])
         if l2 and logits is not None:
             e = np.asarray(logits[name], dtype=np.float64)
             if network.node(name).impossible:
@@ -440,6 +469,11 @@ class Fitter:
         refusal = network.unsupported_structure(SUPPORTED_STRUCTURE, what="the gradient fit")
         if refusal is not None:
             raise NetworkError(refusal)
+        for name in network.estimated_names:
+            if _forms.is_logistic(network, name) and network.node(name).impossible:
+                raise NetworkError(f"nodes.{name}.impossible: the gradient fit does not estimate impossible cells on a "
+                                   f"logistic node yet (its softmax would need the cells masked and its coefficients "
+                                   f"read around them); the EM reference does (adfit em), or use cpd = 'table'")
         self.network = network
         self.data = data
         self.settings = settings
@@ -527,7 +561,7 @@ class Fitter:
                 denom = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
             r = np.abs(g[name]) / np.maximum(denom, 1.0)
             resid = max(resid, float(r.max(initial=0.0)))
-        lp = log_prior_value(probs, self.pseudo)
+        lp = log_prior_value(probs, self.pseudo, self.network, logits)
         pen = penalty_value(logits, self.settings.l2, self.network)
         kkt = self.kkt(probs, counts) if self.settings.l2 == 0 else None
         return {"probs": probs, "log_likelihood": ll, "log_prior": lp, "penalty": pen,
@@ -582,7 +616,11 @@ class Fitter:
         1/sqrt(their complete-data information + ε)."""
         out = self._scale(ev["counts"], ev["probs"])
         for name, (info, _) in (ev.get("logistic_weights") or {}).items():
-            out[name] = 1.0 / np.sqrt(info + SCALE_EPS)
+            # the normal prior's curvature 1/sd² adds to each coefficient's information (the
+            # reference column's logit carries the sum of its row's)
+            prec = self.pseudo[name]
+            prior_info = prec + np.where(np.arange(prec.shape[-1]) == 0, prec.sum(axis=-1, keepdims=True), 0.0)
+            out[name] = 1.0 / np.sqrt(info + prior_info + SCALE_EPS)
         return out
 
     def _scale(self, counts: Mapping[str, np.ndarray], probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
@@ -595,7 +633,8 @@ class Fitter:
         """
         out = {}
         for name in self.free:
-            nu = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
+            c = 0.0 if name in self.logistic else self.pseudo[name].sum(axis=-1, keepdims=True)
+            nu = counts[name].sum(axis=-1, keepdims=True) + c
             out[name] = 1.0 / np.sqrt(nu * np.asarray(probs[name]) + SCALE_EPS)
         return out
 

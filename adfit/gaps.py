@@ -719,7 +719,8 @@ class InformationCriteria:
                f"k = {self.n_parameters} free parameters, fixed CPTs excluded; "
                f"n = {_fmt_n(self.n_effective)} records with at least one observed cell)")
         if self.objective == "map":
-            txt += "; the fit is MAP, so log L is taken at the posterior mode, not at the maximum"
+            txt += ("; the fit is MAP, so log L is taken at the posterior mode, not at the maximum (and k counts "
+                    "every free parameter, those a prior shrinks too)")
         return txt
 
 

@@ -589,6 +589,19 @@ def parse_assignments(items: Sequence[str], *, option: str = "--given") -> dict[
     return out
 
 
+def check_node_state(network: Network, node: str, state: str, where: str) -> None:
+    """One ``NODE=STATE`` pair of an option (``where``, e.g. ``"--given wear=heavy"``): the node is
+    in the network and has that state; otherwise a one-line OptionError with a did-you-mean
+    suggestion and the choices (the check every NODE=STATE option shares)."""
+    if node not in network:
+        raise OptionError(f"{where}: {node!r} is not a node of the network; "
+                          f"{did_you_mean(node, network.names)}the nodes are: {', '.join(network.names)}")
+    states = network.node(node).states
+    if state not in states:
+        raise OptionError(f"{where}: node {node!r} has no state {state!r}; "
+                          f"{did_you_mean(state, states)}its states are: {', '.join(states)}")
+
+
 def query(network: Network, probs: Mapping[str, np.ndarray], given: Mapping[str, str] | None = None,
           targets: Sequence[str] | None = None, *, soft: Mapping[str, Mapping[str, float]] | None = None
           ) -> QueryResult:
@@ -609,15 +622,8 @@ def query(network: Network, probs: Mapping[str, np.ndarray], given: Mapping[str,
     check_soft(network, given, soft)
     codes = np.full((1, len(network)), HIDDEN, dtype=np.int32)
     for node, state in given.items():
-        where = spelled(f"--given {node}={state}", f"given={{{node!r}: {state!r}}}")
-        if node not in network:
-            raise OptionError(f"{where}: {node!r} is not a node of the network; "
-                              f"{did_you_mean(node, network.names)}the nodes are: {', '.join(network.names)}")
-        states = network.node(node).states
-        if state not in states:
-            raise OptionError(f"{where}: node {node!r} has no state {state!r}; "
-                              f"{did_you_mean(state, states)}its states are: {', '.join(states)}")
-        codes[0, network.index(node)] = states.index(state)
+        check_node_state(network, node, state, spelled(f"--given {node}={state}", f"given={{{node!r}: {state!r}}}"))
+        codes[0, network.index(node)] = network.node(node).states.index(state)
     if targets is None or len(targets) == 0:
         tg = [v for v in network.names if v not in given and v not in soft]
         if not tg:

@@ -34,8 +34,9 @@ def check_memory(what: str, nbytes: float, fix: str, *, available: int | None = 
 
 
 def minibatch_bytes(batch_size: int, n_nodes: int) -> float:
-    """One minibatch: the sampled indices (int64), the gathered codes (int32 per node, twice:
-    gathered and padded) and the weights (float64, twice)."""
+    """One minibatch: the sampled indices (int64), the gathered codes (8 bytes per node: the
+    data's int8 gathered and padded, then int32 for the program) and the weights (float64,
+    twice)."""
     return float(batch_size) * (8 + 8 * n_nodes + 16)
 
 
@@ -82,13 +83,16 @@ def check_folds(folds: int, n_records: float, n_distinct: int) -> None:
 
 def impute_bytes(n_records: float, n_columns: int, network, nodes=None) -> float:
     """The per-record arrays of an imputation held at once (adfit/impute.py): the records'
-    codes (int32 per node) and their index (int64); per chosen node its posterior (float64 per
+    codes (the network's code type per node: int8 up to 127 states) and their index (int64);
+    per chosen node its posterior (float64 per
     state), mode and hidden flag; the added columns (float64 per state, a pointer per mode, the
     log-probability), twice (the added table and the output table they are joined into); the
     input columns, a pointer or an offset per cell, twice (read, and in the output table).
     ``nodes``: the chosen nodes (default: every node)."""
+    from .rowkeys import code_dtype
+
     cards = [network.node(v).card for v in (nodes or network.names)]
-    per_record = (4 * len(network) + 8 + 8
+    per_record = (code_dtype(network.cards).itemsize * len(network) + 8 + 8
                   + sum(8 * c + 4 + 1 for c in cards)
                   + 2 * (sum(8 * c + 8 for c in cards) + 8)
                   + 2 * 8 * n_columns)

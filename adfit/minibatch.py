@@ -73,12 +73,13 @@ def run_minibatch(fitter, logits0: Mapping[str, np.ndarray], *, batch_size: int,
     n_total = jnp.asarray(N)
     for it in range(1, max_iter + 1):
         idx = rng.choice(len(p), size=batch_size, p=p)
-        codes = data.codes[idx].astype(np.int32)  # the program computes flat indices from the codes: int32, not the data's int8
+        codes = data.codes[idx]
         w = np.full(batch_size, N / batch_size)
         if B > batch_size:  # pad to whole chunks with weight 0
-            codes = np.concatenate([codes, np.full((B - batch_size, codes.shape[1]), HIDDEN, np.int32)])
+            codes = np.concatenate([codes, np.full((B - batch_size, codes.shape[1]), HIDDEN, codes.dtype)])
             w = np.concatenate([w, np.zeros(B - batch_size)])
-        c = jnp.asarray(codes.reshape(n_chunks, gp.chunk, -1))
+        # int32 for the program, which computes flat indices from the codes (int8 would wrap)
+        c = jnp.asarray(codes.reshape(n_chunks, gp.chunk, -1).astype(np.int32))
         ww = jnp.asarray(w.reshape(n_chunks, gp.chunk))
         f, g = _objective_fg(network, groups, z, ones, pseudo, fitter.fixed_flat, l2, n_total, (c,), (ww,))
         updates, state = opt.update(g, state, z)

@@ -566,8 +566,11 @@ def _check_structure(net: Network, source: str) -> None:
             raise NetworkError(f"{key}.cpd = 'noisy_or' needs a two-state node (first state absent, second present); "
                                f"{n.name!r} has {n.card} states: use 'noisy_max' for ordered states")
         if n.cpd in ("noisy_or", "noisy_max") and n.impossible:
-            raise NetworkError(f"{key}.impossible is not available with cpd = {n.cpd!r} (its cells follow from "
-                               f"the strengths); use cpd = 'table' or 'logistic'")
+            raise NetworkError(f"{key}.impossible is not available with cpd = {n.cpd!r}: every cell of its table is a "
+                               f"product of the leak's and the active parents' cumulative terms, so a cell at 0 forces "
+                               f"a leak or strength to 0 or 1, which sets cells of other parent configurations to 0 "
+                               f"too (and at a configuration with several active parents it is not one condition on "
+                               f"the parameters); use cpd = 'table' for cells that are impossible one by one")
         if n.increasing_with:
             if n.cpd not in ("table", "logistic"):
                 raise NetworkError(f"{key}.increasing_with is available with cpd = 'table' or 'logistic' only")

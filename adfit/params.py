@@ -91,6 +91,9 @@ class FreeLayout:
     n_fixed: int = 0         # entries of the fixed nodes' log-tables (the implied ones follow them)
     network: Any = None      # the network (the implied tables need it)
     struct_sel: Any = None   # entries of the likelihood's layout taken from the implied log-tables
+    coef: tuple = ()         # (vector offset, row-block shape) per logistic node: its prior entries are
+                             # the precisions 1/sd² of a normal prior on its coefficients, not pseudo-counts
+    coef_mask: Any = None    # True at the vector entries of logistic nodes (None when there are none)
 
     def flatten(self, tree: Mapping[str, Any]) -> np.ndarray:
         """One float64 vector from CPT-shaped arrays of the free nodes (a new array)."""
@@ -174,10 +177,35 @@ def _make_free_layout(network: Network) -> FreeLayout:
         mask = np.concatenate([np.zeros(math.prod(sh)) if _forms.has_rows(network, n) else
                                np.where(network.impossible_mask(n).ravel(), -np.inf, 0.0)
                                for n, sh in zip(names, shapes)])
+    coef = tuple((o, sh) for n, sh, o in zip(names, shapes, offsets) if _forms.is_logistic(network, n))
+    coef_mask = None
+    if coef:
+        coef_mask = np.zeros(P, dtype=bool)
+        for o, sh in coef:
+            coef_mask[o:o + math.prod(sh)] = True
     return FreeLayout(names, tuple(shapes), tuple(offsets), P, n_flat, tuple(rows), inverse, full_index,
                       None if inverse is None else perm.astype(np.int32), free_index, tied, mask, tuple(noisy),
                       n_fixed, network,
-                      None if not noisy else np.flatnonzero(full_index >= P + n_fixed).astype(np.int32))
+                      None if not noisy else np.flatnonzero(full_index >= P + n_fixed).astype(np.int32),
+                      coef, coef_mask)
+
+
+def coefficient_log_prior(eta, precisions, xp=np):
+    """``−½ Σ prec · β²`` of one logistic node from the logits ``eta`` of its parameter rows
+    (rows, card): the coefficients are ``β = eta − eta[:, :1]`` (log-odds against the first child
+    state; the logits are defined up to a shift per row, which cancels), ``precisions`` the
+    prior's ``1/sd²`` per cell (0: no prior; the reference column is 0). Works on numpy (``xp=np``)
+    and JAX (``xp=jnp``) arrays."""
+    b = eta - eta[:, :1]
+    return -0.5 * xp.sum(precisions * b * b)
+
+
+def coefficient_log_prior_grad(eta: np.ndarray, precisions: np.ndarray) -> np.ndarray:
+    """∂/∂eta of :func:`coefficient_log_prior`: ``−prec·β`` in the non-reference cells and
+    ``+Σ_k prec_k β_k`` in the reference column (rows, card)."""
+    g = -precisions * (eta - eta[:, :1])
+    g[:, 0] = -g[:, 1:].sum(axis=1)
+    return g
 
 
 def pool_counts(network: Network, counts: Mapping[str, np.ndarray],
@@ -293,7 +321,14 @@ def head(network: Network, z, scale, pseudo, fixed_flat, l2):
     lc = parts[0] if len(parts) == 1 else jnp.concatenate(parts)
     if lay.inverse is not None:
         lc = lc[lay.inverse]
+    if lay.coef:  # logistic nodes: a normal prior on the coefficients (their entries are precisions)
+        lp_coef = sum(coefficient_log_prior(eta[o:o + math.prod(sh)].reshape(sh),
+                                            pseudo[o:o + math.prod(sh)].reshape(sh), jnp) for o, sh in lay.coef)
+        pseudo = jnp.where(jnp.asarray(lay.coef_mask), 0.0, pseudo)
+    else:
+        lp_coef = 0.0
     lp = jnp.sum(pseudo * lc) if lay.mask is None else jnp.sum(jnp.where(lay.mask == 0, pseudo * lc, 0.0))
+    lp = lp + lp_coef
     if lay.full_index is None:
         return lc, lp - l2 * pen
     src = [lc, fixed_flat] + [_forms.implied_log_table(network, name, lc[o:o + math.prod(sh)].reshape(sh)).reshape(-1)
@@ -338,22 +373,33 @@ def head_np(lay: FreeLayout, z: np.ndarray, scale: np.ndarray, pseudo: np.ndarra
     lc = parts[0] if len(parts) == 1 else (np.concatenate(parts) if parts else np.zeros(0))
     if lay.inverse is not None:
         lc = lc[lay.inverse]
+    lp_coef = 0.0
+    if lay.coef:  # logistic nodes: a normal prior on the coefficients (their entries are precisions)
+        lp_coef = sum(float(coefficient_log_prior(eta[o:o + math.prod(sh)].reshape(sh),
+                                                  pseudo[o:o + math.prod(sh)].reshape(sh))) for o, sh in lay.coef)
+        pseudo = np.where(lay.coef_mask, 0.0, pseudo)
     with np.errstate(invalid="ignore"):
         lp = float(np.dot(pseudo, lc)) if lay.mask is None else float(np.dot(np.where(lay.mask == 0, pseudo, 0.0),
                                                                             np.where(lay.mask == 0, lc, 0.0)))
+    lp += lp_coef
     if lay.full_index is None:
-        return lc, lp - l2 * pen, (blocks, lc)
+        return lc, lp - l2 * pen, (blocks, lc, eta)
     src = [lc, fixed_flat] + [np.asarray(_implied_log_table(lay.network, name, lc[o:o + math.prod(sh)].reshape(sh))).ravel()
                               for name, o, sh, _ in lay.implied]
-    return np.concatenate(src)[lay.full_index], lp - l2 * pen, (blocks, lc)
+    return np.concatenate(src)[lay.full_index], lp - l2 * pen, (blocks, lc, eta)
 
 
 def head_grad_np(lay: FreeLayout, blocks, scale: np.ndarray, pseudo: np.ndarray, l2: float, counts: np.ndarray,
                   n_total: float) -> np.ndarray:
     """:func:`_head_grad` in closed form (numpy): with ``a = N(x,u) + c`` per CPT entry, the
     gradient of F w.r.t. the logits is ``a − θ Σ_x a − 2λ(η − mean η)`` per row (Fisher's
-    identity, the prior, the penalty); times ``scale`` and ``−1/N``."""
-    blocks, lc = blocks
+    identity, the prior, the penalty); a logistic node's rows take no pseudo-counts but the
+    gradient of the normal prior on their coefficients (:func:`coefficient_log_prior_grad`);
+    times ``scale`` and ``−1/N``."""
+    blocks, lc, eta = blocks
+    prec = None
+    if lay.coef:
+        prec, pseudo = pseudo, np.where(lay.coef_mask, 0.0, pseudo)
     if lay.tied:  # the transpose of the gather: tied families' counts added to their source's
         sel = lay.free_index
         c = np.bincount(lay.full_index[sel], weights=counts[sel], minlength=lay.size)
@@ -382,6 +428,11 @@ def head_grad_np(lay: FreeLayout, blocks, scale: np.ndarray, pseudo: np.ndarray,
     g = out[0] if len(out) == 1 else np.concatenate(out)
     if lay.inverse is not None:
         g = g[lay.inverse]
+    if prec is not None:
+        g = g.copy()
+        for o, sh in lay.coef:
+            n = math.prod(sh)
+            g[o:o + n] += coefficient_log_prior_grad(eta[o:o + n].reshape(sh), prec[o:o + n].reshape(sh)).ravel()
     return -(g * scale) / n_total
 
 

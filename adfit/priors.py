@@ -47,12 +47,20 @@ from .network import SUM_TOL, Network
 #: (adfit.data.MAX_TOTAL_COUNT; IEEE 754 binary64 counts whole numbers exactly up to there).
 MAX_TOTAL_PSEUDO_COUNT = 2.0 ** 53
 KINDS = ("pseudo_counts", "equivalent_sample_size", "alpha", "table")
-_DEFAULT_KEYS = {"pseudo_counts", "equivalent_sample_size", "alpha"}
-_NODE_KEYS = {"pseudo_counts", "equivalent_sample_size", "alpha", "table", "strength"}
+#: the keys of a normal prior on the coefficients of a ``cpd = "logistic"`` node (standard deviations
+#: on the log-odds scale; see :class:`NormalSpec`)
+NORMAL_KEYS = ("coefficient_sd", "intercept_sd")
+_DEFAULT_KEYS = {"pseudo_counts", "equivalent_sample_size", "alpha", *NORMAL_KEYS}
+_NODE_KEYS = {"pseudo_counts", "equivalent_sample_size", "alpha", "table", "strength", *NORMAL_KEYS}
 _TOP_KEYS = {"default", "nodes"}
 
 OBJECTIVE_TEXT = ("log L(theta) + sum c*log(theta) - l2*sum (logit - row mean)^2; Dirichlet alpha = c + 1 "
                   "on every CPT row; the estimate is the posterior mode in probability space")
+#: the same with a normal prior on logistic coefficients
+OBJECTIVE_TEXT_NORMAL = ("log L(theta) + sum c*log(theta) - 1/2*sum (beta/sd)^2 - l2*sum (logit - row mean)^2; "
+                         "Dirichlet alpha = c + 1 on every CPT row (or cause row), a normal N(0, sd^2) on every "
+                         "non-reference coefficient beta of a logistic node; the estimate is the posterior mode "
+                         "(in probability space for the Dirichlet rows, in log-odds for the coefficients)")
 
 _ALPHA_WHY = ("adfit reports the posterior mode, and a Dirichlet with alpha < 1 has an unbounded density "
               "at the boundary, so its mode sits at theta = 0; use alpha >= 1 (pseudo_counts = alpha - 1 >= 0)")
@@ -106,6 +114,55 @@ class PriorSpec:
         return out
 
 
+@dataclass(frozen=True)
+class NormalSpec:
+    """A normal prior on the coefficients of a ``cpd = "logistic"`` node (log-odds against the
+    child's first state): every non-reference coefficient ``β`` of a parent's state gets
+    ``N(0, coefficient_sd²)`` and every non-reference intercept ``N(0, intercept_sd²)``; None: no
+    prior on that kind (the default for intercepts). The log-prior is ``−½ Σ (β/sd)²`` (its
+    normalising constant left out, as for the Dirichlet)."""
+
+    coefficient_sd: float | None = None
+    intercept_sd: float | None = None
+
+    def __post_init__(self) -> None:
+        for key in NORMAL_KEYS:
+            v = getattr(self, key)
+            if v is not None:
+                _check_sd(v, key, "<prior>")
+
+    def to_dict(self) -> dict[str, Any]:
+        return {k: getattr(self, k) for k in NORMAL_KEYS if getattr(self, k) is not None}
+
+    def precisions(self, network: Network, name: str) -> np.ndarray:
+        """``1/sd²`` per coefficient cell of the node's parameter rows (intercept row, then each
+        parent's non-first states; the first child state's column, the reference, is 0)."""
+        R, K = _logistic_shape(network, name)
+        out = np.zeros((R, K))
+        if self.intercept_sd is not None:
+            out[0, 1:] = 1.0 / self.intercept_sd ** 2
+        if self.coefficient_sd is not None:
+            out[1:, 1:] = 1.0 / self.coefficient_sd ** 2
+        return out
+
+
+def _check_sd(v: Any, key: str, where: str) -> float:
+    if not _is_number(v):
+        raise PriorError(f"{where}: {key} must be a number > 0 (a standard deviation on the log-odds scale, "
+                         f"e.g. {key} = 2.5), got {v!r}")
+    x = float(v)
+    if not math.isfinite(x) or x <= 0:
+        raise PriorError(f"{where}: {key} = {x:g}; it must be a finite number > 0 (a standard deviation on the "
+                         f"log-odds scale; leave the key out for no prior on these coefficients)")
+    return x
+
+
+def normal_spec(coefficient_sd: float | None = None, intercept_sd: float | None = None) -> NormalSpec:
+    """A normal prior on a logistic node's coefficients (standard deviations; None: none)."""
+    return NormalSpec(None if coefficient_sd is None else _check_sd(coefficient_sd, "coefficient_sd", "<prior>"),
+                      None if intercept_sd is None else _check_sd(intercept_sd, "intercept_sd", "<prior>"))
+
+
 def pseudo_counts_spec(value: float | Any) -> PriorSpec:
     """``pseudo_counts = value``: a number for every cell, or a 2-D table of per-cell counts."""
     if _is_number(value):
@@ -145,14 +202,19 @@ class Prior:
     in which case :meth:`pseudo_counts` validates it.
 
     Attributes:
-        default: the entry for every free node without its own entry (None: no prior there).
-        nodes: ``(name, entry)`` pairs; a node's entry replaces the default for that node.
+        default: the entry for every free table / noisy node without its own entry (None: no
+            prior there); it does not apply to logistic nodes (a Dirichlet is not a prior on
+            coefficients).
+        nodes: ``(name, entry)`` pairs; a node's entry replaces the default for that node. A
+            logistic node's entry is a :class:`NormalSpec`.
         source: where the prior came from (for messages and the result file).
+        normal: the default :class:`NormalSpec` of every logistic node without its own entry.
     """
 
     default: PriorSpec | None = None
-    nodes: tuple[tuple[str, PriorSpec], ...] = ()
+    nodes: tuple[tuple[str, "PriorSpec | NormalSpec"], ...] = ()
     source: str = "<prior>"
+    normal: NormalSpec | None = None   # the [default] entry's coefficient_sd / intercept_sd (logistic nodes)
 
     def __post_init__(self) -> None:
         names = [n for n, _ in self.nodes]
@@ -175,22 +237,32 @@ class Prior:
     def with_node(self, name: str, spec: PriorSpec) -> "Prior":
         """A copy with ``spec`` as the entry of ``name`` (replacing any entry it had)."""
         rest = tuple((n, s) for n, s in self.nodes if n != name)
-        return Prior(self.default, rest + ((name, spec),), self.source)
+        return Prior(self.default, rest + ((name, spec),), self.source, self.normal)
 
     @property
     def node_specs(self) -> dict[str, PriorSpec]:
         return dict(self.nodes)
 
-    def spec_for(self, name: str) -> PriorSpec | None:
+    def spec_for(self, name: str) -> "PriorSpec | NormalSpec | None":
         """The entry that applies to ``name`` (its own, else the default)."""
         return self.node_specs.get(name, self.default)
 
+    @property
+    def has_normal(self) -> bool:
+        """Whether some entry is a normal prior on logistic coefficients."""
+        return self.normal is not None or any(isinstance(s, NormalSpec) for _, s in self.nodes)
+
     def pseudo_counts(self, network: Network) -> dict[str, np.ndarray]:
-        """Pseudo-counts for every FREE node, shaped ``network.cpt_shape(name)``.
+        """The prior's array for every FREE node: Dirichlet pseudo-counts shaped like its CPT
+        (``network.cpt_shape(name)``; a noisy node: its cause rows), or for a ``cpd = "logistic"``
+        node the **precisions** ``1/sd²`` of its coefficients, shaped like its parameter rows
+        (intercept, then each parent's non-first states; :meth:`NormalSpec.precisions`), the
+        form in which the fit, the error bars and the EM reference take the prior.
 
         Zeros where no prior applies. Raises :class:`PriorError` for entries naming an unknown or
         a fixed node, wrong shapes, negative counts, rows of an expert table not summing to 1,
-        negative strength or ESS, and α < 1.
+        negative strength or ESS, α < 1, a standard deviation on a node that is not logistic, and
+        a Dirichlet entry on a logistic node.
         """
         own = self.node_specs
         for name in own:
@@ -205,10 +277,24 @@ class Prior:
                 src = network.node(name).tied_to
                 raise PriorError(f"{self.source}: [nodes.{name}]: node {name!r} is tied to {src!r} and shares its "
                                  f"parameters; give the prior as [nodes.{src}] (it applies to both)")
+            if isinstance(own[name], NormalSpec) and network.cpd_form(name) != "logistic":
+                keys = " and ".join(own[name].to_dict()) or "coefficient_sd"
+                raise PriorError(f"{self.source}: [nodes.{name}]: {keys} apply to nodes with cpd = 'logistic' only; "
+                                 f"node {name!r} has cpd = {network.cpd_form(name)!r} (give it pseudo_counts, "
+                                 f"equivalent_sample_size, alpha or table + strength instead)")
         out: dict[str, np.ndarray] = {}
         for name in network.free_names:
             if network.node(name).tied_to is not None:
                 out[name] = np.zeros(_shape(network, network.tie_source(name)))  # a tie takes its source's prior, once
+            elif network.cpd_form(name) == "logistic":
+                spec = own.get(name, self.normal)
+                if isinstance(spec, NormalSpec):
+                    out[name] = spec.precisions(network, name)
+                elif spec is not None:  # a Dirichlet entry of its own: refused (or pseudo_counts = 0: none)
+                    out[name] = _resolve(spec, network, name, f"{self.source}: [nodes.{name}]")
+                else:
+                    out[name] = np.zeros(_shape(network, name))
+                continue
             elif name in own:
                 out[name] = _resolve(own[name], network, name, f"{self.source}: [nodes.{name}]")
             elif self.default is not None:
@@ -228,8 +314,9 @@ class Prior:
     def to_dict(self) -> dict[str, Any]:
         """The prior in the file schema (``prior_from_dict(p.to_dict(), net) == p`` up to ``source``)."""
         doc: dict[str, Any] = {}
-        if self.default is not None:
-            doc["default"] = self.default.to_dict()
+        if self.default is not None or self.normal is not None:
+            doc["default"] = {**(self.default.to_dict() if self.default is not None else {}),
+                              **(self.normal.to_dict() if self.normal is not None else {})}
         if self.nodes:
             doc["nodes"] = {n: s.to_dict() for n, s in self.nodes}
         return doc
@@ -240,9 +327,21 @@ class Prior:
         Keys: ``source``, ``objective`` (the formula in words), ``spec`` (the file schema) and,
         when ``network`` is given, ``total_pseudo_counts`` per free node.
         """
-        d: dict[str, Any] = {"source": self.source, "objective": OBJECTIVE_TEXT, "spec": self.to_dict()}
+        d: dict[str, Any] = {"source": self.source,
+                             "objective": OBJECTIVE_TEXT_NORMAL if self.has_normal else OBJECTIVE_TEXT,
+                             "spec": self.to_dict()}
         if network is not None:
-            d["total_pseudo_counts"] = {n: float(c.sum()) for n, c in self.pseudo_counts(network).items()}
+            arrays = self.pseudo_counts(network)
+            d["total_pseudo_counts"] = {n: float(c.sum()) for n, c in arrays.items()
+                                        if network.cpd_form(network.tie_source(n)) != "logistic"}
+            sds = {}
+            for n in network.free_names:
+                if network.cpd_form(n) == "logistic" and network.node(n).tied_to is None:
+                    spec = self.node_specs.get(n, self.normal)
+                    if isinstance(spec, NormalSpec) and spec.to_dict():
+                        sds[n] = spec.to_dict()
+            if sds:
+                d["coefficient_prior_sd"] = sds
         return d
 
 
@@ -283,18 +382,37 @@ def prior_from_dict(doc: Mapping[str, Any], network: Network, *, source: str = "
     extra = sorted(set(doc) - _TOP_KEYS)
     if extra:
         raise PriorError(f"{source}: unknown top-level key(s) {extra}; allowed: [default] and [nodes.NAME] tables")
-    default = None
+    default = normal = None
     if "default" in doc:
-        default = _parse_entry(doc["default"], f"{source}: [default]", _DEFAULT_KEYS, is_default=True)
-    nodes: list[tuple[str, PriorSpec]] = []
+        entry = doc["default"]
+        if isinstance(entry, Mapping) and set(entry) & set(NORMAL_KEYS):
+            normal = _parse_normal(entry, f"{source}: [default]")
+            entry = {k: v for k, v in entry.items() if k not in NORMAL_KEYS}
+        if not (normal is not None and not entry):
+            default = _parse_entry(entry, f"{source}: [default]", _DEFAULT_KEYS, is_default=True)
+    nodes: list[tuple[str, PriorSpec | NormalSpec]] = []
     nodes_doc = doc.get("nodes", {})
     if not isinstance(nodes_doc, Mapping):
         raise PriorError(f"{source}: 'nodes' must hold [nodes.NAME] tables")
     for name, entry in nodes_doc.items():
-        nodes.append((str(name), _parse_entry(entry, f"{source}: [nodes.{name}]", _NODE_KEYS, is_default=False)))
-    prior = Prior(default, tuple(nodes), source)
+        where = f"{source}: [nodes.{name}]"
+        if isinstance(entry, Mapping) and set(entry) & set(NORMAL_KEYS):
+            other = sorted(set(entry) - set(NORMAL_KEYS))
+            if other:
+                raise PriorError(f"{where}: gives {', '.join(sorted(set(entry) & set(NORMAL_KEYS)))} with "
+                                 f"{', '.join(other)}; a logistic node takes coefficient_sd / intercept_sd only, "
+                                 f"the other nodes the Dirichlet keys only")
+            nodes.append((str(name), _parse_normal(entry, where)))
+        else:
+            nodes.append((str(name), _parse_entry(entry, where, _NODE_KEYS - set(NORMAL_KEYS), is_default=False)))
+    prior = Prior(default, tuple(nodes), source, normal)
     prior.pseudo_counts(network)  # validate now: shapes, signs, sums, fixed/unknown nodes
     return prior
+
+
+def _parse_normal(entry: Mapping[str, Any], where: str) -> NormalSpec:
+    """The coefficient_sd / intercept_sd keys of an entry, checked (each a finite number > 0)."""
+    return NormalSpec(*(None if k not in entry else _check_sd(entry[k], k, where) for k in NORMAL_KEYS))
 
 
 def _parse_entry(entry: Any, where: str, allowed: set[str], *, is_default: bool) -> PriorSpec:
@@ -362,10 +480,17 @@ def _is_noisy(network: Network, name: str) -> bool:
     return network.cpd_form(name) in ("noisy_or", "noisy_max")
 
 
+def _logistic_shape(network: Network, name: str) -> tuple[int, int]:
+    """The parameter rows of a logistic node: (1 + Σ (parent states − 1), states)."""
+    node = network.node(name)
+    return (1 + sum(network.node(p).card - 1 for p in node.parents), node.card)
+
+
 def _shape(network: Network, name: str) -> tuple[int, ...]:
     """What a prior of ``name`` is shaped like: its CPT, or for a noisy_or / noisy_max node its
-    cause rows (the leak, then each parent's non-first states in order; docs/priors.md)."""
-    if _is_noisy(network, name):
+    cause rows (the leak, then each parent's non-first states in order; docs/priors.md), or for a
+    logistic node its coefficient rows (the intercept, then the same)."""
+    if _is_noisy(network, name) or network.cpd_form(name) == "logistic":
         node = network.node(name)
         return (1 + sum(network.node(p).card - 1 for p in node.parents), node.card)
     return tuple(network.cpt_shape(name))
@@ -378,9 +503,10 @@ def _n_rows(network: Network, name: str) -> int:
 def _resolve(spec: PriorSpec, network: Network, name: str, where: str) -> np.ndarray:
     if network.cpd_form(name) == "logistic":
         if spec.kind == "pseudo_counts" and spec.value == 0.0:
-            return np.zeros(network.cpt_shape(name))
+            return np.zeros(_shape(network, name))
         raise PriorError(f"{where}: node {name!r} has cpd = 'logistic': Dirichlet priors do not apply to its "
-                         f"coefficients (priors on them are not available yet); leave it out of the prior file")
+                         f"coefficients; give coefficient_sd = SD (and intercept_sd = SD if wanted), a normal prior "
+                         f"on the log-odds, or leave it out of the prior file")
     shape = _shape(network, name)
     q, r = _n_rows(network, name), shape[-1]
     if spec.kind == "pseudo_counts":
@@ -475,13 +601,22 @@ def resolve_pseudo_counts(prior: "Prior | Mapping[str, Any] | None", network: Ne
         return prior.pseudo_counts(network)
     if not isinstance(prior, Mapping):
         raise PriorError(f"prior must be None, a Prior or a dict of pseudo-count arrays, got {type(prior).__name__}")
-    specs = []
+    specs, precisions = [], {}
     for name, v in prior.items():
         where = f"<pseudo_counts>[{name}]"
         try:
             a = np.asarray(v, dtype=np.float64)
         except (TypeError, ValueError):
             raise PriorError(f"{where}: pseudo-counts must be a number or an array of numbers") from None
+        if name in network and network.cpd_form(name) == "logistic" and network.node(name).tied_to is None \
+                and network.node(name).fixed is None and a.ndim == 2 and a.shape == _shape(network, name):
+            # a logistic node's array holds the precisions 1/sd² of its coefficients (column 0, the
+            # reference state, is 0): Prior.pseudo_counts's form
+            if not np.all(np.isfinite(a)) or np.any(a < 0) or np.any(a[:, 0] != 0):
+                raise PriorError(f"{where}: the precisions 1/sd^2 of a logistic node's coefficients must be finite "
+                                 f"and >= 0, with 0 in the first (reference) state's column")
+            precisions[str(name)] = a.copy()
+            continue
         if a.ndim == 0:
             specs.append((str(name), PriorSpec("pseudo_counts", value=float(a))))
             continue
@@ -497,7 +632,7 @@ def resolve_pseudo_counts(prior: "Prior | Mapping[str, Any] | None", network: Ne
         specs.append((str(name), PriorSpec("pseudo_counts",
                                            cells=_as_cells(a.reshape(-1, a.shape[-1]).tolist(), "pseudo_counts", where))))
     p = Prior(nodes=tuple(specs), source="<pseudo_counts>")
-    return p.pseudo_counts(network)
+    return {**p.pseudo_counts(network), **precisions}
 
 
 # --------------------------------------------------------------------- objective pieces

@@ -879,8 +879,13 @@ def _prior_brief(doc: Mapping[str, Any]) -> str:
     tot = pr.get("total_pseudo_counts")
     if isinstance(tot, Mapping):
         pairs.append(("pseudo-counts per node", esc(", ".join(f"{k} {_fmt_any(v)}" for k, v in tot.items()))))
+    sds = pr.get("coefficient_prior_sd")
+    if isinstance(sds, Mapping) and sds:
+        pairs.append(("normal prior on logistic coefficients (sd, log-odds)",
+                      esc("; ".join(f"{k}: " + ", ".join(f"{kk.replace('_sd', '')} {_fmt_any(vv)}" for kk, vv in v.items())
+                                    for k, v in sds.items() if isinstance(v, Mapping)))))
     rest = [(str(k), _render_any(v, 2)) for k, v in pr.items()
-            if k not in {"source", "objective", "total_pseudo_counts", "spec"}]
+            if k not in {"source", "objective", "total_pseudo_counts", "spec", "coefficient_prior_sd"}]
     folded = ([("specification", _render_any(pr["spec"], 2))] if pr.get("spec") is not None else []) + rest
     return _kv(pairs, raw=True) + ("<details class=\"prior-spec\"><summary>The prior as read from its file</summary>"
                                    + _kv(folded, raw=True) + "</details>" if folded else "")
@@ -1601,8 +1606,15 @@ def _section_other(doc: Mapping[str, Any]) -> str:
 def _section_cautions(doc: Mapping[str, Any], gaps: Mapping[str, Any] | None, net: Network | None = None) -> str:
     items = [c for c in REPORT_CAUTIONS if c != LATENT_CAUTION or net is None or net.latent_names]
     if doc.get("objective") == "map":
-        items.insert(3, "This is a MAP fit: the prior's pseudo-counts pull the estimates towards the prior, most "
-                        "where a parent configuration has few records.")
+        pr = doc.get("prior") if isinstance(doc.get("prior"), Mapping) else {}
+        only_normal = bool(pr.get("coefficient_prior_sd")) and not any(
+            (v or 0) > 0 for v in (pr.get("total_pseudo_counts") or {}).values())
+        items.insert(3, ("This is a MAP fit." if only_normal else
+                         "This is a MAP fit: the prior's pseudo-counts pull the estimates towards the prior, most "
+                         "where a parent configuration has few records.")
+                     + (" A normal prior pulls logistic coefficients towards 0 (no effect), most where a parent "
+                        "state has few records; the error bars include its curvature."
+                        if isinstance(doc.get("prior"), Mapping) and doc["prior"].get("coefficient_prior_sd") else ""))
     if not doc.get("converged"):
         items.insert(0, "The fit did NOT meet its stopping rule: the CPTs may not be at a maximum.")
     return _sec("cautions", "<ul>" + "".join(f"<li>{esc(t)}</li>" for t in items) + "</ul>")

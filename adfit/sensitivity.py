@@ -119,13 +119,12 @@ def parse_targets(network: Network, items: Iterable[str] | None, shifts: Sequenc
             raise OptionError(f"--target {item!r}: write NODE=STATE, e.g. --target {shifts[0].node}="
                               f"{shifts[0].state}")
         node, state = (s.strip() for s in item.split("=", 1))
-        if node not in network:
-            raise OptionError(f"--target {item}: {node!r} is not a node of the network; the nodes are: "
-                              f"{', '.join(network.names)}")
-        states = network.node(node).states
-        if state not in states:
-            raise OptionError(f"--target {item}: {state!r} is not a state of {node!r}; its states are: "
-                              f"{', '.join(states)}")
+        if not node or not state:
+            raise OptionError(f"--target {item!r}: write NODE=STATE with both parts, e.g. --target "
+                              f"{shifts[0].node}={shifts[0].state}")
+        from .impute import check_node_state  # the check (with did-you-mean) that --given uses
+
+        check_node_state(network, node, state, f"--target {item}")
         if (node, state) not in out:
             out.append((node, state))
     return tuple(out)

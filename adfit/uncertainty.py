@@ -66,7 +66,7 @@ from .errors import OptionError
 from .likelihood import Likelihood, _loglik_logcpt, check_possible
 from .network import Network
 from . import forms as _forms
-from .params import block_shape, full_probs, mask_pseudo, pool_counts
+from .params import block_shape, coefficient_log_prior, full_probs, mask_pseudo, pool_counts
 
 #: default confidence level of the intervals
 LEVEL = 0.95
@@ -144,6 +144,9 @@ class Coordinates:
     # logistic nodes: (N(u) pooled over ties, CPT-shaped; the implied table) for the
     # complete-data information of their coefficient rows
     logistic: Mapping[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
+    # logistic nodes with a normal prior on their coefficients: the precisions 1/sd² (rows, card);
+    # the prior's curvature is part of the information (the coordinates are the coefficients)
+    precision: Mapping[str, np.ndarray] = field(default_factory=dict)
 
     @property
     def size(self) -> int:
@@ -190,7 +193,8 @@ class Coordinates:
 
 def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
                      n_cells: Mapping[str, np.ndarray],
-                     logistic: Mapping[str, tuple[np.ndarray, np.ndarray]] | None = None) -> Coordinates:
+                     logistic: Mapping[str, tuple[np.ndarray, np.ndarray]] | None = None,
+                     precision: Mapping[str, np.ndarray] | None = None) -> Coordinates:
     """Reference states, boundary and no-data cells, and the coordinates, at an estimate.
 
     ``n_cells``: per estimated node, expected counts plus pseudo-counts (CPT-shaped; pooled over
@@ -235,7 +239,8 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
         base_d[name] = base.reshape(-1)
         idx_d[name] = np.asarray(free_cells, dtype=np.int32)
     return Coordinates(network, tuple(coords), tuple(sizes), ref_d, st_d, pr_d, n_d, base_d, idx_d,
-                       dict(logistic or {}))
+                       dict(logistic or {}),
+                       {k: np.asarray(v, dtype=np.float64) for k, v in (precision or {}).items() if np.any(v)})
 
 
 # --------------------------------------------------------------------------- the objective in JAX
@@ -256,7 +261,10 @@ def _objective(network: Network, groups, sizes: tuple[int, ...], phi, aux):
             eta = eta.reshape(block_shape(network, node.name))
             rows = jax.nn.log_softmax(eta, axis=-1)
             own[node.name] = _forms.implied_log_table(network, node.name, rows)
-            lp = lp + jnp.sum(jnp.where(pseudo[node.name] > 0, pseudo[node.name] * rows, 0.0))
+            if _forms.is_logistic(network, node.name):  # a normal prior on the coefficients: −½ Σ prec β²
+                lp = lp + coefficient_log_prior(eta, pseudo[node.name], jnp)
+            else:
+                lp = lp + jnp.sum(jnp.where(pseudo[node.name] > 0, pseudo[node.name] * rows, 0.0))
             pen = pen + jnp.sum((eta - jnp.mean(eta, axis=-1, keepdims=True)) ** 2)
             continue
         eta = eta.reshape(network.cpt_shape(node.name))
@@ -363,6 +371,8 @@ def coordinate_gradient(co: Coordinates, l2: float = 0.0) -> np.ndarray:
     for j, (name, u, k) in enumerate(co.coords):
         n = co.n[name][u]
         g[j] = n[k] - co.probs[name][u, k] * n.sum()
+        if name in co.precision:  # −prec·β, the coordinate being the coefficient β itself
+            g[j] -= co.precision[name][u, k] * co.base[name].reshape(co.probs[name].shape)[u, k]
         if l2:
             eta = co.base[name].reshape(co.probs[name].shape)[u]
             g[j] -= 2.0 * l2 * (eta[k] - eta.mean())
@@ -387,6 +397,8 @@ def complete_information(co: Coordinates, l2: float = 0.0) -> dict[tuple[str, in
         states = [co.coords[j][2] for j in js]
         if name in lblocks:
             blk = lblocks[name][row][np.ix_(states, states)]
+            if name in co.precision:  # the normal prior's curvature on the coefficients
+                blk = blk + np.diag(co.precision[name][row, states])
             if l2:
                 blk = blk + 2.0 * l2 * (np.eye(len(states)) - 1.0 / K)
             out[(name, row)] = blk
@@ -503,7 +515,7 @@ class Uncertainty:
         pc = self.settings.get("_pseudo") or {}
         for name in self.network.free_names:
             c = np.asarray(pc.get(name, 0.0))
-            if not np.any(c):
+            if not np.any(c) or _forms.is_logistic(self.network, name):  # precisions of coefficients, not counts
                 continue
             K = self.network.node(name).card
             n = self.coordinates.n[name]
@@ -635,7 +647,10 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
             fam = sum((np.asarray(counts[t]) for t in network.tied_names(n)), np.asarray(counts[n]))
             logistic[n] = (fam.sum(axis=-1, keepdims=True), np.asarray(full[n], dtype=np.float64))
     counts = pool_counts(network, counts, rows_at)
-    co = make_coordinates(network, rows_at, {k: counts[k] + pseudo[k] for k in network.estimated_names}, logistic)
+    # a logistic node's prior entries are the precisions of its coefficients, not pseudo-counts
+    co = make_coordinates(network, rows_at, {k: counts[k] + (0.0 if k in logistic else pseudo[k])
+                                             for k in network.estimated_names}, logistic,
+                          precision={k: pseudo[k] for k in logistic})
     P = co.size
     if method == "auto":
         method = "dense" if P <= DENSE_MAX_PARAMETERS else "matrix-free"

@@ -224,3 +224,29 @@ def test_a_summed_127_state_leaf_in_int8_codes_equals_enumeration():
         assert float(ll) == pytest.approx(float(oracle @ c), rel=1e-12) == em_ll
         for name in LEAF127.names:   # the summed leaf's expected counts: theta times the parents' posterior
             np.testing.assert_allclose(np.asarray(counts[name]), em_counts[name], rtol=1e-9, atol=1e-9)
+
+
+def test_posteriors_of_int8_codes_equal_enumeration():
+    # P(node = k | observed cells) by brute force: the joint of each completion, summed by the
+    # node's value, divided by the row's total (both enumerated over every hidden cell).
+    from adfit.impute import row_posteriors
+
+    rng = np.random.default_rng(6)
+    probs = _probs(WIDE8, rng)
+    x = _sample(WIDE8, probs, 12, rng)
+    x[rng.random(x.shape) < 0.35] = HIDDEN
+    x[:, WIDE8.index("h")] = HIDDEN
+    x[:, :2] = _sample(WIDE8, probs, 12, np.random.default_rng(7))[:, :2]  # a, b observed: offsets a*48 + b*12
+    codes = x.astype(np.int8)
+    ll, post = row_posteriors(WIDE8, probs, codes)
+    for i, row in enumerate(codes.tolist()):
+        assert ll[i] == pytest.approx(brute_force_row(WIDE8, probs, row), abs=1e-12)
+        for j, name in enumerate(WIDE8.names):
+            want = np.zeros(WIDE8.cards[j])
+            for k in range(WIDE8.cards[j]):
+                if row[j] >= 0 and row[j] != k:
+                    continue
+                fixed = list(row)
+                fixed[j] = k
+                want[k] = math.exp(brute_force_row(WIDE8, probs, fixed))
+            np.testing.assert_allclose(post[name][i], want / want.sum(), rtol=1e-10, atol=1e-12)

@@ -358,7 +358,7 @@ def test_impossible_cells_stay_exactly_zero_and_rows_renormalise():
 
 
 # --------------------------------------------------------------------------- refusals, results
-def test_monotone_nodes_and_priors_on_logistic_nodes_are_refused():
+def test_monotone_nodes_and_misshapen_priors_are_refused():
     net = net_with({"states": ["s0", "s1"], "increasing_with": ["b"]})
     df = pd.DataFrame({"a": ["no", "yes"], "b": ["lo", "hi"], "y": ["s0", "s1"]})
     with pytest.raises(NetworkError, match=r"nodes.y.increasing_with: EM cannot estimate"):
@@ -370,8 +370,11 @@ def test_monotone_nodes_and_priors_on_logistic_nodes_are_refused():
         em_fit(net, df, pseudo_counts={"y": np.ones((2, 3, 2))})
     lnet = net_with({"states": ["s0", "s1"], "cpd": "logistic"})
     ldf = df.assign(y=["s0", "s1"])
-    with pytest.raises(PriorError, match="whose CPT has the logistic form: EM takes Dirichlet pseudo-counts"):
+    # a logistic node's prior is the precisions of a normal prior on its coefficients, not pseudo-counts
+    with pytest.raises(PriorError, match=r"logistic node 'y' has shape \(2, 3, 2\); it takes the precisions"):
         em_fit(lnet, ldf, pseudo_counts={"y": np.ones((2, 3, 2))})
+    with pytest.raises(PriorError, match="reference"):  # the first state's column must be 0
+        em_fit(lnet, ldf, pseudo_counts={"y": np.ones((4, 2))})
     with pytest.raises(OptionError, match="EM starting parameters of node 'y': leak must be a probability"):
         em_fit(net, df, init_params={"y": {**TRUE_NOISY_OR, "leak": 1.5}})
 

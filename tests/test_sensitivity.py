@@ -250,7 +250,11 @@ def files(tmp_path_factory):
     (["--node", "wear", "--state", "heavy", "--threshold", "0.3"], "--threshold needs exactly one --target"),
     (["--node", "wear", "--state", "heavy", "--target", "wear=heavy", "--target", "load=low", "--threshold", "0.3"],
      "--threshold needs exactly one --target NODE=STATE (got 2)"),
-    (["--node", "wear", "--state", "heavy", "--target", "wear=bad"], "'bad' is not a state of 'wear'"),
+    (["--node", "wear", "--state", "heavy", "--target", "wear=bad"], "node 'wear' has no state 'bad'"),
+    # the shared NODE=STATE check of --given (adfit/impute.py): a near miss gets a suggestion
+    (["--node", "wear", "--state", "heavy", "--target", "wear=Heavy"], "did you mean 'heavy'?"),
+    (["--node", "wear", "--state", "heavy", "--target", "weer=heavy"], "did you mean 'wear'?"),
+    (["--node", "wear", "--state", "heavy", "--target", "wear="], "write NODE=STATE with both parts"),
     (["--node", "wear", "--node", "load", "--state", "heavy"], "give one --state for each --node"),
     (["--node", "wear", "--state", "heavy", "--predictor", "cause"], "--predictor cause: is latent"),
 ])

@@ -240,7 +240,9 @@ def score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray], *,
     ``N(x,u) + c(x,u) - theta(x|u) (N(u) + c(u))`` in units of records (for a set of tied nodes,
     one gradient with their counts added; impossible cells contribute 0). A noisy_or / noisy_max
     / logistic node's gradient is taken w.r.t. the logits of its parameter rows, read off its
-    table (:func:`adfit.forms.rows_from_table`; no prior on them).
+    table (:func:`adfit.forms.rows_from_table`), with the prior on them: Dirichlet pseudo-counts on
+    cause rows, and for a logistic node the normal prior on its coefficients (its entry of
+    ``pseudo_counts`` holds the precisions 1/sd², :meth:`adfit.priors.Prior.pseudo_counts`).
 
     ``likelihood``: a :class:`Likelihood` already built for this ``network`` and this ``data``
     (the same object), to reuse its plan and compiled program (a command that also checks or
@@ -257,7 +259,17 @@ def score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray], *,
 
             rows = forms.rows_from_table(network, name, th)
             a = forms.virtual_counts(network, name, rows, n_xu)
+            c = None if pseudo_counts is None or name not in pseudo_counts else np.asarray(pseudo_counts[name])
+            if c is not None and network.cpd_form(name) != "logistic" and c.shape == a.shape:
+                a = a + c  # Dirichlet pseudo-counts on the cause rows
             g = a - rows * a.sum(axis=-1, keepdims=True)
+            if c is not None and network.cpd_form(name) == "logistic" and c.shape == a.shape:
+                # a normal prior on the coefficients (c: its precisions 1/sd²): −prec·β, β = log-odds
+                with np.errstate(divide="ignore"):
+                    lr = np.log(rows)
+                b = c * (lr - lr[:, :1])
+                g = g - b
+                g[:, 0] += b[:, 1:].sum(axis=1)
             gn2 += float(np.sum(g * g))
             continue
         n_xu = n_xu + (0.0 if pseudo_counts is None or name not in pseudo_counts else pseudo_counts[name])
