@@ -45,6 +45,7 @@ from .likelihood import (Likelihood, _prepared, check_possible,
                          logits_from_probs, probs_from_logits)
 from .network import Network
 from . import forms as _forms
+from . import monotone as _mono
 from .params import (FreeLayout, block_shape, coefficient_log_prior, coefficient_log_prior_grad, estimated_starts, fixed_log_tables, free_layout, full_logits, full_probs, mask_pseudo,
                      objective_fg as _objective_fg, pool_counts)
 from .priors import describe_rows, prior_only_rows, resolve_pseudo_counts
@@ -84,7 +85,14 @@ AUTO_STARTS_SECONDS = 60.0
 # default starts run side by side only when one evaluation takes at least this long
 BATCH_MIN_EVAL_SECONDS = 0.01
 # the structured-CPT features the gradient fit estimates (Network.unsupported_structure)
-SUPPORTED_STRUCTURE = ("table", "noisy_or", "noisy_max", "logistic", "tied", "impossible")
+SUPPORTED_STRUCTURE = ("table", "noisy_or", "noisy_max", "logistic", "tied", "impossible", "increasing")
+# active-set rule of monotone nodes (Fitter.pin): a fraction whose derivative points at a bound
+# closer than PIN_DISTANCE is tried on the bound (adfit.monotone.PIN from it); one on a bound whose
+# derivative points inward is released to one of RELEASE_LEVELS; at most MAX_PIN_STEPS per start
+PIN_DISTANCE = 0.05
+RELEASE_LEVELS = (1e-2, 1e-4, 1e-6, 0.1)
+MAX_PIN_STEPS = 30
+FINAL_PIN = 1e-4
 # stop reasons of a stalled (not converged) quasi-Newton run, after which a boundary escape is tried
 STALL_REASONS = ("line search found no better point", "no further progress after rescaling")
 
@@ -141,6 +149,9 @@ def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) ->
         if _forms.has_rows(network, name):
             shape = block_shape(network, name)
             if c is not None and np.any(np.asarray(c, dtype=np.float64) > 0):
+                if _forms.is_monotone(network, name):
+                    raise PriorError(f"node {name!r} has increasing_with: priors on monotone nodes are not "
+                                     f"available yet; fit it without a prior on {name!r}")
                 c = np.asarray(c, dtype=np.float64)
                 if _forms.is_logistic(network, name):  # precisions 1/sd² of a normal prior on the coefficients
                     if c.shape != shape or not np.all(np.isfinite(c)) or np.any(c < 0) or np.any(c[:, 0] != 0):
@@ -256,7 +267,9 @@ def kkt_ratios(network: Network, probs: Mapping[str, np.ndarray], counts: Mappin
     out = {}
     for name in network.estimated_names:
         th = np.asarray(probs[name], dtype=np.float64)
-        if _forms.is_logistic(network, name):  # coefficients: no simplex, the logit rule is the condition
+        if _forms.is_logistic(network, name) or _forms.is_monotone(network, name):
+            # coefficients: no simplex, the logit rule is the condition; fractions of a monotone
+            # node: a box, checked by Fitter.box (adfit.monotone.box_kkt)
             out[name] = np.full(th.shape, np.nan)
             continue
         a = np.asarray(counts[name], dtype=np.float64) + pseudo[name]
@@ -308,7 +321,8 @@ def _cell_label(network: Network, name: str, flat: int) -> str:
     node = network.node(name)
     row, col = divmod(int(flat), node.card)
     if _forms.has_rows(network, name):  # a cell of a parameter row (adfit.forms)
-        kind = "coefficient row" if _forms.is_logistic(network, name) else "cause row"
+        kind = ("coefficient row" if _forms.is_logistic(network, name) else
+                "fraction" if _forms.is_monotone(network, name) else "cause row")
         return f"{name}={node.states[col]} in the {kind} {_forms.cause_row_labels(network, name)[row]}"
     cfg = network.parent_config_labels(name)[row]
     given = ", ".join(f"{p}={v}" for p, v in zip(node.parents, cfg))
@@ -469,6 +483,18 @@ class Fitter:
         refusal = network.unsupported_structure(SUPPORTED_STRUCTURE, what="the gradient fit")
         if refusal is not None:
             raise NetworkError(refusal)
+        for n in network.nodes:
+            if n.fixed is None and len(n.increasing_with) > 1:
+                # with two listed parents a configuration has two predecessors and the map from
+                # the fractions takes a min over them, not differentiable where they tie, which
+                # is where binding constraints pool cells (docs/method.md, "Monotone CPTs")
+                raise NetworkError(f"nodes.{n.name}.increasing_with lists {len(n.increasing_with)} parents "
+                                   f"({', '.join(n.increasing_with)}); the gradient fit estimates monotone tables "
+                                   f"along one parent for now: keep one of them")
+            if n.fixed is None and n.increasing_with and n.impossible:
+                raise NetworkError(f"nodes.{n.name}.impossible cannot be combined with increasing_with in the "
+                                   f"gradient fit yet (a monotone table's zero cells follow from its fractions); "
+                                   f"drop one of the keys")
         for name in network.estimated_names:
             if _forms.is_logistic(network, name) and network.node(name).impossible:
                 raise NetworkError(f"nodes.{name}.impossible: the gradient fit does not estimate impossible cells on a "
@@ -484,7 +510,12 @@ class Fitter:
         # logistic rows take no EM steps (coefficients have no closed-form M-step): the other
         # nodes' EM steps with them held fixed still never lower the objective (a GEM step)
         self.logistic = tuple(n for n in self.free if _forms.is_logistic(network, n))
-        self.em_free = tuple(n for n in self.free if n not in self.logistic)
+        # monotone nodes' fractions live in a box: no EM step either (their M-step has no closed
+        # form); the active-set rule (pin) and the box KKT check (box) cover them
+        self.monotone = tuple(n for n in self.free if _forms.is_monotone(network, n))
+        self.no_em = self.logistic + self.monotone
+        self.em_free = tuple(n for n in self.free if n not in self.no_em)
+        self.pin_steps = 0
         self.em_polish_steps = 0
         self.boundary_escapes = 0
         self.saddle_escapes = 0
@@ -554,9 +585,12 @@ class Fitter:
         g = objective_gradient(self.network, probs, counts, self.pseudo, logits, self.settings.l2)
         resid = 0.0
         weights = self._logistic_weights(tables, fam) if self.logistic else {}
+        served = {n: _mono.served(self.network, n, self._pooled_family(fam, n)) for n in self.monotone}
         for name in self.free:
             if name in weights:  # records the coefficient row serves
                 denom = weights[name][1][:, None]
+            elif name in served:  # records of the fraction's parent configuration
+                denom = served[name][:, None]
             else:
                 denom = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
             r = np.abs(g[name]) / np.maximum(denom, 1.0)
@@ -564,7 +598,9 @@ class Fitter:
         lp = log_prior_value(probs, self.pseudo, self.network, logits)
         pen = penalty_value(logits, self.settings.l2, self.network)
         kkt = self.kkt(probs, counts) if self.settings.l2 == 0 else None
-        return {"probs": probs, "log_likelihood": ll, "log_prior": lp, "penalty": pen,
+        box = ({n: _mono.box_kkt(probs[n], _mono.dsigma(probs[n], counts[n]), served[n]) for n in self.monotone}
+               if self.settings.l2 == 0 else None)
+        return {"probs": probs, "box": box, "served": served, "log_likelihood": ll, "log_prior": lp, "penalty": pen,
                 "objective": ll + lp - pen, "grad": g, "gradient_norm": _norm(g),
                 "residual": resid, "counts": counts, "kkt": kkt, "family_counts": fam, "tables": tables,
                 "logistic_weights": weights,
@@ -598,8 +634,98 @@ class Fitter:
 
     def kkt_holds(self, ev: Mapping[str, Any]) -> bool:
         """The simplex KKT condition at an evaluated point: every checked cell's ratio ≤ 1 + kkt_tol
-        (always true with an L2 penalty, whose maximum is interior: the logit rule covers it)."""
-        return ev.get("kkt_ratio") is None or not (ev["kkt_ratio"] > 1.0 + self.settings.kkt_tol)
+        (always true with an L2 penalty, whose maximum is interior: the logit rule covers it), and
+        the box condition of every monotone fraction (:meth:`box_holds`)."""
+        simplex = ev.get("kkt_ratio") is None or not (ev["kkt_ratio"] > 1.0 + self.settings.kkt_tol)
+        return simplex and self.box_holds(ev)
+
+    def box_holds(self, ev: Mapping[str, Any]) -> bool:
+        """The box KKT condition of the monotone nodes' fractions (:func:`adfit.monotone.box_kkt`):
+        every fraction's first-order gain towards the bound its derivative points at is at most
+        kkt_tol per record served (True with an L2 penalty or without monotone nodes)."""
+        return not ev.get("box") or self.worst_box(ev)[2] <= self.settings.kkt_tol
+
+    def worst_box(self, ev: Mapping[str, Any]) -> tuple[str | None, str, float]:
+        """(node, fraction label, box measure) of the largest box KKT measure (0.0 when none)."""
+        best: tuple[str | None, str, float] = (None, "", 0.0)
+        for name, m in (ev.get("box") or {}).items():
+            if m.size and float(np.max(m)) > best[2]:
+                j = int(np.argmax(m))
+                best = (name, _forms.cause_row_labels(self.network, name)[j], float(m[j]))
+        return best
+
+    def _pooled_family(self, fam: Mapping[str, np.ndarray], name: str) -> np.ndarray:
+        """A node's expected family counts plus those of the nodes tied to it."""
+        return sum((np.asarray(fam[t]) for t in self.network.tied_names(name)), np.asarray(fam[name]))
+
+    def pin(self, ev: Mapping[str, Any], *, final: bool = False, near: float = 0.0):
+        """The active-set step of the monotone fractions (docs/method.md, "Monotone CPTs"): a
+        fraction whose box measure exceeds kkt_tol and whose derivative points at a bound closer
+        than PIN_DISTANCE is put on that bound (PIN from it, where its logit gradient vanishes and
+        L-BFGS leaves it); one on a bound whose derivative points inward is released to the best
+        of RELEASE_LEVELS. A move is kept only if it raises the objective; all the pins together
+        first, then one at a time (largest gain first). Returns ``(logits, evaluation)`` or None.
+
+        ``final``: at a converged point, put every fraction within FINAL_PIN of a bound that its
+        derivative points at on the bound (kept if the objective does not fall), so that the
+        binding constraints are reported exactly and the error bars treat them as bounds.
+        ``near``: as ``final`` within that distance, kept only if the objective rises (a run that
+        stalled with the box condition holding: the fractions creep to their bounds)."""
+        if near:
+            final = True
+        tol = self.settings.kkt_tol
+        pins: list[tuple[float, str, int, float]] = []   # (gain, node, fraction, new σ)
+        releases: list[tuple[str, int, int]] = []         # (node, fraction, direction +1: up from 0)
+        for name in self.monotone:
+            v = np.asarray(ev["probs"][name])
+            d = _mono.dsigma(v, ev["counts"][name])
+            m = ev["box"][name]
+            for j in (np.flatnonzero(np.minimum(v[:, 0], v[:, 1]) < (near or FINAL_PIN)) if final
+                      else np.flatnonzero(m > tol)):
+                if d[j] > 0 and v[j, 0] < PIN_DISTANCE:
+                    if v[j, 0] > _mono.PIN * 1.5:
+                        pins.append((float(m[j]), name, int(j), 1.0))
+                elif d[j] < 0 and v[j, 1] < PIN_DISTANCE:
+                    if v[j, 1] > _mono.PIN * 1.5:
+                        pins.append((float(m[j]), name, int(j), 0.0))
+                elif d[j] > 0 and v[j, 1] < PIN_DISTANCE:
+                    releases.append((name, int(j), 1))
+                elif d[j] < 0 and v[j, 0] < PIN_DISTANCE:
+                    releases.append((name, int(j), -1))
+
+        def moved(changes):
+            new = {n: ev["probs"][n] for n in self.free}
+            for name, j, s1 in changes:
+                v = np.array(new[name], dtype=np.float64)
+                v[j] = (1.0 - s1, s1) if _mono.PIN < s1 < 1 - _mono.PIN else ((_mono.PIN, 1.0 - _mono.PIN) if s1 >= 1.0
+                                                                                else (1.0 - _mono.PIN, _mono.PIN))
+                new[name] = v
+            cand = self.logits_of(new)
+            return cand, self.evaluate(cand)
+
+        def better(c):
+            return math.isfinite(c[1]["objective"]) and (c[1]["objective"] > ev["objective"] or
+                                                         (final and not near and c[1]["objective"] >= ev["objective"]))
+
+        if final:
+            releases = []
+
+        tries = []
+        if pins:
+            tries.append([(n, j, s1) for _, n, j, s1 in pins])
+            tries += [[(n, j, s1)] for _, n, j, s1 in sorted(pins, reverse=True)[:10]] if len(pins) > 1 else []
+        for changes in tries:
+            c = moved(changes)
+            if better(c):
+                return c
+        best = None
+        for level in RELEASE_LEVELS:
+            if not releases:
+                break
+            c = moved([(n, j, level if di > 0 else 1.0 - level) for n, j, di in releases])
+            if better(c) and (best is None or c[1]["objective"] > best[1]["objective"]):
+                best = c
+        return best
 
     def _logistic_weights(self, tables: Mapping[str, np.ndarray], fam: Mapping[str, np.ndarray]):
         """Per logistic node: (complete-data information of each coefficient, records per row),
@@ -621,6 +747,9 @@ class Fitter:
             prec = self.pseudo[name]
             prior_info = prec + np.where(np.arange(prec.shape[-1]) == 0, prec.sum(axis=-1, keepdims=True), 0.0)
             out[name] = 1.0 / np.sqrt(info + prior_info + SCALE_EPS)
+        for name, n_u in (ev.get("served") or {}).items():
+            # a fraction pair as a two-state row of the parent configuration's records
+            out[name] = 1.0 / np.sqrt(n_u[:, None] * np.asarray(ev["probs"][name]) + SCALE_EPS)
         return out
 
     def _scale(self, counts: Mapping[str, np.ndarray], probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:
@@ -633,6 +762,9 @@ class Fitter:
         """
         out = {}
         for name in self.free:
+            if name in self.monotone:  # virtual counts of fractions are no records (see _scale_at)
+                out[name] = np.ones(np.shape(probs[name]))
+                continue
             c = 0.0 if name in self.logistic else self.pseudo[name].sum(axis=-1, keepdims=True)
             nu = counts[name].sum(axis=-1, keepdims=True) + c
             out[name] = 1.0 / np.sqrt(nu * np.asarray(probs[name]) + SCALE_EPS)
@@ -672,26 +804,50 @@ class Fitter:
                 r.converged, r.stop_reason = False, self._kkt_reason(ev, "after the minibatch run")
             return r
         r = self._run_phases(logits0, max_iter=s.max_iter, progress=progress)
-        escapes = saddles = 0
+        escapes = saddles = pins = 0
         while True:
             ev = self.evaluate(r.logits)
             if not math.isfinite(ev["objective"]):
                 break
             stalled = r.stop_reason in STALL_REASONS
             if self.kkt_holds(ev):
-                if not (r.converged and self.saddle_check and self.has_hidden):
+                moved = None
+                if stalled and self.monotone and s.l2 == 0 and pins < MAX_PIN_STEPS and r.iterations < s.max_iter:
+                    # stalled with the box condition holding: fractions creeping to their bounds
+                    moved = self.pin(ev, near=PIN_DISTANCE)
+                if moved is not None:
+                    pins += 1
+                    self.pin_steps += 1
+                    logits, ev_m = moved
+                else:
+                    if not (r.converged and self.saddle_check and self.has_hidden):
+                        break
+                    found = self.curvature_check(r.logits, ev)
+                    if found is None:
+                        break
+                    if saddles >= MAX_SADDLE_ESCAPES or r.iterations >= s.max_iter:
+                        r.converged = False
+                        r.stop_reason = (f"a direction of negative curvature remains after {saddles} move(s) off "
+                                         f"stationary points that are not maxima (saddles)")
+                        break
+                    saddles += 1
+                    self.saddle_escapes += 1
+                    logits, ev_m = found
+            elif not self.box_holds(ev):
+                # monotone fractions: the active-set step (pin at a bound, or release from one)
+                if not (r.converged or stalled):
                     break
-                found = self.curvature_check(r.logits, ev)
-                if found is None:
+                if pins >= MAX_PIN_STEPS or r.iterations >= s.max_iter:
+                    r.converged, r.stop_reason = False, self._kkt_reason(ev, f"after {pins} active-set step(s)")
                     break
-                if saddles >= MAX_SADDLE_ESCAPES or r.iterations >= s.max_iter:
-                    r.converged = False
-                    r.stop_reason = (f"a direction of negative curvature remains after {saddles} move(s) off "
-                                     f"stationary points that are not maxima (saddles)")
+                moved = self.pin(ev)
+                if moved is None:
+                    r.converged, r.stop_reason = False, self._kkt_reason(
+                        ev, "and no active-set step raised the objective")
                     break
-                saddles += 1
-                self.saddle_escapes += 1
-                logits, ev_m = found
+                pins += 1
+                self.pin_steps += 1
+                logits, ev_m = moved
             else:
                 if not (r.converged or stalled):
                     break  # e.g. the iteration limit: the run reports not converged anyway
@@ -714,6 +870,11 @@ class Fitter:
                      r2.converged, r2.stop_reason)
         if not r.converged and r.stop_reason.startswith("iteration limit"):
             r.stop_reason = f"iteration limit {s.max_iter} reached"
+        if r.converged and self.monotone and s.l2 == 0:
+            ev = self.evaluate(r.logits)
+            moved = self.pin(ev, final=True)
+            if moved is not None and self.kkt_holds(moved[1]):
+                r.logits, r.value = moved[0], moved[1]["objective"]
         return r
 
     def curvature_check(self, logits: Mapping[str, Any], ev: Mapping[str, Any]):
@@ -763,6 +924,10 @@ class Fitter:
         return None
 
     def _kkt_reason(self, ev: Mapping[str, Any], tail: str) -> str:
+        if not self.box_holds(ev):
+            name, label, m = self.worst_box(ev)
+            return (f"KKT condition violated: the fraction {label} of the monotone node {name!r} has a first-order "
+                    f"gain of {m:.3g} per record > {self.settings.kkt_tol:g} towards a bound {tail}")
         name, label, ratio = self.worst_kkt_cell(ev)
         return (f"KKT condition violated: cell {label} has ratio {ratio:.4g} > 1 + {self.settings.kkt_tol:g} "
                 f"(the objective rises if it grows) {tail}")
@@ -819,7 +984,7 @@ class Fitter:
             return best
         cur, logits = ev, None
         for _ in range(10 * EM_POLISH_STEPS):
-            new_probs = {n: cur["probs"][n] for n in self.logistic}
+            new_probs = {n: cur["probs"][n] for n in self.no_em}
             for name in self.em_free:
                 num = cur["counts"][name] + self.pseudo[name]
                 den = num.sum(axis=-1, keepdims=True)
@@ -960,7 +1125,7 @@ class Fitter:
                 # the objective (Dempster, Laird & Rubin 1977, Theorem 1) and set such cells to
                 # (near) zero at once; the next phase then resumes the quasi-Newton method.
                 for _ in range(EM_POLISH_STEPS):
-                    new_probs = {n: ev["probs"][n] for n in self.logistic}
+                    new_probs = {n: ev["probs"][n] for n in self.no_em}
                     for name in self.em_free:
                         num = ev["counts"][name] + self.pseudo[name]
                         den = num.sum(axis=-1, keepdims=True)
@@ -973,6 +1138,13 @@ class Fitter:
                     self.em_polish_steps += 1
                     if ev["residual"] <= s.ptol or ev["gradient_norm"] <= gtol_abs:
                         break
+            if self.monotone and s.l2 == 0 and ev["residual"] > s.ptol:
+                # the active-set step between phases: fractions whose derivative points at a
+                # bound they are creeping to are put on it (kept only if the objective rises)
+                moved = self.pin(ev, near=PIN_DISTANCE)
+                if moved is not None:
+                    logits, ev = moved
+                    self.pin_steps += 1
             if ev["gradient_norm"] <= gtol_abs:
                 converged, stop_reason = True, "gradient norm below gtol"
                 break
@@ -1174,6 +1346,10 @@ def form_sections(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str
         if _forms.has_rows(network, name):
             src = network.tie_source(name)
             out[name] = {"cpd": network.cpd_form(src), "parameters": _forms.parameters_json(network, src, probs[src])}
+            if _forms.is_monotone(network, src):
+                out[name]["increasing_with"] = list(network.node(src).increasing_with)
+                out[name]["binding"] = _mono.binding(network, src, probs[src],
+                                                     _forms.implied_table(network, src, probs[src]))
     return out
 
 
@@ -1204,7 +1380,18 @@ def stationarity_section(fitter: Fitter, ev: Mapping[str, Any]) -> dict[str, Any
             "kkt_worst_cell": label or None, "cells_over_tolerance": over,
             "max_residual": ev["residual"], "boundary_escapes": int(fitter.boundary_escapes),
             "saddle_escapes": int(fitter.saddle_escapes),
+            **({"monotone": _monotone_stationarity(fitter, ev)} if fitter.monotone else {}),
             "holds": bool(fitter.kkt_holds(ev))}
+
+
+def _monotone_stationarity(fitter: "Fitter", ev: Mapping[str, Any]) -> dict[str, Any]:
+    """The box KKT check of the monotone fractions at the returned point: the largest measure
+    (:func:`adfit.monotone.box_kkt`, first-order gain per record served; None with an L2
+    penalty), its fraction, the fractions on a bound, the active-set steps taken."""
+    name, label, m = fitter.worst_box(ev) if ev.get("box") else (None, "", float("nan"))
+    on = {n: int(np.sum(np.min(np.asarray(ev["probs"][n]), axis=1) <= _mono.BOUND_TOL)) for n in fitter.monotone}
+    return {"box_kkt": None if not ev.get("box") else m, "worst_fraction": label or None,
+            "fractions_on_a_bound": on, "active_set_steps": int(fitter.pin_steps)}
 
 
 # --------------------------------------------------------------------------- the public API

@@ -51,6 +51,7 @@ from typing import Any, Mapping
 from ._jax import jax, jnp  # first: float64 on (adfit/_jax.py)
 import numpy as np
 
+from . import monotone as _mono
 from .network import Network
 
 __all__ = ["NOISY", "is_noisy", "cause_shape", "cause_row_labels", "implied_log_table", "implied_table",
@@ -72,10 +73,16 @@ def is_logistic(network: Network, name: str) -> bool:
     return network.cpd_form(network.tie_source(name)) == "logistic"
 
 
+def is_monotone(network: Network, name: str) -> bool:
+    """Whether ``name`` (or the node it is tied to) is a monotone table (``increasing_with``,
+    :mod:`adfit.monotone`: estimated through fraction rows)."""
+    return _mono.is_monotone(network, name)
+
+
 def has_rows(network: Network, name: str) -> bool:
     """Whether ``name`` (or its tie source) is estimated through parameter rows (a form of
-    :data:`ROW_FORMS`) rather than its CPT's rows."""
-    return network.cpd_form(network.tie_source(name)) in ROW_FORMS
+    :data:`ROW_FORMS`, or a monotone table's fraction rows) rather than its CPT's rows."""
+    return network.cpd_form(network.tie_source(name)) in ROW_FORMS or _mono.is_monotone(network, name)
 
 
 def _spans(network: Network, name: str) -> list[tuple[int, int]]:
@@ -89,14 +96,20 @@ def _spans(network: Network, name: str) -> list[tuple[int, int]]:
 
 
 def cause_shape(network: Network, name: str) -> tuple[int, int]:
-    """``(rows, states)`` of the cause rows of a noisy node: 1 + Σ (parent states − 1), card."""
+    """``(rows, states)`` of the cause rows of a noisy node: 1 + Σ (parent states − 1), card
+    (a monotone node: its fraction rows, :func:`adfit.monotone.fraction_shape`)."""
+    if _mono.is_monotone(network, name):
+        return _mono.fraction_shape(network, name)
     node = network.node(name)
     return 1 + sum(network.node(p).card - 1 for p in node.parents), node.card
 
 
 def cause_row_labels(network: Network, name: str) -> list[str]:
     """A readable label per parameter row: ``leak`` (``intercept`` for a logistic node), then
-    ``parent=state`` for each active (non-reference) state."""
+    ``parent=state`` for each active (non-reference) state; a monotone node's fraction rows:
+    ``configuration: child<=state``."""
+    if _mono.is_monotone(network, name):
+        return _mono.fraction_labels(network, name)
     out = ["intercept" if is_logistic(network, name) else "leak"]
     for p in network.node(name).parents:
         out += [f"{p}={s}" for s in network.node(p).states[1:]]
@@ -127,7 +140,10 @@ def implied_log_table(network: Network, name: str, logv):
     """log P(child | parents) (CPT-shaped, JAX) from the log parameter rows ``logv`` (rows,
     card): the cause rows of a noisy node, or for a logistic node the softmax rows whose logs
     are the intercept and coefficient rows up to a constant each (the constants cancel in the
-    softmax: ``log P(· | u) = log_softmax(Σ_d X_ud logv_d)``)."""
+    softmax: ``log P(· | u) = log_softmax(Σ_d X_ud logv_d)``); a monotone node's fraction rows
+    (:func:`adfit.monotone.implied_log_table`)."""
+    if _mono.is_monotone(network, name):
+        return _mono.implied_log_table(network, name, logv)
     if is_logistic(network, name):
         return jax.nn.log_softmax(_linear_jax(network, name, logv), axis=-1)
     node = network.node(name)
@@ -211,6 +227,8 @@ def _softmax(x: np.ndarray) -> np.ndarray:
 
 
 def _read_rows(network: Network, name: str, table: np.ndarray, *, floor: float) -> np.ndarray:
+    if _mono.is_monotone(network, name):
+        return _mono.read_fractions(network, name, table, floor=floor)
     R, K = cause_shape(network, name)
     p = np.asarray(table, dtype=np.float64)
     node = network.node(name)
@@ -279,8 +297,11 @@ def random_rows(network: Network, name: str, rng: np.random.Generator) -> np.nda
 def parameters_json(network: Network, name: str, v: np.ndarray) -> dict[str, Any]:
     """The ``"parameters"`` section of a noisy node: ``{"leak": ..., "strength": {parent: {state:
     ...}}}``, each a probability (noisy_or: of the second, present state) or a list over the
-    child's states (noisy_max)."""
+    child's states (noisy_max); of a monotone node: ``{"fraction": {label: σ}}``
+    (:func:`adfit.monotone.fraction_labels`)."""
     v = np.asarray(v, dtype=np.float64)
+    if _mono.is_monotone(network, name):
+        return {"fraction": {lab: float(x) for lab, x in zip(_mono.fraction_labels(network, name), v[:, 1])}}
     if is_logistic(network, name):
         with np.errstate(divide="ignore"):
             B = np.log(v)
@@ -310,6 +331,8 @@ def parameters_layout(network: Network, name: str, a: np.ndarray, *, reference: 
     probabilities; for a logistic node the coefficient cells themselves (the reference state's
     column as it is in ``a``)."""
     a = np.asarray(a, dtype=np.float64)
+    if _mono.is_monotone(network, name):  # a fraction's cells (1 − σ, σ): the second is σ
+        return {"fraction": {lab: float(x) for lab, x in zip(_mono.fraction_labels(network, name), a[:, 1])}}
     if not is_logistic(network, name):
         return parameters_json(network, name, a)
     coef: dict[str, Any] = {}
@@ -324,6 +347,9 @@ def parameters_layout(network: Network, name: str, a: np.ndarray, *, reference: 
 def rows_from_parameters(network: Network, name: str, doc: Mapping[str, Any]) -> np.ndarray:
     """Cause rows from a ``"parameters"`` section (the inverse of :func:`parameters_json`)."""
     R, K = cause_shape(network, name)
+    if _mono.is_monotone(network, name):
+        s1 = np.asarray([float(doc["fraction"][lab]) for lab in _mono.fraction_labels(network, name)])
+        return np.stack([1.0 - s1, s1], axis=1)
     if is_logistic(network, name):
         out = np.empty((R, K))
         out[0] = np.asarray(doc["intercept"], dtype=np.float64)
@@ -355,6 +381,11 @@ def n_cause_parameters(network: Network, name: str) -> int:
 def format_parameters(network: Network, name: str, doc: Mapping[str, Any], *, digits: int = 3) -> str:
     """One line with a structured node's parameters (the result layout), for the terminal."""
     form = network.cpd_form(network.tie_source(name))
+    if _mono.is_monotone(network, name):
+        fr = list((doc.get("fraction") or {}).values())
+        on = sum(1 for x in fr if x is not None and (x >= 1.0 - _mono.BOUND_TOL or x <= _mono.BOUND_TOL))
+        return (f"  monotone along {', '.join(network.node(network.tie_source(name)).increasing_with)}: "
+                f"{on} of {len(fr)} fractions on a bound (binding constraints or cells at 0)")
 
     def num(x: Any) -> str:
         return f"{x:.{digits}f}" if not isinstance(x, (list, tuple)) else "(" + ", ".join(f"{v:.{digits}f}" for v in x) + ")"

@@ -572,8 +572,11 @@ def _check_structure(net: Network, source: str) -> None:
                                f"too (and at a configuration with several active parents it is not one condition on "
                                f"the parameters); use cpd = 'table' for cells that are impossible one by one")
         if n.increasing_with:
-            if n.cpd not in ("table", "logistic"):
-                raise NetworkError(f"{key}.increasing_with is available with cpd = 'table' or 'logistic' only")
+            if n.cpd == "logistic":
+                raise NetworkError(f"{key}.increasing_with with cpd = 'logistic' is not estimated yet (monotone "
+                                   f"coefficients); use cpd = 'table' with increasing_with, or drop one of the keys")
+            if n.cpd != "table":
+                raise NetworkError(f"{key}.increasing_with is available with cpd = 'table' only")
             for p in n.increasing_with:
                 if p not in n.parents:
                     raise NetworkError(f"{key}.increasing_with names {p!r}, which is not a parent of {n.name!r} "

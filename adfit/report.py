@@ -112,7 +112,7 @@ _KNOWN_TOP = {"format", "method", "objective", "log_likelihood", "log_prior", "p
               "uncertainty", "identifiability", "stationarity", "starts_note", "latent_states"}
 _KNOWN_NODE = {"states", "parents", "latent", "fixed", "table", "se", "interval", "se_status",
                "missing_information", "cpd", "parameters", "parameters_se", "parameters_interval",
-               "parameters_status"}
+               "parameters_status", "increasing_with", "binding"}
 
 
 def _param_leaves(doc: Any, path: tuple = ()) -> list[tuple[tuple, Any]]:
@@ -141,6 +141,8 @@ def _parameters_table(name: str, sec: Mapping[str, Any]) -> str:
     def label(path: tuple) -> str:
         if path[0] in ("leak", "intercept"):
             return path[0]
+        if path[0] == "fraction" and len(path) == 2:  # a monotone node's fraction
+            return path[1]
         return f"{path[1]}={path[2]}" if len(path) >= 3 else ".".join(path)
 
     rows = []
@@ -156,10 +158,25 @@ def _parameters_table(name: str, sec: Mapping[str, Any]) -> str:
     kind = str(sec.get("cpd") or "structured")
     what = ("log-odds against the first state" if kind == "logistic" else
             "probabilities (noisy-OR: of the second state; noisy-MAX: per state)")
+    if sec.get("increasing_with"):
+        kind = "monotone (increasing with " + ", ".join(map(str, sec["increasing_with"])) + ")"
+        what = "fractions: 1 = the constraint against one state lower binds, 0 = the cell is 0"
     return (f'<table class="cpt-table params-table" data-node="{esc(name)}-parameters"><caption>{esc(kind)} '
             f"parameters of {esc(name)} ({esc(what)}); the table above is the one they imply</caption>"
             "<thead><tr><th>parameter</th><th>estimate</th><th>se</th><th>interval</th></tr></thead><tbody>"
-            + "".join(rows) + "</tbody></table>")
+            + "".join(rows) + "</tbody></table>" + _binding_list(sec))
+
+
+def _binding_list(sec: Mapping[str, Any]) -> str:
+    """A monotone node's binding constraints (the result's ``"binding"``), one line each."""
+    lines = sec.get("binding")
+    if not sec.get("increasing_with"):
+        return ""
+    if not lines:
+        return "<p class=\"binding\">No monotonicity constraint binds at the estimate.</p>"
+    return ("<p class=\"binding\">Binding constraints at the estimate (the data pull the other way; the "
+            "estimate sits on the constraint):</p><ul class=\"binding\">"
+            + "".join(f"<li>{esc(str(x))}</li>" for x in lines) + "</ul>")
 
 
 # ============================================================================== number formats

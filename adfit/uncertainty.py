@@ -66,6 +66,7 @@ from .errors import OptionError
 from .likelihood import Likelihood, _loglik_logcpt, check_possible
 from .network import Network
 from . import forms as _forms
+from . import monotone as _mono
 from .params import block_shape, coefficient_log_prior, full_probs, mask_pseudo, pool_counts
 
 #: default confidence level of the intervals
@@ -147,6 +148,8 @@ class Coordinates:
     # logistic nodes with a normal prior on their coefficients: the precisions 1/sd² (rows, card);
     # the prior's curvature is part of the information (the coordinates are the coefficients)
     precision: Mapping[str, np.ndarray] = field(default_factory=dict)
+    # monotone nodes: (records served, room) per fraction row (adfit.monotone.served, .room)
+    monotone: Mapping[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
 
     @property
     def size(self) -> int:
@@ -191,10 +194,17 @@ class Coordinates:
         return {k: np.asarray(v) for k, v in out.items()}
 
 
+def _cols(network: Network, name: str) -> int:
+    """Cells per row of an estimated node's block of parameters: its states, or 2 for the
+    fraction rows of a monotone node (:func:`adfit.params.block_shape`)."""
+    return block_shape(network, network.tie_source(name))[-1]
+
+
 def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
                      n_cells: Mapping[str, np.ndarray],
                      logistic: Mapping[str, tuple[np.ndarray, np.ndarray]] | None = None,
-                     precision: Mapping[str, np.ndarray] | None = None) -> Coordinates:
+                     precision: Mapping[str, np.ndarray] | None = None,
+                     monotone: Mapping[str, tuple[np.ndarray, np.ndarray]] | None = None) -> Coordinates:
     """Reference states, boundary and no-data cells, and the coordinates, at an estimate.
 
     ``n_cells``: per estimated node, expected counts plus pseudo-counts (CPT-shaped; pooled over
@@ -204,7 +214,7 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
     coords: list[tuple[str, int, int]] = []
     sizes, ref_d, st_d, pr_d, n_d, base_d, idx_d = [], {}, {}, {}, {}, {}, {}
     for name in network.estimated_names:
-        K = network.node(name).card
+        K = _cols(network, name)
         th = np.asarray(probs[name], dtype=np.float64).reshape(-1, K)
         n = np.asarray(n_cells[name], dtype=np.float64).reshape(-1, K)
         nu = n.sum(axis=1)
@@ -226,6 +236,19 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
             status = np.full(th.shape, _INTERIOR, dtype=np.int64)
             status[served < UNINFORMED_COUNT] = _NO_DATA
             status[:, 0] = _CONSTRAINED
+        if monotone and name in monotone:
+            # fraction rows (1 − σ, σ) of a monotone node (adfit.monotone): the larger cell is the
+            # reference; a fraction on a bound (a binding dominance constraint, or a cell at 0) is
+            # on the boundary (no coordinate: the error bars are conditional on it, no two-sided
+            # interval through the bound); one whose room is empty does not move the table
+            served, room = monotone[name]
+            ref = np.argmax(th, axis=1)
+            status = np.full(th.shape, _INTERIOR, dtype=np.int64)
+            other = 1 - ref
+            at = th[np.arange(len(ref)), other] <= _mono.BOUND_TOL
+            status[np.flatnonzero(at), other[at]] = _BOUNDARY
+            status[np.asarray(served) < UNINFORMED_COUNT] = _NO_DATA
+            status[np.asarray(room) <= 1e-12] = _CONSTRAINED
         lt = np.log(np.maximum(th, _FLOOR))
         base = lt - lt[np.arange(len(ref)), ref][:, None]
         free_cells = []
@@ -240,7 +263,8 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
         idx_d[name] = np.asarray(free_cells, dtype=np.int32)
     return Coordinates(network, tuple(coords), tuple(sizes), ref_d, st_d, pr_d, n_d, base_d, idx_d,
                        dict(logistic or {}),
-                       {k: np.asarray(v, dtype=np.float64) for k, v in (precision or {}).items() if np.any(v)})
+                       {k: np.asarray(v, dtype=np.float64) for k, v in (precision or {}).items() if np.any(v)},
+                       dict(monotone or {}))
 
 
 # --------------------------------------------------------------------------- the objective in JAX
@@ -393,7 +417,7 @@ def complete_information(co: Coordinates, l2: float = 0.0) -> dict[tuple[str, in
                                             - table[..., :, None] * table[..., None, :])
         lblocks[name] = _row_sums_matrix(co.network, name, cov)
     for (name, row), js in co.row_slices().items():
-        K = co.network.node(name).card
+        K = _cols(co.network, name)
         states = [co.coords[j][2] for j in js]
         if name in lblocks:
             blk = lblocks[name][row][np.ix_(states, states)]
@@ -404,7 +428,8 @@ def complete_information(co: Coordinates, l2: float = 0.0) -> dict[tuple[str, in
             out[(name, row)] = blk
             continue
         th = co.probs[name][row, states]
-        nu = co.n[name][row].sum()
+        # a monotone fraction pair: the records of its configuration (virtual counts are no records)
+        nu = co.monotone[name][0][row] if name in co.monotone else co.n[name][row].sum()
         blk = nu * (np.diag(th) - np.outer(th, th))
         if l2:
             blk = blk + 2.0 * l2 * (np.eye(len(states)) - 1.0 / K)
@@ -646,11 +671,16 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
         if _forms.is_logistic(network, n):
             fam = sum((np.asarray(counts[t]) for t in network.tied_names(n)), np.asarray(counts[n]))
             logistic[n] = (fam.sum(axis=-1, keepdims=True), np.asarray(full[n], dtype=np.float64))
+    monotone = {}
+    for n in row_nodes:
+        if _forms.is_monotone(network, n):
+            fam = sum((np.asarray(counts[t]) for t in network.tied_names(n)), np.asarray(counts[n]))
+            monotone[n] = (_mono.served(network, n, fam), _mono.room(network, n, full[n]))
     counts = pool_counts(network, counts, rows_at)
     # a logistic node's prior entries are the precisions of its coefficients, not pseudo-counts
     co = make_coordinates(network, rows_at, {k: counts[k] + (0.0 if k in logistic else pseudo[k])
                                              for k in network.estimated_names}, logistic,
-                          precision={k: pseudo[k] for k in logistic})
+                          precision={k: pseudo[k] for k in logistic}, monotone=monotone)
     P = co.size
     if method == "auto":
         method = "dense" if P <= DENSE_MAX_PARAMETERS else "matrix-free"
@@ -812,7 +842,7 @@ def _assemble(co: Coordinates, level: float, z: float, cov: _CovBlocks, flat_X: 
     rows = co.row_slices()
     se_d, lo_d, hi_d, st_d = {}, {}, {}, {}
     for name in net.estimated_names:
-        K = net.node(name).card
+        K = _cols(net, name)
         th = co.probs[name]
         Q = th.shape[0]
         se = np.full((Q, K), np.nan)
@@ -939,7 +969,7 @@ def _implied_table_errors(co: Coordinates, name: str, level: float, z: float, co
     pst = param_status.reshape(-1)
     bad = dep[:, pst == _NOT_IDENTIFIED].any(axis=1) if (pst == _NOT_IDENTIFIED).any() else np.zeros(Q * K, bool)
     R = param_status.shape[0]
-    used = dep.reshape(Q * K, R, K).any(axis=2)                     # cells × cause rows
+    used = dep.reshape(Q * K, R, param_status.shape[1]).any(axis=2)                     # cells × cause rows
     nodata = np.array([all((param_status[r] == _NO_DATA).any() for r in np.flatnonzero(used[c]))
                        if used[c].any() else False for c in range(Q * K)])
     var = np.einsum("ij,jk,ik->i", J, S, J) if J.shape[1] else np.zeros(Q * K)
@@ -985,7 +1015,7 @@ def _fractions(cov_block: np.ndarray, com_block: np.ndarray) -> np.ndarray:
 def _missing_fraction(co: Coordinates, name: str, status: Mapping[str, np.ndarray], cov: _CovBlocks,
                       blocks) -> dict[str, Any]:
     """Per row and per node: fraction of missing information (marginal over the other parameters)."""
-    K = co.network.node(name).card
+    K = _cols(co.network, name)
     st = status[name].reshape(-1, K)
     rows = co.row_slices()
     per_row: list[float | None] = []

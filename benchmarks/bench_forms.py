@@ -4,8 +4,10 @@ Network (synthetic): ``--causes`` binary root causes (some cells missing) and on
 effect with all of them as parents, plus a second effect tied to the first; the records are
 simulated from a noisy-OR truth and the causes' cells are missing completely at random with
 probability ``--missing``. The same records are fitted with the effect's CPT as a full table
-(one row per cause configuration), a noisy-OR, a noisy-MAX (the same two states), and a
-logistic CPT, side by side in one run. For each form the table gives the free parameters, the
+(one row per cause configuration), a noisy-OR, a noisy-MAX (the same two states), a
+logistic CPT and a monotone table (``increasing_with = ["c0"]``, which the noisy-OR truth
+satisfies), side by side in one run; then records in which c0 *lowers* the effect's
+probability, fitted as a table and as the monotone table (whose constraints then bind). For each form the table gives the free parameters, the
 time of one value-and-gradient evaluation of the fit's objective (warm, median of
 ``--repeats``), the whole `fit()` (one start, compile included, then warm), the iterations and
 the log-likelihood reached.
@@ -41,18 +43,21 @@ from adfit.params import free_layout  # noqa: E402
 def network(causes: int, form: str):
     nodes = {f"c{i}": {"states": ["no", "yes"]} for i in range(causes)}
     par = [f"c{i}" for i in range(causes)]
-    nodes["effect"] = {"states": ["no", "yes"], "parents": par, **({} if form == "table" else {"cpd": form})}
+    extra = ({} if form == "table" else {"increasing_with": ["c0"]} if form.startswith("monotone") else {"cpd": form})
+    nodes["effect"] = {"states": ["no", "yes"], "parents": par, **extra}
     nodes["effect2"] = {"states": ["no", "yes"], "parents": par, "tied_to": "effect"}
     return parse_network({"nodes": nodes})
 
 
-def simulate(causes: int, n: int, missing: float, seed: int) -> pd.DataFrame:
+def simulate(causes: int, n: int, missing: float, seed: int, flip: bool = False) -> pd.DataFrame:
     rng = np.random.default_rng(seed)
     on = rng.random((n, causes)) < rng.uniform(0.1, 0.4, size=causes)
     strength = rng.uniform(0.2, 0.8, size=causes)
+    if flip:  # c0 protects instead of causing: the monotone constraint along c0 binds
+        strength[0] = -1.0
     df = pd.DataFrame({f"c{i}": np.where(on[:, i], "yes", "no") for i in range(causes)})
     for e in ("effect", "effect2"):
-        absent = 0.95 * np.prod(np.where(on, 1 - strength, 1.0), axis=1)
+        absent = np.minimum(0.95 * np.prod(np.where(on, 1 - strength, 1.0), axis=1), 0.99)
         df[e] = np.where(rng.random(n) < absent, "no", "yes")
     mask = rng.random((n, causes)) < missing
     for i in range(causes):
@@ -69,13 +74,15 @@ def main(argv=None) -> None:
     ap.add_argument("--seed", type=int, default=0)
     args = ap.parse_args(argv)
     df = simulate(args.causes, args.records, args.missing, args.seed)
+    flipped = simulate(args.causes, args.records, args.missing, args.seed, flip=True)
     print(f"# {platform.platform()}, {os.cpu_count()} CPUs, load {os.getloadavg()[0]:.1f}; "
           f"{args.causes} causes, {args.records} records, {args.missing:.0%} of cause cells missing")
-    print("| form | free parameters | value+gradient (ms) | fit, cold (s) | fit, warm (s) | iterations | log-likelihood |")
-    print("|---|---|---|---|---|---|---|")
-    for form in ("table", "noisy_or", "noisy_max", "logistic"):
-        net = network(args.causes, form)
-        coded = load_data(net, df)
+    print("| form | free parameters | value+gradient (ms) | fit, cold (s) | fit, warm (s) | iterations | log-likelihood "
+          "| binding | converged |")
+    print("|---|---|---|---|---|---|---|---|---|")
+    for form in ("table", "noisy_or", "noisy_max", "logistic", "monotone", "table, flipped", "monotone, binding"):
+        net = network(args.causes, form.replace("table, flipped", "table"))
+        coded = load_data(net, flipped if form in ("table, flipped", "monotone, binding") else df)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             t = time.perf_counter()
@@ -94,8 +101,9 @@ def main(argv=None) -> None:
             t = time.perf_counter()
             f.objective_fg(z, ones, pseudo, 0.0, f.n_total)
             times.append(time.perf_counter() - t)
+        bind = len(((r.extras.get("nodes") or {}).get("effect") or {}).get("binding") or [])
         print(f"| {form} | {net.n_free_parameters()} | {1e3 * statistics.median(times):.2f} | {cold:.2f} | "
-              f"{warm:.2f} | {r.iterations} | {r.log_likelihood:.3f} |")
+              f"{warm:.2f} | {r.iterations} | {r.log_likelihood:.3f} | {bind} | {'yes' if r.converged else 'NO'} |")
 
 
 if __name__ == "__main__":

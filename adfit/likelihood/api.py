@@ -254,9 +254,9 @@ def score(network: Network, data: CodedData, probs: Mapping[str, np.ndarray], *,
     for name in network.estimated_names:  # a tied node's family counts add to its source's
         th = np.asarray(probs[name], dtype=np.float64)
         n_xu = sum((counts[t] for t in network.tied_names(name)), counts[name])
-        if network.cpd_form(name) in ("noisy_or", "noisy_max", "logistic"):
-            from .. import forms
+        from .. import forms
 
+        if forms.has_rows(network, name):  # parameter rows (noisy, logistic, monotone fractions)
             rows = forms.rows_from_table(network, name, th)
             a = forms.virtual_counts(network, name, rows, n_xu)
             c = None if pseudo_counts is None or name not in pseudo_counts else np.asarray(pseudo_counts[name])

@@ -1,0 +1,250 @@
+"""Monotone CPTs (network key ``increasing_with``) in the gradient fit: the map from "fractions"
+to a CPT whose rows are stochastically ordered.
+
+A node with ``increasing_with = [p, ...]`` (on a table node) has, for every state ``y`` of its own
+and every parent configuration ``u``, the cumulative probability ``F_u(y) = P(child ≤ y | u)``
+non-increasing when one listed parent moves up one state with the others fixed (first-order
+stochastic dominance; e.g. Shaked & Shanthikumar 2007, Stochastic Orders, §1.A). With ``pred(u)``
+the configurations one listed parent lower than ``u``, the constraints are exactly
+
+    F_u(y − 1) ≤ F_u(y) ≤ min over pred(u) of F_pred(y)          (y = 0 … K−2)
+
+(the left one makes the row a distribution; the right one is the dominance over one step;
+longer steps follow by transitivity). The interval is never empty: by induction
+``F_u(y − 1) ≤ F_pred(y − 1) ≤ F_pred(y)``. So every monotone table is
+
+    F_u(y) = F_u(y − 1) + (min_pred F_pred(y) − F_u(y − 1)) · σ_{u,y},   σ_{u,y} ∈ [0, 1],
+
+computed in the table's row order (a predecessor comes before its successors), and every choice
+of the **fractions** σ in the box gives a monotone table: the constraints hold by construction,
+not by clipping. σ = 0 puts the cell ``P(y | u)`` at 0; σ = 1 makes the dominance constraint
+between ``u`` and its lowest predecessor bind (equal cumulative probabilities at ``y``).
+
+In the free vector each fraction is a two-state row ``(1 − σ, σ)`` (a softmax pair, so that the
+layer's heads of :mod:`adfit.params` apply unchanged); its log-probabilities enter here
+separately, ``1 − σ`` and ``σ`` are never formed by subtraction. The survival function
+``S = 1 − F`` runs through the same recursion (with the max over predecessors), so that cells
+near 1 and near 0 both keep their precision; each cell ``P(y | u) = σ_{u,y} · (room left)`` is
+computed as a product, its log as a sum.
+
+The fractions sit in a box, not on a simplex of counts: the implied table is not linear in a
+fraction row with non-negative coefficients, so the simplex KKT ratio and the EM growth step of
+:mod:`adfit.forms` do not apply to them. The fit checks the box KKT conditions instead
+(:func:`box_kkt`) and pins fractions at their bounds by an active-set rule (:mod:`adfit.fit`,
+docs/method.md "Monotone CPTs").
+"""
+
+from __future__ import annotations
+
+import math
+from functools import lru_cache
+from typing import Any, Mapping
+
+from ._jax import jax, jnp  # first: float64 on (adfit/_jax.py)
+import numpy as np
+
+from .network import Network
+
+__all__ = ["is_monotone", "fraction_shape", "fraction_labels", "implied_log_table", "read_fractions",
+           "fractions_from_table", "dsigma", "box_kkt", "binding", "PIN", "BOUND_TOL"]
+
+#: distance from a bound at which the fit pins a fraction (σ = PIN or 1 − PIN): the objective
+#: then differs from the bound's by about PIN × the records served, and the logit gradient of the
+#: pinned coordinate is PIN times its derivative (it stays put)
+PIN = 1e-16
+#: a fraction this close to a bound counts as on it (binding constraint, cell at 0)
+BOUND_TOL = 1e-9
+
+
+def is_monotone(network: Network, name: str) -> bool:
+    """Whether ``name`` (or its tie source) is a table node with ``increasing_with``."""
+    n = network.node(network.tie_source(name))
+    return n.fixed is None and n.cpd == "table" and bool(n.increasing_with)
+
+
+def fraction_shape(network: Network, name: str) -> tuple[int, int]:
+    """``(R·(K − 1), 2)``: one two-state row per (parent configuration, state but the last)."""
+    src = network.tie_source(name)
+    R = network.n_parent_configs(src)
+    return R * (network.node(src).card - 1), 2
+
+
+@lru_cache(maxsize=256)
+def _structure(network: Network, name: str):
+    """Static index arrays: the configurations by level (sum of the listed parents' state
+    indices: each depends only on the level before), and their predecessors (padded with the
+    sentinel index R, whose F is 1 and S is 0: no constraint)."""
+    src = network.node(network.tie_source(name))
+    cards = [network.node(p).card for p in src.parents]
+    R = int(math.prod(cards))
+    axes = [src.parents.index(p) for p in src.increasing_with]
+    grid = np.array(list(np.ndindex(*cards)), dtype=np.int64).reshape(R, len(cards))
+    strides = np.array([int(math.prod(cards[i + 1:])) for i in range(len(cards))], dtype=np.int64)
+    level = grid[:, axes].sum(axis=1) if axes else np.zeros(R, np.int64)
+    pred = np.full((R, max(1, len(axes))), R, dtype=np.int64)
+    for j, a in enumerate(axes):
+        up = grid[:, a] > 0
+        pred[up, j] = np.flatnonzero(up) - strides[a]
+    groups = tuple((np.flatnonzero(level == lv), pred[level == lv]) for lv in np.unique(level))
+    return R, src.card, groups
+
+
+def _safe_log(x):
+    pos = x > 0
+    return jnp.where(pos, jnp.log(jnp.where(pos, x, 1.0)), -jnp.inf)
+
+
+def implied_log_table(network: Network, name: str, logv):
+    """log P(child | parents) (CPT-shaped, JAX) from the log fraction rows ``logv``
+    (``fraction_shape``; column 0 is log(1 − σ), column 1 log σ)."""
+    R, K, groups = _structure(network, name)
+    src = network.tie_source(name)
+    lv = logv.reshape(R, K - 1, 2)
+    v0, v1 = jnp.exp(lv[..., 0]), jnp.exp(lv[..., 1])
+    F_prev = jnp.zeros(R)
+    S_prev = jnp.ones(R)
+    cols = []
+    for y in range(K - 1):
+        F = jnp.ones(R + 1)                       # sentinel R: no predecessor, F = 1 ...
+        S = jnp.zeros(R + 1)                      # ... and S = 0
+        W = jnp.zeros(R)
+        for idx, pred in groups:
+            ub = jnp.min(F[pred], axis=1)
+            sm = jnp.max(S[pred], axis=1)
+            fp, sp = F_prev[idx], S_prev[idx]
+            a0, a1 = v0[idx, y], v1[idx, y]
+            F = F.at[idx].set(a0 * fp + a1 * ub)
+            S = S.at[idx].set(a0 * sp + a1 * sm)
+            # the room ub − F(y−1) = S(y−1) − max S_pred(y): from the smaller operands
+            W = W.at[idx].set(jnp.maximum(jnp.where(ub <= sp, ub - fp, sp - sm), 0.0))
+        cols.append(_safe_log(W) + lv[:, y, 1])
+        F_prev, S_prev = F[:R], S[:R]
+    cols.append(_safe_log(S_prev))
+    return jnp.stack(cols, axis=-1).reshape(network.cpt_shape(src))
+
+
+def read_fractions(network: Network, name: str, table: np.ndarray, *, floor: float = 0.0) -> np.ndarray:
+    """Fraction rows ``(1 − σ, σ)`` from a CPT (numpy). A monotone table gives back its own
+    fractions (up to rounding; where the room is empty, σ is irrelevant and set to 1/2); a table
+    that is not monotone gives the fractions of a monotone one near it (each cumulative
+    probability clipped into its interval, in row order). ``floor`` keeps every σ in
+    [floor, 1 − floor] (a start off the bounds)."""
+    R, K, groups = _structure(network, name)
+    p = np.asarray(table, dtype=np.float64).reshape(R, K)
+    F0 = np.cumsum(p, axis=1)
+    out = np.empty((R, K - 1, 2))
+    F_prev = np.zeros(R)
+    for y in range(K - 1):
+        F = np.ones(R + 1)
+        for idx, pred in groups:
+            ub = F[pred].min(axis=1)
+            lo = F_prev[idx]
+            t = np.clip(F0[idx, y], lo, ub)
+            w = ub - lo
+            ok = w > 1e-300
+            s1 = np.where(ok, (t - lo) / np.where(ok, w, 1.0), 0.5)
+            s0 = np.where(ok, (ub - t) / np.where(ok, w, 1.0), 0.5)
+            if floor > 0:
+                s1 = np.clip(s1, floor, 1.0 - floor)
+                s0 = 1.0 - s1
+            out[idx, y, 0], out[idx, y, 1] = s0, s1
+            F[idx] = lo + w * s1
+        F_prev = F[:R]
+    rows = out.reshape(R * (K - 1), 2)
+    return rows / rows.sum(axis=1, keepdims=True)
+
+
+def fractions_from_table(network: Network, name: str, table: np.ndarray) -> np.ndarray:
+    """σ per (configuration, state but the last), ``(R, K − 1)``, of a monotone table."""
+    R, K, _ = _structure(network, name)
+    return read_fractions(network, name, table)[:, 1].reshape(R, K - 1)
+
+
+def room(network: Network, name: str, table: np.ndarray) -> np.ndarray:
+    """``min_pred F_pred(y) − F_u(y − 1)`` per fraction (R·(K−1),): how much the cumulative
+    probability may move; 0 where the fraction does not matter."""
+    R, K, groups = _structure(network, name)
+    F0 = np.cumsum(np.asarray(table, dtype=np.float64).reshape(R, K), axis=1)
+    out = np.empty((R, K - 1))
+    for y in range(K - 1):
+        F = np.ones(R + 1)
+        F[:R] = F0[:, y]
+        for idx, pred in groups:
+            out[idx, y] = F[pred].min(axis=1) - (F0[idx, y - 1] if y else 0.0)
+    return np.maximum(out, 0.0).reshape(-1)
+
+
+def dsigma(rows: np.ndarray, virtual: np.ndarray) -> np.ndarray:
+    """∂F/∂σ per fraction from the rows' virtual counts ``a = ∂F/∂ log v`` (rows, 2): the
+    derivative along the box, ∂F/∂v₁ − ∂F/∂v₀ = a₁/v₁ − a₀/v₀ (a is proportional to v, so the
+    ratio stays finite near the bounds)."""
+    v = np.asarray(rows, dtype=np.float64)
+    a = np.asarray(virtual, dtype=np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        d1 = np.where(v[:, 1] > 0, a[:, 1] / v[:, 1], 0.0)
+        d0 = np.where(v[:, 0] > 0, a[:, 0] / v[:, 0], 0.0)
+    return d1 - d0
+
+
+def served(network: Network, name: str, family_counts: np.ndarray) -> np.ndarray:
+    """Records of each fraction's parent configuration (R·(K−1),), from the family counts."""
+    R, K, _ = _structure(network, name)
+    n_u = np.asarray(family_counts, dtype=np.float64).reshape(R, K).sum(axis=1)
+    return np.repeat(n_u, K - 1)
+
+
+def box_kkt(rows: np.ndarray, d: np.ndarray, n_u: np.ndarray) -> np.ndarray:
+    """The box KKT measure of every fraction, in records per record served: the first-order gain
+    of moving σ to the bound its derivative points at, ``(∂F/∂σ)⁺ (1 − σ) + (∂F/∂σ)⁻ σ``, over
+    ``max(N(u), 1)``. It is 0 exactly at a KKT point of the box (Boyd & Vandenberghe 2004,
+    Convex Optimization, §5.5.3): an interior fraction has ∂F/∂σ = 0; a fraction at 0 has
+    ∂F/∂σ ≤ 0 and one at 1 has ∂F/∂σ ≥ 0 (the multiplier of the binding bound ≥ 0). At a point
+    that is not a maximum along some fraction it is positive."""
+    v = np.asarray(rows, dtype=np.float64)
+    gain = np.maximum(d, 0.0) * v[:, 0] + np.maximum(-d, 0.0) * v[:, 1]
+    return gain / np.maximum(np.asarray(n_u, dtype=np.float64), 1.0)
+
+
+def fraction_labels(network: Network, name: str) -> list[str]:
+    """A label per fraction row: ``"<configuration>: <child> <= <state>"``."""
+    src = network.node(network.tie_source(name))
+    cfgs = network.parent_config_labels(src.name)
+    out = []
+    for lab in cfgs:
+        cfg = ", ".join(f"{p}={s}" for p, s in zip(src.parents, lab))
+        out += [f"{cfg}: {src.name}<={src.states[y]}" for y in range(src.card - 1)]
+    return out
+
+
+def binding(network: Network, name: str, rows: np.ndarray, table: np.ndarray | None = None,
+            *, tol: float = BOUND_TOL) -> list[str]:
+    """Readable descriptions of the constraints on their bounds at ``rows``: dominance
+    constraints that bind (σ = 1 with a predecessor: the cumulative probability equals the
+    lower configuration's) and cells at 0 (σ = 0). Fractions whose room is empty (they do not
+    matter) are left out."""
+    src = network.node(network.tie_source(name))
+    R, K, groups = _structure(network, name)
+    v = np.asarray(rows, dtype=np.float64)
+    if table is None:
+        table = np.exp(np.asarray(implied_log_table_jit(network, src.name, np.log(np.maximum(v, 0.0) + 0.0))))
+    rm = room(network, name, table)
+    cfgs = network.parent_config_labels(src.name)
+    has_pred = np.zeros(R, bool)
+    for idx, pred in groups:
+        has_pred[idx] = (pred < R).any(axis=1)
+    out = []
+    for r in range(R * (K - 1)):
+        u, y = divmod(r, K - 1)
+        if rm[r] <= 1e-12:
+            continue
+        cfg = ", ".join(f"{p}={s}" for p, s in zip(src.parents, cfgs[u]))
+        if v[r, 0] <= tol and has_pred[u]:
+            out.append(f"P({src.name}<={src.states[y]} | {cfg}) equals its value one {'/'.join(src.increasing_with)} "
+                       f"state lower")
+        elif v[r, 1] <= tol:
+            out.append(f"P({src.name}={src.states[y]} | {cfg}) = 0")
+    return out
+
+
+#: :func:`implied_log_table` compiled once per (network, node)
+implied_log_table_jit = jax.jit(implied_log_table, static_argnums=(0, 1))

@@ -1,0 +1,276 @@
+"""Monotone CPTs (network key ``increasing_with``): the gradient fit through fractions.
+
+Checked against the definition of first-order stochastic dominance (Shaked & Shanthikumar 2007,
+Stochastic Orders, §1.A: Y_u ≤st Y_u' iff P(Y_u ≤ y) ≥ P(Y_u' ≤ y) for every y), an independent
+scipy.optimize SLSQP maximisation of a multinomial likelihood written here under the linear
+dominance constraints, the closed-form multinomial maximum (counts / row totals) and its
+binomial standard error, brute-force enumeration of a missing parent, central finite
+differences, and the KKT conditions of a box (Boyd & Vandenberghe 2004, Convex Optimization,
+§5.5.3). Data are simulated here (seeded); no value is taken from adfit itself.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy.optimize import minimize
+from typer.testing import CliRunner
+
+from adfit import forms, monotone as mono
+from adfit.errors import NetworkError, PriorError
+from adfit.fit import Fitter, FitSettings, fit
+from adfit.network import network_from_dict
+
+C_STATES = ["ok", "worn", "failed"]
+LEVELS = ["low", "mid", "high"]
+
+
+def net_ab(listed=("wear",)):
+    """wear (3 levels) and load (3 levels) -> gauge (3 ordered states), monotone along ``listed``."""
+    return network_from_dict({
+        "wear": {"states": LEVELS}, "load": {"states": LEVELS},
+        "gauge": {"states": C_STATES, "parents": ["wear", "load"], "increasing_with": list(listed)}})
+
+
+def data_ab(n, p_of, seed):
+    rng = np.random.default_rng(seed)
+    w, l = rng.integers(0, 3, n), rng.integers(0, 3, n)
+    g = np.array([rng.choice(3, p=p_of(a, b)) for a, b in zip(w, l)])
+    df = pd.DataFrame({"wear": np.array(LEVELS)[w], "load": np.array(LEVELS)[l], "gauge": np.array(C_STATES)[g]})
+    N = np.zeros((3, 3, 3))
+    np.add.at(N, (w, l, g), 1.0)
+    return df, N
+
+
+def quiet_fit(*a, **k):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return fit(*a, **k)
+
+
+def dominance_gaps(table, axis):
+    """max over (other parents, y) of F_{u+1}(y) − F_u(y) along ``axis`` (≤ 0 when monotone)."""
+    F = np.cumsum(table, axis=-1)[..., :-1]
+    return float(np.max(np.diff(F, axis=axis)))
+
+
+def slsqp_constrained(N, axis, x0=None):
+    """Maximise Σ N log θ over tables whose rows are distributions and whose cumulative
+    probabilities do not increase along ``axis`` (scipy SLSQP, written independently of adfit)."""
+    shape = N.shape
+    K = shape[-1]
+
+    def negll(x):
+        th = x.reshape(shape)
+        return -float(np.sum(np.where(N > 0, N * np.log(np.maximum(th, 1e-300)), 0.0)))
+
+    def grad(x):
+        th = x.reshape(shape)
+        return -np.where(N > 0, N / np.maximum(th, 1e-300), 0.0).ravel()
+
+    cons = [{"type": "eq", "fun": lambda x: x.reshape(-1, K).sum(axis=1) - 1.0}]
+    cons.append({"type": "ineq",  # F_u(y) − F_{u+1}(y) ≥ 0 along the axis
+                 "fun": lambda x: -np.diff(np.cumsum(x.reshape(shape), axis=-1)[..., :-1], axis=axis).ravel()})
+    x0 = np.full(N.size, 1.0 / K) if x0 is None else x0
+    res = minimize(negll, x0, jac=grad, method="SLSQP", bounds=[(1e-10, 1.0)] * N.size, constraints=cons,
+                   options={"ftol": 1e-15, "maxiter": 2000})
+    return -res.fun, res.x.reshape(shape)
+
+
+def test_implied_table_is_monotone_and_gives_back_its_fractions():
+    net = net_ab()
+    rng = np.random.default_rng(0)
+    R, _ = forms.cause_shape(net, "gauge")
+    v = rng.dirichlet([1.0, 1.0], size=R)
+    T = forms.implied_table(net, "gauge", v)
+    assert np.allclose(T.sum(axis=-1), 1.0, atol=1e-14) and (T >= 0).all()
+    assert dominance_gaps(T, 0) <= 1e-15          # along wear: dominance
+    assert dominance_gaps(T, 1) > 0.01           # along load: no constraint (this draw violates it)
+    # the recursion of the definition, written out: F_u(y) = F_u(y-1) + (F_pred(y) - F_u(y-1)) σ
+    F = np.zeros((3, 3, 3))
+    for a in range(3):
+        for b in range(3):
+            prev = 0.0
+            for y in range(2):
+                ub = F[a - 1, b, y] if a > 0 else 1.0
+                F[a, b, y] = prev + (ub - prev) * v[(a * 3 + b) * 2 + y, 1]
+                prev = F[a, b, y]
+            F[a, b, 2] = 1.0
+    assert np.abs(np.cumsum(T, axis=-1) - F).max() < 1e-15
+    assert np.abs(forms.rows_from_table(net, "gauge", T) - v).max() < 1e-12
+    # a table that is not monotone is read into one that is
+    bad = rng.dirichlet(np.ones(3), size=(3, 3))
+    assert dominance_gaps(forms.implied_table(net, "gauge", forms.start_rows(net, "gauge", bad)), 0) <= 1e-15
+
+
+def test_fit_on_complete_data_equals_an_independent_constrained_maximum():
+    # the child's distribution moves *down* with wear in the middle: the constraint must bind
+    probs = {0: [0.2, 0.5, 0.3], 1: [0.5, 0.3, 0.2], 2: [0.1, 0.3, 0.6]}
+    df, N = data_ab(300, lambda a, b: probs[(a + b) % 3], seed=1)
+    assert dominance_gaps(N / N.sum(axis=-1, keepdims=True), 0) > 0.05  # the unconstrained maximum violates it
+    res = quiet_fit(net_ab(), df)
+    assert res.converged, res.stop_reason
+    T = res.probs["gauge"]
+    assert dominance_gaps(T, 0) <= 1e-12
+    ll_fit = float(np.sum(np.where(N > 0, N * np.log(T), 0.0)))
+    ll_ref, T_ref = slsqp_constrained(N, axis=0)
+    assert abs(ll_fit - ll_ref) < 1e-6, (ll_fit, ll_ref)
+    assert np.abs(T - T_ref).max() < 1e-3
+    st = res.extras["stationarity"]
+    assert st["holds"] and st["monotone"]["box_kkt"] <= 1e-3
+    sec = res.extras["nodes"]["gauge"]
+    assert sec["increasing_with"] == ["wear"] and sec["binding"]
+    # every binding constraint reported is one: F equal to the lower wear level's
+    F = np.cumsum(T, axis=-1)
+    for text in sec["binding"]:
+        if "equals" in text:
+            y = C_STATES.index(text.split("<=")[1].split(" |")[0])
+            cfg = dict(kv.split("=") for kv in text.split("| ")[1].split(")")[0].split(", "))
+            a, b = LEVELS.index(cfg["wear"]), LEVELS.index(cfg["load"])
+            assert abs(F[a, b, y] - F[a - 1, b, y]) < 1e-12
+
+
+def test_fit_equals_the_unconstrained_maximum_when_the_data_satisfy_the_order():
+    # counts / row totals is the multinomial maximum; when it is already monotone the constraint
+    # changes nothing (and the standard errors are the binomial sqrt(θ(1-θ)/N(u)))
+    probs = {0: [0.7, 0.2, 0.1], 1: [0.45, 0.3, 0.25], 2: [0.2, 0.3, 0.5]}
+    df, N = data_ab(900, lambda a, b: probs[a], seed=2)
+    closed = N / N.sum(axis=-1, keepdims=True)
+    assert dominance_gaps(closed, 0) < -0.01  # strictly inside: no constraint binds
+    res = quiet_fit(net_ab(), df, restarts=1)
+    assert res.converged
+    assert np.abs(res.probs["gauge"] - closed).max() < 1e-6
+    assert res.extras["nodes"]["gauge"]["binding"] == []
+    from adfit.uncertainty import compute_uncertainty
+
+    u = compute_uncertainty(net_ab(), df, res.probs, converged=True)
+    nu = N.sum(axis=-1, keepdims=True)
+    assert np.allclose(u.se["gauge"], np.sqrt(closed * (1 - closed) / nu), rtol=1e-4)
+
+
+def test_missing_parent_brute_force_likelihood_and_constrained_maximum():
+    # a tiny network: wear (3) -> gauge (3), monotone along wear; a third of the records miss wear
+    net = network_from_dict({"wear": {"states": LEVELS},
+                             "gauge": {"states": C_STATES, "parents": ["wear"], "increasing_with": ["wear"]}})
+    rng = np.random.default_rng(3)
+    truth = np.array([[0.3, 0.5, 0.2], [0.5, 0.3, 0.2], [0.2, 0.3, 0.5]])  # violates the order at mid
+    w = rng.choice(3, 240, p=[0.3, 0.4, 0.3])
+    g = np.array([rng.choice(3, p=truth[a]) for a in w])
+    ws = np.array(LEVELS, dtype=object)[w]
+    ws[::3] = None
+    df = pd.DataFrame({"wear": ws, "gauge": np.array(C_STATES)[g]})
+    res = quiet_fit(net, df, restarts=1)
+    assert res.converged, res.stop_reason
+    assert dominance_gaps(res.probs["gauge"], 0) <= 1e-12
+
+    obs = ~pd.isna(df["wear"]).to_numpy()
+    wi = np.array([LEVELS.index(x) if x is not None else -1 for x in ws])
+
+    def loglik(pw, T):  # brute force: a record without wear sums P(wear) P(gauge | wear) over wear
+        ll = np.log(pw[wi[obs]] * T[wi[obs], g[obs]]).sum()
+        return ll + np.log((pw[:, None] * T[:, g[~obs]]).sum(axis=0)).sum()
+
+    assert abs(loglik(res.probs["wear"], res.probs["gauge"]) - res.log_likelihood) < 1e-9
+    # the same maximum by SLSQP on the brute-force likelihood under the dominance constraints
+    def neg(x):
+        pw, T = x[:3], x[3:].reshape(3, 3)
+        return -loglik(np.maximum(pw, 1e-12), np.maximum(T, 1e-12))
+
+    cons = [{"type": "eq", "fun": lambda x: np.r_[x[:3].sum() - 1, x[3:].reshape(3, 3).sum(axis=1) - 1]},
+            {"type": "ineq", "fun": lambda x: -np.diff(np.cumsum(x[3:].reshape(3, 3), axis=1)[:, :-1], axis=0).ravel()}]
+    best = -np.inf
+    for x0 in (np.full(12, 1 / 3), np.r_[res.probs["wear"], res.probs["gauge"].ravel()]):
+        r = minimize(neg, x0, method="SLSQP", bounds=[(1e-9, 1)] * 12, constraints=cons,
+                     options={"ftol": 1e-15, "maxiter": 3000})
+        best = max(best, -r.fun)
+    assert abs(best - res.log_likelihood) < 1e-6, (best, res.log_likelihood)
+
+
+def test_gradient_equals_finite_differences_and_the_box_check_sees_a_non_maximum():
+    from adfit.data import load_data
+
+    net = net_ab()
+    df, _ = data_ab(120, lambda a, b: [0.4, 0.3, 0.3] if a != 1 else [0.6, 0.3, 0.1], seed=4)
+    df.loc[::4, "wear"] = None
+    coded = load_data(net, df)
+    f = Fitter(net, coded, settings=FitSettings())
+    lay = f.layout
+    rng = np.random.default_rng(5)
+    R, _ = forms.cause_shape(net, "gauge")
+    probs = {"wear": rng.dirichlet(np.ones(3)), "load": rng.dirichlet(np.ones(3)),
+             "gauge": rng.dirichlet([2.0, 2.0], size=R)}
+    z = lay.flatten(f.logits_of(probs))
+    scale = np.ones_like(z)
+    fg = lambda zz: f.objective_fg(zz, scale, f.pseudo_flat, 0.0, f.n_total)
+    _, g = fg(z)
+    h = 1e-6
+    fd = np.array([(fg(z + h * e)[0] - fg(z - h * e)[0]) / (2 * h) for e in np.eye(z.size)])
+    assert np.abs(fd - g).max() < 1e-7 * max(1.0, np.abs(g).max())
+    # the box KKT check (adfit.monotone.box_kkt) at the fit, and at a point moved off it
+    res = quiet_fit(net, df, restarts=1)
+    assert res.converged
+    rows = forms.rows_from_table(net, "gauge", res.probs["gauge"])
+    good = {**res.probs, "gauge": rows}
+    ev = f.evaluate(f.logits_of(good))
+    assert f.box_holds(ev)
+    d = mono.dsigma(rows, ev["counts"]["gauge"])
+    on = np.flatnonzero(rows[:, 0] <= 1e-9)  # binding constraints: σ = 1 with an outward derivative
+    assert on.size and (d[on] >= -1e-6).all()
+    moved = rows.copy()
+    moved[on[0]] = (0.2, 0.8)
+    ev2 = f.evaluate(f.logits_of({**good, "gauge": moved}))
+    assert not f.box_holds(ev2) and ev2["objective"] < ev["objective"]
+
+
+def test_refusals_are_one_line_and_name_the_key():
+    with pytest.raises(NetworkError, match=r"nodes.gauge.increasing_with lists 2 parents .*keep one"):
+        quiet_fit(net_ab(("wear", "load")), data_ab(20, lambda a, b: [0.3, 0.3, 0.4], 0)[0])
+    with pytest.raises(NetworkError, match="increasing_with with cpd = 'logistic' is not estimated yet"):
+        network_from_dict({"wear": {"states": LEVELS}, "gauge": {"states": C_STATES, "parents": ["wear"],
+                                                                  "cpd": "logistic", "increasing_with": ["wear"]}})
+    both = network_from_dict({"wear": {"states": LEVELS}, "gauge": {
+        "states": C_STATES, "parents": ["wear"], "increasing_with": ["wear"],
+        "impossible": [{"given": {"wear": "low"}, "state": "failed"}]}})
+    with pytest.raises(NetworkError, match="nodes.gauge.impossible cannot be combined with increasing_with"):
+        quiet_fit(both, pd.DataFrame({"wear": ["low", "high"], "gauge": ["ok", "failed"]}))
+    from adfit.priors import prior_from_dict
+
+    net = net_ab()
+    df = data_ab(30, lambda a, b: [0.3, 0.3, 0.4], 0)[0]
+    with pytest.raises(PriorError, match="increasing_with: priors on monotone nodes are not available yet"):
+        quiet_fit(net, df, prior=prior_from_dict({"default": {"pseudo_counts": 1.0}}, net))
+
+
+def test_cli_fit_errors_score_and_em_check(tmp_path):
+    from adfit.cli import app
+
+    (tmp_path / "net.toml").write_text(
+        '[nodes.wear]\nstates = ["low", "mid", "high"]\n'
+        '[nodes.gauge]\nstates = ["ok", "worn", "failed"]\nparents = ["wear"]\nincreasing_with = ["wear"]\n')
+    rng = np.random.default_rng(6)
+    truth = np.array([[0.3, 0.5, 0.2], [0.5, 0.3, 0.2], [0.2, 0.3, 0.5]])
+    w = rng.integers(0, 3, 200)
+    df = pd.DataFrame({"wear": np.array(LEVELS)[w], "gauge": [C_STATES[rng.choice(3, p=truth[a])] for a in w]})
+    df.loc[::5, "wear"] = ""
+    df.to_csv(tmp_path / "d.csv", index=False)
+    run = CliRunner().invoke
+    r = run(app, ["fit", str(tmp_path / "net.toml"), str(tmp_path / "d.csv"), "--out", str(tmp_path / "r.json"),
+                  "--errors", "--quiet"])
+    assert r.exit_code == 0, r.output
+    doc = json.loads((tmp_path / "r.json").read_text())
+    T = np.array(doc["nodes"]["gauge"]["table"])
+    assert dominance_gaps(T, 0) <= 1e-12
+    assert doc["nodes"]["gauge"]["binding"]
+    assert "boundary" in json.dumps(doc["nodes"]["gauge"]["parameters_status"])
+    r = run(app, ["score", str(tmp_path / "net.toml"), str(tmp_path / "d.csv"), "--params", str(tmp_path / "r.json")])
+    assert r.exit_code == 0, r.output
+    r = run(app, ["fit", str(tmp_path / "net.toml"), str(tmp_path / "d.csv"), "--out", str(tmp_path / "r2.json"),
+                  "--em-check"])
+    assert r.exit_code == 1
+    assert "the EM cross-check does not cover monotone nodes" in r.output
+    assert not (tmp_path / "r2.json").exists()
