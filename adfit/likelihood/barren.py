@@ -87,15 +87,18 @@ def _summed_leaves(network: Network, codes: np.ndarray) -> tuple["np.ndarray | _
         return codes, ()
     summed: dict[int, np.ndarray] = {}  # leaf -> rows where its cell is summed
     step = max(1024, PLAN_BLOCK // max(1, n))
+    sidx = np.flatnonzero(some)
+    pos = {int(u): j for j, u in enumerate(sidx)}
     for s0 in range(0, R, step):
         blk = codes[s0:s0 + step]
-        hid = blk < 0
+        # only the columns hidden somewhere, transposed: one contiguous row per node
+        hT = np.ascontiguousarray((blk[:, sidx] < 0).T)
         # observed or with an observed descendant, per node hidden somewhere (children first)
         od: dict[int, np.ndarray] = {}
         for u in reversed(range(n)):
             if not some[u]:
                 continue
-            hit = ~hid[:, u]
+            hit = ~hT[pos[u]]
             for c in kids[u]:
                 if some[c]:
                     hit = hit | od[c]
@@ -104,7 +107,7 @@ def _summed_leaves(network: Network, codes: np.ndarray) -> tuple["np.ndarray | _
                     break
             od[u] = hit
         for v in leaves:
-            rm = hid[:, v].copy()
+            rm = hT[pos[v]].copy()
             for u in pa[v]:
                 if some[u]:
                     rm &= od[u]

@@ -202,12 +202,16 @@ def _distinct_rows(sub: np.ndarray, cards: Sequence[int]) -> tuple[np.ndarray, n
     """Distinct rows of a small non-negative code matrix: (first index of each, inverse)."""
     if sub.shape[1] == 0:
         return np.zeros(1, np.int64), np.zeros(len(sub), np.int64)
+    if len(sub) == 1:  # (most component types of a large network occur in one row)
+        return np.zeros(1, np.int64), np.zeros(1, np.int64)
     key = np.zeros(len(sub), np.int64)
     space = math.prod(int(c) for c in cards)
     if space < (1 << 62):
         for j in range(sub.shape[1]):
             key = key * int(cards[j]) + sub[:, j]
-        if space <= max(1 << 16, 4 * len(key)):  # dense key space: no sort needed
+        # dense key space: no sort needed (for few rows, sorting them is cheaper than a pass over
+        # the key space; both give the distinct keys in increasing order, first occurrences)
+        if space <= 4 * len(key) or (space <= (1 << 16) and len(key) >= 2048):
             seen = np.zeros(space, np.int64)
             seen[key] = 1
             rank = np.cumsum(seen) - 1
@@ -234,7 +238,8 @@ def _type_instances(network: Network, typ: _Type, codes: np.ndarray, counts: np.
 def _type_instances_uncached(network: Network, typ: _Type, codes: np.ndarray, counts: np.ndarray, rows: np.ndarray):
     bd = list(typ.boundary)
     sub = codes[np.ix_(rows, bd)] if bd else np.zeros((len(rows), 0), np.int32)
-    first, inv = _distinct_rows(sub, [_code_cards(network)[u] for u in bd])
+    cc = _code_cards(network)
+    first, inv = _distinct_rows(sub, [cc[u] for u in bd])
     w = np.bincount(inv, weights=counts[rows], minlength=len(first))
     return sub[first], w, inv
 

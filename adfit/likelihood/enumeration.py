@@ -35,9 +35,16 @@ def _enum_tables(network: Network, typ: _Type, bcodes: np.ndarray, layout) -> np
 
 
 def _enum_bucket_menu(classes: dict[tuple[int, int], int]) -> dict[tuple[int, int], tuple[int, int]]:
-    """Merge (A, m) shape classes into buckets when the padding costs less than a compile."""
+    """Merge (A, m) shape classes into buckets when the padding costs less than a compile.
+
+    Greedy: the pair whose merge saves the most is merged first, until no merge saves; among
+    equal savings, the pair met first in the order of the buckets (oldest first), as a double
+    loop over them would meet it. The cost of a pair depends on the two buckets alone, so it is
+    computed once per pair, not once per round."""
     buckets = {k: [k] for k in classes}
     size = dict(classes)
+    seq = {k: i for i, k in enumerate(buckets)}   # insertion order of the live buckets
+    n_seq = len(seq)
 
     def merged_cost(a, b):
         A = max(a[0], b[0])
@@ -45,24 +52,32 @@ def _enum_bucket_menu(classes: dict[tuple[int, int], int]) -> dict[tuple[int, in
         extra = size[a] * (A * m - a[0] * a[1]) + size[b] * (A * m - b[0] * b[1])
         return extra * T_ENUM * PLAN_EVALUATIONS - COMPILE_ENUM, (A, m)
 
+    pairs: dict[tuple, tuple] = {}                # (a, b), a older than b -> (cost, shape)
+    keys = list(buckets)
+    for i in range(len(keys)):
+        for j in range(i + 1, len(keys)):
+            pairs[keys[i], keys[j]] = merged_cost(keys[i], keys[j])
     while len(buckets) > 1:
-        keys = list(buckets)
-        best = None
-        for i in range(len(keys)):
-            for j in range(i + 1, len(keys)):
-                c, shape = merged_cost(keys[i], keys[j])
-                if best is None or c < best[0]:
-                    best = (c, keys[i], keys[j], shape)
-        if best[0] >= 0:
+        (a, b), (c, shape) = min(pairs.items(), key=lambda kv: (kv[1][0], seq[kv[0][0]], seq[kv[0][1]]))
+        if c >= 0:
             break
-        _, a, b, shape = best
         members = buckets.pop(a) + buckets.pop(b)
         n = size.pop(a) + size.pop(b)
+        gone = {a, b}
         if shape in buckets:
             members += buckets.pop(shape)
             n += size.pop(shape)
+            gone.add(shape)
+        for k in gone:
+            seq.pop(k, None)
+        pairs = {kk: v for kk, v in pairs.items() if kk[0] not in gone and kk[1] not in gone}
         buckets[shape] = members
         size[shape] = n
+        seq[shape] = n_seq
+        n_seq += 1
+        for k in buckets:
+            if k != shape:
+                pairs[k, shape] = merged_cost(k, shape)
     out = {}
     for shape, members in buckets.items():
         for k in members:

@@ -20,18 +20,20 @@ class _Statics:
     cards: tuple[int, ...]
     parents: tuple[tuple[int, ...], ...]
     children: tuple[tuple[int, ...], ...]
+    names: tuple[str, ...] = ()
 
 
 _STATICS: dict[int, tuple[Network, _Statics]] = {}
 
 
 def _st(network: Network) -> _Statics:
-    """Cards, parents and children of a network (the Network properties rebuild them per call).
+    """Cards, parents, children and names of a network (the Network properties rebuild them per call).
 
     Keyed by identity: hashing a Network hashes every node, which is slow for large networks."""
     hit = _STATICS.get(id(network))
     if hit is None or hit[0] is not network:
-        hit = _STATICS[id(network)] = (network, _Statics(network.cards, network.parent_indices, network.children))
+        hit = _STATICS[id(network)] = (network, _Statics(network.cards, network.parent_indices, network.children,
+                                                               network.names))
     return hit[1]
 
 

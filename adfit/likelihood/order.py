@@ -29,23 +29,26 @@ def _min_fill_order(variables: Sequence[int], scopes: Sequence[Sequence[int]], c
             for b in s:
                 if a != b:
                     nb[a].add(b)
+
+    def key_of(v):  # (fill-in edges, size of the created clique) of eliminating v now
+        ns = nb[v]
+        fill = 0
+        nl = list(ns)
+        for i in range(len(nl)):
+            nbi = nb[nl[i]]
+            for j in range(i + 1, len(nl)):
+                if nl[j] not in nbi:
+                    fill += 1
+        return (fill, cards[v] * math.prod(cards[u] for u in ns))
+
+    # A node's key depends on its neighbours and the edges among them, so eliminating v changes
+    # the keys of v's neighbours and of their neighbours only: the others are kept. The node
+    # chosen is the first in node order with the smallest key, as a scan of every node would.
+    keys = {v: key_of(v) for v in variables}
     order: list[int] = []
-    remaining = set(variables)
-    while remaining:
-        best, best_key = None, None
-        for v in sorted(remaining):
-            ns = nb[v]
-            fill = 0
-            nl = list(ns)
-            for i in range(len(nl)):
-                for j in range(i + 1, len(nl)):
-                    if nl[j] not in nb[nl[i]]:
-                        fill += 1
-            weight = cards[v] * math.prod(cards[u] for u in ns)
-            key = (fill, weight)
-            if best_key is None or key < best_key:
-                best, best_key = v, key
-        v = best
+    while keys:
+        v = min(keys, key=lambda u: (keys[u], u))
+        best_key = keys.pop(v)
         if best_key[1] > MAX_TABLE_ENTRIES:
             raise TooLargeError(table_too_large(best_key[1], names[v] if names else str(v), len(nb[v]) + 1))
         ns = list(nb[v])
@@ -56,8 +59,12 @@ def _min_fill_order(variables: Sequence[int], scopes: Sequence[Sequence[int]], c
         for a in ns:
             nb[a].discard(v)
         del nb[v]
-        remaining.remove(v)
         order.append(v)
+        touched = set(ns)
+        for a in ns:
+            touched |= nb[a]
+        for u in touched:
+            keys[u] = key_of(u)
     return order
 
 
@@ -72,12 +79,24 @@ def _group_plan(network: Network, hidden_mask: np.ndarray, *, kind: str, n_rows:
     those nodes (a component: the families that touch its hidden nodes).
     """
     n = len(network)
-    cards = _st(network).cards
-    pa = _st(network).parents
-    kids = _st(network).children
+    st = _st(network)
+    pa, kids = st.parents, st.children
     always = hidden_mask.all(axis=0)
     some = hidden_mask.any(axis=0)
     forced = set(indicator_nodes)
+    if families is not None and not forced:
+        # A component (the common call, once per component type): only its families' members
+        # are looked at; the sets below are those of the general case restricted to them, the
+        # counts are over every node, as there.
+        fam_set = set(families)
+        members = sorted({u for v in fam_set for u in (*pa[v], v)})
+        flags = (some & ~always).tolist()
+        hid = always.tolist()
+        partial_set = {i for i in members if flags[i]}
+        observed = {i for i in members if not flags[i] and not hid[i]}
+        return _steps_plan(network, sorted(fam_set), observed, partial_set, n_rows=n_rows, kind=kind,
+                           n_hidden=int(np.count_nonzero(always)), n_partial=int(np.count_nonzero(some & ~always)),
+                           n_pruned=n - len(fam_set))
     partial_set = {i for i in range(n) if (some[i] and not always[i]) or i in forced}
     hidden_set = {i for i in range(n) if always[i] and i not in forced}
     observed = {i for i in range(n) if i not in partial_set and i not in hidden_set}
@@ -92,13 +111,19 @@ def _group_plan(network: Network, hidden_mask: np.ndarray, *, kind: str, n_rows:
             for i in reversed(range(n)):  # children come after parents in topological order
                 if i in hidden_set:
                     keep[i] = any(keep[c] for c in kids[i])
-    n_pruned = n - sum(keep)
+    return _steps_plan(network, [i for i in range(n) if keep[i]], observed, partial_set, n_rows=n_rows, kind=kind,
+                       n_hidden=len(hidden_set), n_partial=len(partial_set), n_pruned=n - sum(keep))
 
+
+def _steps_plan(network: Network, kept: Sequence[int], observed: set, partial_set: set, *, n_rows: int, kind: str,
+                n_hidden: int, n_partial: int, n_pruned: int) -> GroupPlan:
+    """The factors, indicators, min-fill order and steps of the families of ``kept`` (in node
+    order); ``observed`` and ``partial_set`` hold at least every member of those families."""
+    st = _st(network)
+    cards, pa = st.cards, st.parents
     log_terms: list[tuple[int, tuple[int, ...]]] = []
     factors: list[FactorSpec] = []
-    for i in range(n):
-        if not keep[i]:
-            continue
+    for i in kept:
         fam = tuple(pa[i]) + (i,)
         scope = tuple(v for v in fam if v not in observed)
         if not scope:
@@ -117,7 +142,7 @@ def _group_plan(network: Network, hidden_mask: np.ndarray, *, kind: str, n_rows:
 
     scopes: list[tuple[int, ...]] = [f.scope for f in factors] + [(v,) for v in indicators]
     variables = sorted({v for s in scopes for v in s})
-    order = _min_fill_order(variables, scopes, cards, network.names)
+    order = _min_fill_order(variables, scopes, cards, st.names)
     live = list(range(len(scopes)))
     steps: list[Step] = []
     cost = 0.0
@@ -142,4 +167,4 @@ def _group_plan(network: Network, hidden_mask: np.ndarray, *, kind: str, n_rows:
     chunk = 1 << max(6, min(15, int(math.log2(max(1, CHUNK_BUDGET // biggest)))))
     chunk = min(chunk, max(64, 1 << math.ceil(math.log2(max(1, n_rows)))))
     return GroupPlan(tuple(log_terms), tuple(factors), indicators, tuple(steps), final, tuple(scopes),
-                     chunk, cost + len(log_terms), kind, len(hidden_set), len(partial_set), n_pruned)
+                     chunk, cost + len(log_terms), kind, n_hidden, n_partial, n_pruned)

@@ -48,12 +48,14 @@ class _Program:
 def _bcast_ids(scope: Sequence[int], ids: np.ndarray, union: Sequence[int], cards: Mapping[int, int]) -> np.ndarray:
     """Ids of a table broadcast over ``union`` (every variable of ``scope`` is in ``union``)."""
     pos = [union.index(u) for u in scope]
-    order = np.argsort(pos)
-    a = np.transpose(ids, order) if len(scope) > 1 else ids
     shape = [1] * len(union)
-    for u in scope:
-        shape[union.index(u)] = cards[u]
-    return np.broadcast_to(a.reshape(shape), tuple(cards[u] for u in union))
+    for p, u in zip(pos, scope):
+        shape[p] = cards[u]
+    if len(scope) > 1:
+        ids = ids.transpose(sorted(range(len(pos)), key=pos.__getitem__))  # (positions are distinct)
+    out = np.empty(tuple(cards[u] for u in union), ids.dtype)
+    out[...] = ids.reshape(shape)  # broadcast (a copy: every caller reshapes it)
+    return out
 
 
 class _TapeWriter:
