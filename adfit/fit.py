@@ -495,11 +495,6 @@ class Fitter:
                 raise NetworkError(f"nodes.{n.name}.impossible cannot be combined with increasing_with in the "
                                    f"gradient fit yet (a monotone table's zero cells follow from its fractions); "
                                    f"drop one of the keys")
-        for name in network.estimated_names:
-            if _forms.is_logistic(network, name) and network.node(name).impossible:
-                raise NetworkError(f"nodes.{name}.impossible: the gradient fit does not estimate impossible cells on a "
-                                   f"logistic node yet (its softmax would need the cells masked and its coefficients "
-                                   f"read around them); the EM reference does (adfit em), or use cpd = 'table'")
         self.network = network
         self.data = data
         self.settings = settings

@@ -37,7 +37,10 @@ constants cancel in the final softmax). There are no simplex constraints on coef
 their virtual counts sum to 0 per row, the gradient in the logits is the virtual counts
 themselves, and the KKT check and EM steps (which need counts) leave logistic rows out; the
 preconditioner uses the complete-data information of each coefficient
-(:func:`logistic_weights`).
+(:func:`logistic_weights`). Impossible cells of a logistic node (network key ``impossible``)
+are set to −∞ before its softmax, so its rows renormalise over the other states; its
+coefficients are read off a table by least squares on the possible cells
+(:func:`_logistic_least_squares`).
 
 This module is written from the definitions above, independently of the EM
 reference's :mod:`adfit.emforms`, so that the cross-check compares two implementations.
@@ -145,7 +148,10 @@ def implied_log_table(network: Network, name: str, logv):
     if _mono.is_monotone(network, name):
         return _mono.implied_log_table(network, name, logv)
     if is_logistic(network, name):
-        return jax.nn.log_softmax(_linear_jax(network, name, logv), axis=-1)
+        lin = _linear_jax(network, name, logv)
+        if network.node(name).impossible:  # cells fixed at 0: out of the softmax (its row renormalises)
+            lin = jnp.where(network.impossible_mask(name), -jnp.inf, lin)
+        return jax.nn.log_softmax(lin, axis=-1)
     node = network.node(name)
     K = node.card
     # every cumulative term is kept, the last one too (log of the row's sum, 0 on the simplex):
@@ -232,6 +238,8 @@ def _read_rows(network: Network, name: str, table: np.ndarray, *, floor: float) 
     R, K = cause_shape(network, name)
     p = np.asarray(table, dtype=np.float64)
     node = network.node(name)
+    if is_logistic(network, name) and node.impossible:
+        return _softmax(_logistic_least_squares(network, name, p))
     if is_logistic(network, name):
         # log θ(· | u) = intercept + Σ coefficients − normaliser: the intercept row is read at the
         # all-first-states row, each coefficient row at the row where only its parent moves
@@ -259,6 +267,41 @@ def _read_rows(network: Network, name: str, table: np.ndarray, *, floor: float) 
             out[r0 + s - 1] = np.diff(Q, prepend=0.0)
     out = np.maximum(out, floor)
     return out / out.sum(axis=-1, keepdims=True)
+
+
+def _logistic_least_squares(network: Network, name: str, p: np.ndarray) -> np.ndarray:
+    """The coefficient rows ``B`` (rows, card; first column 0) of a logistic node with impossible
+    cells, read off its table ``p``: ``log p(k | u) = Σ_d X_ud B_dk − A_u`` on every possible cell
+    (``A_u`` the row's normaliser), solved by least squares (exact for a table of the form; the
+    impossible cells carry no equation)."""
+    node = network.node(name)
+    R, K = cause_shape(network, name)
+    shape = tuple(network.cpt_shape(name))
+    Q = int(np.prod(shape[:-1]))
+    X = np.zeros((Q, R))
+    X[:, 0] = 1.0
+    for u, cfg in enumerate(np.ndindex(*shape[:-1])):
+        for i, (r0, _) in enumerate(_spans(network, name)):
+            if cfg[i] > 0:
+                X[u, r0 + cfg[i] - 1] = 1.0
+    ok = ~network.impossible_mask(name).reshape(Q, K)
+    lp = np.log(np.maximum(p.reshape(Q, K), 1e-300))
+    rows, rhs = [], []
+    n_b = R * (K - 1)
+    for u in range(Q):
+        for k in range(K):
+            if not ok[u, k]:
+                continue
+            eq = np.zeros(n_b + Q)
+            if k > 0:
+                eq[np.arange(R) * (K - 1) + (k - 1)] = X[u]
+            eq[n_b + u] = -1.0
+            rows.append(eq)
+            rhs.append(lp[u, k])
+    sol = np.linalg.lstsq(np.asarray(rows), np.asarray(rhs), rcond=None)[0]
+    B = np.zeros((R, K))
+    B[:, 1:] = sol[:n_b].reshape(R, K - 1)
+    return B
 
 
 def row_sums(network: Network, name: str, m: np.ndarray) -> np.ndarray:

@@ -239,7 +239,7 @@ def full_logits(network: Network, logits: Mapping[str, Any]) -> dict[str, np.nda
     for name in network.free_names:
         src = network.tie_source(name)
         e = np.asarray(logits[src], dtype=np.float64)
-        if network.node(src).impossible:
+        if network.node(src).impossible and not _forms.has_rows(network, src):  # parameter rows: masked in their table
             e = np.where(network.impossible_mask(src), -np.inf, e)
         out[name] = e
     return out
@@ -253,7 +253,8 @@ def estimated_starts(network: Network, probs: Mapping[str, np.ndarray]) -> dict[
     for name in network.free_names:
         src = network.tie_source(name)
         th = np.asarray(probs[src], dtype=np.float64)
-        if network.node(src).impossible:
+        if network.node(src).impossible and th.shape == tuple(network.cpt_shape(src)) \
+                and not (_forms.has_rows(network, src) and th.shape == block_shape(network, src)):
             th = np.where(network.impossible_mask(src), 0.0, th)
             th = th / th.sum(axis=-1, keepdims=True)
         out[name] = th
@@ -278,7 +279,7 @@ def mask_pseudo(network: Network, pseudo: Mapping[str, np.ndarray]) -> dict[str,
     """Pseudo-counts with 0 on impossible cells (a prior cannot put mass on a cell fixed at 0)."""
     out = dict(pseudo)
     for name in network.estimated_names:
-        if name in out and network.node(name).impossible:
+        if name in out and network.node(name).impossible and not _forms.has_rows(network, name):
             out[name] = np.where(network.impossible_mask(name), 0.0, np.asarray(out[name], dtype=np.float64))
     return out
 

@@ -973,9 +973,14 @@ def _implied_table_errors(co: Coordinates, name: str, level: float, z: float, co
     nodata = np.array([all((param_status[r] == _NO_DATA).any() for r in np.flatnonzero(used[c]))
                        if used[c].any() else False for c in range(Q * K)])
     var = np.einsum("ij,jk,ik->i", J, S, J) if J.shape[1] else np.zeros(Q * K)
+    imp = net.impossible_mask(name).reshape(-1) if net.node(name).impossible else np.zeros(Q * K, bool)
     for c in range(Q * K):
         u, k = divmod(c, K)
         t = float(table[u, k])
+        if imp[c]:  # fixed at 0 by the network: no error bar
+            st[u, k] = _CONSTRAINED
+            lo[u, k] = hi[u, k] = 0.0
+            continue
         if nodata[c]:
             st[u, k] = _NO_DATA
             continue

@@ -261,9 +261,8 @@ def test_cli_fit_with_a_normal_prior_and_a_bad_one(tmp_path):
     assert not (tmp_path / "r2.json").exists()
 
 
-def test_impossible_cells_on_noisy_nodes_are_refused_with_the_reason_and_on_logistic_nodes_by_the_gradient_fit():
+def test_impossible_cells_on_noisy_nodes_are_refused_with_the_reason():
     from adfit.errors import NetworkError
-    from adfit.network import parse_network
 
     # noisy-OR (Pearl 1988, §4.3.2): P(absent | a, b) = (1 − leak)(1 − s_a)(1 − s_b); a zero at
     # (a=yes, b=hi, absent) needs leak, s_a or s_b = 1, which zeroes other configurations' cells too
@@ -272,11 +271,57 @@ def test_impossible_cells_on_noisy_nodes_are_refused_with_the_reason_and_on_logi
         net_with({"states": ["absent", "present"], "cpd": "noisy_or", "impossible": imp})
     msg = str(e.value)
     assert "\n" not in msg and "nodes.y.impossible" in msg and "sets cells of other parent configurations" in msg
-    # a logistic node with an impossible cell: EM estimates it (tests/test_emforms.py); the
-    # gradient fit says it does not yet, in one line, instead of failing inside numpy
-    net = parse_network({"nodes": {"a": {"states": ["no", "yes"]}, "b": {"states": ["lo", "mid", "hi"]},
-                                   "y": {"states": ["low", "mid", "high"], "parents": ["a", "b"], "cpd": "logistic",
-                                         "impossible": [{"given": {"a": "no", "b": "lo"}, "state": "high"}]}}})
-    df = pd.DataFrame({"a": ["no", "yes"], "b": ["lo", "hi"], "y": ["low", "high"]})
-    with pytest.raises(NetworkError, match=r"nodes.y.impossible: the gradient fit does not estimate"):
-        fit(net, df)
+
+
+IMP = [{"given": {"a": "no", "b": "lo"}, "state": "high"}]
+
+
+def test_impossible_cell_on_a_logistic_node_complete_data_equals_a_masked_scipy_logit():
+    from test_emforms import brute_force_loglik
+
+    net = net_with({"states": ["low", "mid", "high"], "cpd": "logistic", "impossible": IMP})
+    t = forms.implied_table(net, "y", forms.rows_from_parameters(net, "y", TRUE3))
+    assert t[0, 0, 2] == 0.0 and t[0, 0].sum() == pytest.approx(1.0)
+    # the coefficients are read back off a table of the form exactly (least squares on the possible cells)
+    back = forms.parameters_json(net, "y", forms.rows_from_table(net, "y", t))
+    np.testing.assert_allclose(_coefs(back, 2), _coefs(TRUE3, 2), atol=1e-10)
+    probs = {"a": np.array([0.6, 0.4]), "b": np.array([0.5, 0.3, 0.2]), "y": t}
+    df = simulate(net, probs, 400, seed=11)
+    res = _fit(net, df, gtol=1e-11)
+    assert res.converged and res.probs["y"][0, 0, 2] == 0.0
+    # independent: a hand-written multinomial logit with the cell left out of its softmax, by scipy
+    X = _design(df)
+    Y = np.stack([(df.y == s).to_numpy(float) for s in ("low", "mid", "high")], axis=1)
+    M = np.zeros_like(Y)
+    M[((df.a == "no") & (df.b == "lo")).to_numpy(), 2] = -np.inf
+
+    def f(b):
+        B = np.concatenate([np.zeros((4, 1)), b.reshape(4, 2)], axis=1)
+        E = X @ B + M
+        ls = E - scipy.special.logsumexp(E, axis=1, keepdims=True)
+        g = X.T @ (Y - np.exp(ls))
+        return -np.sum(np.where(Y > 0, ls, 0.0)), -g[:, 1:].ravel()
+
+    ref = scipy.optimize.minimize(f, np.zeros(8), jac=True, method="BFGS", options={"gtol": 1e-10}).x.reshape(4, 2)
+    par = res.extras["nodes"]["y"]["parameters"]
+    np.testing.assert_allclose(np.stack([_coefs(par, 1), _coefs(par, 2)], axis=1), ref, atol=1e-6)
+    assert res.log_likelihood == pytest.approx(brute_force_loglik(net, res.probs, df), abs=1e-8)
+    st = attach_uncertainty(res, df).extras["nodes"]["y"]["se_status"]
+    assert st[0][2] == "constrained" and st[1][2] == "interior"
+
+
+def test_impossible_cell_on_a_logistic_node_incomplete_data_agrees_with_em():
+    from test_emforms import brute_force_loglik
+
+    net = net_with({"states": ["low", "mid", "high"], "cpd": "logistic", "impossible": IMP})
+    t = forms.implied_table(net, "y", forms.rows_from_parameters(net, "y", TRUE3))
+    df = simulate(net, {"a": np.array([0.6, 0.4]), "b": np.array([0.5, 0.3, 0.2]), "y": t}, 400, seed=12,
+                  missing={"a": 0.3, "y": 0.2})
+    prior = prior_from_dict({"nodes": {"y": {"coefficient_sd": 1.5}}}, net)
+    res = _fit(net, df, prior=prior, gtol=1e-11, em_check=True)
+    assert res.converged and res.extras["em_check"]["verdict"] == "agree" and res.probs["y"][0, 0, 2] == 0.0
+    assert res.log_likelihood == pytest.approx(brute_force_loglik(net, res.probs, df), abs=1e-8)
+    em = em_fit(net, df, pseudo_counts=prior.pseudo_counts(net), seed=1, tol=1e-13, gtol=1e-10, max_iter=3000)
+    assert em.converged
+    np.testing.assert_allclose(_coefs(em.parameters["y"], 2), _coefs(res.extras["nodes"]["y"]["parameters"], 2),
+                               atol=1e-5)
