@@ -362,7 +362,7 @@ def fit_command(
     engine: EngineOpt = "pandas",
     scheduler: SchedulerOpt = None,
     em_check: Annotated[bool, Flag("--em-check/--no-em-check", rich_help_panel=CHECK_PANEL, help="Cross-check the fit with the independent EM reference.")] = False,
-    em_max_iter: Annotated[int, typer.Option("--em-max-iter", rich_help_panel=CHECK_PANEL, help="With --em-check: most iterations of each EM run (from the fit's answer, from its own start).")] = 5000,
+    em_max_iter: Annotated[int, typer.Option("--em-max-iter", rich_help_panel=CHECK_PANEL, help="With --em-check: most E-steps of each EM run (from the fit's answer, from its own start).")] = 5000,
     compare_complete_case: Annotated[bool, Flag(
         "--compare-complete-case", rich_help_panel=CHECK_PANEL, help="Also fit on the complete rows only and compare every CPT entry.")] = False,
     folds: Annotated[int, typer.Option("--folds", rich_help_panel=CHECK_PANEL, help="K-fold cross-validation of the held-out marginal log-likelihood (0: off).")] = 0,

@@ -4,8 +4,13 @@ This module shares nothing with the JAX core (:mod:`adfit.likelihood`): it has i
 elimination order, its own junction tree and its own message passing, so that agreement between
 EM and the gradient fit is a real check.
 
-E-step. Distinct data rows are grouped by their pattern of hidden cells (missing cells and the
-latent nodes); patterns with few rows are pooled into one group. Per group one junction tree is
+E-step. A distinct row whose hidden cells (missing cells and the latent nodes) have few joint
+assignments once its hidden leaves are left out (at most ``ENUM_MAX``; a hidden node without
+children sums out to 1) is summed by enumeration: the assignments of all such rows lie in one
+array, and one E-step over them is a few gathers of log-CPT entries per node, a segmented
+log-sum-exp per row and one ``bincount`` per node (:class:`_Enumerated`), whatever the number of
+missingness patterns. The other rows are grouped by their pattern of hidden cells; patterns
+with few rows are pooled into one group. Per group one junction tree is
 built over the nodes not observed in every row of the group, from a greedy min-fill elimination
 order: eliminating ``x`` makes the cluster ``{x} ∪ neighbours(x)``, whose parent is the cluster of
 the first-eliminated node of its separator. Every CPT, indexed by the values of the nodes
@@ -262,10 +267,175 @@ def _rescale(msg: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return msg / safe, logs
 
 
-class EStep:
-    """Exact expected counts for one network and one data set, by junction-tree passes.
+# =============================================================================== enumerated rows
+#: a row whose hidden cells (hidden leaves left out) have at most this many joint assignments is
+#: summed by enumeration (all its rows in one set of array operations) instead of a junction tree;
+#: 0 turns enumeration off (every row goes to the junction trees)
+ENUM_MAX = 256
+#: most (completion, node) index entries kept for the enumerated rows (int32 each: 128 MB);
+#: rows past it (the most expensive first) go to the junction trees
+ENUM_ENTRIES = 1 << 25
 
-    Build once (the plan: patterns, elimination orders, junction trees, index arrays) and call
+
+@dataclass(frozen=True)
+class _Enumerated:
+    """The rows summed by enumeration of their hidden assignments, all rows at once.
+
+    Every row lists its *completions*: the joint assignments of its hidden cells, hidden leaves
+    (nodes without children) left out. A hidden leaf sums out to 1 (Σ_x θ(x | u) = 1), so it
+    does not change the row's likelihood, and its expected counts are ``θ(x | u)`` times the
+    posterior of its parents ``u`` (all observed or enumerated: a leaf is nobody's parent). The
+    completions of all rows lie in one array, each row's in one contiguous segment; per node the
+    flat CPT index of every completion is precomputed, so one E-step is a few gathers, a
+    segmented log-sum-exp (log space: nothing underflows) and one ``bincount`` per node, with no
+    Python loop over rows or patterns.
+
+    Per node ``v`` (index arrays into the completions, or into the rows for ``const``):
+    ``full[v] = (sel, idx)``: completions in which ``v``'s family has an enumerated member
+    (``sel`` None: every completion), ``idx`` the flat CPT index; ``const[v] = (rows, idx)``: rows in
+    which ``v``'s family is observed throughout (one index per row); ``leaf[v] = (sel, prow)``:
+    completions of rows in which ``v`` is a hidden leaf, ``prow`` the flat index of its parents'
+    configuration (its CPT row).
+    """
+
+    rows: np.ndarray        # indices (into the distinct rows) of the enumerated rows
+    weights: np.ndarray     # their counts
+    starts: np.ndarray      # first completion of each row (len(rows),)
+    seg: np.ndarray         # row (position in ``rows``) of each completion
+    full: tuple             # per node: (sel or None, idx) or None
+    const: tuple            # per node: (rows, idx) or None
+    leaf: tuple             # per node: (sel, prow) or None
+
+    @property
+    def n_completions(self) -> int:
+        return int(self.seg.size)
+
+
+def _flat_family_index(network: Network, v: int, cols: Sequence[np.ndarray], sel: np.ndarray | None = None,
+                       with_child: bool = True) -> np.ndarray:
+    """Flat index (C order) into the CPT of ``v`` (or, without the child, its row) of the family
+    values in the columns ``cols`` (one array per node), at the positions ``sel`` (None: all)."""
+    fam = network.parent_indices[v] + ((v,) if with_child else ())
+    size = len(cols[0]) if sel is None else len(sel)
+    flat = np.zeros(size, dtype=np.int64)
+    for u in fam:
+        flat *= network.cards[u]
+        flat += cols[u] if sel is None else cols[u][sel]
+    return flat.astype(np.int32) if math.prod(network.cpt_shape(network.names[v])) < 2 ** 31 else flat
+
+
+def _split_enumerated(network: Network, codes: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Which rows to enumerate: ``(rows, enumerated cells (rows, n) bool, completions per row)``."""
+    n = len(network)
+    hid = codes == HIDDEN
+    if ENUM_MAX < 1 or codes.shape[0] == 0:
+        return np.zeros(0, dtype=np.int64), np.zeros((0, n), dtype=bool), np.zeros(0, dtype=np.int64)
+    is_leaf = np.array([not ch for ch in network.children], dtype=bool)
+    enum = hid & ~is_leaf[None, :]
+    log_m = enum @ np.log(np.asarray(network.cards, dtype=np.float64))
+    cand = np.flatnonzero(log_m <= math.log(ENUM_MAX) + 1e-9)
+    sizes = np.where(enum[cand], np.asarray(network.cards), 1).prod(axis=1).astype(np.int64)
+    order = np.argsort(sizes, kind="stable")  # cheapest rows first, as many as the budget holds
+    keep = order[np.cumsum(sizes[order]) * n <= ENUM_ENTRIES]
+    keep = np.sort(keep)
+    return cand[keep], enum[cand[keep]], sizes[keep]
+
+
+def _enumerated_plan(network: Network, rows: np.ndarray, codes: np.ndarray, enum: np.ndarray,
+                     sizes: np.ndarray, weights: np.ndarray) -> _Enumerated:
+    """Completions of the rows ``rows`` (their codes ``codes``, enumerated cells ``enum``)."""
+    n = len(network)
+    cards = np.asarray(network.cards, dtype=np.int64)
+    r = rows.size
+    starts = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
+    total = int(sizes.sum())
+    seg = np.repeat(np.arange(r, dtype=np.int32 if r < 2 ** 31 else np.int64), sizes)
+    local = np.arange(total, dtype=np.int64) - starts[seg]
+    # mixed radix over each row's enumerated cells, in node order (first node fastest)
+    stride = np.cumprod(np.where(enum, cards, 1), axis=1)
+    stride = np.concatenate([np.ones((r, 1), dtype=np.int64), stride[:, :-1]], axis=1)
+    cols = []  # the completions' value of every node, one column per node
+    for j in range(n):
+        col = codes[seg, j].astype(np.int32)
+        on = np.flatnonzero(enum[seg, j])
+        col[on] = (local[on] // stride[seg[on], j]) % cards[j]
+        cols.append(col)
+    hid = codes == HIDDEN
+    leaf = hid & ~enum                           # hidden leaves, summed out
+    rcols = [codes[:, j].astype(np.int32) for j in range(n)]
+    small = np.int32 if total < 2 ** 31 else np.int64  # positions of completions (index arrays kept)
+    full, const, leaves = [], [], []
+    for v in range(n):
+        fam = list(network.parent_indices[v]) + [v]
+        touch = enum[:, fam].any(axis=1) & ~leaf[:, v]   # rows whose family of v has an enumerated cell
+        obs = ~hid[:, fam].any(axis=1)                    # rows whose family of v is observed
+        if touch.any():
+            sel_c = touch[seg]
+            sel = None if sel_c.all() else np.flatnonzero(sel_c).astype(small)
+            full.append((sel, _flat_family_index(network, v, cols, sel)))
+        else:
+            full.append(None)
+        if obs.any():
+            rs = np.flatnonzero(obs)
+            const.append((rs, _flat_family_index(network, v, rcols, rs)))
+        else:
+            const.append(None)
+        if leaf[:, v].any():
+            sel = np.flatnonzero(leaf[seg, v]).astype(small)
+            leaves.append((sel, _flat_family_index(network, v, cols, sel, with_child=False)))
+        else:
+            leaves.append(None)
+    return _Enumerated(rows, weights, starts, seg, tuple(full), tuple(const), tuple(leaves))
+
+
+def _enumerated_pass(network: Network, ep: _Enumerated, tables: Sequence[np.ndarray],
+                     counts: dict[str, np.ndarray]) -> np.ndarray:
+    """One E-step over the enumerated rows: adds their expected counts, returns their log-likelihoods."""
+    n_rows = ep.rows.size
+    with np.errstate(divide="ignore"):
+        logt = [np.log(t.reshape(-1)) for t in tables]
+    logp = np.zeros(ep.n_completions)
+    rowc = np.zeros(n_rows)
+    for v in range(len(network)):
+        if ep.full[v] is not None:
+            sel, idx = ep.full[v]
+            if sel is None:
+                logp += logt[v][idx]
+            else:
+                logp[sel] += logt[v][idx]      # each completion once per node: no repeated index
+        if ep.const[v] is not None:
+            rs, idx = ep.const[v]
+            rowc[rs] += logt[v][idx]
+    mx = np.maximum.reduceat(logp, ep.starts)
+    mx = np.where(np.isfinite(mx), mx, 0.0)
+    p = np.exp(logp - mx[ep.seg])
+    s = np.add.reduceat(p, ep.starts)
+    with np.errstate(divide="ignore"):
+        ll = rowc + mx + np.log(s)
+    ok = np.isfinite(ll)
+    weff = np.where(ok, ep.weights, 0.0)
+    post = p * np.where(ok, weff / np.where(s > 0, s, 1.0), 0.0)[ep.seg]
+    for v, name in enumerate(network.names):
+        tab = counts[name].reshape(-1)
+        if ep.full[v] is not None:
+            sel, idx = ep.full[v]
+            tab += np.bincount(idx, weights=post if sel is None else post[sel], minlength=tab.size)
+        if ep.const[v] is not None:
+            rs, idx = ep.const[v]
+            tab += np.bincount(idx, weights=weff[rs], minlength=tab.size)
+        if ep.leaf[v] is not None:
+            sel, prow = ep.leaf[v]
+            card = network.cards[v]
+            per_row = np.bincount(prow, weights=post[sel], minlength=tab.size // card)
+            tab += (per_row[:, None] * tables[v].reshape(-1, card)).reshape(-1)
+    return np.where(ok, ll, -np.inf)
+
+
+class EStep:
+    """Exact expected counts for one network and one data set, by enumeration of the cheap rows'
+    hidden assignments (``enumerated``) and junction-tree passes over the others (``patterns``).
+
+    Build once (the plan: completions, patterns, elimination orders, junction trees, index arrays) and call
     :meth:`__call__` for each parameter value.
     """
 
@@ -276,11 +446,19 @@ class EStep:
         if codes.ndim != 2 or codes.shape[1] != len(network):
             raise OptionError(f"{data.source}: coded data has shape {codes.shape}, expected (rows, {len(network)})")
         w_all = np.asarray(data.counts, dtype=np.float64)
-        keys, inverse = np.unique(codes == HIDDEN, axis=0, return_inverse=True)
-        inverse = inverse.reshape(-1)
-        sizes = np.bincount(inverse, minlength=keys.shape[0])
-        groups = [np.flatnonzero(inverse == k) for k in np.flatnonzero(sizes >= MIN_GROUP_ROWS)]
-        rare = np.flatnonzero(sizes[inverse] < MIN_GROUP_ROWS)
+        # rows with few hidden assignments: enumerated, all at once; the others: junction trees
+        e_rows, e_cells, e_sizes = _split_enumerated(network, codes)
+        self.enumerated: _Enumerated | None = (
+            _enumerated_plan(network, e_rows, codes[e_rows], e_cells, e_sizes, w_all[e_rows]) if e_rows.size else None)
+        rest = np.setdiff1d(np.arange(codes.shape[0]), e_rows)
+        if rest.size:
+            keys, inverse = np.unique(codes[rest] == HIDDEN, axis=0, return_inverse=True)
+            inverse = inverse.reshape(-1)
+            sizes = np.bincount(inverse, minlength=keys.shape[0])
+        else:
+            inverse = sizes = np.zeros(0, dtype=np.int64)
+        groups = [rest[inverse == k] for k in np.flatnonzero(sizes >= MIN_GROUP_ROWS)]
+        rare = rest[sizes[inverse] < MIN_GROUP_ROWS]
         if rare.size:
             # rare patterns share one group with evidence indicators, unless that makes the
             # junction tree too wide (then each keeps its own, narrower tree)
@@ -288,7 +466,7 @@ class EStep:
             if _largest_cluster(network, pooled) <= POOL_MAX_WIDTH:
                 groups.append(rare)
             else:
-                groups.extend(np.flatnonzero(inverse == k) for k in np.flatnonzero(sizes < MIN_GROUP_ROWS))
+                groups.extend(rest[inverse == k] for k in np.flatnonzero(sizes < MIN_GROUP_ROWS))
         self.patterns: list[_PatternPlan] = []
         for rows in groups:
             first = _pattern_plan(network, rows, codes[rows], w_all[rows])
@@ -318,6 +496,8 @@ class EStep:
         tables = [np.asarray(probs[name], dtype=np.float64) for name in net.names]
         counts = {name: c.copy() for name, c in self._complete.items()}
         row_ll = np.zeros(self.data.n_distinct)
+        if self.enumerated is not None:
+            row_ll[self.enumerated.rows] = _enumerated_pass(net, self.enumerated, tables, counts)
         for pp in self.patterns:
             ll = self._pattern(pp, tables, counts, cards)
             row_ll[pp.rows] = ll
@@ -596,7 +776,7 @@ class EMResult:
             stationarity residual <= gtol · records) before ``max_iter``.
         rate: observed rate of convergence, the ratio of successive parameter changes (2-norm
             over the free entries) at the last pair of changes not dominated by rounding; NaN
-            when EM stopped too early to tell.
+            when EM stopped too early to tell, or ran accelerated (``accelerate``).
         uninformed: per free node, table-row indices (0-based, network row order) whose
             parent configuration has expected count 0: not informed by the data (kept at their
             start value, or at the prior's mode under MAP).
@@ -686,7 +866,7 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
            max_iter: int = 5000, seed: int = 0, missing: Iterable[str] | None = None,
            count_column: str | None = None, ignore_columns: Iterable[str] = (),
            callback: Callable[[int, dict[str, np.ndarray]], None] | None = None,
-           init_params: Mapping[str, Mapping[str, Any]] | None = None) -> EMResult:
+           init_params: Mapping[str, Mapping[str, Any]] | None = None, accelerate: bool = False) -> EMResult:
     """Fit the free CPTs by EM (maximum likelihood, or MAP with ``pseudo_counts``).
 
     Args:
@@ -708,6 +888,11 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
             the result file's layout, by node name; a structured node without them starts from
             the parameters read off its table in ``init`` (which must then be of its form), or
             at random.
+        accelerate: squared extrapolation (SQUAREM, Varadhan & Roland 2008) between EM steps,
+            each extrapolated point kept only if its objective is at least that of the EM step
+            before it (so the objective still never falls: :func:`_squarem`); the fixed points
+            are EM's. Networks whose CPTs are all plain tables only (structured CPTs: plain EM).
+            ``max_iter`` then caps the E-steps, and ``iterations`` counts them.
 
     Structured CPTs (``cpd``, ``tied_to``, ``impossible``) are estimated by their own M-steps
     (:mod:`adfit.emforms`); monotone nodes (``increasing_with``) are refused: the M-step under
@@ -744,7 +929,11 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
     steps: list[float] = []
     converged = False
     it = 0
-    while True:
+    rate = None
+    if accelerate and plain:
+        probs, counts, ll, lp, resid, it, converged, rate = _squarem(
+            network, coded, estep, probs, prior, tol, gtol, max_iter, trace, steps, callback)
+    while rate is None:
         counts, row_ll = estep(probs)
         if it == 0:
             bad = np.flatnonzero(np.isneginf(row_ll) & (w > 0))
@@ -780,7 +969,7 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
         trace=trace,
         iterations=it,
         converged=converged,
-        rate=_rate(steps),
+        rate=_rate(steps) if rate is None else rate,
         uninformed=_uninformed(network, counts) if plain else _uninformed_groups(groups, counts),
         stationarity=resid,
         gradient_norm=(stationarity_residual(network, counts, probs, prior, norm="l2") if plain
@@ -791,6 +980,101 @@ def em_fit(network: Network, data: Any, *, init: Mapping[str, np.ndarray] | None
         n_records=n_rec,
         parameters={} if plain else _parameters_json(network, groups, params),
     )
+
+
+#: SQUAREM: most extrapolated points tried per cycle before falling back to the plain EM step
+SQUAREM_TRIES = 3
+
+
+def _squarem(network: Network, coded: CodedData, estep: EStep, probs: dict[str, np.ndarray],
+             prior: Mapping[str, np.ndarray] | None, tol: float, gtol: float, max_iter: int,
+             trace: list[float], steps: list[float],
+             callback: Callable[[int, dict[str, np.ndarray]], None] | None) -> tuple:
+    """EM with squared extrapolation (SQUAREM; Varadhan & Roland 2008, Scand. J. Stat. 35, scheme S3).
+
+    A cycle from ``θ0`` (its E-step done) takes the EM step ``θ1 = M(θ0)`` (an E-step at ``θ1``)
+    and ``θ2 = M(θ1)``; with ``r = θ1 − θ0``, ``v = θ2 − 2θ1 + θ0`` and the step length
+    ``α = −‖r‖/‖v‖`` (at most −1) it tries ``θ' = θ0 − 2αr + α²v``. ``θ'`` is kept only if it is a
+    set of distributions (no negative entry: ``r`` and ``v`` have zero row sums) whose objective
+    is at least the objective at ``θ1``; otherwise ``α`` moves halfway to −1, and after
+    ``SQUAREM_TRIES`` tries ``α = −1``, i.e. ``θ' = θ2``, the plain EM step, whose objective is at
+    least that at ``θ1`` by EM's monotonicity. So the objective at successive iterates never
+    falls, and a fixed point of the cycle is a fixed point of EM.
+
+    The stopping rule is EM's (module docstring) on the objective at the cycles' starting points
+    and the stationarity residual there. ``trace`` gets the objective at every kept iterate
+    (``θ1`` and ``θ'`` of each cycle), ``steps`` the parameter change to each. The rate of plain
+    EM is not observed (NaN): the extrapolation removes the slow directions from the iterates,
+    so the ratio of successive changes no longer tends to the largest fraction of missing
+    information (measured: 0.67 against plain EM's 0.9986 on a three-class model).
+    """
+    w = np.asarray(coded.counts, dtype=np.float64)
+    n_rec = float(w.sum())
+    free = network.free_names
+
+    def evaluate(th):
+        counts, row_ll = estep(th)
+        ll = _weighted_sum(row_ll, w)
+        lp = _log_prior(network, th, prior)
+        return counts, row_ll, ll, lp, stationarity_residual(network, counts, th, prior)
+
+    def norm(d):
+        return math.sqrt(sum(float(np.sum(d[m] ** 2)) for m in free))
+
+    counts, row_ll, ll, lp, resid = evaluate(probs)
+    bad = np.flatnonzero(np.isneginf(row_ll) & (w > 0))
+    if bad.size:
+        raise ImpossibleDataError(_impossible_message(network, coded, bad))
+    trace.append(ll + lp)
+    starts = [ll + lp]   # the objective at the start of each cycle
+    n_e = 0
+    rate = math.nan
+    while True:
+        obj0 = ll + lp
+        if (len(starts) >= 2 and _remaining_gain(starts) <= tol * max(1.0, abs(obj0))
+                and resid <= gtol * max(1.0, n_rec)):
+            return probs, counts, ll, lp, resid, n_e, True, rate
+        if n_e >= max_iter:
+            return probs, counts, ll, lp, resid, n_e, False, rate
+        th0 = probs
+        th1 = _mstep(network, counts, th0, prior)
+        n_e += 1
+        c1, _, ll1, lp1, res1 = evaluate(th1)
+        obj1 = ll1 + lp1
+        trace.append(obj1)
+        steps.append(norm({m: th1[m] - th0[m] for m in free}))
+        if callback is not None:
+            callback(n_e, th1)
+        if n_e >= max_iter or not math.isfinite(obj1):
+            return th1, c1, ll1, lp1, res1, n_e, False, rate
+        th2 = _mstep(network, c1, th1, prior)
+        r = {m: th1[m] - th0[m] for m in free}
+        v = {m: th2[m] - th1[m] - r[m] for m in free}
+        nr, nv = norm(r), norm(v)
+        alpha = min(-nr / nv, -1.0) if nv > 0 else -1.0
+        for k in range(SQUAREM_TRIES + 1):
+            if k == SQUAREM_TRIES or alpha >= -1.0:
+                alpha, cand = -1.0, th2
+            else:
+                cand = dict(th2)
+                cand.update({m: th0[m] - 2.0 * alpha * r[m] + alpha * alpha * v[m] for m in free})
+                if any(np.any(cand[m] < 0) for m in free):
+                    alpha = (alpha - 1.0) / 2.0
+                    continue
+                cand.update({m: cand[m] / cand[m].sum(axis=-1, keepdims=True) for m in free})
+            n_e += 1
+            cc, _, llc, lpc, resc = evaluate(cand)
+            if alpha == -1.0 or llc + lpc >= obj1 or n_e >= max_iter:
+                break
+            alpha = (alpha - 1.0) / 2.0
+        if llc + lpc < obj1 and alpha != -1.0:  # the cap came first: stay at θ1
+            return th1, c1, ll1, lp1, res1, n_e, False, rate
+        probs, counts, ll, lp, resid = cand, cc, llc, lpc, resc
+        trace.append(ll + lp)
+        steps.append(norm({m: cand[m] - th1[m] for m in free}))
+        starts.append(ll + lp)
+        if callback is not None:
+            callback(n_e, probs)
 
 
 def _start_params(network: Network, groups: Sequence[_forms.Group], init: Mapping[str, np.ndarray] | None,

@@ -190,11 +190,13 @@ def test_stouffer_toby_latent_class():
 
 
 # ============================================================================ exact inference
-GROUPINGS = {  # how EStep groups the rows: (MIN_GROUP_ROWS, POOL_MAX_WIDTH, CHUNK_ENTRIES)
-    "pooled": (10 ** 9, 10 ** 9, 1 << 22),   # every row in one group with evidence indicators
-    "per-pattern": (1, 10 ** 9, 1 << 22),    # one junction tree per missingness pattern
-    "pool-refused": (10 ** 9, 1, 1 << 22),   # pooling refused (too wide): one tree per pattern
-    "chunked": (10 ** 9, 10 ** 9, 60),       # one pooled group split in chunks of a few rows
+GROUPINGS = {  # how EStep groups the rows: (ENUM_MAX, MIN_GROUP_ROWS, POOL_MAX_WIDTH, CHUNK_ENTRIES)
+    "pooled": (0, 10 ** 9, 10 ** 9, 1 << 22),   # every row in one group with evidence indicators
+    "per-pattern": (0, 1, 10 ** 9, 1 << 22),    # one junction tree per missingness pattern
+    "pool-refused": (0, 10 ** 9, 1, 1 << 22),   # pooling refused (too wide): one tree per pattern
+    "chunked": (0, 10 ** 9, 10 ** 9, 60),       # one pooled group split in chunks of a few rows
+    "enumerated": (10 ** 9, 16, 1 << 12, 1 << 22),  # every row by enumeration, hidden leaves summed out
+    "default": (None, None, None, None),         # the module's own: cheap rows enumerated, the rest trees
 }
 
 
@@ -202,11 +204,13 @@ GROUPINGS = {  # how EStep groups the rows: (MIN_GROUP_ROWS, POOL_MAX_WIDTH, CHU
 @pytest.mark.parametrize("seed", range(12))
 def test_expected_counts_match_enumeration(seed, grouping, monkeypatch):
     # brute-force enumeration of every completion of every row (an oracle independent of the
-    # junction tree), at random CPTs, under every way of grouping the rows
+    # junction tree and of the E-step's own enumeration: no hidden leaf summed out, plain loops),
+    # at random CPTs, under every way of splitting and grouping the rows
     import adfit.em as em_mod
 
-    for attr, val in zip(("MIN_GROUP_ROWS", "POOL_MAX_WIDTH", "CHUNK_ENTRIES"), GROUPINGS[grouping]):
-        monkeypatch.setattr(em_mod, attr, val)
+    for attr, val in zip(("ENUM_MAX", "MIN_GROUP_ROWS", "POOL_MAX_WIDTH", "CHUNK_ENTRIES"), GROUPINGS[grouping]):
+        if val is not None:
+            monkeypatch.setattr(em_mod, attr, val)
     net, data, _ = random_case(seed, p_missing=0.4)
     probs = random_start(net, seed + 100)
     counts, ll = expected_counts(net, probs, data)
@@ -242,6 +246,125 @@ def test_expected_counts_wide_treewidth_matches_enumeration():
     assert ll == pytest.approx(ref_ll, rel=1e-12)
     for m in net.names:
         np.testing.assert_allclose(counts[m], ref_counts[m], rtol=1e-10, atol=1e-12)
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_enumerated_rows_equal_the_junction_trees(seed, monkeypatch):
+    # the E-step's two routes on the same rows: every row by enumeration of its hidden
+    # assignments (hidden leaves summed out, all rows in one set of array operations) against
+    # every row by the junction trees (ENUM_MAX = 0, the route used before enumeration), and a
+    # split of the rows between both; each also against the brute-force oracle, to 1e-12
+    import adfit.em as em_mod
+
+    net, data, _ = random_case(seed, n_nodes=5, n_rows=120, p_missing=0.45)
+    probs = random_start(net, seed + 7)
+    got = {}
+    for emax in (0, 10 ** 9, 4):
+        monkeypatch.setattr(em_mod, "ENUM_MAX", emax)
+        es = EStep(net, data)
+        n_enum = 0 if es.enumerated is None else es.enumerated.rows.size
+        if emax == 0:
+            assert n_enum == 0 and es.patterns
+        elif emax > 10 ** 6:
+            assert n_enum == data.n_distinct and not es.patterns
+        else:
+            assert n_enum > 0  # (and in most seeds some rows go to the trees)
+        got[emax] = es(probs)
+    ref_counts, ref_ll = enumerate_counts(net, probs, data)
+    for counts, row_ll in got.values():
+        assert float(np.sum(row_ll * data.counts)) == pytest.approx(ref_ll, rel=1e-12)
+        np.testing.assert_allclose(row_ll, got[0][1], rtol=1e-12, atol=1e-12)
+        for m in net.names:
+            np.testing.assert_allclose(counts[m], got[0][0][m], rtol=1e-12, atol=1e-12)
+            np.testing.assert_allclose(counts[m], ref_counts[m], rtol=1e-12, atol=1e-11)
+
+
+def test_hidden_leaf_counts_closed_form():
+    # a -> b, b a leaf hidden in every row: it sums out to 1, so the log-likelihood is that of a
+    # alone, and b's expected counts are θ(b | a) times the count of each a (closed form)
+    net = network_from_dict({"a": {"states": ["0", "1", "2"]}, "b": {"states": ["0", "1"], "parents": ["a"]}})
+    codes = np.array([[0, HIDDEN], [1, HIDDEN], [2, HIDDEN], [HIDDEN, HIDDEN]], dtype=np.int32)
+    w = np.array([3.0, 5.0, 2.0, 4.0])
+    probs = {"a": np.array([0.2, 0.5, 0.3]), "b": np.array([[0.9, 0.1], [0.4, 0.6], [0.25, 0.75]])}
+    es = EStep(net, CodedData(codes, w, None))
+    assert es.enumerated is not None and es.enumerated.rows.size == 4 and not es.patterns
+    counts, row_ll = es(probs)
+    np.testing.assert_allclose(row_ll, np.log([0.2, 0.5, 0.3, 1.0]), rtol=1e-15, atol=1e-15)
+    n_a = np.array([3.0, 5.0, 2.0]) + 4.0 * probs["a"]
+    np.testing.assert_allclose(counts["a"], n_a, rtol=1e-15)
+    np.testing.assert_allclose(counts["b"], n_a[:, None] * probs["b"], rtol=1e-15)
+
+
+@pytest.mark.parametrize("route", [0, 10 ** 9])
+def test_em_objective_never_falls(route, monkeypatch):
+    # EM's monotonicity (Dempster, Laird & Rubin 1977, Theorem 1): the objective at successive
+    # iterates never falls, by either E-step route, on a latent class model from random starts
+    # and on random networks with gaps; MAP too (the prior's term is part of the objective)
+    import adfit.em as em_mod
+
+    monkeypatch.setattr(em_mod, "ENUM_MAX", route)
+    net, df = stouffer_toby()
+    data = encode_frame(net, df, count_column="count")
+    cases = [(net, data, None)] + [random_case(s, n_nodes=5, n_rows=80, p_missing=0.4)[:2] + (None,)
+                                   for s in range(3)]
+    cases.append((net, data, {m: np.full(net.cpt_shape(m), 0.5) for m in net.free_names}))
+    for net_, data_, prior in cases:
+        for seed in range(2):
+            res = em_fit(net_, data_, seed=seed, max_iter=60, pseudo_counts=prior)
+            tr = np.array(res.trace)
+            assert np.all(np.diff(tr) >= -1e-11 * np.maximum(1.0, np.abs(tr[1:])))
+
+
+def test_accelerated_em_reaches_the_published_optimum_monotonely():
+    # SQUAREM (Varadhan & Roland 2008) on Goodman's (1974) two-class model of the Stouffer-Toby
+    # data (published values from memory, 3 decimals, as in test_stouffer_toby_latent_class):
+    # the same optimum as plain EM from the same start, the objective never falls, fewer E-steps
+    net, df = stouffer_toby()
+    data = encode_frame(net, df, count_column="count")
+    for seed in range(3):
+        plain = em_fit(net, data, seed=seed)
+        fast = em_fit(net, data, seed=seed, accelerate=True)
+        assert plain.converged and fast.converged
+        assert fast.objective_value == pytest.approx(plain.objective_value, rel=1e-12, abs=1e-9)
+        for m in net.free_names:
+            np.testing.assert_allclose(fast.probs[m], plain.probs[m], atol=1e-6)
+        tr = np.array(fast.trace)
+        assert np.all(np.diff(tr) >= -1e-12 * np.abs(tr[1:]))
+        assert fast.iterations < plain.iterations / 2 and math.isnan(fast.rate)
+        assert fast.stationarity <= 1e-9 * 216
+    p_plus = np.array([[fast.probs[f"item{j + 1}"][k, 0] for j in range(4)] for k in range(2)])
+    assert _align_two_classes(fast.probs["cls"], p_plus, STOUFFER_TOBY_CLASS_SIZES, STOUFFER_TOBY_P_PLUS) < 6e-4
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_accelerated_em_is_monotone_and_stays_at_a_fixed_point(seed):
+    # on random networks with gaps (and the three-class Stouffer-Toby model, where plain EM
+    # crawls at rate ~0.999): the objective never falls under extrapolation; started at plain
+    # EM's converged answer (a fixed point), accelerated EM does not move from it
+    if seed == 3:
+        net, df = stouffer_toby(3)
+        data = encode_frame(net, df, count_column="count")
+    else:
+        net, data, _ = random_case(seed, n_nodes=5, n_rows=200, p_missing=0.4)
+    fast = em_fit(net, data, seed=seed, accelerate=True, max_iter=20000)
+    tr = np.array(fast.trace)
+    assert fast.converged and np.all(np.diff(tr) >= -1e-12 * np.abs(tr[1:]))
+    plain = em_fit(net, data, seed=seed, max_iter=20000)
+    assert plain.converged and fast.iterations < plain.iterations
+    again = em_fit(net, data, init=plain.probs, accelerate=True, max_iter=50)
+    assert again.converged and again.objective_value >= plain.objective_value - 1e-9
+    # (three classes on four items lie on a flat ridge, docs/performance.md: EM's stopping rule
+    # there leaves the parameters free to about 1e-6 along it)
+    for m in net.free_names:
+        np.testing.assert_allclose(again.probs[m], plain.probs[m], atol=1e-5 if seed == 3 else 1e-7)
+
+
+def test_accelerated_em_cap_counts_e_steps():
+    net, df = stouffer_toby(3)
+    data = encode_frame(net, df, count_column="count")
+    seen = []
+    res = em_fit(net, data, seed=0, accelerate=True, max_iter=7, callback=lambda k, p: seen.append(k))
+    assert not res.converged and res.iterations == 7 and seen and max(seen) <= 7
 
 
 def test_no_underflow_on_long_rows():
