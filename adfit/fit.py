@@ -742,9 +742,12 @@ class Fitter:
             prec = self.pseudo[name]
             prior_info = prec + np.where(np.arange(prec.shape[-1]) == 0, prec.sum(axis=-1, keepdims=True), 0.0)
             out[name] = 1.0 / np.sqrt(info + prior_info + SCALE_EPS)
-        for name, n_u in (ev.get("served") or {}).items():
-            # a fraction pair as a two-state row of the parent configuration's records
-            out[name] = 1.0 / np.sqrt(n_u[:, None] * np.asarray(ev["probs"][name]) + SCALE_EPS)
+        for name in self.monotone:
+            # a fraction pair's logits: the diagonal of their complete-data information (a
+            # fraction moves its configuration's cells and those above it along the parent)
+            info = _mono.pair_information(self.network, name, ev["probs"][name],
+                                          self._pooled_family(ev["family_counts"], name))
+            out[name] = 1.0 / np.sqrt(info + SCALE_EPS)
         return out
 
     def _scale(self, counts: Mapping[str, np.ndarray], probs: Mapping[str, np.ndarray]) -> dict[str, np.ndarray]:

@@ -248,3 +248,29 @@ def binding(network: Network, name: str, rows: np.ndarray, table: np.ndarray | N
 
 #: :func:`implied_log_table` compiled once per (network, node)
 implied_log_table_jit = jax.jit(implied_log_table, static_argnums=(0, 1))
+
+
+def _pair_info(network: Network, name: str, eta, n_u):
+    lt = lambda e: implied_log_table(network, name, jax.nn.log_softmax(e, axis=-1)).reshape(-1)
+    J = jax.jacfwd(lt)(eta)                                   # (cells, rows, 2)
+    th = jnp.exp(lt(eta))
+    K = network.node(network.tie_source(name)).card
+    w = jnp.repeat(n_u, K) * th                               # N(u) θ(y | u) per cell
+    return jnp.einsum("c,crk->rk", w, jnp.where(jnp.isfinite(J), J, 0.0) ** 2)
+
+
+_pair_info_jit = jax.jit(_pair_info, static_argnums=(0, 1))
+
+
+def pair_information(network: Network, name: str, rows: np.ndarray, family_counts: np.ndarray) -> np.ndarray:
+    """The complete-data information of each fraction pair's logits (rows, 2), diagonal only:
+    ``Σ_cells N(u) θ(y | u) (∂ log θ(y | u)/∂η)²`` (the Fisher information of the multinomial rows
+    the fraction moves, the records taken as observed). A fraction moves the cells of its own
+    configuration and of every configuration above it along the listed parent, so this is the
+    preconditioner's curvature scale (a pair's own records would miss the others)."""
+    R, K, _ = _structure(network, name)
+    n_u = np.asarray(family_counts, dtype=np.float64).reshape(R, K).sum(axis=1)
+    with np.errstate(divide="ignore"):
+        eta = np.log(np.asarray(rows, dtype=np.float64))
+    eta = np.where(np.isfinite(eta), eta, -745.0)
+    return np.asarray(_pair_info_jit(network, name, jnp.asarray(eta), jnp.asarray(n_u)))

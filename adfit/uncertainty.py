@@ -544,9 +544,11 @@ class Uncertainty:
                 continue
             K = self.network.node(name).card
             n = self.coordinates.n[name]
-            cu = np.broadcast_to(c, self.network.cpt_shape(name)).reshape(-1, K).sum(axis=1)
+            cu = np.broadcast_to(c, block_shape(self.network, name)).reshape(-1, K).sum(axis=1)  # CPT or cause rows
+            rows = _forms.has_rows(self.network, name)  # then u is a cause row, not a table row
             for u in np.flatnonzero((n.sum(axis=1) - cu < UNINFORMED_COUNT) & (cu > 0)):
-                out.append({"node": name, "row": int(u), "parents": self._label(name, int(u))})
+                out.append({"node": name, "row": int(u), "parents": self._label(name, int(u))} if not rows
+                           else {"node": name, "row": int(u), **_cause_row(self.network, name, int(u))})
         return out
 
     # -- JSON ------------------------------------------------------------------------------
@@ -1263,6 +1265,18 @@ def interval_frames(result: Any, name: str) -> tuple[pd.DataFrame, pd.DataFrame]
 
 
 # --------------------------------------------------------------------------- text
+def _cause_row(network: Network, name: str, u: int) -> dict[str, Any]:
+    """A noisy node's parameter row ``u``: its label (``leak``, ``parent=state``) and, as
+    ``parents``, the configuration where that cause alone is active (every parent at its first,
+    inactive state for the leak)."""
+    parents = {p: network.node(p).states[0] for p in network.node(name).parents}
+    active = [(p, st) for p in parents for st in network.node(p).states[1:]]  # cause_row_labels' order
+    if u:
+        p, st = active[u - 1]
+        parents[p] = st
+    return {"cause": _forms.cause_row_labels(network, name)[u], "parents": parents}
+
+
 def _cfg(d: Mapping[str, str]) -> str:
     return ", ".join(f"{p}={s}" for p, s in d.items()) or "(no parents)"
 

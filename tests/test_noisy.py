@@ -346,3 +346,23 @@ def test_default_prior_reaches_cause_rows_and_the_em_check_agrees():
     assert res.converged
     assert res.extras["em_check"]["verdict"] in ("agree", "em-own-start-not-converged")
     assert res.extras["stationarity"]["holds"]
+
+
+def test_error_bars_with_a_prior_name_the_cause_row_only_the_prior_informs():
+    # A noisy-OR strength whose parent state never occurs in the records (b = hi dropped) is
+    # informed by its Beta prior alone: its cause row has (virtual) count 0 and pseudo-counts 2
+    # (Pearl 1988 §4.3.2: strength(b=hi) enters only rows with b = hi). The error bars list that
+    # cause row, labelled by the configuration where it alone is active, and no other.
+    from adfit.priors import prior_from_dict
+    from adfit.uncertainty import compute_uncertainty
+
+    net = net_with(OR_CHILD)
+    rows = forms.rows_from_parameters(net, "y", TRUE_NOISY_OR)
+    probs = {"a": np.array([0.6, 0.4]), "b": np.array([0.5, 0.3, 0.2]), "y": forms.implied_table(net, "y", rows)}
+    df = simulate(net, probs, 300, seed=8)
+    df = df[df.b != "hi"]
+    prior = prior_from_dict({"default": {"pseudo_counts": 1.0}}, net)
+    res = _quiet_fit(net, df, prior=prior)
+    unc = compute_uncertainty(net, df, res.probs, pseudo_counts=prior.pseudo_counts(net))
+    assert unc.prior_only_rows() == [{"node": "y", "row": 3, "cause": "b=hi", "parents": {"a": "no", "b": "hi"}}]
+    assert unc.summary()["prior_only_rows"] == unc.prior_only_rows()
