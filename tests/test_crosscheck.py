@@ -98,6 +98,21 @@ def test_stouffer_toby_gradient_fit_and_em_check(st_case):
     assert chk["latent_permutation"]["cls"] != chk2["latent_permutation"]["cls"]
 
 
+def test_accelerated_and_plain_em_checks_reach_the_same_verdict(st_case):
+    # the check's EM runs with squared extrapolation (the default) against plain EM steps, on the
+    # Stouffer-Toby two-class fit: the same verdict, the same optimum (objective and CPTs of EM's
+    # own start), fewer E-steps; the accelerated runs report no rate (not observed under it)
+    net, data, res = st_case
+    fast = em_check(res, data, seed=3)
+    plain = em_check(res, data, seed=3, accelerate=False)
+    assert fast["verdict"] == plain["verdict"] == "agree", format_em_check(fast)
+    for run in ("em_from_fit", "em_own_start"):
+        assert fast[run]["objective_value"] == pytest.approx(plain[run]["objective_value"], rel=1e-12)
+    assert abs(fast["max_abs_delta_theta"] - plain["max_abs_delta_theta"]) < 1e-6
+    assert fast["em_own_start"]["iterations"] < plain["em_own_start"]["iterations"]
+    assert fast["em_own_start"]["rate"] is None and plain["em_own_start"]["rate"] is not None
+
+
 # ============================================================================ verdicts
 def test_saddle_point_gives_different_optima(st_case):
     # the symmetric point (both classes equal, items at their marginal frequencies) is a
