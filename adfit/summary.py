@@ -175,7 +175,9 @@ def format_estimates(result: Any, names: Sequence[str] | None = None, *, digits:
             from .forms import format_parameters
 
             try:
-                head += f" ({sec.get('cpd')})" + (f", tied to {node.tied_to}" if node.tied_to else "")
+                form = (f"table, increasing with {', '.join(node.increasing_with)}" if node.increasing_with
+                        else sec.get("cpd"))  # a monotone node's cpd is "table": say the constraint
+                head += f" ({form})" + (f", tied to {node.tied_to}" if node.tied_to else "")
                 extra = "\n" + format_parameters(result.network, name, sec["parameters"], digits=digits)
             except (KeyError, TypeError, ValueError):
                 extra = ""

@@ -267,6 +267,11 @@ def test_cli_fit_errors_score_and_em_check(tmp_path):
     assert dominance_gaps(T, 0) <= 1e-12
     assert doc["nodes"]["gauge"]["binding"]
     assert "boundary" in json.dumps(doc["nodes"]["gauge"]["parameters_status"])
+    from adfit.result import load_result
+    from adfit.summary import format_estimates
+
+    # the printed estimates say the constraint, not only "table" (the node's cpd key)
+    assert "P(gauge | wear) (table, increasing with wear)" in format_estimates(load_result(tmp_path / "r.json"))
     r = run(app, ["score", str(tmp_path / "net.toml"), str(tmp_path / "d.csv"), "--params", str(tmp_path / "r.json")])
     assert r.exit_code == 0, r.output
     r = run(app, ["fit", str(tmp_path / "net.toml"), str(tmp_path / "d.csv"), "--out", str(tmp_path / "r2.json"),
