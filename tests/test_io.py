@@ -256,7 +256,10 @@ def test_a_terminated_write_removes_its_temporary_file(tmp_path, sig, rc):
     target = tmp_path / "out.csv"
     target.write_text("old")
     script = textwrap.dedent(f"""
-        import sys, time
+        import signal, sys, time
+        # a shell's background job starts with SIGINT ignored, and Python then leaves it ignored;
+        # a user's Ctrl-C raises KeyboardInterrupt, so install that handler whatever the launcher
+        signal.signal(signal.SIGINT, signal.default_int_handler)
         from adfit.cli import exit_on_sigterm
         from adfit.io import atomic_write
         exit_on_sigterm()
