@@ -786,7 +786,10 @@ def _pseudo(network: Network, pseudo_counts: Mapping[str, np.ndarray] | None) ->
     for name in network.free_names:
         c = None if pseudo_counts is None else pseudo_counts.get(name)
         shape = block_shape(network, network.tie_source(name))  # cause rows for a noisy node
-        c = np.zeros(shape) if c is None else np.broadcast_to(np.asarray(c, dtype=np.float64), shape).copy()
+        # no prior on the node: zeros in its own block's shape (a prior file with entries on other
+        # nodes hands CPT-shaped zeros for it, which a monotone node's fraction rows do not take)
+        c = (np.zeros(shape) if c is None or not np.any(c)
+             else np.broadcast_to(np.asarray(c, dtype=np.float64), shape).copy())
         if not np.all(np.isfinite(c)) or np.any(c < 0):
             raise OptionError(f"node {name!r}: pseudo-counts must be finite and >= 0")
         out[name] = c

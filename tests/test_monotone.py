@@ -279,3 +279,32 @@ def test_cli_fit_errors_score_and_em_check(tmp_path):
     assert r.exit_code == 1
     assert "the EM cross-check does not cover monotone nodes" in r.output
     assert not (tmp_path / "r2.json").exists()
+
+
+def test_error_bars_of_a_monotone_node_when_a_prior_is_on_another_node(tmp_path):
+    # A prior file with an entry on another node only (here a Beta on the alarm) leaves the
+    # monotone node without a prior; its error bars are still computed (they failed on the
+    # CPT-shaped zeros before). The monotone table keeps the dominance inequalities
+    # (first-order stochastic dominance: Shaked & Shanthikumar 2007, Stochastic Orders, 1.A).
+    from adfit.cli import app
+
+    (tmp_path / "net.toml").write_text(
+        '[nodes.wear]\nstates = ["low", "mid", "high"]\n'
+        '[nodes.gauge]\nstates = ["ok", "worn", "failed"]\nparents = ["wear"]\nincreasing_with = ["wear"]\n'
+        '[nodes.alarm]\nstates = ["off", "on"]\nparents = ["gauge"]\n')
+    (tmp_path / "prior.toml").write_text("[nodes.alarm]\npseudo_counts = 1.0\n")
+    rng = np.random.default_rng(7)
+    truth = np.array([[0.6, 0.3, 0.1], [0.4, 0.4, 0.2], [0.2, 0.3, 0.5]])
+    w = rng.integers(0, 3, 300)
+    g = np.array([rng.choice(3, p=truth[a]) for a in w])
+    df = pd.DataFrame({"wear": np.array(LEVELS)[w], "gauge": np.array(C_STATES)[g],
+                       "alarm": np.where(rng.random(300) < np.array([0.1, 0.4, 0.9])[g], "on", "off")})
+    df.loc[::4, "gauge"] = ""
+    df.to_csv(tmp_path / "d.csv", index=False)
+    r = CliRunner().invoke(app, ["fit", str(tmp_path / "net.toml"), str(tmp_path / "d.csv"), "--prior",
+                                 str(tmp_path / "prior.toml"), "--out", str(tmp_path / "r.json"), "--errors", "-q"])
+    assert r.exit_code == 0, r.output
+    doc = json.loads((tmp_path / "r.json").read_text())
+    assert dominance_gaps(np.array(doc["nodes"]["gauge"]["table"]), 0) <= 1e-12
+    se = np.array(doc["nodes"]["gauge"]["se"], dtype=float)
+    assert se.shape == (3, 3) and np.all(np.isfinite(se[~np.isnan(se)])) and np.nanmax(se) > 0
