@@ -171,8 +171,11 @@ def main() -> None:
         typer.echo("adfit: interrupted; a file being written was left as it was", err=True)
         sys.exit(130)
     except Exception as e:  # usage errors of the click layer (typer may ship its own copy)
-        if hasattr(e, "show") and hasattr(e, "exit_code"):
-            e.show()
+        if hasattr(e, "format_message") and hasattr(e, "exit_code"):
+            # one line, as for every other error: what was wrong, and where the options are listed
+            ctx = getattr(e, "ctx", None)
+            where = f"{ctx.command_path} --help" if ctx is not None else "adfit --help"
+            typer.echo(f"adfit: error: {e.format_message().rstrip('.')} (see {where})", err=True)
             sys.exit(1)
         raise
 

@@ -60,3 +60,20 @@ def test_on_off_options_are_flag_pairs():
     assert "--em-check" in r.output and "--no-em-check" in r.output
     params = {p.name: p for p in click_command("fit").params}
     assert params["em_check"].is_flag and params["em_check"].secondary_opts == ["--no-em-check"]
+
+
+def test_usage_errors_from_the_console_entry_point_are_one_line_and_exit_1(tmp_path):
+    # The project's rule (DEVELOPERS.md): every bad input is one line on stderr and exit code 1,
+    # the click layer's usage errors included (unknown option, missing argument, bad value).
+    import subprocess
+    import sys
+
+    cases = [(["report", "fit.json", "--params", "x.json", "--out", "r.html"], "No such option: --params", "adfit report --help"),
+             (["fit", "net.toml"], "Missing argument 'data'", "adfit fit --help"),
+             (["frobnicate"], "No such command 'frobnicate'", "adfit --help")]
+    (tmp_path / "net.toml").write_text('[nodes.a]\nstates = ["x", "y"]\n')
+    for argv, words, where in cases:
+        r = subprocess.run([sys.executable, "-m", "adfit", *argv], capture_output=True, text=True, cwd=tmp_path)
+        lines = r.stderr.strip().splitlines()
+        assert r.returncode == 1 and len(lines) == 1 and words in lines[0] and where in lines[0], (argv, r.stderr)
+        assert lines[0].startswith("adfit: error: ") and "Usage:" not in r.stdout + r.stderr
