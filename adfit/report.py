@@ -606,6 +606,20 @@ def convergence_histories(doc: Mapping[str, Any]) -> tuple[list[tuple[str, list[
     return [(label, h[0], h[1], True)], note
 
 
+_SUPERSCRIPT = str.maketrans("-0123456789", "\u207b\u2070\u00b9\u00b2\u00b3\u2074\u2075\u2076\u2077\u2078\u2079")
+
+
+def _power_of_ten(value: float, _pos=None) -> str:
+    """A log axis's tick label as plain text: ``10⁻⁴`` at powers of ten, ``4e-05`` elsewhere
+    (matplotlib's default labels are maths markup, which the report draws as written)."""
+    if not (value > 0 and math.isfinite(value)):
+        return ""
+    e = math.log10(value)
+    if abs(e - round(e)) < 1e-9:
+        return "10" + str(int(round(e))).translate(_SUPERSCRIPT)
+    return f"{value:.0e}"
+
+
 _LINESTYLES = ("-", "--", ":", "-.")
 _COLOURS = ("#1b1b1b", "#7a4b00", "#2f5f8a", "#6b6b6b", "#8a2f4d", "#3f7a3a")
 
@@ -634,6 +648,7 @@ def convergence_figure(histories: Sequence[tuple[str, list[float], list[float], 
             axes[2].plot(np.arange(len(g)), np.where(np.isfinite(g) & (g > 0), g, np.nan), **style)
             any_gn = True
     axes[0].set_title("objective", fontsize=10)
+    axes[0].ticklabel_format(axis="y", useOffset=False, style="plain")  # the objective itself, no "+c" corner note
     axes[1].set_title("best objective minus objective (log)", fontsize=10)
     axes[1].set_yscale("log")
     axes[2].set_title("gradient norm, records (log)", fontsize=10)
@@ -645,8 +660,12 @@ def convergence_figure(histories: Sequence[tuple[str, list[float], list[float], 
                      transform=axes[2].transAxes, fontsize=9, color="#555555")
         axes[2].set_yscale("linear")
         axes[2].set_yticks([])
-    from matplotlib.ticker import MaxNLocator
+    from matplotlib.ticker import FuncFormatter, MaxNLocator, NullFormatter
 
+    for ax in axes[1:]:
+        if ax.get_yscale() == "log":  # matplotlib's own log labels are maths markup, drawn raw here
+            ax.yaxis.set_major_formatter(FuncFormatter(_power_of_ten))
+            ax.yaxis.set_minor_formatter(NullFormatter())
     for ax in axes:
         ax.xaxis.set_major_locator(MaxNLocator(integer=True))
         ax.set_xlabel("iteration", fontsize=9)

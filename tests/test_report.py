@@ -742,3 +742,25 @@ def test_starts_are_numbered_from_one(case):
     rows = section(case["tree"], "convergence").find("table", cls="starts").find("tbody").find_all("tr")
     firsts = [tr.find_all("td")[0].text().split()[0] for tr in rows]
     assert firsts == [str(k + 1) for k in range(len(rows))]
+
+
+def test_log_axes_of_the_convergence_plot_are_labelled_in_plain_text():
+    # The report draws labels as written (text.parse_math off: states are data), so matplotlib's
+    # default log labels ("$\mathdefault{10^{-4}}$", maths markup) would show raw; the axes carry
+    # plain powers of ten instead. Reference values: powers of ten computed by numpy.
+    import io
+
+    from adfit.report import _plain_text, _power_of_ten, convergence_figure
+
+    obj = list(-100.0 - np.logspace(2, -8, 25))
+    gn = list(np.logspace(1, -6, 25))
+    fig = convergence_figure([("start 1", obj, gn, True)], threshold=1e-5)
+    with _plain_text():
+        fig.savefig(io.BytesIO(), format="png")
+    texts = [t.get_text() for ax in fig.axes for t in ax.get_yticklabels() + ax.get_xticklabels()]
+    assert texts and not any("$" in t or "mathdefault" in t for t in texts), texts
+    assert "10\u207b\u2074" in [t.get_text() for t in fig.axes[2].get_yticklabels()]
+    # the objective's axis reads in objective units (no offset such as "-2.329e3" in a corner)
+    assert fig.axes[0].yaxis.get_offset_text().get_text() == ""
+    assert any(t.get_text().replace("\u2212", "-").startswith("-10") for t in fig.axes[0].get_yticklabels())
+    assert [_power_of_ten(v) for v in (1e-4, 1.0, 1e3, 3e-5, 0.0)] == ["10\u207b\u2074", "10\u2070", "10\u00b3", "3e-05", ""]
