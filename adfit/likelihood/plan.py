@@ -252,13 +252,17 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
         weights.append(N)
         maps.append(None)
     # enumerated components, in buckets of a common padded shape
-    classes: dict[tuple[int, int], list] = {}
-    for t in enum_types:
+    def local_instances(t):
+        """The type's rows in this part of the data, and their distinct instances (None: no row)."""
         sel = local[t.rows]
         rows = t.rows if sel.all() else t.rows[sel]
-        if not len(rows):
+        return (*_type_instances(network, t, codes, counts, rows), rows) if len(rows) else None
+
+    classes: dict[tuple[int, int], list] = {}
+    for t in enum_types:
+        if (found := local_instances(t)) is None:
             continue
-        bc, w, inv = _type_instances(network, t, codes, counts, rows)
+        bc, w, inv, rows = found
         classes.setdefault(_round_shape(t.A, t.m), []).append((t, bc, w, inv, rows))
     menu = _enum_bucket_menu({k: sum(len(x[2]) for x in v) for k, v in classes.items()})
     buckets: dict[tuple[int, int], list] = {}
@@ -291,11 +295,9 @@ def _assemble(network: Network, codes: np.ndarray, counts: np.ndarray, *, unifor
     if prog_types:
         progs, datas, occ = [], [], []
         for t in prog_types:
-            sel = local[t.rows]
-            rows = t.rows if sel.all() else t.rows[sel]
-            if not len(rows):
+            if (found := local_instances(t)) is None:
                 continue
-            bc, w, inv = _type_instances(network, t, codes, counts, rows)
+            bc, w, inv, rows = found
             full = np.zeros((len(w), n), np.int32)
             full[:, list(t.hidden)] = HIDDEN
             if t.boundary:
