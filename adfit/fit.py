@@ -484,13 +484,6 @@ class Fitter:
         if refusal is not None:
             raise NetworkError(refusal)
         for n in network.nodes:
-            if n.fixed is None and len(n.increasing_with) > 1:
-                # with two listed parents a configuration has two predecessors and the map from
-                # the fractions takes a min over them, not differentiable where they tie, which
-                # is where binding constraints pool cells (docs/method.md, "Monotone CPTs")
-                raise NetworkError(f"nodes.{n.name}.increasing_with lists {len(n.increasing_with)} parents "
-                                   f"({', '.join(n.increasing_with)}); the gradient fit estimates monotone tables "
-                                   f"along one parent for now: keep one of them")
             if n.fixed is None and n.increasing_with and n.impossible:
                 raise NetworkError(f"nodes.{n.name}.impossible cannot be combined with increasing_with in the "
                                    f"gradient fit yet (a monotone table's zero cells follow from its fractions); "
@@ -508,6 +501,10 @@ class Fitter:
         # monotone nodes' fractions live in a box: no EM step either (their M-step has no closed
         # form); the active-set rule (pin) and the box KKT check (box) cover them
         self.monotone = tuple(n for n in self.free if _forms.is_monotone(network, n))
+        # with two or more listed parents the fractions map through a min (not differentiable
+        # where predecessors tie): the KKT condition is checked on the cumulative probabilities
+        # (adfit.monotone.cone_kkt), the box condition of the fractions is no certificate there
+        self.cone_nodes = tuple(n for n in self.monotone if _mono.needs_cone(network, n))
         self.no_em = self.logistic + self.monotone
         self.em_free = tuple(n for n in self.free if n not in self.no_em)
         self.pin_steps = 0
@@ -578,7 +575,7 @@ class Fitter:
         probs = self.probs(logits)
         ll, counts, fam, tables = self.counts_and_families(probs)
         g = objective_gradient(self.network, probs, counts, self.pseudo, logits, self.settings.l2)
-        resid = 0.0
+        resid = resid_smooth = 0.0
         weights = self._logistic_weights(tables, fam) if self.logistic else {}
         served = {n: _mono.served(self.network, n, self._pooled_family(fam, n)) for n in self.monotone}
         for name in self.free:
@@ -590,14 +587,17 @@ class Fitter:
                 denom = counts[name].sum(axis=-1, keepdims=True) + self.pseudo[name].sum(axis=-1, keepdims=True)
             r = np.abs(g[name]) / np.maximum(denom, 1.0)
             resid = max(resid, float(r.max(initial=0.0)))
+            if name not in self.cone_nodes:
+                resid_smooth = max(resid_smooth, float(r.max(initial=0.0)))
         lp = log_prior_value(probs, self.pseudo, self.network, logits)
         pen = penalty_value(logits, self.settings.l2, self.network)
         kkt = self.kkt(probs, counts) if self.settings.l2 == 0 else None
         box = ({n: _mono.box_kkt(probs[n], _mono.dsigma(probs[n], counts[n]), served[n]) for n in self.monotone}
                if self.settings.l2 == 0 else None)
-        return {"probs": probs, "box": box, "served": served, "log_likelihood": ll, "log_prior": lp, "penalty": pen,
+        cone = ({n: self._cone(n, probs, fam) for n in self.cone_nodes} if self.settings.l2 == 0 else None)
+        return {"probs": probs, "box": box, "cone": cone, "served": served, "log_likelihood": ll, "log_prior": lp, "penalty": pen,
                 "objective": ll + lp - pen, "grad": g, "gradient_norm": _norm(g),
-                "residual": resid, "counts": counts, "kkt": kkt, "family_counts": fam, "tables": tables,
+                "residual": resid, "residual_smooth": resid_smooth, "counts": counts, "kkt": kkt, "family_counts": fam, "tables": tables,
                 "logistic_weights": weights,
                 "kkt_ratio": _max_finite(kkt) if kkt is not None else None}
 
@@ -635,18 +635,88 @@ class Fitter:
         return simplex and self.box_holds(ev)
 
     def box_holds(self, ev: Mapping[str, Any]) -> bool:
-        """The box KKT condition of the monotone nodes' fractions (:func:`adfit.monotone.box_kkt`):
-        every fraction's first-order gain towards the bound its derivative points at is at most
-        kkt_tol per record served (True with an L2 penalty or without monotone nodes)."""
+        """The KKT condition of the monotone nodes: along one listed parent, the box condition of
+        the fractions (:func:`adfit.monotone.box_kkt`: every fraction's first-order gain towards
+        the bound its derivative points at is at most kkt_tol per record served); along two or
+        more, the cone condition on the cumulative probabilities (:func:`adfit.monotone.cone_kkt`,
+        at most kkt_tol per record served). True with an L2 penalty or without monotone nodes."""
         return not ev.get("box") or self.worst_box(ev)[2] <= self.settings.kkt_tol
 
     def worst_box(self, ev: Mapping[str, Any]) -> tuple[str | None, str, float]:
-        """(node, fraction label, box measure) of the largest box KKT measure (0.0 when none)."""
+        """(node, label, measure) of the largest monotone KKT measure (0.0 when none): a fraction's
+        box measure, or a cone node's residual (label "" then)."""
         best: tuple[str | None, str, float] = (None, "", 0.0)
         for name, m in (ev.get("box") or {}).items():
+            if name in self.cone_nodes:
+                continue
             if m.size and float(np.max(m)) > best[2]:
                 j = int(np.argmax(m))
                 best = (name, _forms.cause_row_labels(self.network, name)[j], float(m[j]))
+        for name, (m, _) in (ev.get("cone") or {}).items():
+            if m > best[2]:
+                best = (name, "", float(m))
+        return best
+
+    def _cone(self, name: str, probs: Mapping[str, np.ndarray], fam: Mapping[str, np.ndarray]):
+        """:func:`adfit.monotone.cone_kkt` of a monotone node at ``probs`` (its fraction rows),
+        from the family counts pooled over ties: ∂LL/∂P(y | u) = N(y, u)/P(y | u) (the
+        log-likelihood is linear in each CPT entry; no prior on monotone nodes)."""
+        T = np.asarray(_forms.implied_table(self.network, name, probs[name]), dtype=np.float64)
+        n = self._pooled_family(fam, name)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            g = np.where(T > 1e-300, n / np.where(T > 1e-300, T, 1.0), 0.0)
+        return _mono.cone_kkt(self.network, name, T, g, n)
+
+    def cone_converged(self, ev: Mapping[str, Any]) -> bool:
+        """Converged by the rule of the cone nodes: their KKT residual (:func:`adfit.monotone.cone_kkt`)
+        and every other parameter's logit residual at most ptol (per record served)."""
+        s = self.settings
+        return (s.l2 == 0 and bool(ev.get("cone")) and max(m for m, _ in ev["cone"].values()) <= s.ptol
+                and ev["residual_smooth"] <= s.ptol)
+
+    def cone_step(self, ev: Mapping[str, Any], *, tol: float | None = None):
+        """A projected-gradient step on the cumulative probabilities of the cone nodes whose KKT
+        residual exceeds kkt_tol (:func:`adfit.monotone.cone_steps`): the best of the trial steps
+        if it raises the objective. Returns ``(logits, evaluation)`` or None."""
+        tol = self.settings.kkt_tol if tol is None else tol
+        todo = [n for n, (m, _) in (ev.get("cone") or {}).items() if m > tol]
+        if not todo:
+            return None
+        best = None
+        tables = {n: np.asarray(_forms.implied_table(self.network, n, ev["probs"][n]), dtype=np.float64) for n in todo}
+        trials = {n: [] for n in todo}
+        for name in todo:
+            # a Newton step on the face of the binding constraints first, then the projected
+            # gradient (which also leaves constraints whose multiplier is 0)
+            T, fam = tables[name], self._pooled_family(ev["family_counts"], name)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                ok = T > 1e-12
+                g = np.where(ok, fam / np.where(ok, T, 1.0), 0.0)
+                info = np.where(ok, fam / np.where(ok, T, 1.0) ** 2, np.nan)
+            snapped = _mono.snap(self.network, name, T, g, fam)
+            if snapped is not None:
+                # close the constraints it stops a hair from, then Newton on that face
+                trials[name].append(snapped)
+                T = snapped
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    ok = T > 1e-12
+                    g = np.where(ok, fam / np.where(ok, T, 1.0), 0.0)
+                    info = np.where(ok, fam / np.where(ok, T, 1.0) ** 2, np.nan)
+            d_newton = _mono.face_newton(self.network, name, T, g, info, fam)
+            if d_newton is not None:
+                trials[name] += _mono.cone_steps(self.network, name, T, d_newton, (1.0, 0.5, 0.25, 0.1), newton=True)
+            trials[name] += _mono.cone_steps(self.network, name, T, ev["cone"][name][1])
+        for k in range(max(len(t) for t in trials.values())):
+            new = {n: ev["probs"][n] for n in self.free}
+            for name in todo:
+                steps = trials[name][k:k + 1]
+                if steps:
+                    new[name] = _mono.read_fractions(self.network, name, steps[0], floor=_mono.PIN)
+            cand = self.logits_of(new)
+            ev_c = self.evaluate(cand)
+            if math.isfinite(ev_c["objective"]) and ev_c["objective"] > ev["objective"] and (
+                    best is None or ev_c["objective"] > best[1]["objective"]):
+                best = (cand, ev_c)
         return best
 
     def _pooled_family(self, fam: Mapping[str, np.ndarray], name: str) -> np.ndarray:
@@ -813,11 +883,21 @@ class Fitter:
                 if stalled and self.monotone and s.l2 == 0 and pins < MAX_PIN_STEPS and r.iterations < s.max_iter:
                     # stalled with the box condition holding: fractions creeping to their bounds
                     moved = self.pin(ev, near=PIN_DISTANCE)
+                    if moved is None and self.cone_nodes:
+                        # near a kink of the fractions' map: a projected step on the cumulative
+                        # probabilities (the box rule cannot see one-sided derivatives)
+                        moved = self.cone_step(ev, tol=0.0)
                 if moved is not None:
                     pins += 1
                     self.pin_steps += 1
                     logits, ev_m = moved
                 else:
+                    if stalled and self.cone_nodes and self.cone_converged(ev):
+                        r.converged = True
+                        r.stop_reason = ("KKT conditions on the cumulative probabilities of " +
+                                         ", ".join(repr(n) for n in self.cone_nodes) + " hold to ptol (the logit "
+                                         "gradient is not defined at the kink of their fractions' map) and the "
+                                         "residual of the other parameters is below ptol")
                     if not (r.converged and self.saddle_check and self.has_hidden):
                         break
                     found = self.curvature_check(r.logits, ev)
@@ -839,6 +919,8 @@ class Fitter:
                     r.converged, r.stop_reason = False, self._kkt_reason(ev, f"after {pins} active-set step(s)")
                     break
                 moved = self.pin(ev)
+                if moved is None and self.cone_nodes:
+                    moved = self.cone_step(ev)
                 if moved is None:
                     r.converged, r.stop_reason = False, self._kkt_reason(
                         ev, "and no active-set step raised the objective")
@@ -873,6 +955,26 @@ class Fitter:
             moved = self.pin(ev, final=True)
             if moved is not None and self.kkt_holds(moved[1]):
                 r.logits, r.value = moved[0], moved[1]["objective"]
+                ev = moved[1]
+            if self.cone_nodes:
+                # close exactly the constraints of the cone nodes it stopped a hair from, so that
+                # the binding set (reported, counted by AIC/BIC, held by the error bars) is exact
+                new = {n: ev["probs"][n] for n in self.free}
+                changed = False
+                for name in self.cone_nodes:
+                    T = np.asarray(_forms.implied_table(self.network, name, ev["probs"][name]), dtype=np.float64)
+                    fam = self._pooled_family(ev["family_counts"], name)
+                    with np.errstate(divide="ignore", invalid="ignore"):
+                        g = np.where(T > 1e-300, fam / np.where(T > 1e-300, T, 1.0), 0.0)
+                    snapped = _mono.snap(self.network, name, T, g, fam)
+                    if snapped is not None:
+                        new[name] = _mono.read_fractions(self.network, name, snapped, floor=_mono.PIN)
+                        changed = True
+                if changed:
+                    cand = self.logits_of(new)
+                    ev_c = self.evaluate(cand)
+                    if ev_c["objective"] >= ev["objective"] and self.kkt_holds(ev_c):
+                        r.logits, r.value = cand, ev_c["objective"]
         return r
 
     def curvature_check(self, logits: Mapping[str, Any], ev: Mapping[str, Any]):
@@ -924,6 +1026,10 @@ class Fitter:
     def _kkt_reason(self, ev: Mapping[str, Any], tail: str) -> str:
         if not self.box_holds(ev):
             name, label, m = self.worst_box(ev)
+            if not label:
+                return (f"KKT condition violated: the cumulative probabilities of the monotone node {name!r} have a "
+                        f"first-order gain of {m:.3g} per record > {self.settings.kkt_tol:g} along a move that keeps "
+                        f"its binding constraints {tail}")
             return (f"KKT condition violated: the fraction {label} of the monotone node {name!r} has a first-order "
                     f"gain of {m:.3g} per record > {self.settings.kkt_tol:g} towards a bound {tail}")
         name, label, ratio = self.worst_kkt_cell(ev)
@@ -1383,13 +1489,18 @@ def stationarity_section(fitter: Fitter, ev: Mapping[str, Any]) -> dict[str, Any
 
 
 def _monotone_stationarity(fitter: "Fitter", ev: Mapping[str, Any]) -> dict[str, Any]:
-    """The box KKT check of the monotone fractions at the returned point: the largest measure
-    (:func:`adfit.monotone.box_kkt`, first-order gain per record served; None with an L2
-    penalty), its fraction, the fractions on a bound, the active-set steps taken."""
+    """The KKT check of the monotone nodes at the returned point: the largest measure (a
+    fraction's :func:`adfit.monotone.box_kkt` or, for a node along two or more parents, the
+    residual of :func:`adfit.monotone.cone_kkt`; both first-order gain per record served; None
+    with an L2 penalty), its fraction ("" for a cone node), each cone node's residual, the
+    fractions on a bound, the active-set steps taken."""
     name, label, m = fitter.worst_box(ev) if ev.get("box") else (None, "", float("nan"))
     on = {n: int(np.sum(np.min(np.asarray(ev["probs"][n]), axis=1) <= _mono.BOUND_TOL)) for n in fitter.monotone}
-    return {"box_kkt": None if not ev.get("box") else m, "worst_fraction": label or None,
-            "fractions_on_a_bound": on, "active_set_steps": int(fitter.pin_steps)}
+    out = {"box_kkt": None if not ev.get("box") else m, "worst_fraction": label or None,
+           "fractions_on_a_bound": on, "active_set_steps": int(fitter.pin_steps)}
+    if fitter.cone_nodes:
+        out["cone_kkt"] = {n: (None if not ev.get("cone") else float(ev["cone"][n][0])) for n in fitter.cone_nodes}
+    return out
 
 
 # --------------------------------------------------------------------------- the public API

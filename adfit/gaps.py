@@ -706,18 +706,26 @@ class InformationCriteria:
     aic: float
     bic: float
     objective: str
+    #: parameters of monotone tables not counted because binding constraints remove them
+    n_bound: int = 0
 
     def to_dict(self) -> dict[str, Any]:
-        return {"log_likelihood": _finite(self.log_likelihood), "n_parameters": self.n_parameters,
-                "n_effective": _num(self.n_effective), "aic": _finite(self.aic), "bic": _finite(self.bic),
-                "objective": self.objective,
-                "definitions": "AIC = -2 log L + 2k; BIC = -2 log L + k ln n; k = free parameters of the estimated "
-                               "CPTs (fixed CPTs excluded); n = records with at least one observed cell"}
+        out = {"log_likelihood": _finite(self.log_likelihood), "n_parameters": self.n_parameters,
+               "n_effective": _num(self.n_effective), "aic": _finite(self.aic), "bic": _finite(self.bic),
+               "objective": self.objective,
+               "definitions": "AIC = -2 log L + 2k; BIC = -2 log L + k ln n; k = free parameters of the estimated "
+                              "CPTs (fixed CPTs excluded; a monotone table counts the dimension of the face of "
+                              "its constraints that the estimate lies on); n = records with at least one "
+                              "observed cell"}
+        if self.n_bound:
+            out["n_parameters_removed_by_binding_constraints"] = self.n_bound
+        return out
 
     def format_text(self) -> str:
         txt = (f"AIC {self.aic:.3f}, BIC {self.bic:.3f} (log-likelihood {self.log_likelihood:.4f}; "
-               f"k = {self.n_parameters} free parameters, fixed CPTs excluded; "
-               f"n = {_fmt_n(self.n_effective)} records with at least one observed cell)")
+               f"k = {self.n_parameters} free parameters, fixed CPTs excluded"
+               + (f", {self.n_bound} of monotone tables removed by binding constraints" if self.n_bound else "")
+               + f"; n = {_fmt_n(self.n_effective)} records with at least one observed cell)")
         if self.objective == "map":
             txt += ("; the fit is MAP, so log L is taken at the posterior mode, not at the maximum (and k counts "
                     "every free parameter, those a prior shrinks too)")
@@ -735,12 +743,24 @@ def information_criteria(network: Network, data: CodedData, fit: Any) -> Informa
     else:
         ll, objective = float(fit.log_likelihood), str(getattr(fit, "objective", "mle"))
     k = int(network.n_free_parameters())
+    k_bound = 0
+    probs = getattr(fit, "probs", None)
+    if probs is not None:
+        # a monotone table counts the dimension of the face its estimate lies on (binding
+        # constraints pool configurations; adfit.monotone.face_dimension)
+        from . import monotone as _mono
+
+        for m in network.estimated_names:
+            if _mono.is_monotone(network, m) and m in probs:
+                R, K = _mono.fraction_shape(network, m)
+                k_bound += R - _mono.face_dimension(network, m, np.asarray(probs[m]))
+    k -= k_bound
     obs = [network.index(nm) for nm in network.observed_names]
     seen = np.any(np.asarray(data.codes)[:, obs] != HIDDEN, axis=1) if obs else np.zeros(data.n_distinct, bool)
     n = float(np.asarray(data.counts)[seen].sum())
     if n <= 0:
         raise DataError(f"{data.source}: no record has an observed cell; AIC/BIC need observed data")
-    return InformationCriteria(ll, k, n, -2.0 * ll + 2.0 * k, -2.0 * ll + k * math.log(n), objective)
+    return InformationCriteria(ll, k, n, -2.0 * ll + 2.0 * k, -2.0 * ll + k * math.log(n), objective, k_bound)
 
 
 __all__ = ["ColumnGaps", "Pattern", "IndependenceTest", "ColumnReading", "GapsReport", "overview",

@@ -46,7 +46,8 @@ import numpy as np
 from .network import Network
 
 __all__ = ["is_monotone", "fraction_shape", "fraction_labels", "implied_log_table", "read_fractions",
-           "fractions_from_table", "dsigma", "box_kkt", "binding", "PIN", "BOUND_TOL"]
+           "fractions_from_table", "dsigma", "box_kkt", "binding", "cone_kkt", "cone_steps", "face_newton", "face_dimension", "binding_mask", "snap",
+           "table_from_cumulative", "needs_cone", "PIN", "BOUND_TOL"]
 
 #: distance from a bound at which the fit pins a fraction (σ = PIN or 1 − PIN): the objective
 #: then differs from the bound's by about PIN × the records served, and the logit gradient of the
@@ -60,6 +61,12 @@ def is_monotone(network: Network, name: str) -> bool:
     """Whether ``name`` (or its tie source) is a table node with ``increasing_with``."""
     n = network.node(network.tie_source(name))
     return n.fixed is None and n.cpd == "table" and bool(n.increasing_with)
+
+
+def needs_cone(network: Network, name: str) -> bool:
+    """Whether the node's fractions map through a min over several predecessors (two or more
+    listed parents): its stationarity is then checked by :func:`cone_kkt`, not :func:`box_kkt`."""
+    return is_monotone(network, name) and len(network.node(network.tie_source(name)).increasing_with) > 1
 
 
 def fraction_shape(network: Network, name: str) -> tuple[int, int]:
@@ -239,8 +246,16 @@ def binding(network: Network, name: str, rows: np.ndarray, table: np.ndarray | N
             continue
         cfg = ", ".join(f"{p}={s}" for p, s in zip(src.parents, cfgs[u]))
         if v[r, 0] <= tol and has_pred[u]:
-            out.append(f"P({src.name}<={src.states[y]} | {cfg}) equals its value one {'/'.join(src.increasing_with)} "
-                       f"state lower")
+            if len(src.increasing_with) == 1:
+                out.append(f"P({src.name}<={src.states[y]} | {cfg}) equals its value one {src.increasing_with[0]} "
+                           f"state lower")
+                continue
+            # several predecessors: name those whose cumulative probability it equals
+            F = np.cumsum(np.asarray(table, dtype=np.float64).reshape(R, K), axis=1)
+            preds = [int(p) for idx, pred in groups for uu, ps in zip(idx, pred) if uu == u for p in ps if p < R]
+            eq = [p for p in preds if abs(F[p, y] - F[u, y]) <= 1e-9] or preds
+            at = " and at ".join(", ".join(f"{q}={s_}" for q, s_ in zip(src.parents, cfgs[p])) for p in eq)
+            out.append(f"P({src.name}<={src.states[y]} | {cfg}) equals its value at {at}")
         elif v[r, 1] <= tol:
             out.append(f"P({src.name}={src.states[y]} | {cfg}) = 0")
     return out
@@ -274,3 +289,222 @@ def pair_information(network: Network, name: str, rows: np.ndarray, family_count
         eta = np.log(np.asarray(rows, dtype=np.float64))
     eta = np.where(np.isfinite(eta), eta, -745.0)
     return np.asarray(_pair_info_jit(network, name, jnp.asarray(eta), jnp.asarray(n_u)))
+
+
+# --------------------------------------------------------------------------- KKT in the table's own
+# coordinates: with two or more listed parents a configuration has several predecessors and the
+# map from the fractions takes a min over them, which is not differentiable where two of them tie
+# (where binding constraints pool configurations). The box condition on the fractions is then no
+# certificate; the conditions below are, being written on the cumulative probabilities
+# F_u(y) (y = 0 … K−2), in which the constraints are linear.
+
+#: a constraint whose slack (in probability) is at most this counts as binding
+CONE_SLACK = 1e-9
+#: ... and so does one within CONE_NEAR that the gradient pushes on, whose closing would gain at
+#: most CONE_GAIN per record (near a stationary interior point every push is ~0: hence the cap)
+CONE_GAIN = 1e-7
+CONE_NEAR = 1e-6
+
+
+@lru_cache(maxsize=256)
+def _constraints(network: Network, name: str):
+    """Every constraint of a monotone table as a pair (lo, hi) meaning F_lo ≤ F_hi on the flat
+    cumulative coordinates i = u·(K−1) + y; −1 stands for the constant 0 and −2 for the constant 1.
+    A cell P(y | u) ≥ 0 is F_u(y−1) ≤ F_u(y); a dominance constraint is F_u(y) ≤ F_pred(y)."""
+    R, K, groups = _structure(network, name)
+    k = K - 1
+    lo, hi = [], []
+    for u in range(R):
+        for y in range(K):
+            lo.append(u * k + y - 1 if y > 0 else -1)
+            hi.append(u * k + y if y < k else -2)
+    for idx, pred in groups:
+        for u, ps in zip(idx, pred):
+            for p in ps:
+                if p < R:
+                    for y in range(k):
+                        lo.append(int(u) * k + y)
+                        hi.append(int(p) * k + y)
+    return np.array(lo, np.int64), np.array(hi, np.int64)
+
+
+def _cumulative(table: np.ndarray, R: int, K: int) -> np.ndarray:
+    return np.cumsum(np.asarray(table, dtype=np.float64).reshape(R, K), axis=1)[:, :-1].reshape(-1)
+
+
+def _slack(F: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """F_hi − F_lo per constraint (≥ 0 where it holds)."""
+    f_lo = np.where(lo < 0, 0.0, F[np.maximum(lo, 0)])
+    f_hi = np.where(hi < 0, 1.0, F[np.maximum(hi, 0)])
+    return f_hi - f_lo
+
+
+def _normals(lo: np.ndarray, hi: np.ndarray, n: int) -> np.ndarray:
+    """Gradients of F_lo − F_hi (rows), constants dropped."""
+    A = np.zeros((lo.size, n))
+    r = np.arange(lo.size)
+    A[r[lo >= 0], lo[lo >= 0]] += 1.0
+    A[r[hi >= 0], hi[hi >= 0]] -= 1.0
+    return A
+
+
+def _gradient_F(network: Network, name: str, cell_gradient: np.ndarray, family_counts: np.ndarray):
+    R, K, _ = _structure(network, name)
+    g = np.asarray(cell_gradient, dtype=np.float64).reshape(R, K)
+    n_u = np.asarray(family_counts, dtype=np.float64).reshape(R, K).sum(axis=1)
+    return (g[:, :-1] - g[:, 1:]).reshape(-1), np.repeat(1.0 / np.maximum(n_u, 1.0), K - 1)
+
+
+def binding_mask(network: Network, name: str, table: np.ndarray, cell_gradient: np.ndarray,
+                 family_counts: np.ndarray) -> np.ndarray:
+    """Which constraints (:func:`_constraints` order) count as binding at ``table``: slack at
+    most CONE_SLACK, or at most CONE_NEAR with the gradient pushing on it and closing it gaining
+    at most CONE_GAIN per record (the fit stops a hair from a bound it is moving to; the KKT check, the face of the
+    error bars and the snap of :func:`snap` all use this one rule)."""
+    R, K, _ = _structure(network, name)
+    lo, hi = _constraints(network, name)
+    F = _cumulative(table, R, K)
+    gF, D = _gradient_F(network, name, cell_gradient, family_counts)
+    A = _normals(lo, hi, F.size)
+    slack = _slack(F, lo, hi)
+    push = np.maximum(A @ gF, 0.0) * (np.abs(A) * D[None, :]).max(axis=1)  # per record, towards it
+    return (slack <= CONE_SLACK) | ((push > 0) & (slack <= CONE_NEAR) & (slack * push <= CONE_GAIN))
+
+
+def snap(network: Network, name: str, table: np.ndarray, cell_gradient: np.ndarray,
+         family_counts: np.ndarray) -> np.ndarray | None:
+    """The table with every binding constraint (:func:`binding_mask`) closed exactly: the
+    smallest change of the cumulative probabilities that makes them equalities (a least-norm
+    correction), or None when nothing is open."""
+    R, K, _ = _structure(network, name)
+    lo, hi = _constraints(network, name)
+    on = binding_mask(network, name, table, cell_gradient, family_counts)
+    F = _cumulative(table, R, K)
+    slack = _slack(F, lo, hi)
+    if not (on & (slack > 0)).any():
+        return None
+    A = _normals(lo[on], hi[on], F.size)
+    dF = np.linalg.lstsq(A, slack[on], rcond=None)[0]      # A dF = slack: F_lo − F_hi rises to 0
+    return table_from_cumulative(network, name, F + dF)
+
+
+def cone_kkt(network: Network, name: str, table: np.ndarray, cell_gradient: np.ndarray,
+             family_counts: np.ndarray) -> tuple[float, np.ndarray]:
+    """The KKT condition of a monotone table in its cumulative probabilities: the objective's
+    gradient there must lie in the cone of the binding constraints' normals, ∇_F L = Σ λ_c a_c
+    with λ ≥ 0 (Karush–Kuhn–Tucker for linear constraints; Nocedal & Wright 2006, Numerical
+    Optimization, Theorem 12.1). λ comes from non-negative least squares (scipy's nnls,
+    Lawson & Hanson 1974) on rows scaled by 1/max(N(u), 1); returns ``(measure, direction)``:
+    the measure is the largest scaled residual (records per record served, per unit of
+    cumulative probability; 0 at a KKT point, positive where some feasible move raises the
+    objective to first order) and the direction the scaled residual D² (∇L − Aᵀλ), which keeps
+    every binding constraint (A d ≤ 0) and climbs (∇Lᵀ d = ‖residual‖² > 0) — a projected
+    gradient step. ``cell_gradient`` is ∂objective/∂P(y | u) (CPT-shaped), ``family_counts`` the
+    family's expected counts (records served)."""
+    from scipy.optimize import nnls
+
+    R, K, _ = _structure(network, name)
+    lo, hi = _constraints(network, name)
+    F = _cumulative(table, R, K)
+    gF, D = _gradient_F(network, name, cell_gradient, family_counts)
+    A = _normals(lo, hi, F.size)
+    active = binding_mask(network, name, table, cell_gradient, family_counts)
+    if not active.any():
+        r = D * gF
+        return float(np.max(np.abs(r), initial=0.0)), D * r
+    Aa = A[active]
+    lam, _ = nnls((Aa * D[None, :]).T, D * gF, maxiter=50 * max(Aa.shape))
+    r = D * (gF - Aa.T @ lam)
+    return float(np.max(np.abs(r), initial=0.0)), D * r
+
+
+def table_from_cumulative(network: Network, name: str, F: np.ndarray) -> np.ndarray:
+    """The CPT of flat cumulative probabilities (clipped into [0, 1] and made non-decreasing in
+    each row; the caller keeps F feasible, this only removes rounding)."""
+    R, K, _ = _structure(network, name)
+    Fm = np.clip(np.asarray(F, dtype=np.float64).reshape(R, K - 1), 0.0, 1.0)
+    Fm = np.maximum.accumulate(Fm, axis=1)
+    full = np.concatenate([np.zeros((R, 1)), Fm, np.ones((R, 1))], axis=1)
+    cells = np.maximum(np.diff(full, axis=1), 0.0)
+    src = network.tie_source(name)
+    return (cells / cells.sum(axis=1, keepdims=True)).reshape(network.cpt_shape(src))
+
+
+def face_dimension(network: Network, name: str, table: np.ndarray) -> int:
+    """The dimension of the face of the monotone tables on which ``table`` lies: the free
+    cumulative coordinates, R·(K−1), less the rank of the constraints that bind there (slack at
+    most CONE_SLACK). It is the number of parameters the fit moves locally (binding constraints
+    pool configurations, cells at 0 drop out), which is what order-restricted fits count as
+    their degrees of freedom (Meyer & Woodroofe 2000, Ann. Statist. 28(4), from memory: the
+    degrees of freedom of a projection onto a polyhedral cone are the expected dimension of the
+    face it lands on)."""
+    R, K, _ = _structure(network, name)
+    lo, hi = _constraints(network, name)
+    F = _cumulative(table, R, K)
+    on = _slack(F, lo, hi) <= CONE_SLACK
+    if not on.any():
+        return int(F.size)
+    return int(F.size - np.linalg.matrix_rank(_normals(lo[on], hi[on], F.size)))
+
+
+def face_newton(network: Network, name: str, table: np.ndarray, cell_gradient: np.ndarray,
+                cell_information: np.ndarray, family_counts: np.ndarray) -> np.ndarray | None:
+    """A Newton direction on the face of the binding constraints (those :func:`cone_kkt` counts
+    as binding, kept as equalities): Δ = Z (Zᵀ H Z)⁻¹ Zᵀ ∇_F L with Z a basis of the face's
+    directions and H the information of the cumulative coordinates from the cells'
+    ``cell_information`` N(y, u)/P(y | u)² (exact on complete data, where the log-likelihood is
+    Σ N log P; with hidden values it is the complete-data information, a quasi-Newton step).
+    On the face the binding constraints pool configurations and the objective is smooth, which
+    the fractions' map (a min over predecessors) is not. None when the face is a point."""
+    import scipy.linalg
+
+    R, K, _ = _structure(network, name)
+    lo, hi = _constraints(network, name)
+    F = _cumulative(table, R, K)
+    gF, _ = _gradient_F(network, name, cell_gradient, family_counts)
+    n_u = np.asarray(family_counts, dtype=np.float64).reshape(R, K).sum(axis=1)
+    A = _normals(lo, hi, F.size)
+    active = binding_mask(network, name, table, cell_gradient, family_counts)
+    w = np.asarray(cell_information, dtype=np.float64).reshape(R, K)
+    w = np.where(np.isfinite(w) & (w > 0), w, np.maximum(n_u, 1.0)[:, None])
+    k = K - 1
+    H = np.zeros((F.size, F.size))
+    for u in range(R):
+        b = u * k
+        for y in range(k):
+            H[b + y, b + y] = w[u, y] + w[u, y + 1]
+            if y + 1 < k:
+                H[b + y, b + y + 1] = H[b + y + 1, b + y] = -w[u, y + 1]
+    Z = scipy.linalg.null_space(A[active]) if active.any() else np.eye(F.size)
+    if Z.shape[1] == 0:
+        return None
+    Hz = Z.T @ H @ Z
+    try:
+        step = Z @ np.linalg.solve(Hz + 1e-12 * np.trace(Hz) / Hz.shape[0] * np.eye(Hz.shape[0]), Z.T @ gF)
+    except np.linalg.LinAlgError:
+        return None
+    return step if np.all(np.isfinite(step)) else None
+
+
+def cone_steps(network: Network, name: str, table: np.ndarray, direction: np.ndarray,
+               fractions=(1.0, 0.5, 0.1, 1e-2, 1e-3, 1e-4, 1e-6), *, newton: bool = False) -> list[np.ndarray]:
+    """Tables along the projected-gradient direction of :func:`cone_kkt`: the longest step that
+    keeps every constraint (and no cumulative probability moving by more than 1), and the given
+    fractions of it; each read back into fraction rows keeps the table monotone exactly.
+    ``newton``: a direction of :func:`face_newton`, whose full step is 1 (capped by the
+    constraints)."""
+    R, K, _ = _structure(network, name)
+    lo, hi = _constraints(network, name)
+    F = _cumulative(table, R, K)
+    d = np.asarray(direction, dtype=np.float64).reshape(-1)
+    if not np.any(d):
+        return []
+    A = _normals(lo, hi, F.size)
+    rate = A @ d                                      # slack falls at this rate
+    slack = _slack(F, lo, hi)
+    moving = rate > 1e-10 * float(np.abs(d).max())   # binding constraints move by rounding only
+    lim = np.where(moving, np.maximum(slack, 0.0) / np.where(moving, rate, 1.0), np.inf)
+    t_max = min(float(lim.min(initial=np.inf)), 1.0 / float(np.abs(d).max()), 1.0 if newton else np.inf)
+    if not t_max > 0:
+        return []
+    return [table_from_cumulative(network, name, F + f * t_max * d) for f in fractions]

@@ -160,7 +160,8 @@ def _parameters_table(name: str, sec: Mapping[str, Any]) -> str:
             "probabilities (noisy-OR: of the second state; noisy-MAX: per state)")
     if sec.get("increasing_with"):
         kind = "monotone (increasing with " + ", ".join(map(str, sec["increasing_with"])) + ")"
-        what = "fractions: 1 = the constraint against one state lower binds, 0 = the cell is 0"
+        what = ("fractions: 1 = the constraint against one state lower binds, 0 = the cell is 0" if len(sec["increasing_with"]) == 1
+                else "fractions: 1 = the constraint against the lowest configuration one state lower binds, 0 = the cell is 0")
     return (f'<table class="cpt-table params-table" data-node="{esc(name)}-parameters"><caption>{esc(kind)} '
             f"parameters of {esc(name)} ({esc(what)}); the table above is the one they imply</caption>"
             "<thead><tr><th>parameter</th><th>estimate</th><th>se</th><th>interval</th></tr></thead><tbody>"
@@ -1568,6 +1569,9 @@ def _section_assessment(doc: Mapping[str, Any]) -> str:
                  ("log-likelihood", fmt_loglik(ic.get("log_likelihood"))),
                  ("free parameters k", _fmt_any(ic.get("n_parameters"))),
                  ("records n", fmt_count(ic.get("n_effective")))]
+        if ic.get("n_parameters_removed_by_binding_constraints"):
+            pairs.insert(4, ("removed by binding monotone constraints",
+                             _fmt_any(ic["n_parameters_removed_by_binding_constraints"])))
         parts.append(_kv(pairs, cls="kv ic"))
         if ic.get("definitions"):
             parts.append(_note(str(ic["definitions"]) + "."))

@@ -152,8 +152,10 @@ def criteria_line(ic: Any) -> str | None:
     """AIC and BIC, with what k and n are."""
     if not isinstance(ic, Mapping):
         return None
-    text = (f"AIC {fmt_ll(ic.get('aic'))}, BIC {fmt_ll(ic.get('bic'))} (k = {ic.get('n_parameters')} free parameters, "
-            f"n = {fmt_records(ic.get('n_effective', 0))} records)")
+    bound = ic.get("n_parameters_removed_by_binding_constraints")
+    text = (f"AIC {fmt_ll(ic.get('aic'))}, BIC {fmt_ll(ic.get('bic'))} (k = {ic.get('n_parameters')} free parameters"
+            + (f", {bound} removed by binding monotone constraints" if bound else "")
+            + f", n = {fmt_records(ic.get('n_effective', 0))} records)")
     if ic.get("objective") == "map":
         text += "; MAP fit: log-likelihood taken at the posterior mode"
     return text

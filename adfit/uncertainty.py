@@ -148,8 +148,9 @@ class Coordinates:
     # logistic nodes with a normal prior on their coefficients: the precisions 1/sd² (rows, card);
     # the prior's curvature is part of the information (the coordinates are the coefficients)
     precision: Mapping[str, np.ndarray] = field(default_factory=dict)
-    # monotone nodes: (records served, room) per fraction row (adfit.monotone.served, .room)
-    monotone: Mapping[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
+    # monotone nodes: (records served, room) per fraction row (adfit.monotone.served, .room) and
+    # the family counts pooled over ties (CPT-shaped)
+    monotone: Mapping[str, tuple] = field(default_factory=dict)
 
     @property
     def size(self) -> int:
@@ -241,7 +242,7 @@ def make_coordinates(network: Network, probs: Mapping[str, np.ndarray],
             # reference; a fraction on a bound (a binding dominance constraint, or a cell at 0) is
             # on the boundary (no coordinate: the error bars are conditional on it, no two-sided
             # interval through the bound); one whose room is empty does not move the table
-            served, room = monotone[name]
+            served, room = monotone[name][:2]
             ref = np.argmax(th, axis=1)
             status = np.full(th.shape, _INTERIOR, dtype=np.int64)
             other = 1 - ref
@@ -677,7 +678,7 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     for n in row_nodes:
         if _forms.is_monotone(network, n):
             fam = sum((np.asarray(counts[t]) for t in network.tied_names(n)), np.asarray(counts[n]))
-            monotone[n] = (_mono.served(network, n, fam), _mono.room(network, n, full[n]))
+            monotone[n] = (_mono.served(network, n, fam), _mono.room(network, n, full[n]), fam)
     counts = pool_counts(network, counts, rows_at)
     # a logistic node's prior entries are the precisions of its coefficients, not pseudo-counts
     co = make_coordinates(network, rows_at, {k: counts[k] + (0.0 if k in logistic else pseudo[k])
@@ -705,10 +706,29 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
     pb = _Problem(network, coded, co, pseudo, l2, batch, lik)
     gnorm = float(np.linalg.norm(coordinate_gradient(co, l2)))
     info = cov = ev = None
+    face = _face_basis(co)
+    if face is not None and method != "dense":
+        raise OptionError(f"error bars: the estimate of the monotone node(s) {', '.join(face[1])} pools configurations "
+                          f"through ties between predecessors, which the matrix-free method ({P} coordinates > "
+                          f"{DENSE_MAX_PARAMETERS}) does not handle; compute them with the dense method or fit "
+                          f"without error bars")
     if method == "dense":
         info = pb.dense_information()
         ev = np.linalg.eigvalsh(info)
-        rho, X = _generalised_eigh(info, _block_matrix(co, blocks))
+        if face is not None:
+            # the information restricted to the face of the binding constraints (Aitchison &
+            # Silvey 1958, Ann. Math. Statist. 29(3): the covariance of a restricted maximum is
+            # W (Wᵀ I W)⁻¹ Wᵀ with W a basis of the directions the constraints leave free)
+            W = face[0]
+            info = _lagrangian_information(info, pb.value_and_grad()[1], face[2])
+            rho, Xw = _generalised_eigh(W.T @ info @ W, W.T @ _block_matrix(co, blocks) @ W)
+            X = W @ Xw
+            ev = np.linalg.eigvalsh(W.T @ info @ W)
+            notes.append(f"the estimate of the monotone node(s) {', '.join(face[1])} pools configurations through "
+                         f"ties between predecessors (binding constraints on two or more listed parents); the error "
+                         f"bars are conditional on those ties, as on the other binding constraints")
+        else:
+            rho, X = _generalised_eigh(info, _block_matrix(co, blocks))
         ok = rho > FLAT_TOL
         cov = (X[:, ok] / rho[ok]) @ X[:, ok].T
         flat_X = X[:, ~ok]
@@ -809,6 +829,78 @@ def _full_probs(network: Network, probs: Mapping[str, np.ndarray]) -> dict[str, 
             raise OptionError(f"node {n.name!r}: CPT has shape {a.shape}, expected {network.cpt_shape(n.name)}")
         out[n.name] = a
     return full_probs(network, out, cause_rows=False)
+
+
+def _face_basis(co: Coordinates):
+    """Where a monotone node along two or more parents has constraints binding at the estimate
+    that its coordinates do not keep by themselves (ties between the predecessors of a
+    configuration bound to both, met where the fractions' map takes its min: adfit.monotone),
+    a basis W (coordinates × directions) of the coordinate directions that keep every binding
+    constraint to first order — the null space of C·∂F/∂φ, C the binding constraints' normals
+    on the cumulative probabilities F —, the nodes concerned and what
+    :func:`_lagrangian_information` needs; None where there are none.
+    Along such directions the ties hold, so the derivatives of the min are those of each branch."""
+    net = co.network
+    offs = co.offsets()
+    rows, nodes, lagr = [], [], {}
+    for name, s in zip(net.estimated_names, co.sizes):
+        if not (s and _mono.needs_cone(net, name)):
+            continue
+        base = jnp.asarray(co.base[name])
+        idx = jnp.asarray(co.index[name])
+        R, K = _mono.fraction_shape(net, name)
+        cpt = net.cpt_shape(name)
+
+        def cum(phi, base=base, idx=idx, name=name, cpt=cpt):
+            eta = base.at[idx].add(phi).reshape(block_shape(net, name))
+            t = jnp.exp(_forms.implied_log_table(net, name, jax.nn.log_softmax(eta, axis=-1))).reshape(-1, cpt[-1])
+            return jnp.cumsum(t, axis=1)[:, :-1].reshape(-1)
+
+        J = np.asarray(jax.jacfwd(cum)(jnp.zeros(s)))                       # (R·(K−1)... F, s)
+        T = np.asarray(_forms.implied_table(net, name, co.probs[name]))
+        lo, hi = _mono._constraints(net, name)
+        F = _mono._cumulative(T, *cpt_rows(net, name))
+        fam = np.asarray(co.monotone[name][2], dtype=np.float64).reshape(T.shape)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            g = np.where(T > 1e-300, fam / np.where(T > 1e-300, T, 1.0), 0.0)
+        on = _mono.binding_mask(net, name, T, g, fam)
+        if not on.any():
+            continue
+        C = _mono._normals(lo[on], hi[on], F.size)
+        CJ = C @ J
+        big = np.abs(CJ).max(axis=1) > 1e-9 * max(1.0, float(np.abs(J).max()))
+        if not big.any():
+            continue
+        full = np.zeros((int(big.sum()), co.size))
+        full[:, offs[name]:offs[name] + s] = CJ[big]
+        rows.append(full)
+        nodes.append(name)
+        lagr[name] = (offs[name], s, CJ[big], jnp.asarray(C[big]), cum)
+    if not rows:
+        return None
+    W = scipy.linalg.null_space(np.vstack(rows), rcond=1e-9)
+    return W, nodes, lagr
+
+
+def _lagrangian_information(info: np.ndarray, grad: np.ndarray, lagr) -> np.ndarray:
+    """The information of the Lagrangian for the ties of :func:`_face_basis`: those constraints
+    are nonlinear in the coordinates (c(φ) = C F(φ) = 0), so a maximum on the face has
+    ∇F = (∂c/∂φ)ᵀ μ with multipliers μ (least squares from the gradient ``grad``) and the
+    curvature along the face is that of F − μᵀc (Nocedal & Wright 2006, §12.4, second-order
+    conditions): I + ∇²(μᵀ c) on the node's block."""
+    out = np.array(info, dtype=np.float64)
+    for name, (off, s, CJ, C, cum) in lagr.items():
+        mu, *_ = np.linalg.lstsq(CJ.T, grad[off:off + s], rcond=None)
+        muj = jnp.asarray(mu)
+        Hc = np.asarray(jax.hessian(lambda phi: muj @ (C @ cum(phi)))(jnp.zeros(s)))
+        out[off:off + s, off:off + s] += 0.5 * (Hc + Hc.T)
+    return out
+
+
+def cpt_rows(network: Network, name: str) -> tuple[int, int]:
+    """(parent configurations, states) of a node's CPT."""
+    shape = network.cpt_shape(network.tie_source(name))
+    return int(np.prod(shape[:-1])), int(shape[-1])
 
 
 def _generalised_eigh(info: np.ndarray, M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -1015,6 +1107,13 @@ def _missing_none(co: Coordinates, name: str) -> dict[str, Any]:
 
 def _fractions(cov_block: np.ndarray, com_block: np.ndarray) -> np.ndarray:
     """Fractions of missing information 1 − eig(I_com⁻¹ S), S = (cov block)⁻¹ the marginal information."""
+    lam, U = np.linalg.eigh(cov_block)
+    keep = lam > 1e-12 * max(float(lam.max(initial=0.0)), 1e-300)
+    if not keep.all():
+        # a covariance restricted to a face (ties of a monotone node): the directions it spans
+        U, lam = U[:, keep], lam[keep]
+        com_block = U.T @ com_block @ U
+        cov_block = np.diag(lam)
     S = np.linalg.inv(cov_block)
     L = np.linalg.cholesky(com_block)
     Li = np.linalg.inv(L)
