@@ -5,7 +5,7 @@ effect with all of them as parents, plus a second effect tied to the first; the 
 simulated from a noisy-OR truth and the causes' cells are missing completely at random with
 probability ``--missing``. The same records are fitted with the effect's CPT as a full table
 (one row per cause configuration), a noisy-OR, a noisy-MAX (the same two states), a
-logistic CPT and a monotone table (``increasing_with = ["c0"]``, which the noisy-OR truth
+logistic CPT and a monotone table (``increasing_with = ["c0"]``, or ``["c0", "c1"]``, which the noisy-OR truth
 satisfies), side by side in one run; then records in which c0 *lowers* the effect's
 probability, fitted as a table and as the monotone table (whose constraints then bind). For each form the table gives the free parameters, the
 time of one value-and-gradient evaluation of the fit's objective (warm, median of
@@ -43,7 +43,8 @@ from adfit.params import free_layout  # noqa: E402
 def network(causes: int, form: str):
     nodes = {f"c{i}": {"states": ["no", "yes"]} for i in range(causes)}
     par = [f"c{i}" for i in range(causes)]
-    extra = ({} if form == "table" else {"increasing_with": ["c0"]} if form.startswith("monotone") else {"cpd": form})
+    extra = ({} if form == "table" else {"increasing_with": ["c0", "c1"]} if form.startswith("monotone along two")
+             else {"increasing_with": ["c0"]} if form.startswith("monotone") else {"cpd": form})
     nodes["effect"] = {"states": ["no", "yes"], "parents": par, **extra}
     nodes["effect2"] = {"states": ["no", "yes"], "parents": par, "tied_to": "effect"}
     return parse_network({"nodes": nodes})
@@ -80,9 +81,10 @@ def main(argv=None) -> None:
     print("| form | free parameters | value+gradient (ms) | fit, cold (s) | fit, warm (s) | iterations | log-likelihood "
           "| binding | converged |")
     print("|---|---|---|---|---|---|---|---|---|")
-    for form in ("table", "noisy_or", "noisy_max", "logistic", "monotone", "table, flipped", "monotone, binding"):
+    for form in ("table", "noisy_or", "noisy_max", "logistic", "monotone", "table, flipped", "monotone, binding",
+                 "monotone along two", "monotone along two, binding"):
         net = network(args.causes, form.replace("table, flipped", "table"))
-        coded = load_data(net, flipped if form in ("table, flipped", "monotone, binding") else df)
+        coded = load_data(net, flipped if form.endswith("flipped") or form.endswith("binding") else df)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             t = time.perf_counter()
