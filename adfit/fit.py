@@ -1366,6 +1366,7 @@ def default_starts(network: Network, fitter: "Fitter", start: Mapping[str, np.nd
     why fewer were run (seconds: NaN when not measured)."""
     if not any(n.latent for n in network.nodes):
         return 1, None, float("nan")
+    fitter.counts(start)  # the first call compiles (the plan's programs, implied tables): not timed
     t = time.perf_counter()
     fitter.counts(start)
     per_eval = time.perf_counter() - t
