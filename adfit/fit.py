@@ -663,9 +663,7 @@ class Fitter:
         log-likelihood is linear in each CPT entry; no prior on monotone nodes)."""
         T = np.asarray(_forms.implied_table(self.network, name, probs[name]), dtype=np.float64)
         n = self._pooled_family(fam, name)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            g = np.where(T > 1e-300, n / np.where(T > 1e-300, T, 1.0), 0.0)
-        return _mono.cone_kkt(self.network, name, T, g, n)
+        return _mono.cone_kkt(self.network, name, T, _mono.cell_derivatives(T, n)[0], n)
 
     def cone_converged(self, ev: Mapping[str, Any]) -> bool:
         """Converged by the rule of the cone nodes: their KKT residual (:func:`adfit.monotone.cone_kkt`)
@@ -689,19 +687,13 @@ class Fitter:
             # a Newton step on the face of the binding constraints first, then the projected
             # gradient (which also leaves constraints whose multiplier is 0)
             T, fam = tables[name], self._pooled_family(ev["family_counts"], name)
-            with np.errstate(divide="ignore", invalid="ignore"):
-                ok = T > 1e-12
-                g = np.where(ok, fam / np.where(ok, T, 1.0), 0.0)
-                info = np.where(ok, fam / np.where(ok, T, 1.0) ** 2, np.nan)
+            g, info = _mono.cell_derivatives(T, fam, floor=1e-12)
             snapped = _mono.snap(self.network, name, T, g, fam)
             if snapped is not None:
                 # close the constraints it stops a hair from, then Newton on that face
                 trials[name].append(snapped)
                 T = snapped
-                with np.errstate(divide="ignore", invalid="ignore"):
-                    ok = T > 1e-12
-                    g = np.where(ok, fam / np.where(ok, T, 1.0), 0.0)
-                    info = np.where(ok, fam / np.where(ok, T, 1.0) ** 2, np.nan)
+                g, info = _mono.cell_derivatives(T, fam, floor=1e-12)
             d_newton = _mono.face_newton(self.network, name, T, g, info, fam)
             if d_newton is not None:
                 trials[name] += _mono.cone_steps(self.network, name, T, d_newton, (1.0, 0.5, 0.25, 0.1), newton=True)
@@ -964,9 +956,7 @@ class Fitter:
                 for name in self.cone_nodes:
                     T = np.asarray(_forms.implied_table(self.network, name, ev["probs"][name]), dtype=np.float64)
                     fam = self._pooled_family(ev["family_counts"], name)
-                    with np.errstate(divide="ignore", invalid="ignore"):
-                        g = np.where(T > 1e-300, fam / np.where(T > 1e-300, T, 1.0), 0.0)
-                    snapped = _mono.snap(self.network, name, T, g, fam)
+                    snapped = _mono.snap(self.network, name, T, _mono.cell_derivatives(T, fam)[0], fam)
                     if snapped is not None:
                         new[name] = _mono.read_fractions(self.network, name, snapped, floor=_mono.PIN)
                         changed = True

@@ -46,7 +46,7 @@ import numpy as np
 from .network import Network
 
 __all__ = ["is_monotone", "fraction_shape", "fraction_labels", "implied_log_table", "read_fractions",
-           "fractions_from_table", "dsigma", "box_kkt", "binding", "cone_kkt", "cone_steps", "face_newton", "face_dimension", "binding_mask", "snap",
+           "fractions_from_table", "dsigma", "box_kkt", "binding", "cone_kkt", "cone_steps", "face_newton", "face_dimension", "binding_mask", "snap", "cell_derivatives",
            "table_from_cumulative", "needs_cone", "PIN", "BOUND_TOL"]
 
 #: distance from a bound at which the fit pins a fraction (σ = PIN or 1 − PIN): the objective
@@ -346,6 +346,17 @@ def _normals(lo: np.ndarray, hi: np.ndarray, n: int) -> np.ndarray:
     A[r[lo >= 0], lo[lo >= 0]] += 1.0
     A[r[hi >= 0], hi[hi >= 0]] -= 1.0
     return A
+
+
+def cell_derivatives(table: np.ndarray, family_counts: np.ndarray, *, floor: float = 1e-300):
+    """``(∂ℓ/∂θ, N/θ²)`` per cell of a CPT from its expected family counts N: the log-likelihood
+    is linear in each CPT entry, so ∂ℓ/∂θ(y | u) = N(y, u)/θ(y | u), and N/θ² is the cells'
+    complete-data information. Cells at most ``floor`` get 0 and NaN (their constraint binds)."""
+    T = np.asarray(table, dtype=np.float64)
+    n = np.asarray(family_counts, dtype=np.float64).reshape(T.shape)
+    ok = T > floor
+    Ts = np.where(ok, T, 1.0)
+    return np.where(ok, n / Ts, 0.0), np.where(ok, n / Ts ** 2, np.nan)
 
 
 def _gradient_F(network: Network, name: str, cell_gradient: np.ndarray, family_counts: np.ndarray):

@@ -861,9 +861,7 @@ def _face_basis(co: Coordinates):
         lo, hi = _mono._constraints(net, name)
         F = _mono._cumulative(T, *cpt_rows(net, name))
         fam = np.asarray(co.monotone[name][2], dtype=np.float64).reshape(T.shape)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            g = np.where(T > 1e-300, fam / np.where(T > 1e-300, T, 1.0), 0.0)
-        on = _mono.binding_mask(net, name, T, g, fam)
+        on = _mono.binding_mask(net, name, T, _mono.cell_derivatives(T, fam)[0], fam)
         if not on.any():
             continue
         C = _mono._normals(lo[on], hi[on], F.size)
