@@ -46,7 +46,7 @@ import numpy as np
 from .network import Network
 
 __all__ = ["is_monotone", "fraction_shape", "fraction_labels", "implied_log_table", "read_fractions",
-           "fractions_from_table", "dsigma", "box_kkt", "binding", "cone_kkt", "cone_steps", "face_newton", "face_dimension", "binding_mask", "snap", "cell_derivatives",
+           "fractions_from_table", "dsigma", "box_kkt", "binding", "cone_kkt", "cone_steps", "face_newton", "face_dimension", "binding_mask", "binding_normals", "snap", "cell_derivatives",
            "table_from_cumulative", "needs_cone", "PIN", "BOUND_TOL"]
 
 #: distance from a bound at which the fit pins a fraction (σ = PIN or 1 − PIN): the objective
@@ -380,6 +380,16 @@ def binding_mask(network: Network, name: str, table: np.ndarray, cell_gradient: 
     slack = _slack(F, lo, hi)
     push = np.maximum(A @ gF, 0.0) * (np.abs(A) * D[None, :]).max(axis=1)  # per record, towards it
     return (slack <= CONE_SLACK) | ((push > 0) & (slack <= CONE_NEAR) & (slack * push <= CONE_GAIN))
+
+
+def binding_normals(network: Network, name: str, table: np.ndarray, cell_gradient: np.ndarray,
+                    family_counts: np.ndarray) -> np.ndarray:
+    """The normals (rows; on the flat cumulative coordinates) of the constraints that
+    :func:`binding_mask` counts as binding at ``table``."""
+    lo, hi = _constraints(network, name)
+    on = binding_mask(network, name, table, cell_gradient, family_counts)
+    R, K, _ = _structure(network, name)
+    return _normals(lo[on], hi[on], R * (K - 1))
 
 
 def snap(network: Network, name: str, table: np.ndarray, cell_gradient: np.ndarray,

@@ -856,15 +856,12 @@ def _face_basis(co: Coordinates):
             t = jnp.exp(_forms.implied_log_table(net, name, jax.nn.log_softmax(eta, axis=-1))).reshape(-1, cpt[-1])
             return jnp.cumsum(t, axis=1)[:, :-1].reshape(-1)
 
-        J = np.asarray(jax.jacfwd(cum)(jnp.zeros(s)))                       # (R·(K−1)... F, s)
+        J = np.asarray(jax.jacfwd(cum)(jnp.zeros(s)))                       # (R·(K−1), s): ∂F/∂φ
         T = np.asarray(_forms.implied_table(net, name, co.probs[name]))
-        lo, hi = _mono._constraints(net, name)
-        F = _mono._cumulative(T, *cpt_rows(net, name))
         fam = np.asarray(co.monotone[name][2], dtype=np.float64).reshape(T.shape)
-        on = _mono.binding_mask(net, name, T, _mono.cell_derivatives(T, fam)[0], fam)
-        if not on.any():
+        C = _mono.binding_normals(net, name, T, _mono.cell_derivatives(T, fam)[0], fam)
+        if not C.shape[0]:
             continue
-        C = _mono._normals(lo[on], hi[on], F.size)
         CJ = C @ J
         big = np.abs(CJ).max(axis=1) > 1e-9 * max(1.0, float(np.abs(J).max()))
         if not big.any():
@@ -893,12 +890,6 @@ def _lagrangian_information(info: np.ndarray, grad: np.ndarray, lagr) -> np.ndar
         Hc = np.asarray(jax.hessian(lambda phi: muj @ (C @ cum(phi)))(jnp.zeros(s)))
         out[off:off + s, off:off + s] += 0.5 * (Hc + Hc.T)
     return out
-
-
-def cpt_rows(network: Network, name: str) -> tuple[int, int]:
-    """(parent configurations, states) of a node's CPT."""
-    shape = network.cpt_shape(network.tie_source(name))
-    return int(np.prod(shape[:-1])), int(shape[-1])
 
 
 def _generalised_eigh(info: np.ndarray, M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
