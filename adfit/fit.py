@@ -594,7 +594,7 @@ class Fitter:
         kkt = self.kkt(probs, counts) if self.settings.l2 == 0 else None
         box = ({n: _mono.box_kkt(probs[n], _mono.dsigma(probs[n], counts[n]), served[n]) for n in self.monotone}
                if self.settings.l2 == 0 else None)
-        cone = ({n: self._cone(n, probs, fam) for n in self.cone_nodes} if self.settings.l2 == 0 else None)
+        cone = ({n: self._cone(n, tables, fam) for n in self.cone_nodes} if self.settings.l2 == 0 else None)
         return {"probs": probs, "box": box, "cone": cone, "served": served, "log_likelihood": ll, "log_prior": lp, "penalty": pen,
                 "objective": ll + lp - pen, "grad": g, "gradient_norm": _norm(g),
                 "residual": resid, "residual_smooth": resid_smooth, "counts": counts, "kkt": kkt, "family_counts": fam, "tables": tables,
@@ -657,11 +657,12 @@ class Fitter:
                 best = (name, "", float(m))
         return best
 
-    def _cone(self, name: str, probs: Mapping[str, np.ndarray], fam: Mapping[str, np.ndarray]):
-        """:func:`adfit.monotone.cone_kkt` of a monotone node at ``probs`` (its fraction rows),
-        from the family counts pooled over ties: ∂LL/∂P(y | u) = N(y, u)/P(y | u) (the
-        log-likelihood is linear in each CPT entry; no prior on monotone nodes)."""
-        T = np.asarray(_forms.implied_table(self.network, name, probs[name]), dtype=np.float64)
+    def _cone(self, name: str, tables: Mapping[str, np.ndarray], fam: Mapping[str, np.ndarray]):
+        """:func:`adfit.monotone.cone_kkt` of a monotone node at its implied table (``tables``, as
+        :meth:`counts_and_families` gives them: a monotone node's rows make the layout
+        constrained), from the family counts pooled over ties: ∂LL/∂P(y | u) = N(y, u)/P(y | u)
+        (the log-likelihood is linear in each CPT entry; no prior on monotone nodes)."""
+        T = np.asarray(tables[name], dtype=np.float64)
         n = self._pooled_family(fam, name)
         return _mono.cone_kkt(self.network, name, T, _mono.cell_derivatives(T, n)[0], n)
 
@@ -681,12 +682,12 @@ class Fitter:
         if not todo:
             return None
         best = None
-        tables = {n: np.asarray(_forms.implied_table(self.network, n, ev["probs"][n]), dtype=np.float64) for n in todo}
         trials = {n: [] for n in todo}
         for name in todo:
             # a Newton step on the face of the binding constraints first, then the projected
             # gradient (which also leaves constraints whose multiplier is 0)
-            T, fam = tables[name], self._pooled_family(ev["family_counts"], name)
+            T = np.asarray(ev["tables"][name], dtype=np.float64)
+            fam = self._pooled_family(ev["family_counts"], name)
             g, info = _mono.cell_derivatives(T, fam, floor=1e-12)
             snapped = _mono.snap(self.network, name, T, g, fam)
             if snapped is not None:
@@ -954,7 +955,7 @@ class Fitter:
                 new = {n: ev["probs"][n] for n in self.free}
                 changed = False
                 for name in self.cone_nodes:
-                    T = np.asarray(_forms.implied_table(self.network, name, ev["probs"][name]), dtype=np.float64)
+                    T = np.asarray(ev["tables"][name], dtype=np.float64)
                     fam = self._pooled_family(ev["family_counts"], name)
                     snapped = _mono.snap(self.network, name, T, _mono.cell_derivatives(T, fam)[0], fam)
                     if snapped is not None:

@@ -752,8 +752,8 @@ def information_criteria(network: Network, data: CodedData, fit: Any) -> Informa
 
         for m in network.estimated_names:
             if _mono.is_monotone(network, m) and m in probs:
-                R, K = _mono.fraction_shape(network, m)
-                k_bound += R - _mono.face_dimension(network, m, np.asarray(probs[m]))
+                n_fractions = _mono.fraction_shape(network, m)[0]  # R·(K − 1): the table's parameters
+                k_bound += n_fractions - _mono.face_dimension(network, m, np.asarray(probs[m]))
     k -= k_bound
     obs = [network.index(nm) for nm in network.observed_names]
     seen = np.any(np.asarray(data.codes)[:, obs] != HIDDEN, axis=1) if obs else np.zeros(data.n_distinct, bool)

@@ -38,7 +38,6 @@ from __future__ import annotations
 
 import math
 from functools import lru_cache
-from typing import Any, Mapping
 
 from ._jax import jax, jnp  # first: float64 on (adfit/_jax.py)
 import numpy as np
@@ -236,24 +235,24 @@ def binding(network: Network, name: str, rows: np.ndarray, table: np.ndarray | N
         table = np.exp(np.asarray(implied_log_table_jit(network, src.name, np.log(np.maximum(v, 0.0) + 0.0))))
     rm = room(network, name, table)
     cfgs = network.parent_config_labels(src.name)
-    has_pred = np.zeros(R, bool)
+    preds_of = [[] for _ in range(R)]              # each configuration's predecessors
     for idx, pred in groups:
-        has_pred[idx] = (pred < R).any(axis=1)
+        for u, ps in zip(idx, pred):
+            preds_of[int(u)] = [int(p) for p in ps if p < R]
+    F = np.cumsum(np.asarray(table, dtype=np.float64).reshape(R, K), axis=1)
     out = []
     for r in range(R * (K - 1)):
         u, y = divmod(r, K - 1)
         if rm[r] <= 1e-12:
             continue
         cfg = ", ".join(f"{p}={s}" for p, s in zip(src.parents, cfgs[u]))
-        if v[r, 0] <= tol and has_pred[u]:
+        if v[r, 0] <= tol and preds_of[u]:
             if len(src.increasing_with) == 1:
                 out.append(f"P({src.name}<={src.states[y]} | {cfg}) equals its value one {src.increasing_with[0]} "
                            f"state lower")
                 continue
             # several predecessors: name those whose cumulative probability it equals
-            F = np.cumsum(np.asarray(table, dtype=np.float64).reshape(R, K), axis=1)
-            preds = [int(p) for idx, pred in groups for uu, ps in zip(idx, pred) if uu == u for p in ps if p < R]
-            eq = [p for p in preds if abs(F[p, y] - F[u, y]) <= 1e-9] or preds
+            eq = [p for p in preds_of[u] if abs(F[p, y] - F[u, y]) <= 1e-9] or preds_of[u]
             at = " and at ".join(", ".join(f"{q}={s_}" for q, s_ in zip(src.parents, cfgs[p])) for p in eq)
             out.append(f"P({src.name}<={src.states[y]} | {cfg}) equals its value at {at}")
         elif v[r, 1] <= tol:
@@ -424,16 +423,11 @@ def cone_kkt(network: Network, name: str, table: np.ndarray, cell_gradient: np.n
     family's expected counts (records served)."""
     from scipy.optimize import nnls
 
-    R, K, _ = _structure(network, name)
-    lo, hi = _constraints(network, name)
-    F = _cumulative(table, R, K)
     gF, D = _gradient_F(network, name, cell_gradient, family_counts)
-    A = _normals(lo, hi, F.size)
-    active = binding_mask(network, name, table, cell_gradient, family_counts)
-    if not active.any():
+    Aa = binding_normals(network, name, table, cell_gradient, family_counts)
+    if not Aa.shape[0]:
         r = D * gF
         return float(np.max(np.abs(r), initial=0.0)), D * r
-    Aa = A[active]
     lam, _ = nnls((Aa * D[None, :]).T, D * gF, maxiter=50 * max(Aa.shape))
     r = D * (gF - Aa.T @ lam)
     return float(np.max(np.abs(r), initial=0.0)), D * r
@@ -480,23 +474,21 @@ def face_newton(network: Network, name: str, table: np.ndarray, cell_gradient: n
     import scipy.linalg
 
     R, K, _ = _structure(network, name)
-    lo, hi = _constraints(network, name)
-    F = _cumulative(table, R, K)
+    n = R * (K - 1)
     gF, _ = _gradient_F(network, name, cell_gradient, family_counts)
     n_u = np.asarray(family_counts, dtype=np.float64).reshape(R, K).sum(axis=1)
-    A = _normals(lo, hi, F.size)
-    active = binding_mask(network, name, table, cell_gradient, family_counts)
+    C = binding_normals(network, name, table, cell_gradient, family_counts)
     w = np.asarray(cell_information, dtype=np.float64).reshape(R, K)
     w = np.where(np.isfinite(w) & (w > 0), w, np.maximum(n_u, 1.0)[:, None])
     k = K - 1
-    H = np.zeros((F.size, F.size))
+    H = np.zeros((n, n))
     for u in range(R):
         b = u * k
         for y in range(k):
             H[b + y, b + y] = w[u, y] + w[u, y + 1]
             if y + 1 < k:
                 H[b + y, b + y + 1] = H[b + y + 1, b + y] = -w[u, y + 1]
-    Z = scipy.linalg.null_space(A[active]) if active.any() else np.eye(F.size)
+    Z = scipy.linalg.null_space(C) if C.shape[0] else np.eye(n)
     if Z.shape[1] == 0:
         return None
     Hz = Z.T @ H @ Z
