@@ -721,9 +721,10 @@ def compute_uncertainty(network: Network, data: Any, probs: Mapping[str, np.ndar
             # W (Wᵀ I W)⁻¹ Wᵀ with W a basis of the directions the constraints leave free)
             W = face[0]
             info = _lagrangian_information(info, pb.value_and_grad()[1], face[2])
-            rho, Xw = _generalised_eigh(W.T @ info @ W, W.T @ _block_matrix(co, blocks) @ W)
+            info_w = W.T @ info @ W
+            rho, Xw = _generalised_eigh(info_w, W.T @ _block_matrix(co, blocks) @ W)
             X = W @ Xw
-            ev = np.linalg.eigvalsh(W.T @ info @ W)
+            ev = np.linalg.eigvalsh(info_w)
             notes.append(f"the estimate of the monotone node(s) {', '.join(face[1])} pools configurations through "
                          f"ties between predecessors (binding constraints on two or more listed parents); the error "
                          f"bars are conditional on those ties, as on the other binding constraints")
@@ -848,7 +849,6 @@ def _face_basis(co: Coordinates):
             continue
         base = jnp.asarray(co.base[name])
         idx = jnp.asarray(co.index[name])
-        R, K = _mono.fraction_shape(net, name)
         cpt = net.cpt_shape(name)
 
         def cum(phi, base=base, idx=idx, name=name, cpt=cpt):
